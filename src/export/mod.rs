@@ -1,0 +1,5 @@
+//! Model formats: the versioned JSON model file.
+
+pub mod json;
+
+pub use json::{from_json, to_json};

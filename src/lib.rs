@@ -1,0 +1,20 @@
+//! pollard: tunes the complexity limits of decision trees by cross-validated sweeps.
+//!
+//! Code map, in reading order. The pure core knows nothing of networks, disks or clocks:
+//! - [`data`]   columnar frames read from CSV, targets and tasks
+//! - [`tree`]   CART growth with the six complexity limits, pruning path, predict and apply
+//! - [`export`] model files: the versioned JSON format
+//!
+//! The shell:
+//! - [`cli`]    command-line entry point
+//! - [`pb`]     generated protobuf types (only the shell sees them)
+
+pub mod cli;
+pub mod data;
+pub mod export;
+pub mod tree;
+
+/// Generated protobuf and gRPC code for `proto/pollard/v1`.
+pub mod pb {
+    tonic::include_proto!("pollard.v1");
+}

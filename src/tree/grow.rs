@@ -1,0 +1,616 @@
+//! Growing one tree.
+//!
+//! Each feature is sorted once per fit. A node owns the same index range `[start, end)` in
+//! every feature's sorted array; splitting it partitions every feature's range stably (left
+//! rows first), so children stay sorted without another sort. A level of the tree therefore
+//! costs O(rows × features).
+//!
+//! Growth is depth-first with an explicit stack when there is no leaf cap, and best-first by
+//! gain (ties: shallower first, then leftmost) when `max_leaves` is set. Either way every node's
+//! best split is found when the node is created, as the best-first order needs its gain.
+
+use std::cmp::Ordering;
+use std::collections::BinaryHeap;
+
+use rayon::prelude::*;
+
+use super::limits::fit_error;
+use super::split::{Cut, Entry, FeatureBest, Rows, Scratch, SearchCtx, Totals};
+use super::{CheckedOptions, ClassWeight, ColumnInfo, Criterion, FitError, Node, Split, SplitRule, Tree, NO_NODE};
+use crate::data::{Column, Frame, Target, Task, MISSING_CODE};
+
+/// Nodes with at least this many (rows × features) search and partition features in
+/// parallel; below it the thread hand-off costs more than it saves.
+const PARALLEL_WORK: usize = 1 << 17;
+
+/// What one fit reads: a frame, its target, and optionally a row subset and weights.
+#[derive(Clone, Copy)]
+pub struct TrainSet<'a> {
+    pub frame: &'a Frame,
+    pub target: &'a Target,
+    /// Name of the target column, kept in the model.
+    pub target_name: &'a str,
+    /// Frame rows to fit on (every row when `None`), such as one fold's training rows.
+    pub rows: Option<&'a [u32]>,
+    /// Sample weight per frame row (1 when `None`). Rows of weight 0 take no part.
+    pub weights: Option<&'a [f64]>,
+}
+
+impl<'a> TrainSet<'a> {
+    pub fn new(frame: &'a Frame, target: &'a Target) -> Self {
+        TrainSet { frame, target, target_name: "target", rows: None, weights: None }
+    }
+
+    /// Every row of a dataset, unweighted.
+    pub fn of(data: &'a crate::data::Dataset) -> Self {
+        TrainSet { frame: &data.frame, target: &data.target, target_name: &data.target_name, rows: None, weights: None }
+    }
+}
+
+/// Fits one tree under the checked options.
+pub fn fit(set: &TrainSet, options: &CheckedOptions) -> Result<Tree, FitError> {
+    fit_with(set, options, true)
+}
+
+/// As [`fit`], with feature-level parallelism on or off (for the equality test of the two paths).
+pub fn fit_with(set: &TrainSet, options: &CheckedOptions, parallel: bool) -> Result<Tree, FitError> {
+    let prepared = Prepared::new(set, options)?;
+    let tree = Grower::new(&prepared, options, parallel).grow();
+    if options.limits.prune_alpha > 0.0 {
+        Ok(super::prune::prune(&tree, options.limits.prune_alpha))
+    } else {
+        Ok(tree)
+    }
+}
+
+/// Fit-local copies of the target and weights, for the rows that take part.
+struct Prepared<'a> {
+    frame: &'a Frame,
+    target: &'a Target,
+    target_name: String,
+    /// Frame row of each fit-local row.
+    frame_rows: Vec<u32>,
+    class: Vec<u32>,
+    y: Vec<f64>,
+    w: Vec<f64>,
+    wy: Vec<f64>,
+    k: usize,
+}
+
+impl<'a> Prepared<'a> {
+    fn new(set: &TrainSet<'a>, options: &CheckedOptions) -> Result<Prepared<'a>, FitError> {
+        let frame = set.frame;
+        if set.target.len() != frame.rows {
+            return Err(fit_error("target", format!("has {} values for {} rows", set.target.len(), frame.rows)));
+        }
+        if set.target.task() != options.task {
+            return Err(fit_error("task", format!("options were checked for {}, the target is {}", options.task, set.target.task())));
+        }
+        if let Some(w) = set.weights {
+            if w.len() != frame.rows {
+                return Err(fit_error("weights", format!("has {} values for {} rows", w.len(), frame.rows)));
+            }
+        }
+        let all: Vec<u32>;
+        let rows = match set.rows {
+            Some(r) => r,
+            None => {
+                all = (0..frame.rows as u32).collect();
+                &all
+            }
+        };
+        let mut frame_rows = Vec::with_capacity(rows.len());
+        let mut w = Vec::with_capacity(rows.len());
+        for &r in rows {
+            if r as usize >= frame.rows {
+                return Err(fit_error("rows", format!("row {r} is beyond the frame's {} rows", frame.rows)));
+            }
+            let wr = set.weights.map_or(1.0, |ws| ws[r as usize]);
+            if !(wr.is_finite() && wr >= 0.0) {
+                return Err(fit_error("weights", format!("row {r} has weight {wr}; weights must be finite and >= 0")));
+            }
+            // Zero-weight rows are left out entirely, so they count in no row limit.
+            if wr > 0.0 {
+                frame_rows.push(r);
+                w.push(wr);
+            }
+        }
+        if frame_rows.is_empty() {
+            return Err(fit_error("rows", "no rows with a positive weight to fit on"));
+        }
+        let (class, y, k) = match set.target {
+            Target::Classes { codes, labels } => (frame_rows.iter().map(|&r| codes[r as usize]).collect(), Vec::new(), labels.len()),
+            Target::Values(v) => (Vec::new(), frame_rows.iter().map(|&r| v[r as usize]).collect::<Vec<f64>>(), 0),
+        };
+        if options.class_weight == ClassWeight::Balanced {
+            // n / (k · n_class) from the unweighted counts of the classes present.
+            let mut counts = vec![0usize; k];
+            for &c in &class {
+                counts[c as usize] += 1;
+            }
+            let present = counts.iter().filter(|&&c| c > 0).count() as f64;
+            let n = class.len() as f64;
+            for (wi, &c) in w.iter_mut().zip(&class) {
+                *wi *= n / (present * counts[c as usize] as f64);
+            }
+        }
+        let wy = if k == 0 { y.iter().zip(&w).map(|(y, w)| y * w).collect() } else { Vec::new() };
+        Ok(Prepared { frame, target: set.target, target_name: set.target_name.to_string(), frame_rows, class, y, w, wy, k })
+    }
+
+    fn rows(&self) -> Rows<'_> {
+        Rows { class: &self.class, y: &self.y, w: &self.w, wy: &self.wy, k: self.k }
+    }
+
+    /// Each feature's fit-local rows sorted by value, missing cells last; ties by row.
+    fn presort(&self, parallel: bool) -> Vec<Vec<Entry>> {
+        let one = |f: &crate::data::Feature| {
+            let mut e: Vec<Entry> = match &f.column {
+                Column::Numeric(v) => self
+                    .frame_rows
+                    .iter()
+                    .enumerate()
+                    .map(|(i, &r)| {
+                        let x = v[r as usize];
+                        Entry { v: if x.is_nan() { f32::NAN } else { x }, r: i as u32 }
+                    })
+                    .collect(),
+                Column::Categorical { codes, .. } => self
+                    .frame_rows
+                    .iter()
+                    .enumerate()
+                    .map(|(i, &r)| {
+                        let c = codes[r as usize];
+                        Entry { v: if c == MISSING_CODE { f32::NAN } else { c as f32 }, r: i as u32 }
+                    })
+                    .collect(),
+            };
+            e.sort_unstable_by(|a, b| a.v.total_cmp(&b.v).then(a.r.cmp(&b.r)));
+            e
+        };
+        if parallel {
+            self.frame.features.par_iter().map(one).collect()
+        } else {
+            self.frame.features.iter().map(one).collect()
+        }
+    }
+}
+
+/// A node's totals and impurity.
+#[derive(Clone, Debug)]
+struct NodeStats {
+    totals: Totals,
+    impurity: f64,
+}
+
+/// The split a node will take if it is expanded.
+struct Pending {
+    split: Split,
+    gain: f64,
+    n_left: u32,
+    left: NodeStats,
+    right: NodeStats,
+}
+
+struct Grower<'p> {
+    prep: &'p Prepared<'p>,
+    criterion: Criterion,
+    limits: super::Limits,
+    options: super::FitOptions,
+    parallel: bool,
+    sorted: Vec<Vec<Entry>>,
+    go_left: Vec<bool>,
+    scratch: Vec<Entry>,
+    search_scratch: Scratch,
+    total_weight: f64,
+    width: usize,
+    levels: Vec<usize>,
+    // Output arena, in creation order.
+    nodes: Vec<Node>,
+    stats: Vec<NodeStats>,
+    starts: Vec<u32>,
+}
+
+/// Frontier entry of best-first growth: larger gain first, then shallower, then leftmost.
+struct Frontier {
+    gain: f64,
+    depth: u32,
+    start: u32,
+    id: u32,
+}
+
+impl PartialEq for Frontier {
+    fn eq(&self, o: &Self) -> bool {
+        self.cmp(o) == Ordering::Equal
+    }
+}
+impl Eq for Frontier {}
+impl PartialOrd for Frontier {
+    fn partial_cmp(&self, o: &Self) -> Option<Ordering> {
+        Some(self.cmp(o))
+    }
+}
+impl Ord for Frontier {
+    fn cmp(&self, o: &Self) -> Ordering {
+        self.gain.total_cmp(&o.gain).then(o.depth.cmp(&self.depth)).then(o.start.cmp(&self.start))
+    }
+}
+
+impl<'p> Grower<'p> {
+    fn new(prep: &'p Prepared<'p>, options: &CheckedOptions, parallel: bool) -> Self {
+        let sorted = prep.presort(parallel);
+        let n = prep.frame_rows.len();
+        let width = if prep.k > 0 { prep.k } else { 1 };
+        let levels = prep
+            .frame
+            .features
+            .iter()
+            .map(|f| match &f.column {
+                Column::Categorical { levels, .. } => levels.len(),
+                Column::Numeric(_) => 0,
+            })
+            .collect();
+        Grower {
+            prep,
+            criterion: options.criterion,
+            limits: options.limits.clone(),
+            options: options.to_options(),
+            parallel,
+            sorted,
+            go_left: vec![false; n],
+            scratch: Vec::with_capacity(n),
+            search_scratch: Scratch::default(),
+            total_weight: 0.0,
+            width,
+            levels,
+            nodes: Vec::new(),
+            stats: Vec::new(),
+            starts: Vec::new(),
+        }
+    }
+
+    fn grow(mut self) -> Tree {
+        let n = self.prep.frame_rows.len() as u32;
+        let root = self.stats_of((0..n).collect::<Vec<_>>().iter().copied());
+        self.total_weight = root.totals.w;
+        self.push_node(0, 0, root);
+        let first = self.evaluate(0);
+        match self.limits.max_leaves {
+            None => {
+                let mut stack = Vec::new();
+                if let Some(p) = first {
+                    stack.push((0u32, n, p));
+                }
+                while let Some((id, end, p)) = stack.pop() {
+                    let (l, r) = self.expand(id, end, p);
+                    for (child, child_end) in [(r, end), (l, self.starts[r as usize])] {
+                        if let Some(p) = self.evaluate(child) {
+                            stack.push((child, child_end, p));
+                        }
+                    }
+                }
+            }
+            Some(max_leaves) => {
+                let mut budget = max_leaves - 1;
+                let mut heap = BinaryHeap::new();
+                // Frontier slot -> (node id, end of its range, its pending split).
+                let mut pending: Vec<Option<(u32, u32, Pending)>> = Vec::new();
+                if let Some(p) = first {
+                    heap.push(Frontier { gain: p.gain, depth: 0, start: 0, id: 0 });
+                    pending.push(Some((0, n, p)));
+                }
+                while budget > 0 {
+                    let Some(top) = heap.pop() else { break };
+                    let (id, end, p) = pending[top.id as usize].take().expect("frontier entry taken once");
+                    budget -= 1;
+                    let (l, r) = self.expand(id, end, p);
+                    for (child, child_end) in [(l, self.starts[r as usize]), (r, end)] {
+                        if let Some(p) = self.evaluate(child) {
+                            let node = &self.nodes[child as usize];
+                            heap.push(Frontier { gain: p.gain, depth: node.depth, start: self.starts[child as usize], id: pending.len() as u32 });
+                            pending.push(Some((child, child_end, p)));
+                        }
+                    }
+                }
+            }
+        }
+        self.finish()
+    }
+
+    fn push_node(&mut self, depth: u32, start: u32, s: NodeStats) -> u32 {
+        let id = self.nodes.len() as u32;
+        self.nodes.push(Node {
+            depth,
+            rows: s.totals.n,
+            weighted_rows: s.totals.w,
+            impurity: s.impurity,
+            gain: 0.0,
+            split: None,
+            left: NO_NODE,
+            right: NO_NODE,
+            rank: NO_NODE,
+        });
+        self.stats.push(s);
+        self.starts.push(start);
+        id
+    }
+
+    /// Totals and impurity of a set of fit-local rows.
+    fn stats_of(&self, rows: impl Iterator<Item = u32> + Clone) -> NodeStats {
+        let r = self.prep.rows();
+        let mut t = Totals::zero(self.width);
+        for i in rows.clone() {
+            t.add(&r, i);
+        }
+        let impurity = if self.prep.k > 0 {
+            self.criterion.class_impurity(&t.sums, t.w)
+        } else {
+            // Two passes (mean, then squared deviations): a constant target gets impurity 0,
+            // where the one-pass E[y²] − E[y]² can leave rounding noise that looks splittable.
+            let mean = t.sums[0] / t.w;
+            let mut ss = 0.0;
+            for i in rows {
+                let d = r.y[i as usize] - mean;
+                ss += r.w[i as usize] * d * d;
+            }
+            ss / t.w
+        };
+        NodeStats { totals: t, impurity }
+    }
+
+    fn is_pure(&self, s: &NodeStats) -> bool {
+        if self.prep.k > 0 {
+            s.totals.sums.iter().filter(|&&c| c > 0.0).count() <= 1
+        } else {
+            false
+        }
+    }
+
+    /// Decides whether node `id` may split and, if so, finds its split and the children's
+    /// statistics. `None` means the node stays a leaf.
+    fn evaluate(&mut self, id: u32) -> Option<Pending> {
+        let node = &self.nodes[id as usize];
+        let s = self.stats[id as usize].clone();
+        let l = &self.limits;
+        let n = node.rows;
+        if l.max_depth.is_some_and(|d| node.depth >= d)
+            || n < l.min_split_rows
+            || n < 2 * l.min_leaf_rows
+            || s.impurity <= f64::EPSILON
+            || self.is_pure(&s)
+        {
+            return None;
+        }
+        let start = self.starts[id as usize] as usize;
+        let end = start + n as usize;
+        let best = self.search(start, end, &s.totals)?;
+        let (feature, fb) = best;
+        let mut split = self.make_split(feature, &fb);
+        // Route the node's rows once to get both children's statistics.
+        let seg = &self.sorted[feature][start..end];
+        let mut left_rows = Vec::with_capacity(n as usize);
+        let mut right_rows = Vec::with_capacity(n as usize);
+        for e in seg {
+            if entry_goes_left(&split, e.v) {
+                left_rows.push(e.r);
+            } else {
+                right_rows.push(e.r);
+            }
+        }
+        if !fb.saw_missing {
+            // A node that saw no missing cells in the split feature sends them (and unseen
+            // categories) to the child with more training rows; ties go right.
+            split.missing_left = left_rows.len() > right_rows.len();
+        }
+        if let (SplitRule::Categories(bits), Cut::Codes { present, .. }) = (&mut split.rule, &fb.cut) {
+            // Categories absent from the node go where missing cells go.
+            if split.missing_left {
+                for c in 0..self.levels[feature] as u32 {
+                    if !present.contains(&c) {
+                        bits[(c / 64) as usize] |= 1 << (c % 64);
+                    }
+                }
+            }
+        }
+        let left = self.stats_of(left_rows.iter().copied());
+        let right = self.stats_of(right_rows.iter().copied());
+        let wt = s.totals.w;
+        let gain = (wt / self.total_weight) * (s.impurity - (right.totals.w / wt) * right.impurity - (left.totals.w / wt) * left.impurity);
+        if gain + f64::EPSILON < self.limits.min_gain {
+            return None;
+        }
+        Some(Pending { split, gain, n_left: left.totals.n, left, right })
+    }
+
+    /// Best split over all features, in index order, strictly-better replacement.
+    fn search(&mut self, start: usize, end: usize, totals: &Totals) -> Option<(usize, FeatureBest)> {
+        let rows = self.prep.rows();
+        let ctx = SearchCtx { rows: &rows, criterion: self.criterion, min_leaf_rows: self.limits.min_leaf_rows };
+        let one = |f: usize, s: &mut Scratch| {
+            let seg = &self.sorted[f][start..end];
+            if self.levels[f] > 0 {
+                ctx.categorical(seg, totals, s)
+            } else {
+                ctx.numeric(seg, totals, s)
+            }
+        };
+        let nf = self.sorted.len();
+        let results: Vec<Option<FeatureBest>> = if self.parallel && (end - start) * nf >= PARALLEL_WORK && nf > 1 {
+            (0..nf).into_par_iter().map_init(Scratch::default, |s, f| one(f, s)).collect()
+        } else {
+            let mut s = std::mem::take(&mut self.search_scratch);
+            let r = (0..nf).map(|f| one(f, &mut s)).collect();
+            self.search_scratch = s;
+            r
+        };
+        let mut best: Option<(usize, FeatureBest)> = None;
+        for (f, r) in results.into_iter().enumerate() {
+            if let Some(fb) = r {
+                if best.as_ref().is_none_or(|(_, b)| fb.proxy > b.proxy) {
+                    best = Some((f, fb));
+                }
+            }
+        }
+        best
+    }
+
+    fn make_split(&self, feature: usize, fb: &FeatureBest) -> Split {
+        let start_missing_left = fb.missing_left;
+        match &fb.cut {
+            Cut::Threshold(t) => Split { feature: feature as u32, rule: SplitRule::Threshold(*t), missing_left: start_missing_left },
+            Cut::Codes { left: codes, .. } => {
+                let levels = self.levels[feature];
+                let mut bits = vec![0u64; levels.div_ceil(64)];
+                for &c in codes {
+                    bits[(c / 64) as usize] |= 1 << (c % 64);
+                }
+                Split { feature: feature as u32, rule: SplitRule::Categories(bits), missing_left: start_missing_left }
+            }
+        }
+    }
+
+    /// Partitions node `id`'s range in every feature and creates its two children.
+    fn expand(&mut self, id: u32, end: u32, p: Pending) -> (u32, u32) {
+        let start = self.starts[id as usize] as usize;
+        let end = end as usize;
+        let f = p.split.feature as usize;
+        for e in &self.sorted[f][start..end] {
+            self.go_left[e.r as usize] = entry_goes_left(&p.split, e.v);
+        }
+        let go_left = &self.go_left;
+        let partition = |seg: &mut [Entry], scratch: &mut Vec<Entry>| {
+            scratch.clear();
+            let mut w = 0;
+            for i in 0..seg.len() {
+                let e = seg[i];
+                if go_left[e.r as usize] {
+                    seg[w] = e;
+                    w += 1;
+                } else {
+                    scratch.push(e);
+                }
+            }
+            seg[w..].copy_from_slice(scratch);
+        };
+        let nf = self.sorted.len();
+        if self.parallel && (end - start) * nf >= PARALLEL_WORK && nf > 1 {
+            self.sorted.par_iter_mut().for_each_init(Vec::new, |scratch, col| partition(&mut col[start..end], scratch));
+        } else {
+            let mut scratch = std::mem::take(&mut self.scratch);
+            for col in self.sorted.iter_mut() {
+                partition(&mut col[start..end], &mut scratch);
+            }
+            self.scratch = scratch;
+        }
+        let depth = self.nodes[id as usize].depth + 1;
+        let mid = start as u32 + p.n_left;
+        let l = self.push_node(depth, start as u32, p.left);
+        let r = self.push_node(depth, mid, p.right);
+        let node = &mut self.nodes[id as usize];
+        node.split = Some(p.split);
+        node.gain = p.gain;
+        node.left = l;
+        node.right = r;
+        (l, r)
+    }
+
+    /// Ranks splits in best-first order, renumbers nodes in preorder and fills the values.
+    fn finish(self) -> Tree {
+        let mut nodes = self.nodes;
+        // Best-first ranks: a priority walk from the root over split nodes.
+        let mut heap = BinaryHeap::new();
+        heap.push(Frontier { gain: nodes[0].gain, depth: 0, start: 0, id: 0 });
+        let mut rank = 0;
+        while let Some(top) = heap.pop() {
+            let node = &mut nodes[top.id as usize];
+            if node.is_leaf() {
+                continue;
+            }
+            node.rank = rank;
+            rank += 1;
+            let (l, r) = (node.left, node.right);
+            for c in [l, r] {
+                let cn = &nodes[c as usize];
+                heap.push(Frontier { gain: cn.gain, depth: cn.depth, start: self.starts[c as usize], id: c });
+            }
+        }
+        // Preorder renumbering, left subtree first.
+        let mut order = Vec::with_capacity(nodes.len());
+        let mut stack = vec![0u32];
+        while let Some(i) = stack.pop() {
+            order.push(i);
+            let n = &nodes[i as usize];
+            if !n.is_leaf() {
+                stack.push(n.right);
+                stack.push(n.left);
+            }
+        }
+        let mut new_id = vec![0u32; nodes.len()];
+        for (new, &old) in order.iter().enumerate() {
+            new_id[old as usize] = new as u32;
+        }
+        let k = self.prep.k;
+        let width = self.width;
+        let mut out = Vec::with_capacity(nodes.len());
+        let mut values = Vec::with_capacity(nodes.len() * width);
+        let mut class_totals = Vec::with_capacity(nodes.len() * k);
+        for &old in &order {
+            let mut n = nodes[old as usize].clone();
+            if !n.is_leaf() {
+                n.left = new_id[n.left as usize];
+                n.right = new_id[n.right as usize];
+            }
+            let t = &self.stats[old as usize].totals;
+            if k > 0 {
+                values.extend(t.sums.iter().map(|c| c / t.w));
+                class_totals.extend_from_slice(&t.sums);
+            } else {
+                values.push(t.sums[0] / t.w);
+            }
+            out.push(n);
+        }
+        let labels = match self.prep.target {
+            Target::Classes { labels, .. } => labels.clone(),
+            Target::Values(_) => Vec::new(),
+        };
+        let columns = self
+            .prep
+            .frame
+            .features
+            .iter()
+            .map(|f| ColumnInfo {
+                name: f.name.clone(),
+                kind: f.column.kind(),
+                levels: match &f.column {
+                    Column::Categorical { levels, .. } => levels.clone(),
+                    Column::Numeric(_) => Vec::new(),
+                },
+            })
+            .collect();
+        Tree {
+            task: if k > 0 { Task::Classify } else { Task::Regress },
+            target: self.prep.target_name.clone(),
+            labels,
+            columns,
+            n_classes: k,
+            n_features: self.sorted.len(),
+            nodes: out,
+            values,
+            class_totals,
+            total_weight: self.total_weight,
+            options: self.options,
+        }
+    }
+}
+
+/// Routes a sorted entry (numeric value, or category code as a value) through a split.
+#[inline]
+fn entry_goes_left(split: &Split, v: f32) -> bool {
+    if v.is_nan() {
+        return split.missing_left;
+    }
+    match &split.rule {
+        SplitRule::Threshold(t) => (v as f64) <= *t,
+        SplitRule::Categories(bits) => SplitRule::category_left(bits, v as u32),
+    }
+}

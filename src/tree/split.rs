@@ -1,0 +1,356 @@
+//! Best split of one feature within one node.
+//!
+//! Every feature's rows arrive sorted by value (categorical codes as values), missing cells
+//! last, so a numeric search is one forward scan and a categorical search groups equal codes.
+//! Both directions for missing cells are tried (sparsity-aware split finding, Chen &
+//! Guestrin, 2016): first every position with missing cells on the right, then every
+//! position with them on the left; a later candidate wins only when strictly better.
+
+use super::Criterion;
+
+/// A feature value and the fit-local row it belongs to.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub(crate) struct Entry {
+    pub v: f32,
+    pub r: u32,
+}
+
+/// Values closer than this (in float32 arithmetic) are treated as one value, as the
+/// reference library does, so no threshold falls between two nearly equal floats.
+pub(crate) const VALUE_TOLERANCE: f32 = 1e-7;
+
+/// Per-row target data of a fit.
+pub(crate) struct Rows<'a> {
+    /// Class codes (classify).
+    pub class: &'a [u32],
+    /// Target values (regress).
+    pub y: &'a [f64],
+    /// Weights.
+    pub w: &'a [f64],
+    /// w · y (regress), precomputed once per fit.
+    pub wy: &'a [f64],
+    /// Number of classes; 0 when regressing.
+    pub k: usize,
+}
+
+/// Weighted totals of a set of rows.
+#[derive(Clone, Debug, PartialEq)]
+pub(crate) struct Totals {
+    pub n: u32,
+    pub w: f64,
+    /// Class weights (classify) or [Σ w·y] (regress).
+    pub sums: Vec<f64>,
+}
+
+impl Totals {
+    pub fn zero(width: usize) -> Totals {
+        Totals { n: 0, w: 0.0, sums: vec![0.0; width] }
+    }
+
+    #[inline]
+    pub fn add(&mut self, rows: &Rows, r: u32) {
+        let r = r as usize;
+        self.n += 1;
+        self.w += rows.w[r];
+        if rows.k > 0 {
+            self.sums[rows.class[r] as usize] += rows.w[r];
+        } else {
+            self.sums[0] += rows.wy[r];
+        }
+    }
+
+    fn add_totals(&mut self, o: &Totals) {
+        self.n += o.n;
+        self.w += o.w;
+        for (a, b) in self.sums.iter_mut().zip(&o.sums) {
+            *a += b;
+        }
+    }
+}
+
+/// How the winning candidate of one feature splits.
+#[derive(Clone, Debug, PartialEq)]
+pub(crate) enum Cut {
+    Threshold(f64),
+    /// Codes that go left, and every code present in the node; absent codes follow the
+    /// missing direction.
+    Codes { left: Vec<u32>, present: Vec<u32> },
+}
+
+/// The best split of one feature.
+#[derive(Clone, Debug, PartialEq)]
+pub(crate) struct FeatureBest {
+    pub proxy: f64,
+    pub cut: Cut,
+    pub missing_left: bool,
+    /// Whether the node had missing cells in this feature.
+    pub saw_missing: bool,
+}
+
+/// Scratch buffers reused across searches.
+#[derive(Default)]
+pub(crate) struct Scratch {
+    left: Vec<f64>,
+    right: Vec<f64>,
+    miss: Vec<f64>,
+    nonmiss: Vec<f64>,
+    tmp: Vec<f64>,
+}
+
+impl Scratch {
+    fn reset(&mut self, width: usize) {
+        for b in [&mut self.left, &mut self.right, &mut self.miss, &mut self.nonmiss, &mut self.tmp] {
+            b.clear();
+            b.resize(width, 0.0);
+        }
+    }
+}
+
+/// Tracks the best candidate of one pass; replaces only on a strictly larger proxy.
+struct Best<T> {
+    proxy: f64,
+    at: Option<T>,
+}
+
+impl<T> Best<T> {
+    fn new() -> Self {
+        Best { proxy: f64::NEG_INFINITY, at: None }
+    }
+    #[inline]
+    fn offer(&mut self, proxy: f64, at: T) {
+        if proxy > self.proxy {
+            self.proxy = proxy;
+            self.at = Some(at);
+        }
+    }
+}
+
+/// The search settings a node's split depends on.
+pub(crate) struct SearchCtx<'a> {
+    pub rows: &'a Rows<'a>,
+    pub criterion: Criterion,
+    pub min_leaf_rows: u32,
+}
+
+impl SearchCtx<'_> {
+    #[inline]
+    fn proxy(&self, left: &[f64], wl: f64, right: &[f64], wr: f64) -> f64 {
+        if self.rows.k > 0 {
+            self.criterion.class_proxy(left, wl, right, wr)
+        } else {
+            super::criterion::squared_error_proxy(left[0], wl, right[0], wr)
+        }
+    }
+
+    /// Index of the first missing entry (missing cells sort last).
+    fn missing_start(seg: &[Entry]) -> usize {
+        let mut nn = seg.len();
+        while nn > 0 && seg[nn - 1].v.is_nan() {
+            nn -= 1;
+        }
+        nn
+    }
+
+    fn missing_totals(&self, seg: &[Entry], width: usize) -> Totals {
+        let mut t = Totals::zero(width);
+        for e in seg {
+            t.add(self.rows, e.r);
+        }
+        t
+    }
+
+    /// Best threshold split of a numeric feature.
+    pub fn numeric(&self, seg: &[Entry], node: &Totals, s: &mut Scratch) -> Option<FeatureBest> {
+        let width = node.sums.len();
+        let nn = Self::missing_start(seg);
+        if nn == 0 {
+            return None;
+        }
+        let n_miss = (seg.len() - nn) as u32;
+        let nn32 = nn as u32;
+        let msl = self.min_leaf_rows;
+        let miss = self.missing_totals(&seg[nn..], width);
+        s.reset(width);
+        for k in 0..width {
+            s.miss[k] = miss.sums[k];
+            s.nonmiss[k] = node.sums[k] - miss.sums[k];
+        }
+        let nonmiss_w = node.w - miss.w;
+        let constant = seg[nn - 1].v <= seg[0].v + VALUE_TOLERANCE;
+        if constant && n_miss == 0 {
+            return None;
+        }
+        let mut pass_right: Best<usize> = Best::new(); // missing cells right
+        let mut pass_left: Best<usize> = Best::new(); // missing cells left
+        let rows = self.rows;
+        let mut lw = 0.0;
+        if !constant {
+            for i in 0..nn - 1 {
+                let r = seg[i].r as usize;
+                lw += rows.w[r];
+                if rows.k > 0 {
+                    s.left[rows.class[r] as usize] += rows.w[r];
+                } else {
+                    s.left[0] += rows.wy[r];
+                }
+                if seg[i + 1].v <= seg[i].v + VALUE_TOLERANCE {
+                    continue;
+                }
+                let nl = i as u32 + 1;
+                if nn32 - nl + n_miss < msl {
+                    break;
+                }
+                if nl >= msl {
+                    for k in 0..width {
+                        s.right[k] = s.nonmiss[k] - s.left[k] + s.miss[k];
+                    }
+                    let p = self.proxy(&s.left, lw, &s.right, nonmiss_w - lw + miss.w);
+                    pass_right.offer(p, i);
+                }
+                if n_miss > 0 && nl + n_miss >= msl && nn32 - nl >= msl {
+                    for k in 0..width {
+                        s.tmp[k] = s.left[k] + s.miss[k];
+                        s.right[k] = s.nonmiss[k] - s.left[k];
+                    }
+                    let p = self.proxy(&s.tmp, lw + miss.w, &s.right, nonmiss_w - lw);
+                    pass_left.offer(p, i);
+                }
+            }
+        }
+        // All present values left, missing cells right.
+        let mut all_left = false;
+        if n_miss > 0 && nn32 >= msl && n_miss >= msl {
+            let p = self.proxy(&s.nonmiss, nonmiss_w, &s.miss, miss.w);
+            if p > pass_right.proxy {
+                pass_right.proxy = p;
+                pass_right.at = None;
+                all_left = true;
+            }
+        }
+        let threshold = |i: usize| seg[i].v as f64 / 2.0 + seg[i + 1].v as f64 / 2.0;
+        let right_found = pass_right.at.is_some() || all_left;
+        if pass_left.at.is_some() && (!right_found || pass_left.proxy > pass_right.proxy) {
+            let i = pass_left.at.unwrap();
+            return Some(FeatureBest { proxy: pass_left.proxy, cut: Cut::Threshold(threshold(i)), missing_left: true, saw_missing: true });
+        }
+        if all_left {
+            return Some(FeatureBest { proxy: pass_right.proxy, cut: Cut::Threshold(f64::INFINITY), missing_left: false, saw_missing: true });
+        }
+        let i = pass_right.at?;
+        Some(FeatureBest { proxy: pass_right.proxy, cut: Cut::Threshold(threshold(i)), missing_left: false, saw_missing: n_miss > 0 })
+    }
+
+    /// Best category-set split of a categorical feature (codes stored as values).
+    pub fn categorical(&self, seg: &[Entry], node: &Totals, s: &mut Scratch) -> Option<FeatureBest> {
+        let width = node.sums.len();
+        let nn = Self::missing_start(seg);
+        let n_miss = (seg.len() - nn) as u32;
+        let miss = self.missing_totals(&seg[nn..], width);
+        // Group the present rows by code.
+        let mut groups: Vec<(u32, Totals)> = Vec::new();
+        let mut i = 0;
+        while i < nn {
+            let code = seg[i].v;
+            let mut t = Totals::zero(width);
+            while i < nn && seg[i].v == code {
+                t.add(self.rows, seg[i].r);
+                i += 1;
+            }
+            groups.push((code as u32, t));
+        }
+        let g = groups.len();
+        if g == 0 || (g == 1 && n_miss == 0) {
+            return None;
+        }
+        s.reset(width);
+        let msl = self.min_leaf_rows;
+        let exhaustive = self.rows.k > 2 && g <= 10;
+        if !exhaustive {
+            let key = self.order_key(node);
+            groups.sort_by(|a, b| key(&a.1).total_cmp(&key(&b.1)).then(a.0.cmp(&b.0)));
+        }
+        let present = {
+            let mut t = Totals::zero(width);
+            for (_, gt) in &groups {
+                t.add_totals(gt);
+            }
+            t
+        };
+        // A candidate is a set of groups going left: a prefix length or a bit mask.
+        let mut pass_right: Best<u64> = Best::new();
+        let mut pass_left: Best<u64> = Best::new();
+        let mut evaluate = |left: &Totals, id: u64, s: &mut Scratch| {
+            let nl = left.n;
+            let nr_present = present.n - nl;
+            if nl >= msl && nr_present + n_miss >= msl && (nr_present > 0 || n_miss > 0) && nl > 0 {
+                for k in 0..width {
+                    s.right[k] = present.sums[k] - left.sums[k] + miss.sums[k];
+                }
+                let p = self.proxy(&left.sums, left.w, &s.right, present.w - left.w + miss.w);
+                pass_right.offer(p, id);
+            }
+            if n_miss > 0 && nr_present > 0 && nl + n_miss >= msl && nr_present >= msl {
+                for k in 0..width {
+                    s.tmp[k] = left.sums[k] + miss.sums[k];
+                    s.right[k] = present.sums[k] - left.sums[k];
+                }
+                let p = self.proxy(&s.tmp, left.w + miss.w, &s.right, present.w - left.w);
+                pass_left.offer(p, id);
+            }
+        };
+        if exhaustive {
+            // Group 0 always goes left, so each two-way partition is seen once.
+            for m in 0..(1u64 << (g - 1)) {
+                let mask = 1 | (m << 1);
+                let mut left = Totals::zero(width);
+                for (j, (_, gt)) in groups.iter().enumerate() {
+                    if mask >> j & 1 == 1 {
+                        left.add_totals(gt);
+                    }
+                }
+                evaluate(&left, mask, s);
+            }
+        } else {
+            let mut left = Totals::zero(width);
+            for (j, (_, gt)) in groups.iter().enumerate() {
+                left.add_totals(gt);
+                evaluate(&left, j as u64 + 1, s);
+            }
+        }
+        let (proxy, id, missing_left) = match (pass_right.at, pass_left.at) {
+            (_, Some(l)) if pass_left.proxy > pass_right.proxy => (pass_left.proxy, l, true),
+            (Some(r), _) => (pass_right.proxy, r, false),
+            (None, Some(l)) => (pass_left.proxy, l, true),
+            (None, None) => return None,
+        };
+        let codes: Vec<u32> = groups
+            .iter()
+            .enumerate()
+            .filter(|(j, _)| if exhaustive { id >> j & 1 == 1 } else { (*j as u64) < id })
+            .map(|(_, (c, _))| *c)
+            .collect();
+        let present = groups.iter().map(|(c, _)| *c).collect();
+        Some(FeatureBest { proxy, cut: Cut::Codes { left: codes, present }, missing_left, saw_missing: n_miss > 0 })
+    }
+
+    /// The order in which categories are scanned: class-1 share (binary), mean target
+    /// (regress), or the share of the node's majority class (more than two classes, used
+    /// above 10 present categories where exhaustive search is too costly).
+    fn order_key(&self, node: &Totals) -> impl Fn(&Totals) -> f64 {
+        let k = self.rows.k;
+        let class = if k == 2 {
+            1
+        } else if k > 2 {
+            let mut best = 0;
+            for c in 1..k {
+                if node.sums[c] > node.sums[best] {
+                    best = c;
+                }
+            }
+            best
+        } else {
+            0
+        };
+        move |t: &Totals| t.sums[class] / t.w
+    }
+}

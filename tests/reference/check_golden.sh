@@ -1,0 +1,106 @@
+#!/usr/bin/env bash
+# Regenerate the reference data and golden trees in a temporary folder and compare
+# them byte-for-byte with the committed files. Exits non-zero on any difference.
+#
+#   bash tests/reference/check_golden.sh
+#
+# Environment:
+#   POLLARD_REF_VENV  use this virtualenv (must contain bin/python) instead of making a
+#                     fresh one in a temporary folder; the pinned requirements are
+#                     installed into it (a no-op when they already are).
+#   PYTHON            interpreter used to make a fresh venv (default: python3).
+set -euo pipefail
+
+start=$(date +%s)
+here="$(cd "$(dirname "${BASH_SOURCE[0]}")" && pwd)"
+root="$(cd "$here/../.." && pwd)"
+req="$here/requirements.txt"
+tmp="$(mktemp -d "${TMPDIR:-/tmp}/pollard-ref.XXXXXX")"
+trap 'rm -rf "$tmp"' EXIT
+
+export PIP_DISABLE_PIP_VERSION_CHECK=1 PIP_NO_INPUT=1 PYTHONHASHSEED=0
+
+fail() { echo "check_golden: FAIL: $*" >&2; exit 1; }
+say() { echo "check_golden: $*"; }
+
+# --- 1. interpreter with the pinned packages --------------------------------------
+if [[ -n "${POLLARD_REF_VENV:-}" ]]; then
+    venv="$POLLARD_REF_VENV"
+    [[ -x "$venv/bin/python" ]] || fail "POLLARD_REF_VENV=$venv has no bin/python"
+    "$venv/bin/python" -c 'import sys; assert sys.version_info >= (3, 9)' \
+        || fail "POLLARD_REF_VENV=$venv: python is not usable (need >= 3.9)"
+    say "using venv $venv"
+else
+    venv="$tmp/venv"
+    say "creating venv in $venv"
+    "${PYTHON:-python3}" -m venv "$venv" || fail "could not create a venv with ${PYTHON:-python3}"
+fi
+py="$venv/bin/python"
+"$py" -m pip install --quiet -r "$req" </dev/null || fail "pip install -r $req failed"
+
+# every pin in requirements.txt must be the installed version
+"$py" - "$req" <<'EOF' || fail "installed versions do not match $req"
+import sys
+from importlib.metadata import version, PackageNotFoundError
+bad = []
+for line in open(sys.argv[1]):
+    line = line.split("#", 1)[0].strip()
+    if not line:
+        continue
+    name, want = line.split("==")
+    try:
+        have = version(name)
+    except PackageNotFoundError:
+        have = None
+    if have != want:
+        bad.append(f"{name}: want {want}, have {have}")
+if bad:
+    print("\n".join(bad), file=sys.stderr)
+    sys.exit(1)
+EOF
+say "packages: $(tr '\n' ' ' < <(grep -v '^#' "$req" | grep .))"
+t_env=$(date +%s)
+
+status=0
+
+# --- 2. datasets -------------------------------------------------------------------
+mkdir -p "$tmp/data"
+"$py" "$here/make_synthetic.py" "$tmp/data" >/dev/null || fail "make_synthetic.py failed"
+"$py" "$here/export_datasets.py" "$tmp/data" >/dev/null || fail "export_datasets.py failed"
+gen_list=$(cd "$tmp/data" && ls -1 *.csv | sort)
+com_list=$(cd "$root/tests/data" && ls -1 *.csv | sort)
+if [[ "$gen_list" != "$com_list" ]]; then
+    echo "check_golden: CSV file sets differ (generated vs committed tests/data):" >&2
+    diff <(echo "$gen_list") <(echo "$com_list") >&2 || true
+    status=1
+fi
+for f in $gen_list; do
+    if [[ ! -f "$root/tests/data/$f" ]]; then
+        continue
+    elif cmp -s "$tmp/data/$f" "$root/tests/data/$f"; then
+        say "tests/data/$f: identical"
+    else
+        echo "check_golden: FAIL: tests/data/$f differs from a fresh regeneration" >&2
+        diff "$tmp/data/$f" "$root/tests/data/$f" | head -n 10 >&2 || true
+        status=1
+    fi
+done
+
+# --- 3. golden trees (read from the committed CSVs) ---------------------------------
+(cd "$root" && "$py" "$here/make_golden.py" "$tmp/golden") || fail "make_golden.py failed"
+if diff -r -q "$tmp/golden" "$here/golden" >"$tmp/golden.diff" 2>&1; then
+    say "tests/reference/golden: identical ($(ls "$here/golden" | wc -l) files)"
+else
+    echo "check_golden: FAIL: tests/reference/golden differs from a fresh regeneration:" >&2
+    cat "$tmp/golden.diff" >&2
+    diff -r "$tmp/golden" "$here/golden" | head -n 40 >&2 || true
+    status=1
+fi
+
+end=$(date +%s)
+say "time: environment $((t_env - start)) s, regeneration and compare $((end - t_env)) s, total $((end - start)) s"
+if [[ $status -ne 0 ]]; then
+    echo "check_golden: FAIL (regenerate with the commands in tests/reference/README.md if the change is intended)" >&2
+    exit 1
+fi
+say "OK: all reference files reproduce exactly"
