@@ -66,7 +66,7 @@ impl Criterion {
 
     /// The quantity the split search maximises for a classification split: minus the
     /// weighted child impurities, −(w_L·I(L) + w_R·I(R)), up to a constant per node.
-    #[inline]
+    #[inline(always)]
     pub(crate) fn class_proxy(self, left: &[f64], wl: f64, right: &[f64], wr: f64) -> f64 {
         match self {
             Criterion::Gini => {
@@ -93,7 +93,7 @@ pub fn log2(x: f64) -> f64 {
 }
 
 /// Squared-error proxy for a split with weighted target sums `sl`, `sr`: Σ_L²/w_L + Σ_R²/w_R.
-#[inline]
+#[inline(always)]
 pub(crate) fn squared_error_proxy(sl: f64, wl: f64, sr: f64, wr: f64) -> f64 {
     sl * sl / wl + sr * sr / wr
 }

@@ -202,6 +202,8 @@ struct Grower<'p> {
     go_left: Vec<bool>,
     scratch: Vec<Entry>,
     search_scratch: Scratch,
+    left_buf: Vec<u32>,
+    right_buf: Vec<u32>,
     total_weight: f64,
     width: usize,
     levels: Vec<usize>,
@@ -260,6 +262,8 @@ impl<'p> Grower<'p> {
             go_left: vec![false; n],
             scratch: Vec::with_capacity(n),
             search_scratch: Scratch::default(),
+            left_buf: Vec::new(),
+            right_buf: Vec::new(),
             total_weight: 0.0,
             width,
             levels,
@@ -388,8 +392,10 @@ impl<'p> Grower<'p> {
         let mut split = self.make_split(feature, &fb);
         // Route the node's rows once to get both children's statistics.
         let seg = &self.sorted[feature][start..end];
-        let mut left_rows = Vec::with_capacity(n as usize);
-        let mut right_rows = Vec::with_capacity(n as usize);
+        let mut left_rows = std::mem::take(&mut self.left_buf);
+        let mut right_rows = std::mem::take(&mut self.right_buf);
+        left_rows.clear();
+        right_rows.clear();
         for e in seg {
             if entry_goes_left(&split, e.v) {
                 left_rows.push(e.r);
@@ -414,6 +420,8 @@ impl<'p> Grower<'p> {
         }
         let left = self.stats_of(left_rows.iter().copied());
         let right = self.stats_of(right_rows.iter().copied());
+        self.left_buf = left_rows;
+        self.right_buf = right_rows;
         let wt = s.totals.w;
         let gain = (wt / self.total_weight) * (s.impurity - (right.totals.w / wt) * right.impurity - (left.totals.w / wt) * left.impurity);
         if gain + f64::EPSILON < self.limits.min_gain {

@@ -106,6 +106,15 @@ impl Scratch {
     }
 }
 
+/// Counts and weights a numeric scan needs.
+struct Scan {
+    nn: usize,
+    n_miss: u32,
+    msl: u32,
+    miss_w: f64,
+    nonmiss_w: f64,
+}
+
 /// Tracks the best candidate of one pass; replaces only on a strictly larger proxy.
 struct Best<T> {
     proxy: f64,
@@ -133,7 +142,7 @@ pub(crate) struct SearchCtx<'a> {
 }
 
 impl SearchCtx<'_> {
-    #[inline]
+    #[inline(always)]
     fn proxy(&self, left: &[f64], wl: f64, right: &[f64], wr: f64) -> f64 {
         if self.rows.k > 0 {
             self.criterion.class_proxy(left, wl, right, wr)
@@ -149,6 +158,23 @@ impl SearchCtx<'_> {
             nn -= 1;
         }
         nn
+    }
+
+    /// Adds the rows' class weights (or w·y) into `sums`; returns their total weight.
+    #[inline]
+    fn add_rows(&self, seg: &[Entry], sums: &mut [f64]) -> f64 {
+        let rows = self.rows;
+        let mut w = 0.0;
+        for e in seg {
+            let r = e.r as usize;
+            w += rows.w[r];
+            if rows.k > 0 {
+                sums[rows.class[r] as usize] += rows.w[r];
+            } else {
+                sums[0] += rows.wy[r];
+            }
+        }
+        w
     }
 
     fn missing_totals(&self, seg: &[Entry], width: usize) -> Totals {
@@ -169,58 +195,30 @@ impl SearchCtx<'_> {
         let n_miss = (seg.len() - nn) as u32;
         let nn32 = nn as u32;
         let msl = self.min_leaf_rows;
-        let miss = self.missing_totals(&seg[nn..], width);
         s.reset(width);
+        let miss_w = self.add_rows(&seg[nn..], &mut s.miss);
         for k in 0..width {
-            s.miss[k] = miss.sums[k];
-            s.nonmiss[k] = node.sums[k] - miss.sums[k];
+            s.nonmiss[k] = node.sums[k] - s.miss[k];
         }
-        let nonmiss_w = node.w - miss.w;
+        let nonmiss_w = node.w - miss_w;
         let constant = seg[nn - 1].v <= seg[0].v + VALUE_TOLERANCE;
         if constant && n_miss == 0 {
             return None;
         }
         let mut pass_right: Best<usize> = Best::new(); // missing cells right
         let mut pass_left: Best<usize> = Best::new(); // missing cells left
-        let rows = self.rows;
-        let mut lw = 0.0;
         if !constant {
-            for i in 0..nn - 1 {
-                let r = seg[i].r as usize;
-                lw += rows.w[r];
-                if rows.k > 0 {
-                    s.left[rows.class[r] as usize] += rows.w[r];
-                } else {
-                    s.left[0] += rows.wy[r];
-                }
-                if seg[i + 1].v <= seg[i].v + VALUE_TOLERANCE {
-                    continue;
-                }
-                let nl = i as u32 + 1;
-                if nn32 - nl + n_miss < msl {
-                    break;
-                }
-                if nl >= msl {
-                    for k in 0..width {
-                        s.right[k] = s.nonmiss[k] - s.left[k] + s.miss[k];
-                    }
-                    let p = self.proxy(&s.left, lw, &s.right, nonmiss_w - lw + miss.w);
-                    pass_right.offer(p, i);
-                }
-                if n_miss > 0 && nl + n_miss >= msl && nn32 - nl >= msl {
-                    for k in 0..width {
-                        s.tmp[k] = s.left[k] + s.miss[k];
-                        s.right[k] = s.nonmiss[k] - s.left[k];
-                    }
-                    let p = self.proxy(&s.tmp, lw + miss.w, &s.right, nonmiss_w - lw);
-                    pass_left.offer(p, i);
-                }
+            let scan = Scan { nn, n_miss, msl, miss_w, nonmiss_w };
+            if self.rows.k == 0 {
+                self.scan_positions::<true>(seg, &scan, s, &mut pass_right, &mut pass_left);
+            } else {
+                self.scan_positions::<false>(seg, &scan, s, &mut pass_right, &mut pass_left);
             }
         }
         // All present values left, missing cells right.
         let mut all_left = false;
         if n_miss > 0 && nn32 >= msl && n_miss >= msl {
-            let p = self.proxy(&s.nonmiss, nonmiss_w, &s.miss, miss.w);
+            let p = self.proxy(&s.nonmiss, nonmiss_w, &s.miss, miss_w);
             if p > pass_right.proxy {
                 pass_right.proxy = p;
                 pass_right.at = None;
@@ -238,6 +236,59 @@ impl SearchCtx<'_> {
         }
         let i = pass_right.at?;
         Some(FeatureBest { proxy: pass_right.proxy, cut: Cut::Threshold(threshold(i)), missing_left: false, saw_missing: n_miss > 0 })
+    }
+
+    /// The forward scan over the present values of a numeric feature. `REGRESS` picks the
+    /// scalar squared-error path at compile time, so the hot loop carries no branch on the task.
+    #[inline(always)]
+    fn scan_positions<const REGRESS: bool>(&self, seg: &[Entry], sc: &Scan, s: &mut Scratch, pass_right: &mut Best<usize>, pass_left: &mut Best<usize>) {
+        let rows = self.rows;
+        let width = s.left.len();
+        let (nn32, n_miss, msl) = (sc.nn as u32, sc.n_miss, sc.msl);
+        let mut lw = 0.0;
+        let mut sl = 0.0;
+        let (miss0, nonmiss0) = (s.miss[0], s.nonmiss[0]);
+        for i in 0..sc.nn - 1 {
+            let r = seg[i].r as usize;
+            lw += rows.w[r];
+            if REGRESS {
+                sl += rows.wy[r];
+            } else {
+                s.left[rows.class[r] as usize] += rows.w[r];
+            }
+            if seg[i + 1].v <= seg[i].v + VALUE_TOLERANCE {
+                continue;
+            }
+            let nl = i as u32 + 1;
+            if nn32 - nl + n_miss < msl {
+                break;
+            }
+            if nl >= msl {
+                let rw = sc.nonmiss_w - lw + sc.miss_w;
+                let p = if REGRESS {
+                    super::criterion::squared_error_proxy(sl, lw, nonmiss0 - sl + miss0, rw)
+                } else {
+                    for k in 0..width {
+                        s.right[k] = s.nonmiss[k] - s.left[k] + s.miss[k];
+                    }
+                    self.criterion.class_proxy(&s.left, lw, &s.right, rw)
+                };
+                pass_right.offer(p, i);
+            }
+            if n_miss > 0 && nl + n_miss >= msl && nn32 - nl >= msl {
+                let rw = sc.nonmiss_w - lw;
+                let p = if REGRESS {
+                    super::criterion::squared_error_proxy(sl + miss0, lw + sc.miss_w, nonmiss0 - sl, rw)
+                } else {
+                    for k in 0..width {
+                        s.tmp[k] = s.left[k] + s.miss[k];
+                        s.right[k] = s.nonmiss[k] - s.left[k];
+                    }
+                    self.criterion.class_proxy(&s.tmp, lw + sc.miss_w, &s.right, rw)
+                };
+                pass_left.offer(p, i);
+            }
+        }
     }
 
     /// Best category-set split of a categorical feature (codes stored as values).
