@@ -4,6 +4,7 @@
 //! - [`data`]   columnar frames read from CSV, targets and tasks
 //! - [`tree`]   CART growth with the six complexity limits, pruning path, predict and apply
 //! - [`export`] model files: the versioned JSON format
+//! - [`sweep`]  cross-validated scores for a grid of settings from one growth per fold
 //!
 //! The shell:
 //! - [`cli`]    command-line entry point
@@ -12,6 +13,7 @@
 pub mod cli;
 pub mod data;
 pub mod export;
+pub mod sweep;
 pub mod tree;
 
 /// Generated protobuf and gRPC code for `proto/pollard/v1`.

@@ -40,8 +40,11 @@ impl PruningPath {
     }
 
     /// Nodes collapsed when pruning at `alpha`: every step up to the first whose α exceeds it.
+    /// α = 0 collapses nothing, even splits whose own α is 0 (splits that lower no
+    /// impurity): `prune_alpha` = 0 means the grown tree, as in the reference library.
     pub fn collapsed_at(&self, alpha: f64) -> impl Iterator<Item = u32> + '_ {
-        self.steps[1..].iter().take_while(move |s| s.alpha <= alpha).map(|s| s.node)
+        let steps = if alpha > 0.0 { &self.steps[1..] } else { &self.steps[..0] };
+        steps.iter().take_while(move |s| s.alpha <= alpha).map(|s| s.node)
     }
 }
 

@@ -1,0 +1,341 @@
+//! Sweeps: cross-validated scores for every setting of a grid, from one growth per fold
+//! and shaping key.
+//!
+//! Reading order: [`spec`] (what is asked, checked once), [`folds`] (fold plans),
+//! [`metrics`], [`envelope`] (one work unit), then this module: [`plan`] fixes the folds and
+//! settings, [`run`] scores every work unit on rayon and reports each to a sink, [`summarize`]
+//! turns unit results into setting scores and applies the pick rule, [`fit_final`] refits.
+//!
+//! `valid_sd` is the sample standard deviation of the fold scores (ddof = 1; 0 with one fold).
+
+pub mod envelope;
+pub mod folds;
+pub mod metrics;
+pub mod spec;
+
+use std::sync::atomic::{AtomicBool, Ordering};
+
+use rayon::prelude::*;
+
+pub use envelope::{Envelope, FoldScore, Stopping};
+pub use folds::{FoldPlan, FoldScheme, FoldSplit, Folds};
+pub use metrics::Metric;
+pub use spec::{CheckedSpec, PickRule, Range, Setting, ShapingKey, SpecError, SweepSpec};
+
+use crate::data::{Dataset, Frame};
+use crate::tree::{fit, pruning_path, FitError, FitOptions, TrainSet, Tree};
+
+/// A sweep ready to run: the checked spec, its folds, its settings and its work units.
+#[derive(Clone, Debug)]
+pub struct Plan {
+    pub spec: CheckedSpec,
+    pub folds: Folds,
+    /// Every setting, in grid order.
+    pub settings: Vec<Setting>,
+    /// Work units: (split index, shaping key index), split-major.
+    pub units: Vec<(usize, usize)>,
+    /// The dataset as the trees see it: the fold plan's column left out of the features.
+    pub data: Dataset,
+}
+
+/// Scores of every setting of one shaping key on one split.
+#[derive(Clone, Debug, PartialEq)]
+pub struct UnitResult {
+    /// Index into [`Plan::units`].
+    pub unit: usize,
+    /// Indices into [`Plan::settings`], with their fold scores.
+    pub scores: Vec<(usize, FoldScore)>,
+}
+
+/// How far a run has come.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub struct Progress {
+    pub units_done: usize,
+    pub units_total: usize,
+    /// Setting × split scores done (a setting is complete when all its splits are).
+    pub scores_done: usize,
+    pub scores_total: usize,
+}
+
+/// What a sink answers after each unit.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Flow {
+    Continue,
+    Stop,
+}
+
+/// Why a sweep did not finish.
+#[derive(Clone, Debug, PartialEq)]
+pub enum SweepError {
+    Spec(SpecError),
+    Fit(FitError),
+    /// The cancel flag was raised or the sink said stop.
+    Cancelled,
+}
+
+impl std::fmt::Display for SweepError {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        match self {
+            SweepError::Spec(e) => write!(f, "{e}"),
+            SweepError::Fit(e) => write!(f, "{e}"),
+            SweepError::Cancelled => f.write_str("the sweep was cancelled"),
+        }
+    }
+}
+
+impl std::error::Error for SweepError {}
+
+impl From<SpecError> for SweepError {
+    fn from(e: SpecError) -> Self {
+        SweepError::Spec(e)
+    }
+}
+impl From<FitError> for SweepError {
+    fn from(e: FitError) -> Self {
+        SweepError::Fit(e)
+    }
+}
+
+/// One setting's result over all splits.
+#[derive(Clone, Debug, PartialEq)]
+pub struct SettingScore {
+    pub setting: Setting,
+    /// Validation score per split, in split order.
+    pub fold_scores: Vec<f64>,
+    pub valid_mean: f64,
+    /// Sample standard deviation (ddof = 1) of `fold_scores`.
+    pub valid_sd: f64,
+    pub train_mean: f64,
+    /// `train_mean − valid_mean`.
+    pub gap: f64,
+    pub mean_leaves: f64,
+    pub mean_depth: f64,
+}
+
+/// A finished sweep.
+#[derive(Clone, Debug)]
+pub struct SweepResult {
+    pub metric: Metric,
+    pub pick_rule: PickRule,
+    pub scores: Vec<SettingScore>,
+    /// Index into `scores` of the picked setting.
+    pub picked: usize,
+    /// Index into `scores` of the best `valid_mean` (equal to `picked` under `highest`).
+    pub best: usize,
+    /// The picked setting refit on all rows, when asked.
+    pub model: Option<Tree>,
+}
+
+/// Checks the spec, assigns folds and expands the grid.
+pub fn plan(data: &Dataset, spec: &SweepSpec) -> Result<Plan, SweepError> {
+    let checked = spec.check(data)?;
+    let folds = checked.folds.assign(data, spec.seed)?;
+    let features: Vec<_> = data.frame.features.iter().filter(|f| !folds.plan_columns.contains(&f.name)).cloned().collect();
+    let frame = Frame::new(features).expect("a subset of valid columns");
+    let data = Dataset { frame, target_name: data.target_name.clone(), target: data.target.clone() };
+    let alphas_per_key: Vec<Vec<f64>> = if spec.prune_path {
+        checked
+            .keys
+            .iter()
+            .map(|key| path_alphas(&data, &checked, key))
+            .collect::<Result<_, FitError>>()?
+    } else {
+        vec![checked.prune_alpha.clone(); checked.keys.len()]
+    };
+    let settings = checked.settings(&alphas_per_key);
+    let cap = spec.max_settings.unwrap_or(spec::DEFAULT_MAX_SETTINGS);
+    if settings.len() > cap {
+        return Err(spec::spec_error("settings", format!("the grid has {} settings, more than the cap of {cap}", settings.len())).into());
+    }
+    let units = (0..folds.splits.len()).flat_map(|s| (0..checked.keys.len()).map(move |k| (s, k))).collect();
+    Ok(Plan { spec: checked, folds, settings, units, data })
+}
+
+/// The α values a path-mode sweep scores for a key: geometric means of consecutive α on the
+/// pruning path of the tree grown on all rows (the cross-validation of Breiman et al., 1984,
+/// §3.4.2), and the last α, which leaves the root alone.
+fn path_alphas(data: &Dataset, spec: &CheckedSpec, key: &ShapingKey) -> Result<Vec<f64>, FitError> {
+    let options = envelope_options(spec, key);
+    let tree = fit(&TrainSet::of(data), &options.check(data.task())?)?;
+    let a = pruning_path(&tree).alphas();
+    let mut out: Vec<f64> = a.windows(2).map(|w| (w[0] * w[1]).sqrt()).collect();
+    out.push(*a.last().unwrap());
+    out.dedup();
+    Ok(out)
+}
+
+fn envelope_options(spec: &CheckedSpec, key: &ShapingKey) -> FitOptions {
+    FitOptions { limits: spec.envelope_limits(key), criterion: Some(key.criterion), class_weight: key.class_weight }
+}
+
+impl Plan {
+    /// Setting × split scores per unit.
+    fn unit_size(&self, unit: usize) -> usize {
+        let key = self.units[unit].1;
+        self.settings.iter().filter(|s| s.key == key).count()
+    }
+
+    /// Scores one work unit.
+    pub fn run_unit(&self, unit: usize) -> Result<UnitResult, FitError> {
+        let (split, key) = self.units[unit];
+        let fold = &self.folds.splits[split];
+        let env = Envelope::grow(&self.data, &envelope_options(&self.spec, &self.spec.keys[key]), &fold.train, &fold.valid)?;
+        let mut scores = Vec::new();
+        let mine: Vec<usize> = (0..self.settings.len()).filter(|&i| self.settings[i].key == key).collect();
+        // α varies fastest in grid order: settings that differ only in α are consecutive.
+        let mut i = 0;
+        while i < mine.len() {
+            let l = &self.settings[mine[i]].options.limits;
+            let stopping = Stopping { max_depth: l.max_depth, min_split_rows: l.min_split_rows, max_leaves: l.max_leaves, min_gain: l.min_gain };
+            let mut j = i;
+            while j < mine.len() && same_stopping(&self.settings[mine[j]].options.limits, l) {
+                j += 1;
+            }
+            let alphas: Vec<f64> = mine[i..j].iter().map(|&s| self.settings[s].options.limits.prune_alpha).collect();
+            for (&s, score) in mine[i..j].iter().zip(env.score(self.spec.metric, &stopping, &alphas)) {
+                scores.push((s, score));
+            }
+            i = j;
+        }
+        Ok(UnitResult { unit, scores })
+    }
+}
+
+fn same_stopping(a: &crate::tree::Limits, b: &crate::tree::Limits) -> bool {
+    a.max_depth == b.max_depth && a.min_split_rows == b.min_split_rows && a.max_leaves == b.max_leaves && a.min_gain == b.min_gain
+}
+
+/// Scores every unit not in `done`, in parallel, calling `sink` after each (from the worker
+/// thread that finished it). The cancel flag is checked before each unit starts; a raised
+/// flag or a `Stop` from the sink ends the run with [`SweepError::Cancelled`].
+pub fn run(
+    plan: &Plan,
+    done: Vec<UnitResult>,
+    sink: &(dyn Fn(&UnitResult, Progress) -> Flow + Sync),
+    cancel: &AtomicBool,
+) -> Result<Vec<UnitResult>, SweepError> {
+    let sizes: Vec<usize> = (0..plan.units.len()).map(|u| plan.unit_size(u)).collect();
+    let total_scores: usize = sizes.iter().sum();
+    let mut finished = vec![false; plan.units.len()];
+    for r in &done {
+        finished[r.unit] = true;
+    }
+    let already_units = done.len();
+    let already_scores: usize = done.iter().map(|r| sizes[r.unit]).sum();
+    let progress = std::sync::Mutex::new((already_units, already_scores));
+    let todo: Vec<usize> = (0..plan.units.len()).filter(|&u| !finished[u]).collect();
+    let fresh: Vec<Result<Option<UnitResult>, FitError>> = todo
+        .par_iter()
+        .map(|&u| {
+            if cancel.load(Ordering::Relaxed) {
+                return Ok(None);
+            }
+            let r = plan.run_unit(u)?;
+            let p = {
+                let mut g = progress.lock().unwrap();
+                g.0 += 1;
+                g.1 += sizes[u];
+                Progress { units_done: g.0, units_total: plan.units.len(), scores_done: g.1, scores_total: total_scores }
+            };
+            if sink(&r, p) == Flow::Stop {
+                cancel.store(true, Ordering::Relaxed);
+            }
+            Ok(Some(r))
+        })
+        .collect();
+    let mut all = done;
+    for r in fresh {
+        if let Some(r) = r? {
+            all.push(r);
+        }
+    }
+    if cancel.load(Ordering::Relaxed) {
+        return Err(SweepError::Cancelled);
+    }
+    all.sort_by_key(|r| r.unit);
+    Ok(all)
+}
+
+/// Turns unit results into setting scores and picks one.
+pub fn summarize(plan: &Plan, units: &[UnitResult]) -> SweepResult {
+    let n_splits = plan.folds.splits.len();
+    let mut per: Vec<Vec<Option<FoldScore>>> = vec![vec![None; n_splits]; plan.settings.len()];
+    for r in units {
+        let split = plan.units[r.unit].0;
+        for (s, score) in &r.scores {
+            per[*s][split] = Some(score.clone());
+        }
+    }
+    let scores: Vec<SettingScore> = per
+        .into_iter()
+        .zip(&plan.settings)
+        .map(|(folds, setting)| {
+            let f: Vec<FoldScore> = folds.into_iter().map(|x| x.expect("every unit scored")).collect();
+            let k = f.len() as f64;
+            let fold_scores: Vec<f64> = f.iter().map(|x| x.valid).collect();
+            let valid_mean = fold_scores.iter().sum::<f64>() / k;
+            let valid_sd = if f.len() > 1 { (fold_scores.iter().map(|v| (v - valid_mean) * (v - valid_mean)).sum::<f64>() / (k - 1.0)).sqrt() } else { 0.0 };
+            let train_mean = f.iter().map(|x| x.train).sum::<f64>() / k;
+            SettingScore {
+                setting: setting.clone(),
+                fold_scores,
+                valid_mean,
+                valid_sd,
+                train_mean,
+                gap: train_mean - valid_mean,
+                mean_leaves: f.iter().map(|x| x.leaves as f64).sum::<f64>() / k,
+                mean_depth: f.iter().map(|x| x.depth as f64).sum::<f64>() / k,
+            }
+        })
+        .collect();
+    let metric = plan.spec.metric;
+    let best = pick(&scores, PickRule::Highest, metric);
+    let picked = pick(&scores, plan.spec.spec.pick, metric);
+    SweepResult { metric, pick_rule: plan.spec.spec.pick, scores, picked, best, model: None }
+}
+
+/// Applies a pick rule; NaN means count as the worst.
+pub fn pick(scores: &[SettingScore], rule: PickRule, metric: Metric) -> usize {
+    // Oriented so larger is better, NaN lowest.
+    let good = |s: &SettingScore| {
+        let v = if metric.higher_is_better() { s.valid_mean } else { -s.valid_mean };
+        if v.is_nan() {
+            f64::NEG_INFINITY
+        } else {
+            v
+        }
+    };
+    let simpler = |a: &SettingScore, b: &SettingScore| a.mean_leaves.total_cmp(&b.mean_leaves).then(a.mean_depth.total_cmp(&b.mean_depth));
+    let best = (0..scores.len())
+        .min_by(|&a, &b| good(&scores[b]).total_cmp(&good(&scores[a])).then(simpler(&scores[a], &scores[b])).then(a.cmp(&b)))
+        .expect("at least one setting");
+    match rule {
+        PickRule::Highest => best,
+        PickRule::OneSe => {
+            let b = &scores[best];
+            let se = b.valid_sd / (b.fold_scores.len() as f64).sqrt();
+            let floor = good(b) - se;
+            (0..scores.len())
+                .filter(|&i| good(&scores[i]) >= floor)
+                .min_by(|&a, &b| simpler(&scores[a], &scores[b]).then(good(&scores[b]).total_cmp(&good(&scores[a]))).then(a.cmp(&b)))
+                .unwrap_or(best)
+        }
+    }
+}
+
+/// Refits a setting on every row of the plan's dataset.
+pub fn fit_final(plan: &Plan, setting: &Setting) -> Result<Tree, FitError> {
+    let checked = setting.options.check(plan.data.task())?;
+    fit(&TrainSet::of(&plan.data), &checked)
+}
+
+/// Plans, runs, summarizes and (when the spec asks) refits, in one call.
+pub fn sweep(data: &Dataset, spec: &SweepSpec, sink: &(dyn Fn(&UnitResult, Progress) -> Flow + Sync), cancel: &AtomicBool) -> Result<(Plan, SweepResult), SweepError> {
+    let plan = plan(data, spec)?;
+    let units = run(&plan, Vec::new(), sink, cancel)?;
+    let mut result = summarize(&plan, &units);
+    if spec.fit_final {
+        result.model = Some(fit_final(&plan, &result.scores[result.picked].setting)?);
+    }
+    Ok((plan, result))
+}
