@@ -88,6 +88,8 @@ fn values(g: &mut Gen, options: &[Option<f64>]) -> Option<Range> {
 
 fn spec(g: &mut Gen, task: Task, plan: FoldPlan) -> SweepSpec {
     let metrics: Vec<Metric> = Metric::ALL.into_iter().filter(|m| m.task() == task).collect();
+    // Sometimes score every α on the pruning path instead of listed values.
+    let path_mode = g.chance(0.15);
     SweepSpec {
         criteria: if task == Task::Classify { g.subset(&[Criterion::Gini, Criterion::Entropy]) } else { vec![] },
         class_weights: if task == Task::Classify { g.subset(&[ClassWeight::None, ClassWeight::Balanced]) } else { vec![] },
@@ -96,7 +98,8 @@ fn spec(g: &mut Gen, task: Task, plan: FoldPlan) -> SweepSpec {
         min_leaf_rows: values(g, &[Some(1.0), Some(2.0), Some(5.0)]),
         max_leaves: values(g, &[None, Some(1.0), Some(2.0), Some(3.0), Some(5.0), Some(8.0)]),
         min_gain: values(g, &[Some(0.0), Some(0.001), Some(0.02)]),
-        prune_alpha: values(g, &[Some(0.0), Some(0.005), Some(0.02), Some(0.1)]),
+        prune_alpha: if path_mode { None } else { values(g, &[Some(0.0), Some(0.005), Some(0.02), Some(0.1)]) },
+        prune_path: path_mode,
         folds: Some(plan),
         metric: Some(g.pick(&metrics)),
         pick: if g.chance(0.5) { PickRule::Highest } else { PickRule::OneSe },
@@ -136,6 +139,7 @@ fn shared_growth_equals_fitting_each_setting() {
     let mut cases = 0;
     let mut compared = 0usize;
     let mut per_scheme = std::collections::BTreeMap::new();
+    let mut path_cases = 0;
     while cases < 240 {
         let task = if g.chance(0.5) { Task::Classify } else { Task::Regress };
         let data = dataset(&mut g, task);
@@ -151,6 +155,7 @@ fn shared_growth_equals_fitting_each_setting() {
         let repeats = if matches!(scheme, FoldScheme::Shuffled | FoldScheme::Stratified) && g.chance(0.3) { 2 } else { 1 };
         let name = format!("{scheme:?}").split([' ', '{']).next().unwrap().to_string() + if repeats > 1 { "+repeated" } else { "" };
         let spec = spec(&mut g, task, FoldPlan { scheme, k, repeats });
+        path_cases += spec.prune_path as usize;
         let plan = match sweep::plan(&data, &spec) {
             Ok(p) => p,
             // A plan that cannot work here (too few rows of a class, say) is no case.
@@ -181,6 +186,7 @@ fn shared_growth_equals_fitting_each_setting() {
         *per_scheme.entry(name).or_insert(0) += 1;
         cases += 1;
     }
-    eprintln!("sweep_equivalence: {cases} cases, {compared} setting × split scores compared; cases per fold plan: {per_scheme:?}");
+    eprintln!("sweep_equivalence: {cases} cases ({path_cases} in pruning-path mode), {compared} setting × split scores compared; cases per fold plan: {per_scheme:?}");
+    assert!(path_cases >= 10, "pruning-path mode must be exercised");
     assert!(per_scheme.len() >= 7, "every fold plan must be exercised: {per_scheme:?}");
 }

@@ -339,3 +339,63 @@ pub fn sweep(data: &Dataset, spec: &SweepSpec, sink: &(dyn Fn(&UnitResult, Progr
     }
     Ok((plan, result))
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::tree::FitOptions;
+
+    fn score(mean: f64, se: f64, leaves: f64) -> SettingScore {
+        // Two folds at mean ± se have sample sd se·√2, so sd/√2 = se.
+        SettingScore {
+            setting: Setting { key: 0, options: FitOptions::default() },
+            fold_scores: vec![mean - se, mean + se],
+            valid_mean: mean,
+            valid_sd: se * 2f64.sqrt(),
+            train_mean: 0.0,
+            gap: 0.0,
+            mean_leaves: leaves,
+            mean_depth: leaves - 1.0,
+        }
+    }
+
+    /// A published worked example of the one-standard-error rule: the cost-complexity table
+    /// (splits, cross-validated relative error, its standard error) quoted and worked in the
+    /// Cross Validated question "R rpart cross validation and 1 SE rule, why is the column in
+    /// cptable called 'xstd'" (stats.stackexchange.com). The minimum error 0.7248227 is at
+    /// 11 splits; 0.7248227 + 0.01526605 = 0.7400887, and the smallest tree under that bound
+    /// is the one with 6 splits (error 0.7356289), as the worked answer there says.
+    #[test]
+    fn one_se_rule_published_example() {
+        let table = [
+            (0.0, 1.0002790, 0.01853630),
+            (1.0, 0.8385070, 0.01749290),
+            (2.0, 0.7963870, 0.01709283),
+            (3.0, 0.7695997, 0.01653832),
+            (4.0, 0.7560406, 0.01606136),
+            (5.0, 0.7466449, 0.01600352),
+            (6.0, 0.7356289, 0.01549501),
+            (8.0, 0.7388091, 0.01559568),
+            (10.0, 0.7254237, 0.01522645),
+            (11.0, 0.7248227, 0.01526605),
+        ];
+        // Leaves = splits + 1; an error, so lower is better (log loss stands in for it).
+        let scores: Vec<SettingScore> = table.iter().map(|&(splits, err, se)| score(err, se, splits + 1.0)).collect();
+        assert_eq!(pick(&scores, PickRule::Highest, Metric::LogLoss), 9);
+        assert_eq!(pick(&scores, PickRule::OneSe, Metric::LogLoss), 6);
+        // The same table as a score where higher is better (1 − error) picks the same rows.
+        let flipped: Vec<SettingScore> = table.iter().map(|&(splits, err, se)| score(1.0 - err, se, splits + 1.0)).collect();
+        assert_eq!(pick(&flipped, PickRule::Highest, Metric::Accuracy), 9);
+        assert_eq!(pick(&flipped, PickRule::OneSe, Metric::Accuracy), 6);
+    }
+
+    #[test]
+    fn highest_breaks_ties_toward_the_simpler_tree() {
+        let scores = vec![score(0.9, 0.01, 8.0), score(0.9, 0.01, 4.0), score(0.8, 0.01, 2.0)];
+        assert_eq!(pick(&scores, PickRule::Highest, Metric::Accuracy), 1);
+        // NaN scores never win.
+        let scores = vec![score(f64::NAN, 0.0, 1.0), score(0.5, 0.0, 9.0)];
+        assert_eq!(pick(&scores, PickRule::Highest, Metric::Accuracy), 1);
+        assert_eq!(pick(&scores, PickRule::Highest, Metric::LogLoss), 1);
+    }
+}

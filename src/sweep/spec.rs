@@ -392,3 +392,68 @@ fn reals(field: &str, range: &Option<Range>) -> Result<Vec<f64>, SpecError> {
     }
     Ok(dedup(out))
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::data::{Column, Feature, Frame, Target};
+    use crate::sweep::folds::FoldScheme;
+
+    fn data(task: Task) -> Dataset {
+        let x: Vec<f32> = (0..20).map(|i| i as f32).collect();
+        let target = match task {
+            Task::Classify => Target::Classes { codes: (0..20).map(|i| (i % 2) as u32).collect(), labels: vec!["a".into(), "b".into()] },
+            Task::Regress => Target::Values((0..20).map(|i| i as f64).collect()),
+        };
+        let frame = Frame::new(vec![
+            Feature { name: "x".into(), column: Column::Numeric(x) },
+            Feature { name: "same".into(), column: Column::Numeric(vec![1.0; 20]) },
+        ])
+        .unwrap();
+        Dataset::new(frame, "y".into(), target).unwrap()
+    }
+
+    fn field_of(spec: SweepSpec, task: Task) -> String {
+        spec.check(&data(task)).unwrap_err().field
+    }
+
+    #[test]
+    fn ranges_expand() {
+        let c = SweepSpec {
+            max_depth: Some(Range::Values(vec![Some(3.0), None, Some(3.0)])),
+            min_split_rows: Some(Range::Span { from: 2.0, to: 10.0, step: 4.0 }),
+            min_gain: Some(Range::LogSpan { from: 0.001, to: 0.1, count: 3 }),
+            ..SweepSpec::default()
+        }
+        .check(&data(Task::Classify))
+        .unwrap();
+        assert_eq!(c.max_depth, vec![Some(3), None]);
+        assert_eq!(c.min_split_rows, vec![2, 6, 10]);
+        assert_eq!(c.min_gain.len(), 3);
+        assert!((c.min_gain[1] - 0.01).abs() < 1e-15);
+        assert_eq!(c.min_gain[2], 0.1);
+        // 2 depths × 3 split floors × 3 gain floors.
+        assert_eq!(c.settings(&[vec![0.0]]).len(), 18);
+    }
+
+    #[test]
+    fn bad_specs_name_their_field() {
+        let t = Task::Classify;
+        assert_eq!(field_of(SweepSpec { max_depth: Some(Range::Values(vec![])), ..Default::default() }, t), "max_depth.values");
+        assert_eq!(field_of(SweepSpec { max_depth: Some(Range::Span { from: 5.0, to: 1.0, step: 1.0 }), ..Default::default() }, t), "max_depth.span");
+        assert_eq!(field_of(SweepSpec { max_depth: Some(Range::Values(vec![Some(-1.0)])), ..Default::default() }, t), "max_depth.values[0]");
+        assert_eq!(field_of(SweepSpec { min_leaf_rows: Some(Range::Values(vec![Some(0.0)])), ..Default::default() }, t), "min_leaf_rows.values[0]");
+        assert_eq!(field_of(SweepSpec { prune_alpha: Some(Range::Values(vec![Some(-0.1)])), ..Default::default() }, t), "prune_alpha.values[0]");
+        assert_eq!(field_of(SweepSpec { min_gain: Some(Range::LogSpan { from: 0.0, to: 1.0, count: 3 }), ..Default::default() }, t), "min_gain.log_span");
+        assert_eq!(field_of(SweepSpec { metric: Some(Metric::RocAuc), ..Default::default() }, Task::Regress), "metric");
+        assert_eq!(field_of(SweepSpec { criteria: vec![Criterion::SquaredError], ..Default::default() }, t), "criteria[0]");
+        let many = Some(Range::Span { from: 1.0, to: 400.0, step: 1.0 });
+        assert_eq!(field_of(SweepSpec { max_depth: many.clone(), max_leaves: many, ..Default::default() }, t), "settings");
+        let folds = |scheme, k| Some(FoldPlan { scheme, k, repeats: 1 });
+        // Each class has 10 rows: 11 stratified folds cannot work.
+        assert_eq!(field_of(SweepSpec { folds: folds(FoldScheme::Stratified, 11), ..Default::default() }, t), "folds.k");
+        assert_eq!(field_of(SweepSpec { folds: folds(FoldScheme::Given { column: "same".into() }, 0), ..Default::default() }, t), "folds.column");
+        assert_eq!(field_of(SweepSpec { folds: folds(FoldScheme::Grouped { column: "same".into() }, 2), ..Default::default() }, t), "folds.k");
+        assert_eq!(field_of(SweepSpec { folds: folds(FoldScheme::Grouped { column: "nope".into() }, 2), ..Default::default() }, t), "folds.column");
+    }
+}
