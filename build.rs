@@ -2,12 +2,15 @@
 //! system `protoc` is needed.
 
 fn main() -> Result<(), Box<dyn std::error::Error>> {
-    let protos = ["proto/pollard/v1/model.proto"];
+    let protos = ["proto/pollard/v1/model.proto", "proto/pollard/v1/pollard.proto"];
     for p in &protos {
         println!("cargo:rerun-if-changed={p}");
     }
     println!("cargo:rerun-if-changed=proto");
     let fds = protox::compile(protos, ["proto"])?;
+    // The encoded descriptors serve gRPC server reflection.
+    let out = std::path::PathBuf::from(std::env::var("OUT_DIR")?);
+    std::fs::write(out.join("pollard_descriptor.bin"), prost::Message::encode_to_vec(&fds))?;
     tonic_prost_build::configure()
         .build_client(true)
         .build_server(true)

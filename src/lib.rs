@@ -13,10 +13,14 @@
 pub mod cli;
 pub mod data;
 pub mod export;
+pub mod job;
 pub mod sweep;
 pub mod tree;
 
 /// Generated protobuf and gRPC code for `proto/pollard/v1`.
 pub mod pb {
     tonic::include_proto!("pollard.v1");
+
+    /// Encoded descriptors of every pollard proto, for server reflection.
+    pub const DESCRIPTOR: &[u8] = tonic::include_file_descriptor_set!("pollard_descriptor");
 }
