@@ -623,11 +623,28 @@ fn cell_text<'a>(
 /// the reading rules; the target is encoded as class labels (sorted numerically when every
 /// label is a number, ties by text; otherwise by byte order) or as finite f64 values.
 pub fn read_dataset<R: Read>(reader: R, options: &CsvOptions) -> Result<Dataset, DataError> {
+    let (frame, target) = read_table(reader, options, true)?;
+    let (target_name, target) = target.expect("a target was asked for");
+    Dataset::new(frame, target_name, target)
+        .map_err(|e| DataError::new(DataErrorKind::Malformed, e))
+}
+
+/// Reads a table without a target: every column is a feature (`options.target` is ignored).
+/// Used to check an upload that names no target yet.
+pub fn read_frame<R: Read>(reader: R, options: &CsvOptions) -> Result<Frame, DataError> {
+    Ok(read_table(reader, options, false)?.0)
+}
+
+/// The reading rules shared by [`read_dataset`] and [`read_frame`].
+fn read_table<R: Read>(reader: R, options: &CsvOptions, with_target: bool) -> Result<(Frame, Option<(String, Target)>), DataError> {
     let mut reader = csv_reader(reader, options.delimiter);
     let (names, header_line) = read_header(&mut reader, options.max_columns)?;
     check_header_names(&names, header_line)?;
 
-    let target_index = names
+    let target_index = if !with_target {
+        usize::MAX
+    } else {
+        names
         .iter()
         .position(|n| *n == options.target)
         .ok_or_else(|| {
@@ -640,7 +657,8 @@ pub fn read_dataset<R: Read>(reader: R, options: &CsvOptions) -> Result<Dataset,
                 ),
             )
             .at(None, header_line)
-        })?;
+        })?
+    };
     for wanted in &options.categorical {
         if !names.contains(wanted) {
             return Err(DataError::new(
@@ -711,18 +729,20 @@ pub fn read_dataset<R: Read>(reader: R, options: &CsvOptions) -> Result<Dataset,
         ));
     }
 
-    let mut features = Vec::with_capacity(names.len() - 1);
+    let mut features = Vec::with_capacity(names.len());
     for column in pending.into_iter().flatten() {
         features.push(column.finish()?);
     }
-    let target_name = names[target_index].clone();
-    let target = encode_target(&target_texts, &target_lines, &target_name, options.task)?;
     let frame = Frame {
         features,
         rows: rows as usize,
     };
-    Dataset::new(frame, target_name, target)
-        .map_err(|e| DataError::new(DataErrorKind::Malformed, e))
+    if !with_target {
+        return Ok((frame, None));
+    }
+    let target_name = names[target_index].clone();
+    let target = encode_target(&target_texts, &target_lines, &target_name, options.task)?;
+    Ok((frame, Some((target_name, target))))
 }
 
 /// Encodes the target cells (none missing) for the given or inferred task.

@@ -269,29 +269,50 @@ pub fn summarize(plan: &Plan, units: &[UnitResult]) -> SweepResult {
     let scores: Vec<SettingScore> = per
         .into_iter()
         .zip(&plan.settings)
-        .map(|(folds, setting)| {
-            let f: Vec<FoldScore> = folds.into_iter().map(|x| x.expect("every unit scored")).collect();
-            let k = f.len() as f64;
-            let fold_scores: Vec<f64> = f.iter().map(|x| x.valid).collect();
-            let valid_mean = fold_scores.iter().sum::<f64>() / k;
-            let valid_sd = if f.len() > 1 { (fold_scores.iter().map(|v| (v - valid_mean) * (v - valid_mean)).sum::<f64>() / (k - 1.0)).sqrt() } else { 0.0 };
-            let train_mean = f.iter().map(|x| x.train).sum::<f64>() / k;
-            SettingScore {
-                setting: setting.clone(),
-                fold_scores,
-                valid_mean,
-                valid_sd,
-                train_mean,
-                gap: train_mean - valid_mean,
-                mean_leaves: f.iter().map(|x| x.leaves as f64).sum::<f64>() / k,
-                mean_depth: f.iter().map(|x| x.depth as f64).sum::<f64>() / k,
-            }
-        })
+        .map(|(folds, setting)| aggregate(setting, &folds.into_iter().map(|x| x.expect("every unit scored")).collect::<Vec<_>>()))
         .collect();
     let metric = plan.spec.metric;
     let best = pick(&scores, PickRule::Highest, metric);
     let picked = pick(&scores, plan.spec.spec.pick, metric);
     SweepResult { metric, pick_rule: plan.spec.spec.pick, scores, picked, best, model: None }
+}
+
+/// One setting's score from its fold scores, in split order.
+pub fn aggregate(setting: &Setting, f: &[FoldScore]) -> SettingScore {
+    let k = f.len() as f64;
+    let fold_scores: Vec<f64> = f.iter().map(|x| x.valid).collect();
+    let valid_mean = fold_scores.iter().sum::<f64>() / k;
+    let valid_sd = if f.len() > 1 { (fold_scores.iter().map(|v| (v - valid_mean) * (v - valid_mean)).sum::<f64>() / (k - 1.0)).sqrt() } else { 0.0 };
+    let train_mean = f.iter().map(|x| x.train).sum::<f64>() / k;
+    SettingScore {
+        setting: setting.clone(),
+        fold_scores,
+        valid_mean,
+        valid_sd,
+        train_mean,
+        gap: train_mean - valid_mean,
+        mean_leaves: f.iter().map(|x| x.leaves as f64).sum::<f64>() / k,
+        mean_depth: f.iter().map(|x| x.depth as f64).sum::<f64>() / k,
+    }
+}
+
+/// Scores of the settings of shaping key `key`, once every split of that key is in `units`;
+/// `None` while some split is missing.
+pub fn key_scores(plan: &Plan, units: &[UnitResult], key: usize) -> Option<Vec<(usize, SettingScore)>> {
+    let n_splits = plan.folds.splits.len();
+    let mut per: std::collections::BTreeMap<usize, Vec<Option<FoldScore>>> = std::collections::BTreeMap::new();
+    for r in units.iter().filter(|r| plan.units[r.unit].1 == key) {
+        let split = plan.units[r.unit].0;
+        for (s, score) in &r.scores {
+            per.entry(*s).or_insert_with(|| vec![None; n_splits])[split] = Some(score.clone());
+        }
+    }
+    let mut out = Vec::new();
+    for (s, folds) in per {
+        let folds: Option<Vec<FoldScore>> = folds.into_iter().collect();
+        out.push((s, aggregate(&plan.settings[s], &folds?)));
+    }
+    (!out.is_empty()).then_some(out)
 }
 
 /// Applies a pick rule; NaN means count as the worst.
