@@ -3,7 +3,7 @@
 //! Code map, in reading order. The pure core knows nothing of networks, disks or clocks:
 //! - [`data`]   columnar frames read from CSV, targets and tasks
 //! - [`tree`]   CART growth with the six complexity limits, pruning path, predict and apply
-//! - [`export`] model files: the versioned JSON format
+//! - [`export`] model files: the versioned JSON format, DOT and plain text
 //! - [`sweep`]  cross-validated scores for a grid of settings from one growth per fold
 //!
 //! The shell:

@@ -1,5 +1,9 @@
-//! Model formats: the versioned JSON model file.
+//! Model formats: the versioned JSON model file, Graphviz DOT and an indented plain-text rendering.
 
+pub mod dot;
 pub mod json;
+pub mod text;
 
+pub use dot::to_dot;
 pub use json::{from_json, to_json};
+pub use text::to_text;

@@ -1,0 +1,387 @@
+//! The plain-text model rendering, for reading a tree in a terminal.
+//!
+//! One line per node, two spaces of indentation per level. An internal node's line asks its
+//! test as a question and is followed by its two branches, `yes:` (the test holds) first and
+//! `no:` second; a leaf's line starts with `predict`. The last line sums the tree up.
+//!
+//! ```text
+//! colour in {red, back\slash}?  15 rows (100%), missing → yes
+//!   yes: length <= 4.5?  9 rows (60%), missing → yes
+//!     yes: predict scrap 100%, 5 rows (33.3%)
+//!     no: colour in {back\slash}?  4 rows (26.7%), missing → no
+//!       yes: predict scrap 100%, 1 row (6.7%)
+//!       no: predict keep 100%, 3 rows (20%)
+//!   no: predict keep 100%, 6 rows (40%)
+//! 4 leaves, depth 3, 15 rows; target target (classify)
+//! ```
+//!
+//! (the classify tree of this file's tests.)
+//!
+//! Tests read `column <= value` (value in shortest round-trip form), `column is present`, or
+//! `column in {a, b}` (at most eight categories are listed, then `… (+N more)`). Shares of
+//! rows are of all training rows. A classify leaf shows its most likely class (lowest class
+//! code on ties, as prediction does) and that class's share of the leaf's (weighted) rows; a
+//! regress leaf shows its mean to four significant digits. Control characters in names are
+//! written as Rust-style escapes so every node stays on one line.
+//!
+//! The helpers here are shared with the DOT rendering, so both say the same thing.
+
+use std::fmt::Write as _;
+
+use crate::data::Task;
+use crate::tree::{Split, SplitRule, Tree};
+
+/// Most categories a `column in {…}` test lists before summing up the rest.
+pub(crate) const MAX_LISTED: usize = 8;
+
+/// Renders a tree as indented plain text, ending with a one-line summary.
+pub fn to_text(tree: &Tree) -> String {
+    let mut out = String::new();
+    // Explicit stack of (node, indentation level, branch word): deep trees cannot overflow.
+    let mut stack: Vec<(usize, usize, Option<&str>)> = vec![(0, 0, None)];
+    while let Some((i, level, branch)) = stack.pop() {
+        let node = &tree.nodes[i];
+        for _ in 0..level {
+            out.push_str("  ");
+        }
+        if let Some(word) = branch {
+            out.push_str(word);
+            out.push_str(": ");
+        }
+        match &node.split {
+            Some(split) => {
+                let side = if split.missing_left { "yes" } else { "no" };
+                let _ = writeln!(out, "{}?  {}, missing → {side}", describe_test(tree, split), rows_of(tree, i));
+                stack.push((node.right as usize, level + 1, Some("no")));
+                stack.push((node.left as usize, level + 1, Some("yes")));
+            }
+            None => {
+                let _ = writeln!(out, "predict {}, {}", prediction(tree, i), rows_of(tree, i));
+            }
+        }
+    }
+    out.push_str(&summary(tree));
+    out.push('\n');
+    out
+}
+
+/// `3 leaves, depth 2, 150 rows; target species (classify)`.
+pub(crate) fn summary(tree: &Tree) -> String {
+    let leaves = tree.n_leaves();
+    format!(
+        "{leaves} {}, depth {}, {}; target {} ({})",
+        if leaves == 1 { "leaf" } else { "leaves" },
+        tree.depth(),
+        count_rows(root_rows(tree)),
+        clean(&tree.target),
+        tree.task
+    )
+}
+
+/// The test of a split, as a reader would say it: `x <= 2.45`, `x is present`, `c in {a, b}`.
+pub(crate) fn describe_test(tree: &Tree, split: &Split) -> String {
+    let column = tree.columns.get(split.feature as usize);
+    let name = column.map_or_else(|| format!("column {}", split.feature), |c| clean(&c.name));
+    match &split.rule {
+        SplitRule::Threshold(t) if *t == f64::INFINITY => format!("{name} is present"),
+        SplitRule::Threshold(t) => format!("{name} <= {t}"),
+        SplitRule::Categories(bits) => {
+            let levels = column.map_or(&[][..], |c| &c.levels[..]);
+            let chosen: Vec<&String> = levels
+                .iter()
+                .enumerate()
+                .filter(|(code, _)| SplitRule::category_left(bits, *code as u32))
+                .map(|(_, level)| level)
+                .collect();
+            let listed: Vec<String> = chosen.iter().take(MAX_LISTED).map(|l| clean(l)).collect();
+            let mut set = listed.join(", ");
+            if chosen.len() > MAX_LISTED {
+                let _ = write!(set, ", … (+{} more)", chosen.len() - MAX_LISTED);
+            }
+            format!("{name} in {{{set}}}")
+        }
+    }
+}
+
+/// What a node predicts: `malignant 94.1%` (class and its share) or `mean 3.142`.
+pub(crate) fn prediction(tree: &Tree, node: usize) -> String {
+    match tree.task {
+        Task::Classify => {
+            let class = tree.leaf_class(node as u32) as usize;
+            let label = tree.labels.get(class).map_or_else(|| format!("class {class}"), |l| clean(l));
+            format!("{label} {}", percent(tree.value(node)[class]))
+        }
+        Task::Regress => format!("mean {}", sig4(tree.value(node)[0])),
+    }
+}
+
+/// `50 rows (33.3%)`: the node's training rows and their share of all training rows.
+pub(crate) fn rows_of(tree: &Tree, node: usize) -> String {
+    let rows = tree.nodes[node].rows;
+    let all = root_rows(tree);
+    let share = if all == 0 { 0.0 } else { rows as f64 / all as f64 };
+    format!("{} ({})", count_rows(rows), percent(share))
+}
+
+fn root_rows(tree: &Tree) -> u32 {
+    tree.nodes.first().map_or(0, |n| n.rows)
+}
+
+fn count_rows(rows: u32) -> String {
+    if rows == 1 {
+        "1 row".to_string()
+    } else {
+        format!("{rows} rows")
+    }
+}
+
+/// A fraction as a percentage with at most one decimal: `33.3%`, `25%`. A fraction that is
+/// not exactly 0 or 1 never reads as `0%` or `100%`.
+pub(crate) fn percent(fraction: f64) -> String {
+    let p = fraction * 100.0;
+    let mut s = format!("{p:.1}");
+    if let Some(stripped) = s.strip_suffix(".0") {
+        s = stripped.to_string();
+    }
+    if s == "100" && fraction < 1.0 {
+        return ">99.9%".to_string();
+    }
+    if s == "0" && fraction > 0.0 {
+        return "<0.1%".to_string();
+    }
+    s.push('%');
+    s
+}
+
+/// A number to four significant digits, trailing zeros dropped: `3.142`, `12350`, `0.5`.
+/// Magnitudes below 1e-4 or from 1e9 up use exponent form (`1.235e-5`).
+pub(crate) fn sig4(value: f64) -> String {
+    if !value.is_finite() {
+        return format!("{value}");
+    }
+    if value == 0.0 {
+        return "0".to_string();
+    }
+    // Rounding to four digits first settles the exponent (9.99996 becomes 1.000e1).
+    let sci = format!("{value:.3e}");
+    let (mantissa, exp) = sci.split_once('e').expect("exponent form has an 'e'");
+    let exp: i32 = exp.parse().expect("exponent is an integer");
+    if !(-4..9).contains(&exp) {
+        return format!("{}e{exp}", trim_zeros(mantissa));
+    }
+    let rounded: f64 = sci.parse().expect("exponent form parses");
+    let decimals = (3 - exp).max(0) as usize;
+    trim_zeros(&format!("{rounded:.decimals$}")).to_string()
+}
+
+fn trim_zeros(s: &str) -> &str {
+    if s.contains('.') {
+        s.trim_end_matches('0').trim_end_matches('.')
+    } else {
+        s
+    }
+}
+
+/// A name with control characters escaped, so it cannot break a line.
+pub(crate) fn clean(name: &str) -> String {
+    if !name.chars().any(char::is_control) {
+        return name.to_string();
+    }
+    name.chars()
+        .map(|c| if c.is_control() { c.escape_default().to_string() } else { c.to_string() })
+        .collect()
+}
+
+#[cfg(test)]
+pub(crate) mod tests {
+    use super::*;
+    use crate::data::{Column, ColumnKind, Feature, Frame, Target, MISSING_CODE};
+    use crate::tree::{fit, ColumnInfo, FitOptions, Node, TrainSet, NO_NODE};
+
+    /// Category names of the small frame, with DOT's troublemakers among them.
+    pub(crate) const COLOURS: [&str; 4] = ["red", "a\"b{c}", "<blue>", "back\\slash"];
+
+    /// Fifteen rows: `length` alone cannot separate the classes (equal lengths carry both),
+    /// nor can `colour` (red carries both), so a pure tree needs both columns. One cell of
+    /// each column is missing.
+    pub(crate) fn small_frame() -> Frame {
+        let length = vec![1.0, 2.0, 3.0, 6.0, 7.0, 8.0, 1.0, 2.0, 7.0, 3.0, 4.0, 8.0, 2.0, 6.0, f32::NAN];
+        let colour = vec![0, 0, 0, 0, 0, 0, 1, 1, 1, 2, 2, 2, 3, 3, MISSING_CODE];
+        Frame::new(vec![
+            Feature { name: "length".into(), column: Column::Numeric(length) },
+            Feature {
+                name: "colour".into(),
+                column: Column::Categorical { codes: colour, levels: COLOURS.iter().map(|s| s.to_string()).collect() },
+            },
+        ])
+        .unwrap()
+    }
+
+    pub(crate) fn classify_tree() -> Tree {
+        let frame = small_frame();
+        let codes = vec![0, 0, 0, 1, 1, 1, 1, 1, 1, 1, 1, 1, 0, 0, 0];
+        let target = Target::Classes { codes, labels: vec!["scrap".into(), "keep".into()] };
+        let opts = FitOptions::default().check(Task::Classify).unwrap();
+        fit(&TrainSet::new(&frame, &target), &opts).unwrap()
+    }
+
+    /// Regress on the same frame with `max_depth` 1: the target is 1.5 below length 5 and
+    /// 10.5 above it (the missing-length row has 1.5), so the root splits at 5 and its
+    /// children are pure leaves.
+    pub(crate) fn regress_tree() -> Tree {
+        let frame = small_frame();
+        let Column::Numeric(length) = &frame.features[0].column else { unreachable!() };
+        let values: Vec<f64> = length.iter().map(|&x| if x.is_nan() || x < 5.0 { 1.5 } else { 10.5 }).collect();
+        let target = Target::Values(values);
+        let mut options = FitOptions::default();
+        options.limits.max_depth = Some(1);
+        let opts = options.check(Task::Regress).unwrap();
+        fit(&TrainSet::new(&frame, &target), &opts).unwrap()
+    }
+
+    /// A hand-built classify tree: root tests `shade in {…}` on twelve categories (ten set,
+    /// names with quotes, braces, angle brackets, a backslash and a newline), its left child
+    /// tests `x is present`.
+    pub(crate) fn hand_tree() -> Tree {
+        let mut levels: Vec<String> = vec!["a\"b{c}".into(), "<b>".into(), "c\\".into(), "line\nbreak".into()];
+        levels.extend((4..12).map(|i| format!("s{i}")));
+        // Codes 0..=9 go left: 0b11_1111_1111.
+        let bits = vec![0x3ffu64];
+        let leaf = |depth, rows| Node {
+            depth,
+            rows,
+            weighted_rows: rows as f64,
+            impurity: 0.0,
+            gain: 0.0,
+            split: None,
+            left: NO_NODE,
+            right: NO_NODE,
+            rank: NO_NODE,
+        };
+        let nodes = vec![
+            Node {
+                depth: 0,
+                rows: 8,
+                weighted_rows: 8.0,
+                impurity: 0.5,
+                gain: 0.2,
+                split: Some(Split { feature: 1, rule: SplitRule::Categories(bits), missing_left: true }),
+                left: 1,
+                right: 4,
+                rank: 0,
+            },
+            Node {
+                depth: 1,
+                rows: 5,
+                weighted_rows: 5.0,
+                impurity: 0.48,
+                gain: 0.1,
+                split: Some(Split { feature: 0, rule: SplitRule::Threshold(f64::INFINITY), missing_left: false }),
+                left: 2,
+                right: 3,
+                rank: 1,
+            },
+            leaf(2, 3),
+            leaf(2, 2),
+            leaf(1, 3),
+        ];
+        Tree {
+            task: Task::Classify,
+            target: "grade \"A\"".into(),
+            labels: vec!["lo{w}".into(), "hi\"gh".into()],
+            columns: vec![
+                ColumnInfo { name: "x".into(), kind: ColumnKind::Numeric, levels: vec![] },
+                ColumnInfo { name: "shade".into(), kind: ColumnKind::Categorical, levels },
+            ],
+            n_classes: 2,
+            n_features: 2,
+            nodes,
+            values: vec![0.5, 0.5, 0.4, 0.6, 0.0, 1.0, 1.0, 0.0, 2.0 / 3.0, 1.0 / 3.0],
+            class_totals: vec![4.0, 4.0, 2.0, 3.0, 0.0, 3.0, 2.0, 0.0, 2.0, 1.0],
+            total_weight: 8.0,
+            options: FitOptions::default(),
+        }
+    }
+
+    #[test]
+    fn number_forms() {
+        assert_eq!(sig4(1.23456), "1.235");
+        assert_eq!(sig4(12345.6), "12350");
+        assert_eq!(sig4(0.000123456), "0.0001235");
+        assert_eq!(sig4(0.0000123456), "1.235e-5");
+        assert_eq!(sig4(9.99996), "10");
+        assert_eq!(sig4(1e10), "1e10");
+        assert_eq!(sig4(-2.5), "-2.5");
+        assert_eq!(sig4(0.0), "0");
+        assert_eq!(percent(1.0), "100%");
+        assert_eq!(percent(0.0), "0%");
+        assert_eq!(percent(1.0 / 3.0), "33.3%");
+        assert_eq!(percent(0.25), "25%");
+        assert_eq!(percent(0.99999), ">99.9%");
+        assert_eq!(percent(0.00001), "<0.1%");
+        assert_eq!(clean("a\nb\tc"), "a\\nb\\tc");
+    }
+
+    #[test]
+    fn classify_text_names_every_split_column_and_leaf() {
+        let tree = classify_tree();
+        let text = to_text(&tree);
+        let lines: Vec<&str> = text.lines().collect();
+        assert_eq!(lines.len(), tree.nodes.len() + 1, "one line per node plus the summary:\n{text}");
+        for n in tree.nodes.iter().filter_map(|n| n.split.as_ref()) {
+            let name = &tree.columns[n.feature as usize].name;
+            assert!(text.contains(name.as_str()), "no split on {name} in\n{text}");
+        }
+        assert!(text.contains("length"), "{text}");
+        assert!(text.contains("colour in {"), "{text}");
+        // Every leaf is pure, so each reads `predict <class> 100%`, in preorder.
+        let leaf_lines: Vec<&str> = lines.iter().copied().filter(|l| l.trim_start().contains("predict ")).collect();
+        let leaves = tree.leaves();
+        assert_eq!(leaf_lines.len(), leaves.len());
+        for (line, &leaf) in leaf_lines.iter().zip(&leaves) {
+            let label = &tree.labels[tree.leaf_class(leaf) as usize];
+            assert!(line.contains(&format!("predict {label} 100%,")), "leaf {leaf}: {line}");
+        }
+        assert!(lines[0].starts_with(|c: char| c.is_alphabetic()), "the root is not indented");
+        assert!(lines[0].contains("15 rows (100%)"), "{}", lines[0]);
+        assert!(lines[1].starts_with("  yes: ") && !lines[1].starts_with("   "), "{text}");
+        let summary = format!("{} leaves, depth {}, 15 rows; target target (classify)", tree.n_leaves(), tree.depth());
+        assert_eq!(*lines.last().unwrap(), summary);
+    }
+
+    #[test]
+    fn regress_text_shows_means() {
+        let tree = regress_tree();
+        assert_eq!(tree.nodes.len(), 3, "{tree:?}");
+        let text = to_text(&tree);
+        // Eight rows have length <= 5 and target 1.5; the missing-length row (also 1.5) can
+        // only join them for a pure split. The other six have 10.5.
+        assert!(text.starts_with("length <= 5?  15 rows (100%), missing → yes\n"), "{text}");
+        assert!(text.contains("predict mean 1.5, 9 rows (60%)"), "{text}");
+        assert!(text.contains("predict mean 10.5, 6 rows (40%)"), "{text}");
+        assert!(text.contains("missing → yes"), "{text}");
+        assert!(text.ends_with("2 leaves, depth 1, 15 rows; target target (regress)\n"), "{text}");
+    }
+
+    #[test]
+    fn hand_tree_text() {
+        let text = to_text(&hand_tree());
+        let expected = "\
+shade in {a\"b{c}, <b>, c\\, line\\nbreak, s4, s5, s6, s7, … (+2 more)}?  8 rows (100%), missing → yes
+  yes: x is present?  5 rows (62.5%), missing → no
+    yes: predict hi\"gh 100%, 3 rows (37.5%)
+    no: predict lo{w} 100%, 2 rows (25%)
+  no: predict lo{w} 66.7%, 3 rows (37.5%)
+3 leaves, depth 2, 8 rows; target grade \"A\" (classify)
+";
+        assert_eq!(text, expected);
+    }
+
+    #[test]
+    fn text_is_deterministic() {
+        let a = to_text(&classify_tree());
+        let b = to_text(&classify_tree());
+        assert_eq!(a, b);
+        assert_eq!(to_text(&regress_tree()), to_text(&regress_tree()));
+    }
+}
