@@ -2,6 +2,8 @@
 //!
 //! Commands so far:
 //! - `pollard demo`: placeholder until the demo is built.
+//! - `pollard serve [--listen ADDR] [--data DIR] [--config FILE]`: the gRPC service (see
+//!   [`crate::config`] for the file and the `POLLARD_*` environment variables).
 //! - `pollard folds --data FILE --target NAME [--scheme S] [--k K] [--repeats R] [--seed N]
 //!   [--column C]`: prints the fold assignment a sweep with that plan uses, as CSV
 //!   `row,repeat,fold` (rows from 1, as in error messages; fold −1 = in no validation set), so
@@ -15,6 +17,7 @@ use crate::data::csv::{read_dataset, CsvOptions};
 use crate::sweep::{FoldPlan, FoldScheme};
 
 const USAGE: &str = "usage: pollard demo
+       pollard serve [--listen ADDR] [--data DIR] [--config FILE]
        pollard folds --data FILE --target NAME [--scheme shuffled|stratified|grouped|forward|given] [--k K] [--repeats R] [--seed N] [--column C]";
 
 /// Runs the command named by `args` (without the program name).
@@ -25,6 +28,7 @@ pub fn run(args: &[String]) -> Result<(), String> {
             Ok(())
         }
         Some("folds") => folds(&flags(&args[1..])?),
+        Some("serve") => serve(&flags(&args[1..])?),
         _ => Err(USAGE.to_string()),
     }
 }
@@ -75,4 +79,49 @@ fn folds(f: &HashMap<String, String>) -> Result<(), String> {
         }
     }
     out.flush().map_err(w)
+}
+
+fn serve(f: &HashMap<String, String>) -> Result<(), String> {
+    for k in f.keys() {
+        if !["listen", "data", "config"].contains(&k.as_str()) {
+            return Err(format!("serve: unknown flag --{k}\n{USAGE}"));
+        }
+    }
+    let flags = crate::config::Flags { config_file: f.get("config").map(Into::into), listen: f.get("listen").cloned(), data_dir: f.get("data").cloned() };
+    let config = crate::config::Config::load(&flags, &|k| std::env::var(k).ok())?;
+    init_logging(&config);
+    let runtime = tokio::runtime::Builder::new_multi_thread().enable_all().build().map_err(|e| e.to_string())?;
+    runtime.block_on(async move {
+        let store = crate::store::Store::open(&config.data_dir).map_err(|e| format!("{}: {e}", config.data_dir.display()))?;
+        let listener = tokio::net::TcpListener::bind(config.listen).await.map_err(|e| format!("cannot listen on {}: {e}", config.listen))?;
+        crate::server::run(listener, config, store, shutdown_signal()).await
+    })
+}
+
+/// Completes on SIGINT or SIGTERM.
+async fn shutdown_signal() {
+    let interrupt = tokio::signal::ctrl_c();
+    #[cfg(unix)]
+    {
+        let mut term = match tokio::signal::unix::signal(tokio::signal::unix::SignalKind::terminate()) {
+            Ok(t) => t,
+            Err(_) => return interrupt.await.unwrap_or(()),
+        };
+        tokio::select! {
+            _ = interrupt => {}
+            _ = term.recv() => {}
+        }
+    }
+    #[cfg(not(unix))]
+    interrupt.await.unwrap_or(());
+}
+
+/// Log lines through `tracing`, plain or JSON; every line of a run carries its id.
+pub fn init_logging(config: &crate::config::Config) {
+    let filter = tracing_subscriber::EnvFilter::try_new(&config.log_filter).unwrap_or_else(|_| tracing_subscriber::EnvFilter::new("info"));
+    let builder = tracing_subscriber::fmt().with_env_filter(filter).with_writer(std::io::stderr);
+    let _ = match config.log_format {
+        crate::config::LogFormat::Json => builder.json().try_init(),
+        crate::config::LogFormat::Plain => builder.try_init(),
+    };
 }

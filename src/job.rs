@@ -151,8 +151,8 @@ impl Run {
 #[derive(Clone, Debug, PartialEq)]
 pub enum EventKind {
     Progress(Progress),
-    /// A setting whose every split is scored (index into the plan's settings).
-    Scored(u32),
+    /// A setting whose every split is scored: its index in the plan's settings, and its score.
+    Scored { index: u32, score: Box<SettingScore> },
     /// The run finished; the outcome holds the scores and the model.
     Finished { picked: u32, best: u32 },
     Failed(String),

@@ -1,0 +1,549 @@
+//! The one place where protobuf messages and core values meet, both ways.
+
+use chrono::{DateTime, SecondsFormat, Utc};
+use tonic::Status;
+
+use crate::data::{Column, ColumnKind, Feature, Frame, Task, MISSING_CODE};
+use crate::job::{DatasetMeta, Event, EventKind, Run, RunOutcome, RunState};
+use crate::pb;
+use crate::sweep::{FoldPlan, FoldScheme, Metric, PickRule, Range, SettingScore, SweepSpec};
+use crate::tree::{ClassWeight, ColumnInfo, Criterion, FitOptions, Limits, Node, Split, SplitRule, Tree, NO_NODE};
+
+fn invalid(field: &str, message: impl std::fmt::Display) -> Status {
+    Status::invalid_argument(format!("{field}: {message}"))
+}
+
+/// Unix milliseconds as RFC 3339 in UTC.
+pub fn time(ms: i64) -> String {
+    DateTime::<Utc>::from_timestamp_millis(ms).map(|t| t.to_rfc3339_opts(SecondsFormat::Millis, true)).unwrap_or_default()
+}
+
+pub fn opt_time(ms: Option<i64>) -> String {
+    ms.map(time).unwrap_or_default()
+}
+
+/// RFC 3339 to Unix milliseconds; empty means none.
+pub fn parse_time(field: &str, s: &str) -> Result<Option<i64>, Status> {
+    if s.is_empty() {
+        return Ok(None);
+    }
+    DateTime::parse_from_rfc3339(s).map(|t| Some(t.timestamp_millis())).map_err(|e| invalid(field, format!("'{s}' is not an RFC 3339 time ({e})")))
+}
+
+// ------------------------------------------------------------------ datasets
+
+pub fn dataset_info(m: &DatasetMeta) -> pb::DatasetInfo {
+    pb::DatasetInfo {
+        id: m.id.clone(),
+        name: m.name.clone(),
+        version: m.version,
+        rows: m.rows,
+        columns: m
+            .columns
+            .iter()
+            .map(|c| pb::ColumnSummary {
+                name: c.name.clone(),
+                kind: if c.kind == "categorical" { pb::ColumnKind::Categorical } else { pb::ColumnKind::Numeric } as i32,
+                missing: c.missing,
+                levels: c.levels,
+            })
+            .collect(),
+        target: m.target.clone(),
+        task: m.task.clone(),
+        created_at: time(m.created_at),
+        bytes: m.bytes,
+    }
+}
+
+/// Writes a columnar table as CSV (the stored form of every dataset), checking its shape.
+pub fn table_to_csv(table: &pb::Table) -> Result<Vec<u8>, Status> {
+    if table.columns.is_empty() {
+        return Err(invalid("table.columns", "the table has no columns"));
+    }
+    let rows = cell_count(&table.columns[0]);
+    for (i, c) in table.columns.iter().enumerate() {
+        if c.name.trim().is_empty() {
+            return Err(invalid(&format!("table.columns[{i}].name"), "is empty"));
+        }
+        if c.cells.is_none() {
+            return Err(invalid(&format!("table.columns[{i}]"), format!("column '{}' has neither numbers nor texts", c.name)));
+        }
+        if cell_count(c) != rows {
+            return Err(invalid(&format!("table.columns[{i}]"), format!("column '{}' has {} cells, column '{}' has {rows}", c.name, cell_count(c), table.columns[0].name)));
+        }
+        let (n_missing, n_cells) = match &c.cells {
+            Some(pb::table_column::Cells::Numbers(n)) => (n.missing.len(), n.values.len()),
+            Some(pb::table_column::Cells::Texts(t)) => (t.missing.len(), t.values.len()),
+            None => (0, 0),
+        };
+        if n_missing != 0 && n_missing != n_cells {
+            return Err(invalid(&format!("table.columns[{i}].missing"), format!("has {n_missing} flags for {n_cells} cells")));
+        }
+    }
+    let mut w = csv::Writer::from_writer(Vec::new());
+    let header: Vec<&str> = table.columns.iter().map(|c| c.name.as_str()).collect();
+    w.write_record(&header).map_err(|e| Status::internal(e.to_string()))?;
+    let mut record: Vec<String> = Vec::with_capacity(header.len());
+    for r in 0..rows {
+        record.clear();
+        for (ci, c) in table.columns.iter().enumerate() {
+            record.push(match &c.cells {
+                Some(pb::table_column::Cells::Numbers(n)) => {
+                    let v = n.values[r];
+                    if n.missing.get(r).copied().unwrap_or(false) || v.is_nan() {
+                        String::new()
+                    } else if !v.is_finite() {
+                        return Err(invalid(&format!("table.columns[{ci}]"), format!("row {}, column '{}': {v} is not a finite number", r + 1, c.name)));
+                    } else {
+                        format!("{v}")
+                    }
+                }
+                Some(pb::table_column::Cells::Texts(t)) => {
+                    if t.missing.get(r).copied().unwrap_or(false) {
+                        String::new()
+                    } else {
+                        t.values[r].clone()
+                    }
+                }
+                None => unreachable!("checked above"),
+            });
+        }
+        w.write_record(&record).map_err(|e| Status::internal(e.to_string()))?;
+    }
+    w.into_inner().map_err(|e| Status::internal(e.to_string()))
+}
+
+fn cell_count(c: &pb::TableColumn) -> usize {
+    match &c.cells {
+        Some(pb::table_column::Cells::Numbers(n)) => n.values.len(),
+        Some(pb::table_column::Cells::Texts(t)) => t.values.len(),
+        None => 0,
+    }
+}
+
+/// A table's columns laid out as a tree's features, for prediction. Unseen categories get
+/// a code past the dictionary, which prediction routes like missing cells.
+pub fn table_to_frame(table: &pb::Table, columns: &[ColumnInfo]) -> Result<Frame, Status> {
+    let mut features = Vec::with_capacity(columns.len());
+    let mut rows = None;
+    for info in columns {
+        let Some(c) = table.columns.iter().find(|c| c.name == info.name) else {
+            return Err(invalid("rows.columns", format!("the model needs column '{}', which the table does not have", info.name)));
+        };
+        let n = cell_count(c);
+        if *rows.get_or_insert(n) != n {
+            return Err(invalid("rows.columns", format!("column '{}' has {n} cells, the others {}", c.name, rows.unwrap())));
+        }
+        let column = match (info.kind, &c.cells) {
+            (ColumnKind::Numeric, Some(pb::table_column::Cells::Numbers(v))) => Column::Numeric(
+                v.values.iter().enumerate().map(|(i, &x)| if v.missing.get(i).copied().unwrap_or(false) { f32::NAN } else { x as f32 }).collect(),
+            ),
+            (ColumnKind::Categorical, Some(pb::table_column::Cells::Texts(t))) => Column::Categorical {
+                codes: t
+                    .values
+                    .iter()
+                    .enumerate()
+                    .map(|(i, s)| {
+                        if t.missing.get(i).copied().unwrap_or(false) {
+                            MISSING_CODE
+                        } else {
+                            info.levels.iter().position(|l| l == s).unwrap_or(info.levels.len()) as u32
+                        }
+                    })
+                    .collect(),
+                levels: info.levels.clone(),
+            },
+            // Numbers given for a categorical column: compare them as text.
+            (ColumnKind::Categorical, Some(pb::table_column::Cells::Numbers(v))) => Column::Categorical {
+                codes: v
+                    .values
+                    .iter()
+                    .enumerate()
+                    .map(|(i, x)| {
+                        if v.missing.get(i).copied().unwrap_or(false) || x.is_nan() {
+                            MISSING_CODE
+                        } else {
+                            let s = format!("{x}");
+                            info.levels.iter().position(|l| *l == s).unwrap_or(info.levels.len()) as u32
+                        }
+                    })
+                    .collect(),
+                levels: info.levels.clone(),
+            },
+            _ => return Err(invalid("rows.columns", format!("column '{}' must hold {} cells", c.name, if info.kind == ColumnKind::Numeric { "number" } else { "text" }))),
+        };
+        features.push(Feature { name: info.name.clone(), column });
+    }
+    Frame::new(features).map_err(|e| invalid("rows", e))
+}
+
+// ------------------------------------------------------------------ sweep spec
+
+fn range_from(field: &str, r: &Option<pb::LimitRange>) -> Result<Option<Range>, Status> {
+    let Some(r) = r else { return Ok(None) };
+    Ok(Some(match &r.kind {
+        None => return Err(invalid(field, "a range needs values, a span or a log_span")),
+        Some(pb::limit_range::Kind::Values(v)) => Range::Values(
+            v.values
+                .iter()
+                .enumerate()
+                .map(|(i, x)| match x.value {
+                    Some(pb::limit_value::Value::Number(n)) => Ok(Some(n)),
+                    Some(pb::limit_value::Value::Unlimited(true)) => Ok(None),
+                    _ => Err(invalid(&format!("{field}.values[{i}]"), "needs a number or unlimited = true")),
+                })
+                .collect::<Result<_, _>>()?,
+        ),
+        Some(pb::limit_range::Kind::Span(s)) => Range::Span { from: s.from, to: s.to, step: s.step },
+        Some(pb::limit_range::Kind::LogSpan(s)) => Range::LogSpan { from: s.from, to: s.to, count: s.count },
+    }))
+}
+
+fn range_to(r: &Option<Range>) -> Option<pb::LimitRange> {
+    r.as_ref().map(|r| pb::LimitRange {
+        kind: Some(match r {
+            Range::Values(v) => pb::limit_range::Kind::Values(pb::ValueList {
+                values: v
+                    .iter()
+                    .map(|x| pb::LimitValue {
+                        value: Some(match x {
+                            Some(n) => pb::limit_value::Value::Number(*n),
+                            None => pb::limit_value::Value::Unlimited(true),
+                        }),
+                    })
+                    .collect(),
+            }),
+            Range::Span { from, to, step } => pb::limit_range::Kind::Span(pb::Span { from: *from, to: *to, step: *step }),
+            Range::LogSpan { from, to, count } => pb::limit_range::Kind::LogSpan(pb::LogSpan { from: *from, to: *to, count: *count }),
+        }),
+    })
+}
+
+/// The wire spec as a core spec; the target stays with the caller. `data_task` is the
+/// dataset's task, which picks the default fold scheme.
+pub fn spec_from(s: &pb::SweepSpec, data_task: Task) -> Result<SweepSpec, Status> {
+    let task = match s.task.as_str() {
+        "" => None,
+        t => Some(Task::parse(t).ok_or_else(|| invalid("spec.task", format!("'{t}' is not classify or regress")))?),
+    };
+    let criteria = s
+        .criteria
+        .iter()
+        .enumerate()
+        .map(|(i, c)| Criterion::parse(c).ok_or_else(|| invalid(&format!("spec.criteria[{i}]"), format!("'{c}' is not gini, entropy or squared_error"))))
+        .collect::<Result<_, _>>()?;
+    let class_weights = s
+        .class_weights
+        .iter()
+        .enumerate()
+        .map(|(i, c)| ClassWeight::parse(c).ok_or_else(|| invalid(&format!("spec.class_weights[{i}]"), format!("'{c}' is not none or balanced"))))
+        .collect::<Result<_, _>>()?;
+    let folds = match &s.folds {
+        None => None,
+        Some(f) if f.scheme.is_empty() && f.k == 0 && f.repeats == 0 && f.column.is_empty() => None,
+        Some(f) => {
+            let column = || {
+                if f.column.is_empty() {
+                    Err(invalid("spec.folds.column", format!("a {} plan needs a column", f.scheme)))
+                } else {
+                    Ok(f.column.clone())
+                }
+            };
+            let scheme = match f.scheme.as_str() {
+                "" => FoldPlan::default_for(task.unwrap_or(data_task)).scheme,
+                "shuffled" => FoldScheme::Shuffled,
+                "stratified" => FoldScheme::Stratified,
+                "grouped" => FoldScheme::Grouped { column: column()? },
+                "forward" => FoldScheme::Forward { column: column()? },
+                "given" => FoldScheme::Given { column: column()? },
+                other => return Err(invalid("spec.folds.scheme", format!("'{other}' is not shuffled, stratified, grouped, forward or given"))),
+            };
+            Some(FoldPlan { scheme, k: if f.k == 0 { 5 } else { f.k }, repeats: f.repeats.max(1) })
+        }
+    };
+    let metric = match s.metric.as_str() {
+        "" => None,
+        m => Some(Metric::parse(m).ok_or_else(|| invalid("spec.metric", format!("'{m}' is not a metric pollard knows")))?),
+    };
+    let pick = match s.pick.as_str() {
+        "" => PickRule::Highest,
+        p => PickRule::parse(p).ok_or_else(|| invalid("spec.pick", format!("'{p}' is not highest or one_se")))?,
+    };
+    Ok(SweepSpec {
+        task,
+        criteria,
+        class_weights,
+        max_depth: range_from("spec.max_depth", &s.max_depth)?,
+        min_split_rows: range_from("spec.min_split_rows", &s.min_split_rows)?,
+        min_leaf_rows: range_from("spec.min_leaf_rows", &s.min_leaf_rows)?,
+        max_leaves: range_from("spec.max_leaves", &s.max_leaves)?,
+        min_gain: range_from("spec.min_gain", &s.min_gain)?,
+        prune_alpha: range_from("spec.prune_alpha", &s.prune_alpha)?,
+        prune_path: s.prune_path,
+        folds,
+        metric,
+        pick,
+        seed: s.seed,
+        fit_final: !s.skip_final,
+        max_settings: None,
+    })
+}
+
+pub fn spec_to(s: &SweepSpec, target: &str) -> pb::SweepSpec {
+    pb::SweepSpec {
+        target: target.to_string(),
+        task: s.task.map(|t| t.as_str().to_string()).unwrap_or_default(),
+        criteria: s.criteria.iter().map(|c| c.as_str().to_string()).collect(),
+        class_weights: s.class_weights.iter().map(|c| c.as_str().to_string()).collect(),
+        max_depth: range_to(&s.max_depth),
+        min_split_rows: range_to(&s.min_split_rows),
+        min_leaf_rows: range_to(&s.min_leaf_rows),
+        max_leaves: range_to(&s.max_leaves),
+        min_gain: range_to(&s.min_gain),
+        prune_alpha: range_to(&s.prune_alpha),
+        prune_path: s.prune_path,
+        folds: s.folds.as_ref().map(|f| pb::FoldPlan { scheme: f.scheme_name().to_string(), k: f.k, repeats: f.repeats, column: f.column().unwrap_or_default().to_string() }),
+        metric: s.metric.map(|m| m.as_str().to_string()).unwrap_or_default(),
+        pick: s.pick.as_str().to_string(),
+        seed: s.seed,
+        skip_final: !s.fit_final,
+    }
+}
+
+// ------------------------------------------------------------------ runs
+
+pub fn state_to(s: RunState) -> pb::RunState {
+    match s {
+        RunState::Queued => pb::RunState::Queued,
+        RunState::Running => pb::RunState::Running,
+        RunState::Finished => pb::RunState::Finished,
+        RunState::Failed => pb::RunState::Failed,
+        RunState::Cancelled => pb::RunState::Cancelled,
+    }
+}
+
+pub fn state_from(s: i32) -> Result<Option<RunState>, Status> {
+    Ok(match pb::RunState::try_from(s).map_err(|_| invalid("state", format!("{s} is not a run state")))? {
+        pb::RunState::Unspecified => None,
+        pb::RunState::Queued => Some(RunState::Queued),
+        pb::RunState::Running => Some(RunState::Running),
+        pb::RunState::Finished => Some(RunState::Finished),
+        pb::RunState::Failed => Some(RunState::Failed),
+        pb::RunState::Cancelled => Some(RunState::Cancelled),
+    })
+}
+
+pub fn limits_to(o: &FitOptions) -> pb::SettingLimits {
+    let l = &o.limits;
+    pb::SettingLimits {
+        criterion: o.criterion.map(|c| c.as_str().to_string()).unwrap_or_default(),
+        class_weight: o.class_weight.as_str().to_string(),
+        max_depth: l.max_depth,
+        min_split_rows: l.min_split_rows,
+        min_leaf_rows: l.min_leaf_rows,
+        max_leaves: l.max_leaves,
+        min_gain: l.min_gain,
+        prune_alpha: l.prune_alpha,
+    }
+}
+
+pub fn score_to(index: usize, s: &SettingScore) -> pb::SettingScore {
+    pb::SettingScore {
+        index: index as u32,
+        limits: Some(limits_to(&s.setting.options)),
+        fold_scores: s.fold_scores.clone(),
+        valid_mean: s.valid_mean,
+        valid_sd: s.valid_sd,
+        train_mean: s.train_mean,
+        gap: s.gap,
+        mean_leaves: s.mean_leaves,
+        mean_depth: s.mean_depth,
+    }
+}
+
+/// A run for the wire; `outcome` adds the scores, pick, folds and model summary.
+pub fn run_info(r: &Run, outcome: Option<&RunOutcome>) -> pb::RunInfo {
+    let mut info = pb::RunInfo {
+        id: r.id.clone(),
+        state: state_to(r.state) as i32,
+        dataset_id: r.dataset_id.clone(),
+        dataset_name: r.dataset_name.clone(),
+        dataset_version: r.dataset_version,
+        spec: Some(spec_to(&r.spec, &r.target)),
+        labels: r.labels.clone().into_iter().collect(),
+        created_at: time(r.created_at),
+        started_at: opt_time(r.started_at),
+        finished_at: opt_time(r.finished_at),
+        reason: r.reason.clone(),
+        metric: r.spec.metric.map(|m| m.as_str().to_string()).unwrap_or_default(),
+        settings: r.settings,
+        units_done: r.units_done,
+        units_total: r.units_total,
+        schedule_id: r.schedule_id.clone(),
+        ..Default::default()
+    };
+    if let Some(o) = outcome {
+        info.scores = o.scores.iter().enumerate().map(|(i, s)| score_to(i, s)).collect();
+        info.picked = Some(o.picked);
+        info.best = Some(o.best);
+        info.fold_assignment = o.fold_assignment.iter().map(|f| pb::FoldAssignment { folds: f.clone() }).collect();
+        if let Some(m) = &o.model {
+            info.model = Some(pb::ModelSummary { nodes: m.nodes.len() as u32, leaves: m.n_leaves() as u32, depth: m.depth(), classes: m.labels.clone() });
+        }
+        if info.metric.is_empty() {
+            info.metric = o.scores.first().map(|_| String::new()).unwrap_or_default();
+        }
+    }
+    info
+}
+
+/// An event for the wire; a finished event takes its scores and model from `outcome`.
+pub fn event_to(run_id: &str, e: &Event, outcome: Option<&RunOutcome>) -> pb::RunEvent {
+    use pb::run_event::Kind;
+    let kind = match &e.kind {
+        EventKind::Progress(p) => Kind::Progress(pb::ProgressEvent {
+            units_done: p.units_done as u32,
+            units_total: p.units_total as u32,
+            scores_done: p.scores_done as u32,
+            scores_total: p.scores_total as u32,
+        }),
+        EventKind::Scored { index, score } => Kind::Scored(score_to(*index as usize, score)),
+        EventKind::Finished { picked, best } => Kind::Finished(pb::FinishedEvent {
+            picked: *picked,
+            best: *best,
+            scores: outcome.map(|o| o.scores.iter().enumerate().map(|(i, s)| score_to(i, s)).collect()).unwrap_or_default(),
+            model: outcome.and_then(|o| o.model.as_ref()).map(model_to),
+        }),
+        EventKind::Failed(m) => Kind::Failed(m.clone()),
+        EventKind::Cancelled(m) => Kind::Cancelled(m.clone()),
+    };
+    pb::RunEvent { sequence: e.sequence, run_id: run_id.to_string(), at: time(e.at), kind: Some(kind) }
+}
+
+// ------------------------------------------------------------------ models
+
+fn kind_to(k: ColumnKind) -> pb::ColumnKind {
+    match k {
+        ColumnKind::Numeric => pb::ColumnKind::Numeric,
+        ColumnKind::Categorical => pb::ColumnKind::Categorical,
+    }
+}
+
+/// A tree as the native protobuf model.
+pub fn model_to(t: &Tree) -> pb::Model {
+    let l = &t.options.limits;
+    pb::Model {
+        task: t.task.as_str().to_string(),
+        target: t.target.clone(),
+        classes: t.labels.clone(),
+        columns: t.columns.iter().map(|c| pb::ModelColumn { name: c.name.clone(), kind: kind_to(c.kind) as i32, categories: c.levels.clone() }).collect(),
+        nodes: t
+            .nodes
+            .iter()
+            .enumerate()
+            .map(|(i, n)| pb::TreeNode {
+                depth: n.depth,
+                rows: n.rows as u64,
+                weighted_rows: n.weighted_rows,
+                impurity: n.impurity,
+                value: t.value(i).to_vec(),
+                class_totals: if t.n_classes > 0 { t.class_total(i).to_vec() } else { Vec::new() },
+                split: n.split.as_ref().map(|s| pb::NodeSplit {
+                    column: s.feature,
+                    test: Some(match &s.rule {
+                        SplitRule::Threshold(x) if *x == f64::INFINITY => pb::node_split::Test::Present(true),
+                        SplitRule::Threshold(x) => pb::node_split::Test::AtMost(*x),
+                        SplitRule::Categories(bits) => pb::node_split::Test::In(pb::CategorySet {
+                            codes: (0..t.columns[s.feature as usize].levels.len() as u32).filter(|&c| SplitRule::category_left(bits, c)).collect(),
+                        }),
+                    }),
+                    missing_left: s.missing_left,
+                    gain: n.gain,
+                    rank: n.rank,
+                    left: n.left,
+                    right: n.right,
+                }),
+            })
+            .collect(),
+        grown_with: Some(pb::GrownWith {
+            criterion: t.options.criterion.map(|c| c.as_str().to_string()).unwrap_or_default(),
+            class_weight: t.options.class_weight.as_str().to_string(),
+            max_depth: l.max_depth,
+            min_split_rows: l.min_split_rows,
+            min_leaf_rows: l.min_leaf_rows,
+            max_leaves: l.max_leaves,
+            min_gain: l.min_gain,
+            prune_alpha: l.prune_alpha,
+        }),
+        total_weight: t.total_weight,
+    }
+}
+
+/// The native protobuf model back as a tree (for clients and tests that hold a `Model`).
+pub fn model_from(m: &pb::Model) -> Result<Tree, String> {
+    let task = Task::parse(&m.task).ok_or_else(|| format!("task '{}' is not classify or regress", m.task))?;
+    let columns: Vec<ColumnInfo> = m
+        .columns
+        .iter()
+        .map(|c| ColumnInfo {
+            name: c.name.clone(),
+            kind: if c.kind == pb::ColumnKind::Categorical as i32 { ColumnKind::Categorical } else { ColumnKind::Numeric },
+            levels: c.categories.clone(),
+        })
+        .collect();
+    let n_classes = if task == Task::Classify { m.classes.len() } else { 0 };
+    let mut values = Vec::new();
+    let mut class_totals = Vec::new();
+    let mut nodes = Vec::with_capacity(m.nodes.len());
+    for n in &m.nodes {
+        values.extend_from_slice(&n.value);
+        class_totals.extend_from_slice(&n.class_totals);
+        let (split, gain, rank, left, right) = match &n.split {
+            None => (None, 0.0, NO_NODE, NO_NODE, NO_NODE),
+            Some(s) => {
+                let rule = match &s.test {
+                    Some(pb::node_split::Test::AtMost(x)) => SplitRule::Threshold(*x),
+                    Some(pb::node_split::Test::Present(_)) => SplitRule::Threshold(f64::INFINITY),
+                    Some(pb::node_split::Test::In(set)) => {
+                        let levels = columns.get(s.column as usize).map_or(0, |c| c.levels.len());
+                        let mut bits = vec![0u64; levels.div_ceil(64)];
+                        for &c in &set.codes {
+                            if (c as usize) < levels {
+                                bits[(c / 64) as usize] |= 1 << (c % 64);
+                            }
+                        }
+                        SplitRule::Categories(bits)
+                    }
+                    None => return Err("a split has no test".into()),
+                };
+                (Some(Split { feature: s.column, rule, missing_left: s.missing_left }), s.gain, s.rank, s.left, s.right)
+            }
+        };
+        nodes.push(Node { depth: n.depth, rows: n.rows as u32, weighted_rows: n.weighted_rows, impurity: n.impurity, gain, split, left, right, rank });
+    }
+    let g = m.grown_with.clone().unwrap_or_default();
+    Ok(Tree {
+        task,
+        target: m.target.clone(),
+        labels: m.classes.clone(),
+        n_features: columns.len(),
+        columns,
+        n_classes,
+        nodes,
+        values,
+        class_totals,
+        total_weight: m.total_weight,
+        options: FitOptions {
+            limits: Limits {
+                max_depth: g.max_depth,
+                min_split_rows: g.min_split_rows,
+                min_leaf_rows: g.min_leaf_rows,
+                max_leaves: g.max_leaves,
+                min_gain: g.min_gain,
+                prune_alpha: g.prune_alpha,
+            },
+            criterion: Criterion::parse(&g.criterion),
+            class_weight: ClassWeight::parse(&g.class_weight).unwrap_or_default(),
+        },
+    })
+}

@@ -1,0 +1,147 @@
+//! The Datasets service.
+
+use sha2::{Digest, Sha256};
+use tonic::{Request, Response, Status, Streaming};
+
+use super::{convert, error, page_size, token, Api};
+use crate::data::csv::{read_dataset, read_frame, CsvOptions};
+use crate::data::{Column, Frame};
+use crate::job::{ColumnMeta, DatasetMeta};
+use crate::pb;
+use crate::store::{DeleteDataset, PutDataset};
+use crate::worker::{cpu, now_ms};
+
+/// "ds_" + hex SHA-256 of the bytes.
+pub fn dataset_id(bytes: &[u8]) -> String {
+    let digest = Sha256::digest(bytes);
+    let mut s = String::with_capacity(3 + 64);
+    s.push_str("ds_");
+    for b in digest {
+        s.push_str(&format!("{b:02x}"));
+    }
+    s
+}
+
+fn summarize(frame: &Frame) -> Vec<ColumnMeta> {
+    frame
+        .features
+        .iter()
+        .map(|f| match &f.column {
+            Column::Numeric(v) => ColumnMeta { name: f.name.clone(), kind: "numeric".into(), missing: v.iter().filter(|x| x.is_nan()).count() as u64, levels: 0 },
+            Column::Categorical { codes, levels } => ColumnMeta {
+                name: f.name.clone(),
+                kind: "categorical".into(),
+                missing: codes.iter().filter(|&&c| c == crate::data::MISSING_CODE).count() as u64,
+                levels: levels.len() as u64,
+            },
+        })
+        .collect()
+}
+
+impl Api {
+    /// Checks CSV bytes (row and column errors go back to the caller) and stores them once.
+    pub async fn store_dataset(&self, name: String, target: String, categorical: Vec<String>, bytes: Vec<u8>) -> Result<pb::DatasetInfo, Status> {
+        let shared = self.shared.clone();
+        let cfg = shared.config.clone();
+        let store = shared.store.clone();
+        cpu(&shared, move || {
+            let mut options = CsvOptions::new(target.clone());
+            options.categorical = categorical.clone();
+            options.max_rows = Some(cfg.max_rows);
+            options.max_columns = Some(cfg.max_columns);
+            let (frame, task) = if target.is_empty() {
+                (read_frame(&bytes[..], &options).map_err(|e| error::data(&e))?, String::new())
+            } else {
+                let d = read_dataset(&bytes[..], &options).map_err(|e| error::data(&e))?;
+                let task = d.task().as_str().to_string();
+                (d.frame, task)
+            };
+            let meta = DatasetMeta {
+                id: dataset_id(&bytes),
+                name,
+                version: 0,
+                rows: frame.rows as u64,
+                columns: summarize(&frame),
+                target,
+                task,
+                created_at: now_ms(),
+                bytes: bytes.len() as u64,
+                categorical,
+            };
+            match store.put_dataset(meta, &bytes).map_err(error::store)? {
+                PutDataset::Created(m) | PutDataset::Existing(m) => Ok(convert::dataset_info(&m)),
+            }
+        })
+        .await
+    }
+}
+
+#[tonic::async_trait]
+impl pb::datasets_server::Datasets for Api {
+    async fn upload(&self, request: Request<Streaming<pb::UploadChunk>>) -> Result<Response<pb::DatasetInfo>, Status> {
+        let mut stream = request.into_inner();
+        let Some(first) = stream.message().await? else { return Err(Status::invalid_argument("the upload is empty; send the header first")) };
+        let Some(pb::upload_chunk::Part::Header(header)) = first.part else {
+            return Err(Status::invalid_argument("the first message of an upload must carry the header"));
+        };
+        match pb::DataFormat::try_from(header.format) {
+            Ok(pb::DataFormat::Csv | pb::DataFormat::Unspecified) => {}
+            _ => return Err(Status::invalid_argument(format!("header.format: {} is not a format pollard reads (CSV)", header.format))),
+        }
+        let max = self.shared.config.max_upload_bytes;
+        let mut bytes = Vec::new();
+        while let Some(chunk) = stream.message().await? {
+            match chunk.part {
+                Some(pb::upload_chunk::Part::Data(b)) => {
+                    if (bytes.len() + b.len()) as u64 > max {
+                        return Err(Status::resource_exhausted(format!("the upload is larger than the limit of {max} bytes")));
+                    }
+                    bytes.extend_from_slice(&b);
+                }
+                Some(pb::upload_chunk::Part::Header(_)) => return Err(Status::invalid_argument("an upload carries one header, in its first message")),
+                None => {}
+            }
+        }
+        Ok(Response::new(self.store_dataset(header.name, header.target, header.categorical, bytes).await?))
+    }
+
+    async fn put_table(&self, request: Request<pb::PutTableRequest>) -> Result<Response<pb::DatasetInfo>, Status> {
+        let r = request.into_inner();
+        let table = r.table.ok_or_else(|| Status::invalid_argument("table: missing"))?;
+        let categorical = table
+            .columns
+            .iter()
+            .filter(|c| matches!(c.cells, Some(pb::table_column::Cells::Texts(_))) && c.name != r.target)
+            .map(|c| c.name.clone())
+            .collect();
+        let bytes = convert::table_to_csv(&table)?;
+        if bytes.len() as u64 > self.shared.config.max_upload_bytes {
+            return Err(Status::resource_exhausted(format!("the table is larger than the limit of {} bytes", self.shared.config.max_upload_bytes)));
+        }
+        Ok(Response::new(self.store_dataset(r.name, r.target, categorical, bytes).await?))
+    }
+
+    async fn get_dataset(&self, request: Request<pb::GetDatasetRequest>) -> Result<Response<pb::DatasetInfo>, Status> {
+        let id = request.into_inner().id;
+        match self.shared.store.dataset(&id).map_err(error::store)? {
+            Some(m) => Ok(Response::new(convert::dataset_info(&m))),
+            None => Err(error::not_found("dataset", &id)),
+        }
+    }
+
+    async fn list_datasets(&self, request: Request<pb::ListDatasetsRequest>) -> Result<Response<pb::ListDatasetsReply>, Status> {
+        let r = request.into_inner();
+        let name = (!r.name.is_empty()).then_some(r.name.as_str());
+        let (list, next) = self.shared.store.list_datasets(name, token(&r.page_token), page_size(r.page_size)).map_err(error::store)?;
+        Ok(Response::new(pb::ListDatasetsReply { datasets: list.iter().map(convert::dataset_info).collect(), next_page_token: next.unwrap_or_default() }))
+    }
+
+    async fn delete_dataset(&self, request: Request<pb::DeleteDatasetRequest>) -> Result<Response<pb::DeleteDatasetReply>, Status> {
+        let id = request.into_inner().id;
+        match self.shared.store.delete_dataset(&id).map_err(error::store)? {
+            DeleteDataset::Deleted => Ok(Response::new(pb::DeleteDatasetReply {})),
+            DeleteDataset::NotFound => Err(error::not_found("dataset", &id)),
+            DeleteDataset::InUse { run_id } => Err(Status::failed_precondition(format!("dataset '{id}' is used by run '{run_id}', which is queued or running; cancel it or wait"))),
+        }
+    }
+}

@@ -1,0 +1,188 @@
+//! The Runs service: start, follow, get, list and cancel sweeps.
+
+use std::pin::Pin;
+
+use tokio_stream::wrappers::ReceiverStream;
+use tokio_stream::Stream;
+use tonic::{Request, Response, Status};
+use tracing::info;
+
+use super::{convert, error, page_size, token, Api};
+use crate::job::{EventKind, Run, RunState};
+use crate::pb;
+use crate::store::{CreateRun, RunFilter};
+use crate::sweep::SweepSpec;
+use crate::worker::{cpu, load_dataset, now_ms};
+
+/// A new run id: "run_" + a version 7 UUID, which sorts by creation time.
+pub fn new_run_id() -> String {
+    format!("run_{}", uuid::Uuid::now_v7().simple())
+}
+
+impl Api {
+    /// Checks a sweep against its dataset and queues it (shared by StartRun and schedules).
+    pub async fn queue_run(&self, r: pb::StartRunRequest, schedule_id: String) -> Result<Run, Status> {
+        let store = self.shared.store.clone();
+        let meta = if !r.dataset_id.is_empty() {
+            store.dataset(&r.dataset_id).map_err(error::store)?.ok_or_else(|| error::not_found("dataset", &r.dataset_id))?
+        } else if !r.dataset_name.is_empty() {
+            store
+                .latest_dataset(&r.dataset_name)
+                .map_err(error::store)?
+                .ok_or_else(|| Status::not_found(format!("no dataset named '{}'", r.dataset_name)))?
+        } else {
+            return Err(Status::invalid_argument("dataset_id or dataset_name: name the dataset to sweep"));
+        };
+        let wire = r.spec.unwrap_or_default();
+        let target = if wire.target.is_empty() { meta.target.clone() } else { wire.target.clone() };
+        if target.is_empty() {
+            return Err(Status::invalid_argument(format!("spec.target: dataset '{}' has no default target; name the column to predict", meta.id)));
+        }
+        let cfg = self.shared.config.clone();
+        let (meta2, target2) = (meta.clone(), target.clone());
+        // Parse and check on the CPU pool, so a bad spec fails now, not in the queue.
+        let (spec, settings_cap_ok) = cpu(&self.shared, move || -> Result<(SweepSpec, bool), Status> {
+            let task = match wire.task.as_str() {
+                "" => None,
+                t => Some(crate::data::Task::parse(t).ok_or_else(|| Status::invalid_argument(format!("spec.task: '{t}' is not classify or regress")))?),
+            };
+            let data = load_dataset(&store, &meta2, &target2, task, cfg.max_rows, cfg.max_columns).map_err(Status::invalid_argument)?;
+            let spec = convert::spec_from(&wire, data.task())?;
+            let checked = SweepSpec { max_settings: Some(cfg.max_settings), ..spec.clone() };
+            checked.check(&data).map_err(|e| error::spec(&e))?;
+            Ok((spec, true))
+        })
+        .await?;
+        debug_assert!(settings_cap_ok);
+        let mut run = Run::queued(new_run_id(), &meta, target, spec, now_ms());
+        run.labels = r.labels.into_iter().collect();
+        run.idempotency_key = r.idempotency_key;
+        run.schedule_id = schedule_id;
+        let run = match self.shared.store.create_run(run).map_err(error::store)? {
+            CreateRun::Created(run) => {
+                info!(run_id = %run.id, dataset = %run.dataset_id, "run queued");
+                self.shared.queued.notify_one();
+                run
+            }
+            CreateRun::Existing(run) => run,
+            CreateRun::DatasetMissing => return Err(error::not_found("dataset", &meta.id)),
+        };
+        Ok(run)
+    }
+
+    fn run_or_not_found(&self, id: &str) -> Result<Run, Status> {
+        self.shared.store.run(id).map_err(error::store)?.ok_or_else(|| error::not_found("run", id))
+    }
+}
+
+type EventStream = Pin<Box<dyn Stream<Item = Result<pb::RunEvent, Status>> + Send>>;
+
+#[tonic::async_trait]
+impl pb::runs_server::Runs for Api {
+    async fn start_run(&self, request: Request<pb::StartRunRequest>) -> Result<Response<pb::RunInfo>, Status> {
+        let run = self.queue_run(request.into_inner(), String::new()).await?;
+        Ok(Response::new(convert::run_info(&run, None)))
+    }
+
+    type FollowRunStream = EventStream;
+
+    async fn follow_run(&self, request: Request<pb::FollowRunRequest>) -> Result<Response<Self::FollowRunStream>, Status> {
+        let r = request.into_inner();
+        self.run_or_not_found(&r.id)?;
+        let shared = self.shared.clone();
+        let (tx, rx) = tokio::sync::mpsc::channel(64);
+        tokio::spawn(async move {
+            let mut changed = shared.changed.subscribe();
+            let mut shutdown = shared.shutdown.subscribe();
+            let mut after = r.after_sequence;
+            loop {
+                // Mark the version seen before reading, so no event slips between read and wait.
+                changed.borrow_and_update();
+                let events = match shared.store.events(&r.id, after) {
+                    Ok(e) => e,
+                    Err(e) => {
+                        let _ = tx.send(Err(error::store(e))).await;
+                        return;
+                    }
+                };
+                let outcome = if events.iter().any(|e| matches!(e.kind, EventKind::Finished { .. })) { shared.store.outcome(&r.id).ok().flatten() } else { None };
+                for e in &events {
+                    after = e.sequence;
+                    let msg = convert::event_to(&r.id, e, outcome.as_ref());
+                    if tx.send(Ok(msg)).await.is_err() {
+                        return;
+                    }
+                    if e.is_terminal() {
+                        return;
+                    }
+                }
+                if events.is_empty() {
+                    // A terminal run whose events the caller has all seen: end the stream.
+                    if let Ok(Some(run)) = shared.store.run(&r.id) {
+                        if run.state.is_terminal() {
+                            return;
+                        }
+                    }
+                }
+                tokio::select! {
+                    _ = changed.changed() => {}
+                    _ = shutdown.changed() => {
+                        let _ = tx.send(Err(Status::unavailable("the server is shutting down; follow again with after_sequence to resume"))).await;
+                        return;
+                    }
+                    _ = tx.closed() => return,
+                }
+            }
+        });
+        Ok(Response::new(Box::pin(ReceiverStream::new(rx))))
+    }
+
+    async fn get_run(&self, request: Request<pb::GetRunRequest>) -> Result<Response<pb::RunInfo>, Status> {
+        let id = request.into_inner().id;
+        let run = self.run_or_not_found(&id)?;
+        let outcome = self.shared.store.outcome(&id).map_err(error::store)?;
+        Ok(Response::new(convert::run_info(&run, outcome.as_ref())))
+    }
+
+    async fn list_runs(&self, request: Request<pb::ListRunsRequest>) -> Result<Response<pb::ListRunsReply>, Status> {
+        let r = request.into_inner();
+        let label = match r.label.as_str() {
+            "" => None,
+            l => {
+                let (k, v) = l.split_once('=').ok_or_else(|| Status::invalid_argument(format!("label: '{l}' is not key=value")))?;
+                Some((k.to_string(), v.to_string()))
+            }
+        };
+        let filter = RunFilter {
+            dataset_name: (!r.dataset_name.is_empty()).then_some(r.dataset_name),
+            state: convert::state_from(r.state)?,
+            label,
+            schedule_id: (!r.schedule_id.is_empty()).then_some(r.schedule_id),
+            created_from: convert::parse_time("created_from", &r.created_from)?,
+            created_to: convert::parse_time("created_to", &r.created_to)?,
+        };
+        let (runs, next) = self.shared.store.list_runs(&filter, token(&r.page_token), page_size(r.page_size)).map_err(error::store)?;
+        Ok(Response::new(pb::ListRunsReply { runs: runs.iter().map(|run| convert::run_info(run, None)).collect(), next_page_token: next.unwrap_or_default() }))
+    }
+
+    async fn cancel_run(&self, request: Request<pb::CancelRunRequest>) -> Result<Response<pb::RunInfo>, Status> {
+        let id = request.into_inner().id;
+        let run = self.run_or_not_found(&id)?;
+        match run.state {
+            RunState::Queued => {
+                self.shared.store.end_run(&id, RunState::Cancelled, "cancelled by request", now_ms()).map_err(error::store)?;
+                self.shared.announce();
+            }
+            RunState::Running => {
+                // The worker stops before its next unit and records the cancellation.
+                if !self.shared.request_cancel(&id) {
+                    self.shared.store.end_run(&id, RunState::Cancelled, "cancelled by request", now_ms()).map_err(error::store)?;
+                    self.shared.announce();
+                }
+            }
+            _ => {}
+        }
+        let run = self.run_or_not_found(&id)?;
+        Ok(Response::new(convert::run_info(&run, None)))
+    }
+}

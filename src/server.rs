@@ -1,0 +1,83 @@
+//! The server: wires the store, workers and gRPC services, and drains on shutdown.
+
+use std::future::Future;
+use std::sync::atomic::Ordering;
+use std::sync::Arc;
+
+use tokio::net::TcpListener;
+use tokio_stream::wrappers::TcpListenerStream;
+use tracing::info;
+
+use crate::config::Config;
+use crate::pb;
+use crate::rpc::Api;
+use crate::store::Store;
+use crate::worker::{self, Shared};
+
+/// The gRPC services the server registers, by full name (also what health checks name).
+pub const SERVICES: [&str; 3] = ["pollard.v1.Datasets", "pollard.v1.Runs", "pollard.v1.Models"];
+
+/// Serves on `listener` until `shutdown` completes, then stops taking calls, lets running
+/// runs stop at their next unit (their finished units stay stored, so they resume at the
+/// next start), and flushes the store.
+pub async fn run(listener: TcpListener, config: Config, store: Store, shutdown: impl Future<Output = ()> + Send + 'static) -> Result<(), String> {
+    let shared = Shared::new(store, config)?;
+    let addr = listener.local_addr().map_err(|e| e.to_string())?;
+    let mut workers = Vec::new();
+    worker::resume_running(shared.clone()).await;
+    for _ in 0..shared.config.concurrent_runs {
+        workers.push(tokio::spawn(worker::worker_loop(shared.clone())));
+    }
+    let api = Api { shared: shared.clone() };
+    let (health_reporter, health) = tonic_health::server::health_reporter();
+    for name in SERVICES {
+        health_reporter.set_service_status(name, tonic_health::ServingStatus::Serving).await;
+    }
+    let reflection = tonic_reflection::server::Builder::configure()
+        .register_encoded_file_descriptor_set(pb::DESCRIPTOR)
+        .build_v1()
+        .map_err(|e| format!("reflection: {e}"))?;
+    info!(%addr, data = %shared.config.data_dir.display(), "pollard serving");
+    let stop = {
+        let shared = shared.clone();
+        async move {
+            shutdown.await;
+            info!("shutting down: no new calls; running runs stop at their next unit");
+            shared.stopping.store(true, Ordering::SeqCst);
+            for flag in shared.cancels.lock().unwrap().values() {
+                flag.store(true, Ordering::SeqCst);
+            }
+            let _ = shared.shutdown.send(true);
+        }
+    };
+    let served = tonic::transport::Server::builder()
+        .add_service(health)
+        .add_service(reflection)
+        .add_service(pb::datasets_server::DatasetsServer::new(api.clone()).max_decoding_message_size(message_limit(&shared)))
+        .add_service(pb::runs_server::RunsServer::new(api.clone()))
+        .add_service(pb::models_server::ModelsServer::new(api.clone()).max_decoding_message_size(message_limit(&shared)))
+        .serve_with_incoming_shutdown(TcpListenerStream::new(listener), stop)
+        .await
+        .map_err(|e| format!("server: {e}"));
+    drain(&shared, workers).await;
+    served
+}
+
+/// Table messages may be as large as an upload.
+fn message_limit(shared: &Arc<Shared>) -> usize {
+    (shared.config.max_upload_bytes as usize).saturating_add(1 << 20)
+}
+
+async fn drain(shared: &Arc<Shared>, workers: Vec<tokio::task::JoinHandle<()>>) {
+    for w in workers {
+        let _ = w.await;
+    }
+    // Runs resumed at start-up run in their own tasks; wait until none is executing.
+    while !shared.cancels.lock().unwrap().is_empty() {
+        tokio::time::sleep(std::time::Duration::from_millis(20)).await;
+    }
+    if let Err(e) = shared.store.flush() {
+        tracing::error!("flushing the store: {e}");
+    }
+    info!("stopped");
+}

@@ -1,0 +1,722 @@
+//! The store: datasets, runs, their events, work units and outcomes, and the run queue, in
+//! one sled database. This is the only module that names sled.
+//!
+//! Trees (keys → values; values are [`records`], one format byte then JSON):
+//!
+//! | tree | key | value |
+//! | --- | --- | --- |
+//! | `datasets` | dataset id | dataset record |
+//! | `dataset_chunks` | dataset id ++ be u32 index | raw bytes, 1 MiB per chunk |
+//! | `dataset_names` | name ++ 0x00 ++ be u32 version | dataset id; empty once deleted |
+//! | `dataset_holds` | dataset id | ids of the queued and running runs that use it |
+//! | `runs` | run id | run record |
+//! | `results` | run id | outcome record |
+//! | `events` | run id ++ be u64 sequence | event record |
+//! | `units` | run id ++ be u32 unit | unit record |
+//! | `queue` | run id | empty (run ids are time-ordered: key order is creation order) |
+//! | `idempotency` | idempotency key | run id |
+//!
+//! A deleted dataset leaves an empty value at its name and version, so versions under a
+//! name only ever grow and a run's `dataset_version` never comes to name another table.
+//!
+//! Consistency: every change is one sled transaction over all the trees, so a crash leaves
+//! each change whole or absent; every change is flushed before it returns, so what returned
+//! `Ok` survives a crash. sled cannot scan inside a transaction, so the few changes that need
+//! a scan (the queue head, the latest version of a name, the keys of a finished run) scan
+//! first and check inside the transaction that what they saw still holds, starting over when
+//! it does not. sled serialises transactions behind one lock, and a plain `get` waits for
+//! it, so single-key reads see whole changes; scans (listings) may see a change half done.
+//!
+//! Expected outcomes are values ([`PutDataset`], [`DeleteDataset`], [`CreateRun`], `None`
+//! for a run that is unknown or no longer in the state a change needs); `Err` is for I/O and
+//! corruption only.
+
+pub mod keys;
+pub mod records;
+
+#[cfg(test)]
+mod tests;
+
+use std::fmt;
+use std::path::Path;
+
+use sled::transaction::{ConflictableTransactionError, TransactionError, TransactionalTree, UnabortableTransactionError};
+use sled::{IVec, Transactional};
+
+use crate::job::{DatasetMeta, Event, EventKind, Run, RunOutcome, RunState};
+use crate::sweep::UnitResult;
+use records::HoldsRecord;
+
+/// Bytes per stored dataset chunk.
+pub const CHUNK_BYTES: usize = 1 << 20;
+
+/// Why the store could not do what it was asked.
+#[derive(Clone, Debug, PartialEq, Eq)]
+pub enum StoreError {
+    /// The database could not be read or written.
+    Io(String),
+    /// Stored bytes that this build cannot read, or that contradict each other.
+    Corrupt(String),
+}
+
+impl fmt::Display for StoreError {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        match self {
+            StoreError::Io(m) => write!(f, "store I/O error: {m}"),
+            StoreError::Corrupt(m) => write!(f, "store data is corrupt: {m}"),
+        }
+    }
+}
+
+impl std::error::Error for StoreError {}
+
+impl From<sled::Error> for StoreError {
+    fn from(e: sled::Error) -> Self {
+        match e {
+            sled::Error::Corruption { .. } => StoreError::Corrupt(e.to_string()),
+            other => StoreError::Io(other.to_string()),
+        }
+    }
+}
+
+/// What [`Store::put_dataset`] did.
+#[derive(Clone, Debug, PartialEq)]
+pub enum PutDataset {
+    /// Stored, with its assigned version.
+    Created(DatasetMeta),
+    /// A dataset with this id was already stored; nothing changed.
+    Existing(DatasetMeta),
+}
+
+/// What [`Store::delete_dataset`] did.
+#[derive(Clone, Debug, PartialEq, Eq)]
+pub enum DeleteDataset {
+    Deleted,
+    NotFound,
+    /// A queued or running run uses the dataset (the oldest such run is named).
+    InUse { run_id: String },
+}
+
+/// What [`Store::create_run`] did.
+#[derive(Clone, Debug, PartialEq)]
+pub enum CreateRun {
+    /// Stored and queued.
+    Created(Run),
+    /// The idempotency key (or the run id) already names this run; nothing changed.
+    Existing(Run),
+    /// The run's dataset is not stored.
+    DatasetMissing,
+}
+
+/// Which runs [`Store::list_runs`] returns; the default lets every run through.
+#[derive(Clone, Debug, Default, PartialEq)]
+pub struct RunFilter {
+    pub dataset_name: Option<String>,
+    pub state: Option<RunState>,
+    /// A label the run carries with this value.
+    pub label: Option<(String, String)>,
+    pub schedule_id: Option<String>,
+    /// `created_at >= created_from`.
+    pub created_from: Option<i64>,
+    /// `created_at < created_to`.
+    pub created_to: Option<i64>,
+}
+
+impl RunFilter {
+    pub fn admits(&self, run: &Run) -> bool {
+        self.dataset_name.as_ref().is_none_or(|n| *n == run.dataset_name)
+            && self.state.is_none_or(|s| s == run.state)
+            && self.label.as_ref().is_none_or(|(k, v)| run.labels.get(k) == Some(v))
+            && self.schedule_id.as_ref().is_none_or(|s| *s == run.schedule_id)
+            && self.created_from.is_none_or(|t| run.created_at >= t)
+            && self.created_to.is_none_or(|t| run.created_at < t)
+    }
+}
+
+/// The store. Cloning is cheap: clones share one database.
+#[derive(Clone)]
+pub struct Store {
+    db: sled::Db,
+    /// Every tree, indexed by the constants below; transactions take them all.
+    trees: Vec<sled::Tree>,
+}
+
+const DATASETS: usize = 0;
+const CHUNKS: usize = 1;
+const NAMES: usize = 2;
+const HOLDS: usize = 3;
+const RUNS: usize = 4;
+const RESULTS: usize = 5;
+const EVENTS: usize = 6;
+const UNITS: usize = 7;
+const QUEUE: usize = 8;
+const IDEMPOTENCY: usize = 9;
+const TREE_NAMES: [&str; 10] = ["datasets", "dataset_chunks", "dataset_names", "dataset_holds", "runs", "results", "events", "units", "queue", "idempotency"];
+
+/// Why a transaction stopped without committing.
+enum Abort {
+    Store(StoreError),
+    /// What the caller scanned before the transaction changed meanwhile: scan again.
+    Stale,
+}
+
+type TxResult<A> = Result<A, ConflictableTransactionError<Abort>>;
+
+fn fail<A>(e: StoreError) -> TxResult<A> {
+    Err(ConflictableTransactionError::Abort(Abort::Store(e)))
+}
+
+fn stale<A>() -> TxResult<A> {
+    Err(ConflictableTransactionError::Abort(Abort::Stale))
+}
+
+/// Decodes inside a transaction.
+fn read<T>(r: Result<T, StoreError>) -> TxResult<T> {
+    r.map_err(|e| ConflictableTransactionError::Abort(Abort::Store(e)))
+}
+
+/// The trees as one transaction sees them.
+struct Tx<'a>(&'a [TransactionalTree]);
+
+impl Tx<'_> {
+    fn get(&self, tree: usize, key: impl AsRef<[u8]>) -> Result<Option<IVec>, UnabortableTransactionError> {
+        self.0[tree].get(key)
+    }
+    fn insert(&self, tree: usize, key: impl AsRef<[u8]>, value: impl Into<IVec>) -> Result<(), UnabortableTransactionError> {
+        self.0[tree].insert(key.as_ref(), value.into()).map(|_| ())
+    }
+    fn remove(&self, tree: usize, key: impl AsRef<[u8]>) -> Result<Option<IVec>, UnabortableTransactionError> {
+        self.0[tree].remove(key.as_ref())
+    }
+
+    fn run(&self, id: &str) -> TxResult<Option<Run>> {
+        match self.get(RUNS, id)? {
+            None => Ok(None),
+            Some(v) => read(records::decode_run(&v)).map(Some),
+        }
+    }
+
+    fn put_run(&self, run: &Run) -> TxResult<()> {
+        Ok(self.insert(RUNS, &run.id, records::encode_run(run))?)
+    }
+
+    fn holds(&self, dataset_id: &str) -> TxResult<HoldsRecord> {
+        match self.get(HOLDS, dataset_id)? {
+            None => Ok(HoldsRecord::default()),
+            Some(v) => read(records::decode_holds(&v)),
+        }
+    }
+
+    fn hold(&self, dataset_id: &str, run_id: &str) -> TxResult<()> {
+        let mut h = self.holds(dataset_id)?;
+        h.runs.push(run_id.to_string());
+        Ok(self.insert(HOLDS, dataset_id, records::encode_holds(&h))?)
+    }
+
+    fn release(&self, dataset_id: &str, run_id: &str) -> TxResult<()> {
+        let mut h = self.holds(dataset_id)?;
+        h.runs.retain(|r| r != run_id);
+        if h.runs.is_empty() {
+            self.remove(HOLDS, dataset_id)?;
+        } else {
+            self.insert(HOLDS, dataset_id, records::encode_holds(&h))?;
+        }
+        Ok(())
+    }
+
+    /// Numbers and stores an event of `run` (which the caller saves afterwards).
+    fn append(&self, run: &mut Run, kind: EventKind, now: i64) -> TxResult<Event> {
+        let event = Event { sequence: run.take_sequence(), at: now, kind };
+        self.insert(EVENTS, keys::event(&run.id, event.sequence), records::encode_event(&event))?;
+        Ok(event)
+    }
+}
+
+/// Runs `attempt` until it does not come back stale.
+fn retrying<A>(mut attempt: impl FnMut() -> Result<A, Abort>) -> Result<A, StoreError> {
+    loop {
+        match attempt() {
+            Ok(a) => return Ok(a),
+            Err(Abort::Stale) => continue,
+            Err(Abort::Store(e)) => return Err(e),
+        }
+    }
+}
+
+impl Store {
+    /// Opens (or creates) the database in `dir`.
+    pub fn open(dir: &Path) -> Result<Store, StoreError> {
+        let db = sled::Config::new().path(dir).open().map_err(|e| StoreError::Io(format!("cannot open the store at {}: {e}", dir.display())))?;
+        Store::with(db)
+    }
+
+    /// A database that lives only as long as its last handle (for tests and the demo).
+    pub fn open_temporary() -> Result<Store, StoreError> {
+        Store::with(sled::Config::new().temporary(true).open()?)
+    }
+
+    fn with(db: sled::Db) -> Result<Store, StoreError> {
+        let trees = TREE_NAMES.iter().map(|n| db.open_tree(n)).collect::<Result<_, _>>()?;
+        Ok(Store { db, trees })
+    }
+
+    /// Writes everything to disk (changes already are, when they return; this is for shutdown).
+    pub fn flush(&self) -> Result<(), StoreError> {
+        self.db.flush()?;
+        Ok(())
+    }
+
+    /// One transaction over every tree, flushed before it returns.
+    fn transact<A>(&self, f: impl Fn(&Tx) -> TxResult<A>) -> Result<A, Abort> {
+        self.trees
+            .as_slice()
+            .transaction(|view: &Vec<TransactionalTree>| {
+                view[0].flush();
+                f(&Tx(view))
+            })
+            .map_err(|e| match e {
+                TransactionError::Abort(a) => a,
+                TransactionError::Storage(e) => Abort::Store(e.into()),
+            })
+    }
+
+    /// One transaction that only reads (a consistent view across keys), not flushed.
+    fn read_only<A>(&self, f: impl Fn(&Tx) -> TxResult<A>) -> Result<A, StoreError> {
+        self.trees.as_slice().transaction(|view: &Vec<TransactionalTree>| f(&Tx(view))).map_err(|e| match e {
+            TransactionError::Abort(Abort::Store(e)) => e,
+            TransactionError::Abort(Abort::Stale) => StoreError::Io("a read-only transaction went stale".into()),
+            TransactionError::Storage(e) => e.into(),
+        })
+    }
+
+    fn tree(&self, t: usize) -> &sled::Tree {
+        &self.trees[t]
+    }
+
+    // -------------------------------------------------------------------------------------
+    // Datasets
+
+    /// Stores a dataset unless one with this id exists. `meta.version` is ignored and
+    /// assigned: 1 + the latest version under `meta.name` (deleted versions count); an empty
+    /// name gets version 1 and no name entry. The bytes are stored in chunks of
+    /// [`CHUNK_BYTES`]; `meta.bytes` is kept as given.
+    pub fn put_dataset(&self, meta: DatasetMeta, bytes: &[u8]) -> Result<PutDataset, StoreError> {
+        retrying(|| {
+            let latest = if meta.name.is_empty() { 0 } else { self.latest_version(&meta.name).map_err(Abort::Store)? };
+            self.transact(|tx| {
+                if let Some(v) = tx.get(DATASETS, &meta.id)? {
+                    return Ok(PutDataset::Existing(read(records::decode_dataset(&v))?));
+                }
+                let mut m = meta.clone();
+                m.version = latest + 1;
+                if !m.name.is_empty() {
+                    let key = keys::name_version(&m.name, m.version);
+                    if tx.get(NAMES, &key)?.is_some() {
+                        return stale();
+                    }
+                    tx.insert(NAMES, key, m.id.as_bytes())?;
+                }
+                tx.insert(DATASETS, &m.id, records::encode_dataset(&m))?;
+                for (i, chunk) in bytes.chunks(CHUNK_BYTES).enumerate() {
+                    tx.insert(CHUNKS, keys::chunk(&m.id, i as u32), chunk)?;
+                }
+                Ok(PutDataset::Created(m))
+            })
+        })
+    }
+
+    /// The highest version under `name`, deleted ones included (0 when none).
+    fn latest_version(&self, name: &str) -> Result<u32, StoreError> {
+        for kv in self.tree(NAMES).scan_prefix(keys::name_prefix(name)).rev() {
+            let (k, _) = kv?;
+            if let Some(v) = keys::version_of(name, &k) {
+                return Ok(v);
+            }
+        }
+        Ok(0)
+    }
+
+    pub fn dataset(&self, id: &str) -> Result<Option<DatasetMeta>, StoreError> {
+        self.tree(DATASETS).get(id)?.map(|v| records::decode_dataset(&v)).transpose()
+    }
+
+    /// The stored bytes of a dataset, read in one transaction so a concurrent delete is
+    /// seen whole or not at all.
+    pub fn dataset_bytes(&self, id: &str) -> Result<Option<Vec<u8>>, StoreError> {
+        self.read_only(|tx| {
+            if tx.get(DATASETS, id)?.is_none() {
+                return Ok(None);
+            }
+            let mut out = Vec::new();
+            let mut i = 0u32;
+            while let Some(chunk) = tx.get(CHUNKS, keys::chunk(id, i))? {
+                out.extend_from_slice(&chunk);
+                i += 1;
+            }
+            Ok(Some(out))
+        })
+    }
+
+    /// The highest stored (not deleted) version under `name`.
+    pub fn latest_dataset(&self, name: &str) -> Result<Option<DatasetMeta>, StoreError> {
+        for id in self.name_ids(name)?.into_iter().rev() {
+            if let Some(m) = self.dataset(&id)? {
+                return Ok(Some(m));
+            }
+        }
+        Ok(None)
+    }
+
+    /// Ids of the stored versions of `name`, oldest first.
+    fn name_ids(&self, name: &str) -> Result<Vec<String>, StoreError> {
+        let mut out = Vec::new();
+        for kv in self.tree(NAMES).scan_prefix(keys::name_prefix(name)) {
+            let (k, v) = kv?;
+            if keys::version_of(name, &k).is_some() && !v.is_empty() {
+                out.push(String::from_utf8(v.to_vec()).map_err(|_| StoreError::Corrupt(format!("dataset name entry of '{name}' is not UTF-8")))?);
+            }
+        }
+        Ok(out)
+    }
+
+    /// Datasets newest first (by `created_at` descending, then id ascending), optionally only
+    /// the versions of one name. `limit` is at least 1. The page token is the position after
+    /// the last dataset returned; any string is a valid position.
+    pub fn list_datasets(&self, name: Option<&str>, page_token: Option<&str>, limit: usize) -> Result<(Vec<DatasetMeta>, Option<String>), StoreError> {
+        let mut all: Vec<(String, DatasetMeta)> = Vec::new();
+        match name {
+            Some(name) => {
+                for id in self.name_ids(name)? {
+                    if let Some(m) = self.dataset(&id)? {
+                        all.push((dataset_position(&m), m));
+                    }
+                }
+            }
+            None => {
+                for kv in self.tree(DATASETS).iter() {
+                    let (_, v) = kv?;
+                    let m = records::decode_dataset(&v)?;
+                    all.push((dataset_position(&m), m));
+                }
+            }
+        }
+        all.sort_by(|a, b| a.0.cmp(&b.0));
+        let after: Vec<(String, DatasetMeta)> = all.into_iter().filter(|(p, _)| page_token.is_none_or(|t| p.as_str() > t)).collect();
+        Ok(page(after, limit, |(p, _)| p.clone(), |(_, m)| m))
+    }
+
+    /// Deletes a dataset unless a queued or running run uses it; checked and deleted in one
+    /// transaction, so no run can be created for it in between.
+    pub fn delete_dataset(&self, id: &str) -> Result<DeleteDataset, StoreError> {
+        retrying(|| {
+            self.transact(|tx| {
+                let Some(v) = tx.get(DATASETS, id)? else { return Ok(DeleteDataset::NotFound) };
+                let meta = read(records::decode_dataset(&v))?;
+                if let Some(run_id) = tx.holds(id)?.runs.first() {
+                    return Ok(DeleteDataset::InUse { run_id: run_id.clone() });
+                }
+                tx.remove(DATASETS, id)?;
+                // Chunks are numbered from 0 without gaps.
+                let mut i = 0u32;
+                while tx.remove(CHUNKS, keys::chunk(id, i))?.is_some() {
+                    i += 1;
+                }
+                if !meta.name.is_empty() {
+                    let key = keys::name_version(&meta.name, meta.version);
+                    if tx.get(NAMES, &key)?.is_some_and(|v| v == id.as_bytes()) {
+                        tx.insert(NAMES, key, IVec::default())?;
+                    }
+                }
+                Ok(DeleteDataset::Deleted)
+            })
+        })
+    }
+
+    // -------------------------------------------------------------------------------------
+    // Runs
+
+    /// Stores a queued run (as [`Run::queued`] makes it) and enqueues it. A non-empty
+    /// idempotency key that already names a run, or a run id already stored, returns that run
+    /// instead. The dataset must exist (checked inside the transaction).
+    pub fn create_run(&self, run: Run) -> Result<CreateRun, StoreError> {
+        debug_assert_eq!(run.state, RunState::Queued, "create_run takes a queued run");
+        retrying(|| {
+            self.transact(|tx| {
+                if !run.idempotency_key.is_empty() {
+                    if let Some(id) = tx.get(IDEMPOTENCY, &run.idempotency_key)? {
+                        let id = read(String::from_utf8(id.to_vec()).map_err(|_| StoreError::Corrupt("idempotency entry is not UTF-8".into())))?;
+                        if let Some(existing) = tx.run(&id)? {
+                            return Ok(CreateRun::Existing(existing));
+                        }
+                    }
+                }
+                if let Some(existing) = tx.run(&run.id)? {
+                    return Ok(CreateRun::Existing(existing));
+                }
+                if tx.get(DATASETS, &run.dataset_id)?.is_none() {
+                    return Ok(CreateRun::DatasetMissing);
+                }
+                tx.put_run(&run)?;
+                tx.insert(QUEUE, &run.id, IVec::default())?;
+                if !run.idempotency_key.is_empty() {
+                    tx.insert(IDEMPOTENCY, &run.idempotency_key, run.id.as_bytes())?;
+                }
+                tx.hold(&run.dataset_id, &run.id)?;
+                Ok(CreateRun::Created(run.clone()))
+            })
+        })
+    }
+
+    pub fn run(&self, id: &str) -> Result<Option<Run>, StoreError> {
+        self.tree(RUNS).get(id)?.map(|v| records::decode_run(&v)).transpose()
+    }
+
+    /// Runs newest first (run ids are time-ordered), filtered. `limit` is at least 1. The page
+    /// token is the id of the last run returned; the next page starts below it.
+    pub fn list_runs(&self, filter: &RunFilter, page_token: Option<&str>, limit: usize) -> Result<(Vec<Run>, Option<String>), StoreError> {
+        let limit = limit.max(1);
+        let iter = match page_token {
+            Some(t) => self.tree(RUNS).range(..t.as_bytes()),
+            None => self.tree(RUNS).iter(),
+        };
+        let mut found = Vec::new();
+        for kv in iter.rev() {
+            let (_, v) = kv?;
+            let run = records::decode_run(&v)?;
+            if filter.admits(&run) {
+                found.push(run);
+                if found.len() > limit {
+                    break;
+                }
+            }
+        }
+        Ok(page(found, limit, |r| r.id.clone(), |r| r))
+    }
+
+    /// Takes the oldest queued run off the queue and marks it running, with `started_at =
+    /// now` and a plan size of 0 (see [`Store::set_plan_size`]); one transaction.
+    pub fn claim_next(&self, now: i64) -> Result<Option<Run>, StoreError> {
+        retrying(|| {
+            let head = match self.tree(QUEUE).iter().next() {
+                None => return Ok(None),
+                Some(kv) => kv.map_err(|e| Abort::Store(e.into()))?.0,
+            };
+            self.transact(|tx| {
+                if tx.remove(QUEUE, &head)?.is_none() {
+                    return stale();
+                }
+                let id = String::from_utf8_lossy(&head);
+                let Some(mut run) = tx.run(&id)? else { return fail(StoreError::Corrupt(format!("queued run {id} has no run record"))) };
+                if run.state != RunState::Queued {
+                    return fail(StoreError::Corrupt(format!("queued run {id} is {}", run.state.as_str())));
+                }
+                run.start(now, 0, 0);
+                tx.put_run(&run)?;
+                Ok(Some(run))
+            })
+        })
+    }
+
+    /// Records the plan size of a running run; does nothing when the run is not running
+    /// (it may have been cancelled while it was planned).
+    pub fn set_plan_size(&self, run_id: &str, settings: u32, units_total: u32) -> Result<(), StoreError> {
+        retrying(|| {
+            self.transact(|tx| {
+                if let Some(mut run) = tx.run(run_id)?.filter(|r| r.state == RunState::Running) {
+                    run.settings = settings;
+                    run.units_total = units_total;
+                    tx.put_run(&run)?;
+                }
+                Ok(())
+            })
+        })
+    }
+
+    /// Runs left in state running (after a crash or shutdown), oldest first.
+    pub fn running_runs(&self) -> Result<Vec<Run>, StoreError> {
+        let mut out = Vec::new();
+        for kv in self.tree(RUNS).iter() {
+            let run = records::decode_run(&kv?.1)?;
+            if run.state == RunState::Running {
+                out.push(run);
+            }
+        }
+        Ok(out)
+    }
+
+    /// Records a finished work unit of a running run and the (non-terminal) events it
+    /// announces, in one transaction: stores the unit, numbers and stores each event, bumps
+    /// `units_done`, saves the run. Returns the stored events; none when the unit was already
+    /// stored or the run is not running (nothing is stored then).
+    pub fn record_unit(&self, run_id: &str, unit: &UnitResult, events: Vec<EventKind>, now: i64) -> Result<Vec<Event>, StoreError> {
+        let index = u32::try_from(unit.unit).map_err(|_| StoreError::Corrupt(format!("unit index {} does not fit a key", unit.unit)))?;
+        let key = keys::unit(run_id, index);
+        let bytes = records::encode_unit(unit);
+        retrying(|| {
+            self.transact(|tx| {
+                let Some(mut run) = tx.run(run_id)?.filter(|r| r.state == RunState::Running) else { return Ok(Vec::new()) };
+                if tx.get(UNITS, &key)?.is_some() {
+                    return Ok(Vec::new());
+                }
+                tx.insert(UNITS, &key, bytes.clone())?;
+                let mut out = Vec::with_capacity(events.len());
+                for kind in &events {
+                    out.push(tx.append(&mut run, kind.clone(), now)?);
+                }
+                run.units_done += 1;
+                tx.put_run(&run)?;
+                Ok(out)
+            })
+        })
+    }
+
+    /// The stored work units of a run, by unit index.
+    pub fn units(&self, run_id: &str) -> Result<Vec<UnitResult>, StoreError> {
+        let mut out = Vec::new();
+        for kv in self.tree(UNITS).scan_prefix(run_id) {
+            let (k, v) = kv?;
+            if keys::belongs(run_id, 4, &k) {
+                out.push(records::decode_unit(&v)?);
+            }
+        }
+        Ok(out)
+    }
+
+    /// Running → finished: stores the outcome, appends the finished event, sets
+    /// `finished_at`; one transaction. `None` when the run is not running (it was cancelled
+    /// or failed meanwhile, or is unknown): nothing is stored then.
+    pub fn finish_run(&self, run_id: &str, outcome: &RunOutcome, now: i64) -> Result<Option<Event>, StoreError> {
+        let bytes = records::encode_outcome(outcome);
+        retrying(|| {
+            self.transact(|tx| {
+                let Some(mut run) = tx.run(run_id)?.filter(|r| r.state == RunState::Running) else { return Ok(None) };
+                tx.insert(RESULTS, run_id, bytes.clone())?;
+                let event = tx.append(&mut run, EventKind::Finished { picked: outcome.picked, best: outcome.best }, now)?;
+                run.end(RunState::Finished, now, "");
+                tx.put_run(&run)?;
+                tx.release(&run.dataset_id, run_id)?;
+                Ok(Some(event))
+            })
+        })
+    }
+
+    /// Queued or running → `state` (failed or cancelled) with a reason: takes a queued run
+    /// off the queue, appends the failed or cancelled event; one transaction. `None` when the
+    /// run is unknown or already terminal (so cancelling twice is harmless), or when `state`
+    /// is neither failed nor cancelled.
+    pub fn end_run(&self, run_id: &str, state: RunState, reason: &str, now: i64) -> Result<Option<(Run, Event)>, StoreError> {
+        let kind = match state {
+            RunState::Failed => EventKind::Failed(reason.to_string()),
+            RunState::Cancelled => EventKind::Cancelled(reason.to_string()),
+            _ => {
+                debug_assert!(false, "end_run ends a run as failed or cancelled, not {}", state.as_str());
+                return Ok(None);
+            }
+        };
+        retrying(|| {
+            self.transact(|tx| {
+                let Some(mut run) = tx.run(run_id)?.filter(|r| !r.state.is_terminal()) else { return Ok(None) };
+                if run.state == RunState::Queued {
+                    tx.remove(QUEUE, run_id)?;
+                }
+                let event = tx.append(&mut run, kind.clone(), now)?;
+                run.end(state, now, reason);
+                tx.put_run(&run)?;
+                tx.release(&run.dataset_id, run_id)?;
+                Ok(Some((run, event)))
+            })
+        })
+    }
+
+    /// Appends a non-terminal event (progress) to a running run; one transaction. `None`
+    /// when the run is not running (or the event is terminal: those belong to
+    /// [`Store::finish_run`] and [`Store::end_run`]).
+    pub fn append_event(&self, run_id: &str, kind: EventKind, now: i64) -> Result<Option<Event>, StoreError> {
+        if matches!(kind, EventKind::Finished { .. } | EventKind::Failed(_) | EventKind::Cancelled(_)) {
+            debug_assert!(false, "append_event takes non-terminal events");
+            return Ok(None);
+        }
+        retrying(|| {
+            self.transact(|tx| {
+                let Some(mut run) = tx.run(run_id)?.filter(|r| r.state == RunState::Running) else { return Ok(None) };
+                let event = tx.append(&mut run, kind.clone(), now)?;
+                tx.put_run(&run)?;
+                Ok(Some(event))
+            })
+        })
+    }
+
+    /// Events with sequence > `after`, in order.
+    pub fn events(&self, run_id: &str, after: u64) -> Result<Vec<Event>, StoreError> {
+        let Some(first) = after.checked_add(1) else { return Ok(Vec::new()) };
+        let mut out = Vec::new();
+        for kv in self.tree(EVENTS).range(keys::event(run_id, first)..=keys::event(run_id, u64::MAX)) {
+            let (k, v) = kv?;
+            if keys::belongs(run_id, 8, &k) {
+                out.push(records::decode_event(&v)?);
+            }
+        }
+        Ok(out)
+    }
+
+    pub fn outcome(&self, run_id: &str) -> Result<Option<RunOutcome>, StoreError> {
+        self.tree(RESULTS).get(run_id)?.map(|v| records::decode_outcome(&v)).transpose()
+    }
+
+    /// Deletes a terminal run with its events, units, outcome and idempotency entry. `false`
+    /// when the run is unknown or not terminal.
+    pub fn delete_run(&self, run_id: &str) -> Result<bool, StoreError> {
+        // A terminal run gains no events or units, so keys scanned after seeing it terminal
+        // are all of them.
+        match self.run(run_id)? {
+            Some(r) if r.state.is_terminal() => {}
+            _ => return Ok(false),
+        }
+        let scan = |tree: usize, suffix: usize| -> Result<Vec<IVec>, StoreError> {
+            let mut out = Vec::new();
+            for kv in self.tree(tree).scan_prefix(run_id) {
+                let (k, _) = kv?;
+                if keys::belongs(run_id, suffix, &k) {
+                    out.push(k);
+                }
+            }
+            Ok(out)
+        };
+        let events = scan(EVENTS, 8)?;
+        let units = scan(UNITS, 4)?;
+        retrying(|| {
+            self.transact(|tx| {
+                let Some(run) = tx.run(run_id)?.filter(|r| r.state.is_terminal()) else { return Ok(false) };
+                tx.remove(RUNS, run_id)?;
+                tx.remove(RESULTS, run_id)?;
+                for k in events.iter() {
+                    tx.remove(EVENTS, k)?;
+                }
+                for k in units.iter() {
+                    tx.remove(UNITS, k)?;
+                }
+                if !run.idempotency_key.is_empty() && tx.get(IDEMPOTENCY, &run.idempotency_key)?.is_some_and(|v| v == run_id.as_bytes()) {
+                    tx.remove(IDEMPOTENCY, &run.idempotency_key)?;
+                }
+                Ok(true)
+            })
+        })
+    }
+}
+
+/// Sort position of a dataset in listings: newest first, then by id.
+fn dataset_position(m: &DatasetMeta) -> String {
+    let newest_first = (i64::MAX as i128 - m.created_at as i128) as u64;
+    format!("{newest_first:020}:{}", m.id)
+}
+
+/// Cuts `items` (in listing order, possibly one more than fits) to a page; the token is the
+/// position of the last item on the page when more remain.
+fn page<I, T>(items: Vec<I>, limit: usize, position: impl Fn(&I) -> String, value: impl Fn(I) -> T) -> (Vec<T>, Option<String>) {
+    let limit = limit.max(1);
+    let more = items.len() > limit;
+    let mut kept: Vec<I> = items;
+    kept.truncate(limit);
+    let token = if more { kept.last().map(&position) } else { None };
+    (kept.into_iter().map(value).collect(), token)
+}

@@ -1,0 +1,640 @@
+//! Stored bytes <-> domain values: the one place that decides how a value looks on disk.
+//!
+//! Every record is one format byte ([`FORMAT`]) followed by a JSON document of an explicit
+//! record struct below; the domain types carry no serde derives, so the layout changes only
+//! here and only on purpose. A later release that changes a record adds a new format byte
+//! and keeps reading the old one; a byte this build does not know is an error naming it.
+//!
+//! Numbers: every `f64` is written as a JSON *string* holding Rust's shortest round-trip
+//! form (`"0.1"`, `"1e-300"`, `"NaN"`, `"inf"`, `"-inf"`). JSON has no NaN or infinity, and
+//! serde_json's default number parser (without its `float_roundtrip` feature) may land one
+//! unit in the last place away from the written value, while `str::parse::<f64>` is
+//! correctly rounded, so a string gives back the very same bits (NaN payloads aside).
+//! Enumerations are stored by their `as_str` names, so reordering a Rust enum changes nothing.
+//!
+//! The model tree of a [`RunOutcome`] is stored as its `pollard.model` text
+//! ([`crate::export::json`]), the format that owns trees.
+
+use std::collections::BTreeMap;
+use std::fmt;
+
+use serde::de::DeserializeOwned;
+use serde::{Deserialize, Deserializer, Serialize, Serializer};
+
+use super::StoreError;
+use crate::data::Task;
+use crate::export::json::{from_json, to_json};
+use crate::job::{ColumnMeta, DatasetMeta, Event, EventKind, Run, RunOutcome, RunState};
+use crate::sweep::{FoldPlan, FoldScheme, FoldScore, Metric, PickRule, Progress, Range, Setting, SettingScore, SweepSpec, UnitResult};
+use crate::tree::{ClassWeight, Criterion, FitOptions, Limits};
+
+/// The format byte this build writes (and the only one it reads).
+pub const FORMAT: u8 = 1;
+
+/// Encodes a record: the format byte, then JSON.
+pub fn encode<R: Serialize>(record: &R) -> Vec<u8> {
+    let mut out = vec![FORMAT];
+    serde_json::to_writer(&mut out, record).expect("records serialise: string keys, no failing serialisers");
+    out
+}
+
+/// Decodes a record; `what` names the record kind in errors ("run", "event", …).
+pub fn decode<R: DeserializeOwned>(what: &str, bytes: &[u8]) -> Result<R, StoreError> {
+    match bytes.split_first() {
+        None => Err(StoreError::Corrupt(format!("{what} record is empty (no format byte)"))),
+        Some((&FORMAT, json)) => serde_json::from_slice(json).map_err(|e| StoreError::Corrupt(format!("{what} record (format {FORMAT}) does not parse: {e}"))),
+        Some((&other, _)) => Err(StoreError::Corrupt(format!("{what} record has unknown format byte {other} (this build reads format {FORMAT})"))),
+    }
+}
+
+fn corrupt(what: &str, message: impl fmt::Display) -> StoreError {
+    StoreError::Corrupt(format!("{what} record: {message}"))
+}
+
+/// An `f64` stored exactly, NaN and infinities included (see the module notes).
+#[derive(Clone, Copy, Debug)]
+pub struct Real(pub f64);
+
+impl Serialize for Real {
+    fn serialize<S: Serializer>(&self, s: S) -> Result<S::Ok, S::Error> {
+        let x = self.0;
+        // Display never uses an exponent, which makes 1e300 three hundred digits long.
+        let plain = x.to_string();
+        if plain.len() <= 24 {
+            s.serialize_str(&plain)
+        } else {
+            s.serialize_str(&format!("{x:e}"))
+        }
+    }
+}
+
+impl<'de> Deserialize<'de> for Real {
+    fn deserialize<D: Deserializer<'de>>(d: D) -> Result<Self, D::Error> {
+        let text = String::deserialize(d)?;
+        text.parse::<f64>().map(Real).map_err(|_| serde::de::Error::custom(format!("'{text}' is not a number")))
+    }
+}
+
+fn reals(v: &[f64]) -> Vec<Real> {
+    v.iter().map(|&x| Real(x)).collect()
+}
+
+fn unreal(v: &[Real]) -> Vec<f64> {
+    v.iter().map(|r| r.0).collect()
+}
+
+fn parse_name<T>(what: &str, field: &str, text: &str, parse: impl Fn(&str) -> Option<T>) -> Result<T, StoreError> {
+    parse(text).ok_or_else(|| corrupt(what, format!("{field} '{text}' is not known to this build")))
+}
+
+fn to_usize(what: &str, field: &str, x: u64) -> Result<usize, StoreError> {
+    usize::try_from(x).map_err(|_| corrupt(what, format!("{field} {x} does not fit this machine")))
+}
+
+// ---------------------------------------------------------------------------------------
+// Datasets
+
+#[derive(Serialize, Deserialize)]
+pub struct DatasetRecord {
+    id: String,
+    name: String,
+    version: u32,
+    rows: u64,
+    columns: Vec<ColumnRecord>,
+    target: String,
+    task: String,
+    created_at: i64,
+    bytes: u64,
+    categorical: Vec<String>,
+}
+
+#[derive(Serialize, Deserialize)]
+struct ColumnRecord {
+    name: String,
+    kind: String,
+    missing: u64,
+    levels: u64,
+}
+
+impl From<&DatasetMeta> for DatasetRecord {
+    fn from(m: &DatasetMeta) -> Self {
+        DatasetRecord {
+            id: m.id.clone(),
+            name: m.name.clone(),
+            version: m.version,
+            rows: m.rows,
+            columns: m.columns.iter().map(|c| ColumnRecord { name: c.name.clone(), kind: c.kind.clone(), missing: c.missing, levels: c.levels }).collect(),
+            target: m.target.clone(),
+            task: m.task.clone(),
+            created_at: m.created_at,
+            bytes: m.bytes,
+            categorical: m.categorical.clone(),
+        }
+    }
+}
+
+impl From<DatasetRecord> for DatasetMeta {
+    fn from(r: DatasetRecord) -> Self {
+        DatasetMeta {
+            id: r.id,
+            name: r.name,
+            version: r.version,
+            rows: r.rows,
+            columns: r.columns.into_iter().map(|c| ColumnMeta { name: c.name, kind: c.kind, missing: c.missing, levels: c.levels }).collect(),
+            target: r.target,
+            task: r.task,
+            created_at: r.created_at,
+            bytes: r.bytes,
+            categorical: r.categorical,
+        }
+    }
+}
+
+// ---------------------------------------------------------------------------------------
+// Sweep specs
+
+#[derive(Serialize, Deserialize)]
+pub struct SpecRecord {
+    task: Option<String>,
+    criteria: Vec<String>,
+    class_weights: Vec<String>,
+    max_depth: Option<RangeRecord>,
+    min_split_rows: Option<RangeRecord>,
+    min_leaf_rows: Option<RangeRecord>,
+    max_leaves: Option<RangeRecord>,
+    min_gain: Option<RangeRecord>,
+    prune_alpha: Option<RangeRecord>,
+    prune_path: bool,
+    folds: Option<FoldPlanRecord>,
+    metric: Option<String>,
+    pick: String,
+    seed: u64,
+    fit_final: bool,
+    max_settings: Option<u64>,
+}
+
+#[derive(Serialize, Deserialize)]
+#[serde(tag = "range", rename_all = "snake_case")]
+enum RangeRecord {
+    /// `null` entries mean "no limit".
+    Values { values: Vec<Option<Real>> },
+    Span { from: Real, to: Real, step: Real },
+    LogSpan { from: Real, to: Real, count: u32 },
+}
+
+#[derive(Serialize, Deserialize)]
+struct FoldPlanRecord {
+    /// `FoldPlan::scheme_name`.
+    scheme: String,
+    /// The column of `grouped`, `forward` and `given` plans; absent otherwise.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    column: Option<String>,
+    k: u32,
+    repeats: u32,
+}
+
+impl From<&Range> for RangeRecord {
+    fn from(r: &Range) -> Self {
+        match r {
+            Range::Values(v) => RangeRecord::Values { values: v.iter().map(|x| x.map(Real)).collect() },
+            Range::Span { from, to, step } => RangeRecord::Span { from: Real(*from), to: Real(*to), step: Real(*step) },
+            Range::LogSpan { from, to, count } => RangeRecord::LogSpan { from: Real(*from), to: Real(*to), count: *count },
+        }
+    }
+}
+
+impl From<RangeRecord> for Range {
+    fn from(r: RangeRecord) -> Self {
+        match r {
+            RangeRecord::Values { values } => Range::Values(values.into_iter().map(|x| x.map(|r| r.0)).collect()),
+            RangeRecord::Span { from, to, step } => Range::Span { from: from.0, to: to.0, step: step.0 },
+            RangeRecord::LogSpan { from, to, count } => Range::LogSpan { from: from.0, to: to.0, count },
+        }
+    }
+}
+
+impl From<&FoldPlan> for FoldPlanRecord {
+    fn from(p: &FoldPlan) -> Self {
+        FoldPlanRecord { scheme: p.scheme_name().to_string(), column: p.column().map(str::to_string), k: p.k, repeats: p.repeats }
+    }
+}
+
+impl TryFrom<FoldPlanRecord> for FoldPlan {
+    type Error = StoreError;
+    fn try_from(r: FoldPlanRecord) -> Result<Self, StoreError> {
+        let column = |scheme: &str| r.column.clone().ok_or_else(|| corrupt("run", format!("a {scheme} fold plan without its column")));
+        let scheme = match r.scheme.as_str() {
+            "shuffled" => FoldScheme::Shuffled,
+            "stratified" => FoldScheme::Stratified,
+            "grouped" => FoldScheme::Grouped { column: column("grouped")? },
+            "forward" => FoldScheme::Forward { column: column("forward")? },
+            "given" => FoldScheme::Given { column: column("given")? },
+            other => return Err(corrupt("run", format!("fold scheme '{other}' is not known to this build"))),
+        };
+        Ok(FoldPlan { scheme, k: r.k, repeats: r.repeats })
+    }
+}
+
+impl From<&SweepSpec> for SpecRecord {
+    fn from(s: &SweepSpec) -> Self {
+        let range = |r: &Option<Range>| r.as_ref().map(RangeRecord::from);
+        SpecRecord {
+            task: s.task.map(|t| t.as_str().to_string()),
+            criteria: s.criteria.iter().map(|c| c.as_str().to_string()).collect(),
+            class_weights: s.class_weights.iter().map(|w| w.as_str().to_string()).collect(),
+            max_depth: range(&s.max_depth),
+            min_split_rows: range(&s.min_split_rows),
+            min_leaf_rows: range(&s.min_leaf_rows),
+            max_leaves: range(&s.max_leaves),
+            min_gain: range(&s.min_gain),
+            prune_alpha: range(&s.prune_alpha),
+            prune_path: s.prune_path,
+            folds: s.folds.as_ref().map(FoldPlanRecord::from),
+            metric: s.metric.map(|m| m.as_str().to_string()),
+            pick: s.pick.as_str().to_string(),
+            seed: s.seed,
+            fit_final: s.fit_final,
+            max_settings: s.max_settings.map(|n| n as u64),
+        }
+    }
+}
+
+impl TryFrom<SpecRecord> for SweepSpec {
+    type Error = StoreError;
+    fn try_from(r: SpecRecord) -> Result<Self, StoreError> {
+        let w = "run";
+        Ok(SweepSpec {
+            task: r.task.map(|t| parse_name(w, "task", &t, Task::parse)).transpose()?,
+            criteria: r.criteria.iter().map(|c| parse_name(w, "criterion", c, Criterion::parse)).collect::<Result<_, _>>()?,
+            class_weights: r.class_weights.iter().map(|c| parse_name(w, "class weight", c, ClassWeight::parse)).collect::<Result<_, _>>()?,
+            max_depth: r.max_depth.map(Range::from),
+            min_split_rows: r.min_split_rows.map(Range::from),
+            min_leaf_rows: r.min_leaf_rows.map(Range::from),
+            max_leaves: r.max_leaves.map(Range::from),
+            min_gain: r.min_gain.map(Range::from),
+            prune_alpha: r.prune_alpha.map(Range::from),
+            prune_path: r.prune_path,
+            folds: r.folds.map(FoldPlan::try_from).transpose()?,
+            metric: r.metric.map(|m| parse_name(w, "metric", &m, Metric::parse)).transpose()?,
+            pick: parse_name(w, "pick rule", &r.pick, PickRule::parse)?,
+            seed: r.seed,
+            fit_final: r.fit_final,
+            max_settings: r.max_settings.map(|n| to_usize(w, "max_settings", n)).transpose()?,
+        })
+    }
+}
+
+// ---------------------------------------------------------------------------------------
+// Runs
+
+#[derive(Serialize, Deserialize)]
+pub struct RunRecord {
+    id: String,
+    state: String,
+    dataset_id: String,
+    dataset_name: String,
+    dataset_version: u32,
+    target: String,
+    spec: SpecRecord,
+    labels: BTreeMap<String, String>,
+    idempotency_key: String,
+    schedule_id: String,
+    created_at: i64,
+    started_at: Option<i64>,
+    finished_at: Option<i64>,
+    reason: String,
+    settings: u32,
+    units_total: u32,
+    units_done: u32,
+    next_sequence: u64,
+}
+
+impl From<&Run> for RunRecord {
+    fn from(r: &Run) -> Self {
+        RunRecord {
+            id: r.id.clone(),
+            state: r.state.as_str().to_string(),
+            dataset_id: r.dataset_id.clone(),
+            dataset_name: r.dataset_name.clone(),
+            dataset_version: r.dataset_version,
+            target: r.target.clone(),
+            spec: SpecRecord::from(&r.spec),
+            labels: r.labels.clone(),
+            idempotency_key: r.idempotency_key.clone(),
+            schedule_id: r.schedule_id.clone(),
+            created_at: r.created_at,
+            started_at: r.started_at,
+            finished_at: r.finished_at,
+            reason: r.reason.clone(),
+            settings: r.settings,
+            units_total: r.units_total,
+            units_done: r.units_done,
+            next_sequence: r.next_sequence,
+        }
+    }
+}
+
+impl TryFrom<RunRecord> for Run {
+    type Error = StoreError;
+    fn try_from(r: RunRecord) -> Result<Self, StoreError> {
+        Ok(Run {
+            state: parse_name("run", "state", &r.state, RunState::parse)?,
+            spec: SweepSpec::try_from(r.spec)?,
+            id: r.id,
+            dataset_id: r.dataset_id,
+            dataset_name: r.dataset_name,
+            dataset_version: r.dataset_version,
+            target: r.target,
+            labels: r.labels,
+            idempotency_key: r.idempotency_key,
+            schedule_id: r.schedule_id,
+            created_at: r.created_at,
+            started_at: r.started_at,
+            finished_at: r.finished_at,
+            reason: r.reason,
+            settings: r.settings,
+            units_total: r.units_total,
+            units_done: r.units_done,
+            next_sequence: r.next_sequence,
+        })
+    }
+}
+
+// ---------------------------------------------------------------------------------------
+// Events
+
+#[derive(Serialize, Deserialize)]
+pub struct EventRecord {
+    sequence: u64,
+    at: i64,
+    #[serde(flatten)]
+    kind: EventKindRecord,
+}
+
+#[derive(Serialize, Deserialize)]
+#[serde(tag = "kind", rename_all = "snake_case")]
+enum EventKindRecord {
+    Progress { units_done: u64, units_total: u64, scores_done: u64, scores_total: u64 },
+    /// `index` into the plan's settings, with that setting's score.
+    Scored { index: u32, score: SettingScoreRecord },
+    Finished { picked: u32, best: u32 },
+    Failed { reason: String },
+    Cancelled { reason: String },
+}
+
+impl From<&Event> for EventRecord {
+    fn from(e: &Event) -> Self {
+        let kind = match &e.kind {
+            EventKind::Progress(p) => EventKindRecord::Progress {
+                units_done: p.units_done as u64,
+                units_total: p.units_total as u64,
+                scores_done: p.scores_done as u64,
+                scores_total: p.scores_total as u64,
+            },
+            EventKind::Scored { index, score } => EventKindRecord::Scored { index: *index, score: SettingScoreRecord::from(&**score) },
+            EventKind::Finished { picked, best } => EventKindRecord::Finished { picked: *picked, best: *best },
+            EventKind::Failed(reason) => EventKindRecord::Failed { reason: reason.clone() },
+            EventKind::Cancelled(reason) => EventKindRecord::Cancelled { reason: reason.clone() },
+        };
+        EventRecord { sequence: e.sequence, at: e.at, kind }
+    }
+}
+
+impl TryFrom<EventRecord> for Event {
+    type Error = StoreError;
+    fn try_from(r: EventRecord) -> Result<Self, StoreError> {
+        let n = |field: &str, x: u64| to_usize("event", field, x);
+        let kind = match r.kind {
+            EventKindRecord::Progress { units_done, units_total, scores_done, scores_total } => EventKind::Progress(Progress {
+                units_done: n("units_done", units_done)?,
+                units_total: n("units_total", units_total)?,
+                scores_done: n("scores_done", scores_done)?,
+                scores_total: n("scores_total", scores_total)?,
+            }),
+            EventKindRecord::Scored { index, score } => EventKind::Scored { index, score: Box::new(SettingScore::try_from(score)?) },
+            EventKindRecord::Finished { picked, best } => EventKind::Finished { picked, best },
+            EventKindRecord::Failed { reason } => EventKind::Failed(reason),
+            EventKindRecord::Cancelled { reason } => EventKind::Cancelled(reason),
+        };
+        Ok(Event { sequence: r.sequence, at: r.at, kind })
+    }
+}
+
+// ---------------------------------------------------------------------------------------
+// Work units
+
+#[derive(Serialize, Deserialize)]
+pub struct UnitRecord {
+    unit: u64,
+    scores: Vec<UnitScoreRecord>,
+}
+
+#[derive(Serialize, Deserialize)]
+struct UnitScoreRecord {
+    /// Index into the plan's settings.
+    setting: u64,
+    valid: Real,
+    train: Real,
+    leaves: u32,
+    depth: u32,
+}
+
+impl From<&UnitResult> for UnitRecord {
+    fn from(u: &UnitResult) -> Self {
+        UnitRecord {
+            unit: u.unit as u64,
+            scores: u
+                .scores
+                .iter()
+                .map(|(s, f)| UnitScoreRecord { setting: *s as u64, valid: Real(f.valid), train: Real(f.train), leaves: f.leaves, depth: f.depth })
+                .collect(),
+        }
+    }
+}
+
+impl TryFrom<UnitRecord> for UnitResult {
+    type Error = StoreError;
+    fn try_from(r: UnitRecord) -> Result<Self, StoreError> {
+        let scores = r
+            .scores
+            .into_iter()
+            .map(|s| Ok((to_usize("unit", "setting", s.setting)?, FoldScore { valid: s.valid.0, train: s.train.0, leaves: s.leaves, depth: s.depth })))
+            .collect::<Result<_, StoreError>>()?;
+        Ok(UnitResult { unit: to_usize("unit", "unit", r.unit)?, scores })
+    }
+}
+
+// ---------------------------------------------------------------------------------------
+// Outcomes
+
+#[derive(Serialize, Deserialize)]
+pub struct OutcomeRecord {
+    scores: Vec<SettingScoreRecord>,
+    picked: u32,
+    best: u32,
+    /// The `pollard.model` JSON text of the refit tree.
+    model: Option<String>,
+    fold_assignment: Vec<Vec<i32>>,
+}
+
+#[derive(Serialize, Deserialize)]
+struct SettingScoreRecord {
+    key: u64,
+    options: FitOptionsRecord,
+    fold_scores: Vec<Real>,
+    valid_mean: Real,
+    valid_sd: Real,
+    train_mean: Real,
+    gap: Real,
+    mean_leaves: Real,
+    mean_depth: Real,
+}
+
+#[derive(Serialize, Deserialize)]
+struct FitOptionsRecord {
+    max_depth: Option<u32>,
+    min_split_rows: u32,
+    min_leaf_rows: u32,
+    max_leaves: Option<u32>,
+    min_gain: Real,
+    prune_alpha: Real,
+    /// `None`: the task's default.
+    criterion: Option<String>,
+    class_weight: String,
+}
+
+impl From<&FitOptions> for FitOptionsRecord {
+    fn from(o: &FitOptions) -> Self {
+        let l = &o.limits;
+        FitOptionsRecord {
+            max_depth: l.max_depth,
+            min_split_rows: l.min_split_rows,
+            min_leaf_rows: l.min_leaf_rows,
+            max_leaves: l.max_leaves,
+            min_gain: Real(l.min_gain),
+            prune_alpha: Real(l.prune_alpha),
+            criterion: o.criterion.map(|c| c.as_str().to_string()),
+            class_weight: o.class_weight.as_str().to_string(),
+        }
+    }
+}
+
+impl TryFrom<FitOptionsRecord> for FitOptions {
+    type Error = StoreError;
+    fn try_from(r: FitOptionsRecord) -> Result<Self, StoreError> {
+        Ok(FitOptions {
+            limits: Limits {
+                max_depth: r.max_depth,
+                min_split_rows: r.min_split_rows,
+                min_leaf_rows: r.min_leaf_rows,
+                max_leaves: r.max_leaves,
+                min_gain: r.min_gain.0,
+                prune_alpha: r.prune_alpha.0,
+            },
+            criterion: r.criterion.map(|c| parse_name("outcome", "criterion", &c, Criterion::parse)).transpose()?,
+            class_weight: parse_name("outcome", "class weight", &r.class_weight, ClassWeight::parse)?,
+        })
+    }
+}
+
+impl From<&SettingScore> for SettingScoreRecord {
+    fn from(s: &SettingScore) -> Self {
+        SettingScoreRecord {
+            key: s.setting.key as u64,
+            options: FitOptionsRecord::from(&s.setting.options),
+            fold_scores: reals(&s.fold_scores),
+            valid_mean: Real(s.valid_mean),
+            valid_sd: Real(s.valid_sd),
+            train_mean: Real(s.train_mean),
+            gap: Real(s.gap),
+            mean_leaves: Real(s.mean_leaves),
+            mean_depth: Real(s.mean_depth),
+        }
+    }
+}
+
+impl TryFrom<SettingScoreRecord> for SettingScore {
+    type Error = StoreError;
+    fn try_from(s: SettingScoreRecord) -> Result<Self, StoreError> {
+        Ok(SettingScore {
+            setting: Setting { key: to_usize("setting score", "key", s.key)?, options: FitOptions::try_from(s.options)? },
+            fold_scores: unreal(&s.fold_scores),
+            valid_mean: s.valid_mean.0,
+            valid_sd: s.valid_sd.0,
+            train_mean: s.train_mean.0,
+            gap: s.gap.0,
+            mean_leaves: s.mean_leaves.0,
+            mean_depth: s.mean_depth.0,
+        })
+    }
+}
+
+impl From<&RunOutcome> for OutcomeRecord {
+    fn from(o: &RunOutcome) -> Self {
+        OutcomeRecord {
+            scores: o.scores.iter().map(SettingScoreRecord::from).collect(),
+            picked: o.picked,
+            best: o.best,
+            model: o.model.as_ref().map(to_json),
+            fold_assignment: o.fold_assignment.clone(),
+        }
+    }
+}
+
+impl TryFrom<OutcomeRecord> for RunOutcome {
+    type Error = StoreError;
+    fn try_from(r: OutcomeRecord) -> Result<Self, StoreError> {
+        let scores = r.scores.into_iter().map(SettingScore::try_from).collect::<Result<_, StoreError>>()?;
+        let model = r.model.map(|text| from_json(&text).map_err(|e| corrupt("outcome", format!("model: {e}")))).transpose()?;
+        Ok(RunOutcome { scores, picked: r.picked, best: r.best, model, fold_assignment: r.fold_assignment })
+    }
+}
+
+// ---------------------------------------------------------------------------------------
+// Store-internal records
+
+/// The active (queued or running) runs that hold a dataset, so deleting it can be refused.
+#[derive(Serialize, Deserialize, Default)]
+pub struct HoldsRecord {
+    pub runs: Vec<String>,
+}
+
+// ---------------------------------------------------------------------------------------
+// Typed shortcuts used by the store
+
+pub fn encode_dataset(m: &DatasetMeta) -> Vec<u8> {
+    encode(&DatasetRecord::from(m))
+}
+pub fn decode_dataset(bytes: &[u8]) -> Result<DatasetMeta, StoreError> {
+    decode::<DatasetRecord>("dataset", bytes).map(DatasetMeta::from)
+}
+pub fn encode_run(r: &Run) -> Vec<u8> {
+    encode(&RunRecord::from(r))
+}
+pub fn decode_run(bytes: &[u8]) -> Result<Run, StoreError> {
+    decode::<RunRecord>("run", bytes).and_then(Run::try_from)
+}
+pub fn encode_event(e: &Event) -> Vec<u8> {
+    encode(&EventRecord::from(e))
+}
+pub fn decode_event(bytes: &[u8]) -> Result<Event, StoreError> {
+    decode::<EventRecord>("event", bytes).and_then(Event::try_from)
+}
+pub fn encode_unit(u: &UnitResult) -> Vec<u8> {
+    encode(&UnitRecord::from(u))
+}
+pub fn decode_unit(bytes: &[u8]) -> Result<UnitResult, StoreError> {
+    decode::<UnitRecord>("unit", bytes).and_then(UnitResult::try_from)
+}
+pub fn encode_outcome(o: &RunOutcome) -> Vec<u8> {
+    encode(&OutcomeRecord::from(o))
+}
+pub fn decode_outcome(bytes: &[u8]) -> Result<RunOutcome, StoreError> {
+    decode::<OutcomeRecord>("outcome", bytes).and_then(RunOutcome::try_from)
+}
+pub fn encode_holds(h: &HoldsRecord) -> Vec<u8> {
+    encode(h)
+}
+pub fn decode_holds(bytes: &[u8]) -> Result<HoldsRecord, StoreError> {
+    decode("dataset holds", bytes)
+}

@@ -1,0 +1,780 @@
+//! Store tests: record round trips, then the store against an in-memory model (random
+//! sequences of changes with reopens in between), then crash recovery in a child process.
+//!
+//! Datasets stored here are opaque bytes (the store never parses them); the model trees come
+//! from fits of the open iris and diabetes tables in `tests/data` (see SOURCES.md there).
+
+use std::collections::BTreeMap;
+use std::path::{Path, PathBuf};
+use std::sync::atomic::{AtomicUsize, Ordering};
+
+use proptest::prelude::*;
+
+use super::records::{self, decode, Real};
+use super::*;
+use crate::data::csv::{read_dataset, CsvOptions};
+use crate::data::Task;
+use crate::job::ColumnMeta;
+use crate::sweep::{FoldPlan, FoldScheme, FoldScore, Metric, PickRule, Progress, Range, Setting, SettingScore, SweepSpec};
+use crate::tree::{fit, ClassWeight, Criterion, FitOptions, Limits, TrainSet, Tree};
+
+// ---------------------------------------------------------------------------------------
+// Helpers
+
+/// A directory under the system temporary directory, removed on drop.
+struct TempDir(PathBuf);
+
+impl TempDir {
+    fn new(tag: &str) -> TempDir {
+        static N: AtomicUsize = AtomicUsize::new(0);
+        let n = N.fetch_add(1, Ordering::Relaxed);
+        let path = std::env::temp_dir().join(format!("pollard-store-{tag}-{}-{n}", std::process::id()));
+        let _ = std::fs::remove_dir_all(&path);
+        TempDir(path)
+    }
+    fn path(&self) -> &Path {
+        &self.0
+    }
+}
+
+impl Drop for TempDir {
+    fn drop(&mut self) {
+        let _ = std::fs::remove_dir_all(&self.0);
+    }
+}
+
+/// Equality that sees through NaN: `{:?}` prints every f64 in shortest round-trip form, so
+/// equal text means equal bits (NaN payloads aside), and NaN equals NaN.
+fn same<T: std::fmt::Debug>(a: &T, b: &T) -> bool {
+    format!("{a:?}") == format!("{b:?}")
+}
+
+macro_rules! assert_same {
+    ($a:expr, $b:expr) => {{
+        let (a, b) = (&$a, &$b);
+        assert!(same(a, b), "not the same:\n left: {a:?}\nright: {b:?}");
+    }};
+}
+
+fn meta(id: &str, name: &str, created_at: i64, bytes: u64) -> DatasetMeta {
+    DatasetMeta {
+        id: id.to_string(),
+        name: name.to_string(),
+        version: 0,
+        rows: 150,
+        columns: vec![
+            ColumnMeta { name: "box_temp".into(), kind: "numeric".into(), missing: 3, levels: 0 },
+            ColumnMeta { name: "site".into(), kind: "categorical".into(), missing: 0, levels: 4 },
+        ],
+        target: "spoiled".into(),
+        task: "classify".into(),
+        created_at,
+        bytes,
+        categorical: vec!["site".into()],
+    }
+}
+
+/// A spec that sets every field, with every kind of range.
+fn full_spec(seed: u64) -> SweepSpec {
+    SweepSpec {
+        task: Some(Task::Classify),
+        criteria: vec![Criterion::Gini, Criterion::Entropy],
+        class_weights: vec![ClassWeight::None, ClassWeight::Balanced],
+        max_depth: Some(Range::Values(vec![Some(2.0), None, Some(8.0)])),
+        min_split_rows: Some(Range::Span { from: 2.0, to: 20.0, step: 6.0 }),
+        min_leaf_rows: Some(Range::Values(vec![Some(1.0), Some(5.0)])),
+        max_leaves: Some(Range::Values(vec![None, Some(16.0)])),
+        min_gain: Some(Range::LogSpan { from: 1e-6, to: 0.1, count: 4 }),
+        prune_alpha: Some(Range::Span { from: 0.0, to: 0.03, step: 0.01 }),
+        prune_path: false,
+        folds: Some(FoldPlan { scheme: FoldScheme::Grouped { column: "site".into() }, k: 4, repeats: 3 }),
+        metric: Some(Metric::LogLoss),
+        pick: PickRule::OneSe,
+        seed,
+        fit_final: false,
+        max_settings: Some(5000),
+    }
+}
+
+fn setting_score(valid_mean: f64) -> SettingScore {
+    SettingScore {
+        setting: Setting {
+            key: 3,
+            options: FitOptions {
+                limits: Limits { max_depth: Some(4), min_split_rows: 7, min_leaf_rows: 2, max_leaves: None, min_gain: 1e-7, prune_alpha: 0.011699999999999999 },
+                criterion: Some(Criterion::Entropy),
+                class_weight: ClassWeight::Balanced,
+            },
+        },
+        fold_scores: vec![0.1, f64::NAN, 0.3, -0.0],
+        valid_mean,
+        valid_sd: f64::NAN,
+        train_mean: 1.0 / 3.0,
+        gap: f64::INFINITY,
+        mean_leaves: 5.5,
+        mean_depth: f64::NEG_INFINITY,
+    }
+}
+
+fn read_table(file: &str, target: &str) -> crate::data::Dataset {
+    let path = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/data").join(file);
+    read_dataset(std::fs::File::open(&path).unwrap(), &CsvOptions::new(target)).unwrap()
+}
+
+fn fitted(file: &str, limits: Limits) -> Tree {
+    let data = read_table(file, "target");
+    let options = FitOptions { limits, ..FitOptions::default() };
+    fit(&TrainSet::of(&data), &options.check(data.task()).unwrap()).unwrap()
+}
+
+fn outcome(model: Option<Tree>) -> RunOutcome {
+    RunOutcome {
+        scores: vec![setting_score(0.9), setting_score(f64::NAN)],
+        picked: 1,
+        best: 0,
+        model,
+        fold_assignment: vec![vec![0, 1, -1, 2], vec![2, 1, 0, 0]],
+    }
+}
+
+// ---------------------------------------------------------------------------------------
+// Records
+
+#[test]
+fn dataset_record_round_trips() {
+    let mut m = meta("ds_ab", "reefer", -5, 1 << 40);
+    m.version = 7;
+    m.rows = u64::MAX;
+    assert_eq!(records::decode_dataset(&records::encode_dataset(&m)).unwrap(), m);
+}
+
+#[test]
+fn run_record_round_trips_every_spec_field() {
+    let folds = [
+        FoldScheme::Shuffled,
+        FoldScheme::Stratified,
+        FoldScheme::Grouped { column: "g".into() },
+        FoldScheme::Forward { column: "t".into() },
+        FoldScheme::Given { column: "f".into() },
+    ];
+    let metrics = Metric::ALL;
+    for (i, scheme) in folds.into_iter().enumerate() {
+        let mut spec = full_spec(u64::MAX - i as u64);
+        spec.folds = Some(FoldPlan { scheme, k: 2 + i as u32, repeats: 1 });
+        spec.metric = Some(metrics[i]);
+        let mut run = Run::queued(format!("run_{i}"), &meta("ds_1", "reefer", 10, 0), "spoiled".into(), spec, 1_700_000_000_000);
+        run.labels.insert("team".into(), "cold chain".into());
+        run.idempotency_key = "k-1".into();
+        run.schedule_id = "nightly".into();
+        run.state = RunState::Cancelled;
+        run.started_at = Some(1);
+        run.finished_at = Some(i64::MIN);
+        run.reason = "stopped by \"ops\"\n".into();
+        (run.settings, run.units_total, run.units_done, run.next_sequence) = (1, 2, 3, u64::MAX);
+        assert_eq!(records::decode_run(&records::encode_run(&run)).unwrap(), run);
+    }
+    // Defaults: every option left to the engine.
+    let mut spec = SweepSpec { prune_path: true, metric: Some(Metric::R2), task: Some(Task::Regress), ..SweepSpec::default() };
+    for m in &metrics[6..] {
+        spec.metric = Some(*m);
+        let run = Run::queued("run_d".into(), &meta("ds_1", "", 0, 0), "y".into(), spec.clone(), 0);
+        assert_eq!(records::decode_run(&records::encode_run(&run)).unwrap(), run);
+    }
+    let run = Run::queued("run_e".into(), &meta("ds_1", "", 0, 0), "y".into(), SweepSpec::default(), 0);
+    assert_eq!(records::decode_run(&records::encode_run(&run)).unwrap(), run);
+}
+
+#[test]
+fn event_records_round_trip_every_kind() {
+    let kinds = vec![
+        EventKind::Progress(Progress { units_done: 1, units_total: usize::MAX, scores_done: 0, scores_total: 9 }),
+        EventKind::Scored { index: 4, score: Box::new(setting_score(f64::NAN)) },
+        EventKind::Scored { index: 0, score: Box::new(setting_score(0.75)) },
+        EventKind::Finished { picked: 2, best: 1 },
+        EventKind::Failed("fit failed: limits.min_leaf_rows".into()),
+        EventKind::Cancelled(String::new()),
+    ];
+    for (i, kind) in kinds.into_iter().enumerate() {
+        let e = Event { sequence: i as u64 + 1, at: -(i as i64), kind };
+        assert_same!(records::decode_event(&records::encode_event(&e)).unwrap(), e);
+    }
+}
+
+#[test]
+fn unit_record_keeps_every_bit() {
+    // 0.011699999999999999 is one of the values serde_json's default number parser reads back
+    // one unit in the last place off (to 0.0117); the records keep it exactly.
+    let mut values = vec![0.011699999999999999, 0.1, 1.0 / 3.0, -0.0, 5e-324, f64::MAX, f64::MIN_POSITIVE, 1e300, 1e-300];
+    // SplitMix64 (Steele, Lea & Flood, 2014) over raw bit patterns: every exponent range.
+    let mut s: u64 = 42;
+    for _ in 0..2000 {
+        s = s.wrapping_add(0x9E37_79B9_7F4A_7C15);
+        let mut z = s;
+        z = (z ^ (z >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
+        z = (z ^ (z >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
+        values.push(f64::from_bits(z ^ (z >> 31)));
+    }
+    let unit = UnitResult {
+        unit: 12,
+        scores: values.iter().enumerate().map(|(i, &v)| (i, FoldScore { valid: v, train: -v, leaves: i as u32, depth: u32::MAX })).collect(),
+    };
+    let back = records::decode_unit(&records::encode_unit(&unit)).unwrap();
+    assert_eq!(back.unit, 12);
+    for ((i, a), (j, b)) in unit.scores.iter().zip(&back.scores) {
+        assert_eq!(i, j);
+        assert!(a.valid.to_bits() == b.valid.to_bits() || (a.valid.is_nan() && b.valid.is_nan()), "{:e} came back as {:e}", a.valid, b.valid);
+        assert!(a.train.to_bits() == b.train.to_bits() || (a.train.is_nan() && b.train.is_nan()));
+        assert_eq!((a.leaves, a.depth), (b.leaves, b.depth));
+    }
+    // NaN and the infinities are written as names, never as JSON null.
+    let text = String::from_utf8(records::encode(&vec![Real(f64::NAN), Real(f64::INFINITY), Real(f64::NEG_INFINITY)])[1..].to_vec()).unwrap();
+    assert_eq!(text, r#"["NaN","inf","-inf"]"#);
+}
+
+#[test]
+fn outcome_record_round_trips_with_models() {
+    assert_same!(records::decode_outcome(&records::encode_outcome(&outcome(None))).unwrap(), outcome(None));
+    let classify = fitted("iris.csv", Limits::default());
+    let regress = fitted("diabetes.csv", Limits { max_depth: Some(4), ..Limits::default() });
+    for tree in [classify, regress] {
+        let o = outcome(Some(tree.clone()));
+        let back = records::decode_outcome(&records::encode_outcome(&o)).unwrap();
+        assert_same!(back.scores, o.scores);
+        assert_eq!(back.model.as_ref(), Some(&tree), "the model tree changed in the round trip");
+        assert_eq!(back.fold_assignment, o.fold_assignment);
+        assert_eq!((back.picked, back.best), (1, 0));
+    }
+}
+
+#[test]
+fn unknown_or_broken_records_are_named_errors() {
+    let mut bytes = records::encode_run(&Run::queued("run_1".into(), &meta("ds_1", "", 0, 0), "y".into(), SweepSpec::default(), 0));
+    bytes[0] = 7;
+    let e = records::decode_run(&bytes).unwrap_err();
+    assert!(matches!(&e, StoreError::Corrupt(m) if m.contains("run record") && m.contains("unknown format byte 7")), "{e}");
+    let e = records::decode_event(&[]).unwrap_err();
+    assert!(matches!(&e, StoreError::Corrupt(m) if m.contains("event record is empty")), "{e}");
+    let e = decode::<records::UnitRecord>("unit", b"\x01{\"unit\":").err().unwrap();
+    assert!(matches!(&e, StoreError::Corrupt(m) if m.contains("unit record (format 1) does not parse")), "{e}");
+    // A state name a later build might add.
+    let good = String::from_utf8(records::encode_run(&Run::queued("run_1".into(), &meta("ds_1", "", 0, 0), "y".into(), SweepSpec::default(), 0))[1..].to_vec()).unwrap();
+    let mut bad = vec![1u8];
+    bad.extend_from_slice(good.replace("\"queued\"", "\"paused\"").as_bytes());
+    let e = records::decode_run(&bad).unwrap_err();
+    assert!(matches!(&e, StoreError::Corrupt(m) if m.contains("state 'paused' is not known")), "{e}");
+}
+
+#[test]
+fn the_store_reports_a_corrupt_record_it_holds() {
+    let store = Store::open_temporary().unwrap();
+    store.tree(RUNS).insert("run_1", &[9u8, b'{', b'}'][..]).unwrap();
+    let e = store.run("run_1").unwrap_err();
+    assert_eq!(e, StoreError::Corrupt("run record has unknown format byte 9 (this build reads format 1)".into()));
+    assert!(store.list_runs(&RunFilter::default(), None, 10).is_err());
+}
+
+// ---------------------------------------------------------------------------------------
+// Datasets
+
+#[test]
+fn dataset_bytes_are_chunked_and_deleted_whole() {
+    let store = Store::open_temporary().unwrap();
+    let bytes: Vec<u8> = (0..(2 * CHUNK_BYTES + 12_345)).map(|i| (i * 7 % 251) as u8).collect();
+    let PutDataset::Created(m) = store.put_dataset(meta("ds_big", "reefer", 5, bytes.len() as u64), &bytes).unwrap() else { panic!("not created") };
+    assert_eq!(m.version, 1);
+    assert_eq!(store.tree(CHUNKS).len(), 3);
+    assert_eq!(store.dataset_bytes("ds_big").unwrap().unwrap(), bytes);
+    assert!(matches!(store.put_dataset(meta("ds_big", "other", 6, 0), &[]).unwrap(), PutDataset::Existing(e) if e == m));
+    let PutDataset::Created(m2) = store.put_dataset(meta("ds_empty", "reefer", 6, 0), &[]).unwrap() else { panic!("not created") };
+    assert_eq!(m2.version, 2);
+    assert_eq!(store.dataset_bytes("ds_empty").unwrap(), Some(Vec::new()));
+    assert_eq!(store.delete_dataset("ds_big").unwrap(), DeleteDataset::Deleted);
+    assert_eq!(store.tree(CHUNKS).len(), 0);
+    assert_eq!(store.dataset_bytes("ds_big").unwrap(), None);
+    assert_eq!(store.delete_dataset("ds_big").unwrap(), DeleteDataset::NotFound);
+    // Versions keep growing past deleted ones; the latest is the newest still stored.
+    assert_eq!(store.delete_dataset("ds_empty").unwrap(), DeleteDataset::Deleted);
+    assert_eq!(store.latest_dataset("reefer").unwrap(), None);
+    let PutDataset::Created(m3) = store.put_dataset(meta("ds_big", "reefer", 7, 0), &bytes).unwrap() else { panic!("not created") };
+    assert_eq!(m3.version, 3);
+    assert_eq!(store.latest_dataset("reefer").unwrap(), Some(m3));
+}
+
+#[test]
+fn concurrent_claims_take_each_run_once_in_order() {
+    let store = Store::open_temporary().unwrap();
+    store.put_dataset(meta("ds_1", "", 0, 0), b"x").unwrap();
+    let n = 40;
+    for i in 0..n {
+        let run = Run::queued(format!("run_{i:04}"), &meta("ds_1", "", 0, 0), "y".into(), SweepSpec::default(), i);
+        assert!(matches!(store.create_run(run).unwrap(), CreateRun::Created(_)));
+    }
+    let claims: Vec<Vec<String>> = std::thread::scope(|s| {
+        let handles: Vec<_> = (0..4)
+            .map(|_| {
+                let store = store.clone();
+                s.spawn(move || {
+                    let mut mine = Vec::new();
+                    while let Some(run) = store.claim_next(99).unwrap() {
+                        assert_eq!(run.state, RunState::Running);
+                        mine.push(run.id);
+                    }
+                    mine
+                })
+            })
+            .collect();
+        handles.into_iter().map(|h| h.join().unwrap()).collect()
+    });
+    for mine in &claims {
+        assert!(mine.windows(2).all(|w| w[0] < w[1]), "a thread claimed out of order: {mine:?}");
+    }
+    let mut all: Vec<String> = claims.concat();
+    all.sort();
+    assert_eq!(all, (0..n).map(|i| format!("run_{i:04}")).collect::<Vec<_>>());
+    assert_eq!(store.running_runs().unwrap().len(), n as usize);
+}
+
+// ---------------------------------------------------------------------------------------
+// The store against a model
+
+const NAMES_USED: [&str; 3] = ["", "reefer", "reefer-eu"];
+const CONTENTS: usize = 6;
+
+/// Content `i` of the datasets the model test stores; content 1 spans two chunks.
+fn content(i: usize) -> Vec<u8> {
+    match i {
+        0 => b"box_temp,spoiled\n3.5,no\n".to_vec(),
+        1 => (0..CHUNK_BYTES + 7).map(|j| (j % 13) as u8).collect(),
+        2 => Vec::new(),
+        i => format!("box_temp,spoiled\n{i},yes\n").into_bytes(),
+    }
+}
+
+fn content_id(i: usize) -> String {
+    format!("ds_{i:02}")
+}
+
+#[derive(Clone, Debug)]
+enum Op {
+    PutDataset { content: usize, name: usize },
+    CreateRun { dataset: usize, key: Option<usize>, label: bool },
+    Claim,
+    Plan { run: usize },
+    RecordUnit { run: usize, unit: u32, events: usize },
+    Progress { run: usize },
+    Finish { run: usize },
+    End { run: usize, cancel: bool },
+    DeleteDataset { dataset: usize },
+    DeleteRun { run: usize },
+    Reopen,
+}
+
+fn op() -> impl Strategy<Value = Op> {
+    prop_oneof![
+        3 => (0..CONTENTS, 0..NAMES_USED.len()).prop_map(|(content, name)| Op::PutDataset { content, name }),
+        5 => (0..CONTENTS, proptest::option::of(0..3usize), any::<bool>()).prop_map(|(dataset, key, label)| Op::CreateRun { dataset, key, label }),
+        3 => Just(Op::Claim),
+        2 => (0..64usize).prop_map(|run| Op::Plan { run }),
+        5 => (0..64usize, 0..4u32, 0..3usize).prop_map(|(run, unit, events)| Op::RecordUnit { run, unit, events }),
+        1 => (0..64usize).prop_map(|run| Op::Progress { run }),
+        2 => (0..64usize).prop_map(|run| Op::Finish { run }),
+        2 => (0..64usize, any::<bool>()).prop_map(|(run, cancel)| Op::End { run, cancel }),
+        2 => (0..CONTENTS).prop_map(|dataset| Op::DeleteDataset { dataset }),
+        1 => (0..64usize).prop_map(|run| Op::DeleteRun { run }),
+        1 => Just(Op::Reopen),
+    ]
+}
+
+/// What the store should hold, kept in plain maps.
+#[derive(Default)]
+struct Model {
+    datasets: BTreeMap<String, (DatasetMeta, Vec<u8>)>,
+    /// Highest version ever given under each name.
+    versions: BTreeMap<String, u32>,
+    runs: BTreeMap<String, Run>,
+    /// Queued run ids, oldest first.
+    queue: Vec<String>,
+    idempotency: BTreeMap<String, String>,
+    events: BTreeMap<String, Vec<Event>>,
+    units: BTreeMap<String, BTreeMap<usize, UnitResult>>,
+    outcomes: BTreeMap<String, RunOutcome>,
+    /// Every run id handed out, deleted ones too.
+    ids: Vec<String>,
+}
+
+impl Model {
+    fn pick(&self, i: usize) -> String {
+        if self.ids.is_empty() {
+            "run_none".into()
+        } else {
+            self.ids[i % self.ids.len()].clone()
+        }
+    }
+
+    fn append(&mut self, id: &str, kind: EventKind, now: i64) -> Event {
+        let run = self.runs.get_mut(id).unwrap();
+        let e = Event { sequence: run.take_sequence(), at: now, kind };
+        self.events.entry(id.to_string()).or_default().push(e.clone());
+        e
+    }
+
+    fn oldest_active_of(&self, dataset: &str) -> Option<String> {
+        self.runs.values().filter(|r| r.dataset_id == dataset && r.state.is_active()).map(|r| r.id.clone()).next()
+    }
+}
+
+fn unit_result(unit: u32, now: i64) -> UnitResult {
+    let valid = if now % 3 == 0 { f64::NAN } else { now as f64 / 7.0 };
+    UnitResult { unit: unit as usize, scores: vec![(unit as usize, FoldScore { valid, train: 0.5, leaves: 3, depth: 2 }), (9, FoldScore { valid: 0.25, train: 1.0, leaves: 1, depth: 0 })] }
+}
+
+fn unit_events(n: usize, now: i64) -> Vec<EventKind> {
+    (0..n)
+        .map(|i| {
+            if i % 2 == 0 {
+                EventKind::Progress(Progress { units_done: i, units_total: 4, scores_done: 2 * i, scores_total: 8 })
+            } else {
+                EventKind::Scored { index: i as u32, score: Box::new(setting_score(now as f64 / 3.0)) }
+            }
+        })
+        .collect()
+}
+
+/// Applies one change to the store and the model and checks they answered alike.
+fn step(store: &Store, model: &mut Model, op: &Op, now: i64) {
+    match op {
+        Op::PutDataset { content: c, name } => {
+            let bytes = content(*c);
+            let m = meta(&content_id(*c), NAMES_USED[*name], now, bytes.len() as u64);
+            let got = store.put_dataset(m.clone(), &bytes).unwrap();
+            let want = match model.datasets.get(&m.id) {
+                Some((stored, _)) => PutDataset::Existing(stored.clone()),
+                None => {
+                    let mut m = m;
+                    m.version = if m.name.is_empty() {
+                        1
+                    } else {
+                        let v = model.versions.entry(m.name.clone()).or_default();
+                        *v += 1;
+                        *v
+                    };
+                    model.datasets.insert(m.id.clone(), (m.clone(), bytes));
+                    PutDataset::Created(m)
+                }
+            };
+            assert_eq!(got, want);
+        }
+        Op::CreateRun { dataset, key, label } => {
+            let id = format!("run_{:06}", model.ids.len());
+            model.ids.push(id.clone());
+            let ds = model.datasets.get(&content_id(*dataset)).map(|d| d.0.clone()).unwrap_or_else(|| meta(&content_id(*dataset), "", 0, 0));
+            let mut run = Run::queued(id.clone(), &ds, "spoiled".into(), full_spec(now as u64), now);
+            if let Some(k) = key {
+                run.idempotency_key = format!("key-{k}");
+            }
+            if *label {
+                run.labels.insert("team".into(), "cold-chain".into());
+            }
+            let existing = key.and_then(|_| model.idempotency.get(&run.idempotency_key)).and_then(|id| model.runs.get(id));
+            let want = if let Some(r) = existing {
+                CreateRun::Existing(r.clone())
+            } else if !model.datasets.contains_key(&run.dataset_id) {
+                CreateRun::DatasetMissing
+            } else {
+                model.runs.insert(id.clone(), run.clone());
+                model.queue.push(id.clone());
+                if key.is_some() {
+                    model.idempotency.insert(run.idempotency_key.clone(), id.clone());
+                }
+                CreateRun::Created(run.clone())
+            };
+            assert_eq!(store.create_run(run).unwrap(), want);
+        }
+        Op::Claim => {
+            let want = if model.queue.is_empty() {
+                None
+            } else {
+                let id = model.queue.remove(0);
+                let run = model.runs.get_mut(&id).unwrap();
+                run.start(now, 0, 0);
+                Some(run.clone())
+            };
+            assert_eq!(store.claim_next(now).unwrap(), want);
+        }
+        Op::Plan { run } => {
+            let id = model.pick(*run);
+            if let Some(r) = model.runs.get_mut(&id).filter(|r| r.state == RunState::Running) {
+                (r.settings, r.units_total) = (3, 4);
+            }
+            store.set_plan_size(&id, 3, 4).unwrap();
+        }
+        Op::RecordUnit { run, unit, events } => {
+            let id = model.pick(*run);
+            let u = unit_result(*unit, now);
+            let kinds = unit_events(*events, now);
+            let fresh = model.runs.get(&id).is_some_and(|r| r.state == RunState::Running) && !model.units.get(&id).is_some_and(|m| m.contains_key(&u.unit));
+            let want: Vec<Event> = if fresh {
+                model.units.entry(id.clone()).or_default().insert(u.unit, u.clone());
+                let out = kinds.iter().map(|k| model.append(&id, k.clone(), now)).collect();
+                model.runs.get_mut(&id).unwrap().units_done += 1;
+                out
+            } else {
+                Vec::new()
+            };
+            assert_same!(store.record_unit(&id, &u, kinds, now).unwrap(), want);
+        }
+        Op::Progress { run } => {
+            let id = model.pick(*run);
+            let kind = EventKind::Progress(Progress { units_done: 1, units_total: 4, scores_done: 2, scores_total: 8 });
+            let want = model.runs.get(&id).filter(|r| r.state == RunState::Running).is_some().then(|| model.append(&id, kind.clone(), now));
+            assert_eq!(store.append_event(&id, kind, now).unwrap(), want);
+        }
+        Op::Finish { run } => {
+            let id = model.pick(*run);
+            let o = outcome(None);
+            let want = if model.runs.get(&id).is_some_and(|r| r.state == RunState::Running) {
+                let e = model.append(&id, EventKind::Finished { picked: 1, best: 0 }, now);
+                model.runs.get_mut(&id).unwrap().end(RunState::Finished, now, "");
+                model.outcomes.insert(id.clone(), o.clone());
+                Some(e)
+            } else {
+                None
+            };
+            assert_eq!(store.finish_run(&id, &o, now).unwrap(), want);
+        }
+        Op::End { run, cancel } => {
+            let id = model.pick(*run);
+            let (state, reason) = if *cancel { (RunState::Cancelled, "asked to stop") } else { (RunState::Failed, "fit failed") };
+            let want = if model.runs.get(&id).is_some_and(|r| !r.state.is_terminal()) {
+                model.queue.retain(|q| *q != id);
+                let kind = if *cancel { EventKind::Cancelled(reason.into()) } else { EventKind::Failed(reason.into()) };
+                let e = model.append(&id, kind, now);
+                let r = model.runs.get_mut(&id).unwrap();
+                r.end(state, now, reason);
+                Some((r.clone(), e))
+            } else {
+                None
+            };
+            assert_eq!(store.end_run(&id, state, reason, now).unwrap(), want);
+        }
+        Op::DeleteDataset { dataset } => {
+            let id = content_id(*dataset);
+            let want = if !model.datasets.contains_key(&id) {
+                DeleteDataset::NotFound
+            } else if let Some(run_id) = model.oldest_active_of(&id) {
+                DeleteDataset::InUse { run_id }
+            } else {
+                model.datasets.remove(&id);
+                DeleteDataset::Deleted
+            };
+            assert_eq!(store.delete_dataset(&id).unwrap(), want);
+        }
+        Op::DeleteRun { run } => {
+            let id = model.pick(*run);
+            let want = model.runs.get(&id).is_some_and(|r| r.state.is_terminal());
+            if want {
+                model.runs.remove(&id);
+                model.events.remove(&id);
+                model.units.remove(&id);
+                model.outcomes.remove(&id);
+                model.idempotency.retain(|_, v| *v != id);
+            }
+            assert_eq!(store.delete_run(&id).unwrap(), want);
+        }
+        Op::Reopen => unreachable!("the caller reopens"),
+    }
+}
+
+/// Checks every query against the model.
+fn check(store: &Store, model: &Model) {
+    for id in &model.ids {
+        let want = model.runs.get(id);
+        assert_eq!(store.run(id).unwrap().as_ref(), want, "run {id}");
+        let events = store.events(id, 0).unwrap();
+        assert_same!(events, model.events.get(id).cloned().unwrap_or_default());
+        // Gapless from 1, and the run knows the next number.
+        assert!(events.iter().enumerate().all(|(i, e)| e.sequence == i as u64 + 1), "sequences of {id}: {events:?}");
+        if let Some(r) = want {
+            assert_eq!(r.next_sequence, events.len() as u64 + 1);
+        }
+        let half = events.len() as u64 / 2;
+        assert_same!(store.events(id, half).unwrap(), events[half as usize..].to_vec());
+        let units = store.units(id).unwrap();
+        assert_same!(units, model.units.get(id).map(|m| m.values().cloned().collect::<Vec<_>>()).unwrap_or_default());
+        if let Some(r) = want {
+            assert_eq!(r.units_done as usize, units.len());
+        }
+        assert_same!(store.outcome(id).unwrap(), model.outcomes.get(id).cloned());
+    }
+    // Queue and idempotency entries, as stored.
+    let queue: Vec<String> = store.tree(QUEUE).iter().keys().map(|k| String::from_utf8(k.unwrap().to_vec()).unwrap()).collect();
+    assert_eq!(queue, model.queue);
+    let idem: BTreeMap<String, String> = store
+        .tree(IDEMPOTENCY)
+        .iter()
+        .map(|kv| {
+            let (k, v) = kv.unwrap();
+            (String::from_utf8(k.to_vec()).unwrap(), String::from_utf8(v.to_vec()).unwrap())
+        })
+        .collect();
+    assert_eq!(idem, model.idempotency);
+    let running: Vec<Run> = model.runs.values().filter(|r| r.state == RunState::Running).cloned().collect();
+    assert_eq!(store.running_runs().unwrap(), running);
+    // Listings, two to a page.
+    let newest_first: Vec<Run> = model.runs.values().rev().cloned().collect();
+    assert_eq!(all_runs(store, &RunFilter::default()), newest_first);
+    for filter in [
+        RunFilter { state: Some(RunState::Queued), ..RunFilter::default() },
+        RunFilter { label: Some(("team".into(), "cold-chain".into())), created_from: Some(3), created_to: Some(30), ..RunFilter::default() },
+        RunFilter { dataset_name: Some("reefer".into()), ..RunFilter::default() },
+    ] {
+        let want: Vec<Run> = newest_first.iter().filter(|r| filter.admits(r)).cloned().collect();
+        assert_eq!(all_runs(store, &filter), want, "{filter:?}");
+    }
+    for i in 0..CONTENTS {
+        let id = content_id(i);
+        let want = model.datasets.get(&id);
+        assert_eq!(store.dataset(&id).unwrap().as_ref(), want.map(|d| &d.0));
+        assert_eq!(store.dataset_bytes(&id).unwrap().as_ref(), want.map(|d| &d.1));
+    }
+    let mut listed: Vec<DatasetMeta> = model.datasets.values().map(|d| d.0.clone()).collect();
+    listed.sort_by(|a, b| b.created_at.cmp(&a.created_at).then(a.id.cmp(&b.id)));
+    assert_eq!(all_datasets(store, None), listed);
+    for name in NAMES_USED.iter().filter(|n| !n.is_empty()) {
+        let mine: Vec<DatasetMeta> = listed.iter().filter(|m| m.name == *name).cloned().collect();
+        assert_eq!(all_datasets(store, Some(name)), mine);
+        let latest = mine.iter().max_by_key(|m| m.version).cloned();
+        assert_eq!(store.latest_dataset(name).unwrap(), latest);
+    }
+}
+
+fn all_runs(store: &Store, filter: &RunFilter) -> Vec<Run> {
+    let mut out = Vec::new();
+    let mut token = None;
+    loop {
+        let (page, next) = store.list_runs(filter, token.as_deref(), 2).unwrap();
+        assert!(page.len() <= 2);
+        out.extend(page);
+        match next {
+            None => return out,
+            Some(t) => token = Some(t),
+        }
+    }
+}
+
+fn all_datasets(store: &Store, name: Option<&str>) -> Vec<DatasetMeta> {
+    let mut out = Vec::new();
+    let mut token = None;
+    loop {
+        let (page, next) = store.list_datasets(name, token.as_deref(), 2).unwrap();
+        assert!(page.len() <= 2 && (next.is_none() || page.len() == 2));
+        out.extend(page);
+        match next {
+            None => return out,
+            Some(t) => token = Some(t),
+        }
+    }
+}
+
+proptest! {
+    #![proptest_config(ProptestConfig { cases: 48, failure_persistence: None, ..ProptestConfig::default() })]
+
+    #[test]
+    fn store_agrees_with_the_model(ops in proptest::collection::vec(op(), 1..48)) {
+        let dir = TempDir::new("model");
+        let mut store = Store::open(dir.path()).unwrap();
+        let mut model = Model::default();
+        for (t, op) in ops.iter().enumerate() {
+            if let Op::Reopen = op {
+                // Every handle goes first: sled locks its directory.
+                drop(store);
+                store = Store::open(dir.path()).unwrap();
+            } else {
+                step(&store, &mut model, op, t as i64 + 1);
+            }
+            check(&store, &model);
+        }
+        drop(store);
+    }
+}
+
+// ---------------------------------------------------------------------------------------
+// Crash recovery
+
+const CRASH_DIR: &str = "POLLARD_STORE_CRASH_DIR";
+
+/// A fixed sequence of changes touching every tree; returns nothing the caller needs, the
+/// store holds it all.
+fn crash_script(store: &Store) {
+    let bytes = content(1);
+    store.put_dataset(meta("ds_a", "reefer", 1, bytes.len() as u64), &bytes).unwrap();
+    store.put_dataset(meta("ds_b", "reefer", 2, 3), b"abc").unwrap();
+    let ds = store.dataset("ds_a").unwrap().unwrap();
+    for i in 0..4 {
+        let mut run = Run::queued(format!("run_{i}"), &ds, "spoiled".into(), full_spec(i), 10 + i as i64);
+        run.idempotency_key = format!("key-{i}");
+        assert!(matches!(store.create_run(run).unwrap(), CreateRun::Created(_)));
+    }
+    let first = store.claim_next(20).unwrap().unwrap();
+    store.set_plan_size(&first.id, 3, 2).unwrap();
+    for u in 0..2 {
+        store.record_unit(&first.id, &unit_result(u, 21 + u as i64), unit_events(3, 21), 21).unwrap();
+    }
+    store.finish_run(&first.id, &outcome(Some(fitted("iris.csv", Limits { max_depth: Some(2), ..Limits::default() }))), 30).unwrap().unwrap();
+    let second = store.claim_next(31).unwrap().unwrap();
+    store.record_unit(&second.id, &unit_result(1, 32), unit_events(1, 32), 32).unwrap();
+    store.end_run("run_2", RunState::Cancelled, "asked to stop", 33).unwrap().unwrap();
+    assert_eq!(store.delete_dataset("ds_b").unwrap(), DeleteDataset::Deleted);
+    store.append_event(&second.id, EventKind::Progress(Progress { units_done: 1, units_total: 2, scores_done: 3, scores_total: 6 }), 34).unwrap().unwrap();
+}
+
+/// Everything the store answers, as text.
+fn dump(store: &Store) -> String {
+    let mut out = String::new();
+    let runs = all_runs(store, &RunFilter::default());
+    for r in &runs {
+        out += &format!("{r:?}\n{:?}\n{:?}\n{:?}\n", store.events(&r.id, 0).unwrap(), store.units(&r.id).unwrap(), store.outcome(&r.id).unwrap());
+    }
+    out += &format!("{:?}\n", all_datasets(store, None));
+    for id in ["ds_a", "ds_b"] {
+        out += &format!("{:?}\n", store.dataset_bytes(id).unwrap().map(|b| b.len()));
+    }
+    out += &format!("{:?}\n{:?}\n", store.latest_dataset("reefer").unwrap(), store.running_runs().unwrap());
+    for t in 0..TREE_NAMES.len() {
+        out += &format!("{} {}\n", TREE_NAMES[t], store.tree(t).len());
+    }
+    out
+}
+
+/// The child half of `a_crash_keeps_every_returned_change`: runs the script on the store in
+/// `$POLLARD_STORE_CRASH_DIR`, then aborts without closing or flushing anything.
+#[test]
+#[ignore = "run as a child process by a_crash_keeps_every_returned_change"]
+fn crash_child() {
+    let dir = std::env::var(CRASH_DIR).expect("run by a_crash_keeps_every_returned_change, which sets POLLARD_STORE_CRASH_DIR");
+    let store = Store::open(Path::new(&dir)).unwrap();
+    crash_script(&store);
+    println!("script done");
+    std::process::abort();
+}
+
+#[test]
+fn a_crash_keeps_every_returned_change() {
+    let dir = TempDir::new("crash");
+    let out = std::process::Command::new(std::env::current_exe().unwrap())
+        .args(["--exact", "store::tests::crash_child", "--ignored", "--nocapture", "--test-threads=1"])
+        .env(CRASH_DIR, dir.path())
+        .output()
+        .unwrap();
+    let stdout = String::from_utf8_lossy(&out.stdout);
+    assert!(stdout.contains("script done"), "the child did not finish its script:\n{stdout}\n{}", String::from_utf8_lossy(&out.stderr));
+    assert!(!out.status.success(), "the child was meant to abort");
+    let crashed = Store::open(dir.path()).unwrap();
+    let reference = Store::open_temporary().unwrap();
+    crash_script(&reference);
+    let (got, want) = (dump(&crashed), dump(&reference));
+    assert_eq!(got, want);
+    // The script left one run queued, one running, one finished and one cancelled.
+    let states: Vec<RunState> = all_runs(&crashed, &RunFilter::default()).iter().map(|r| r.state).collect();
+    assert_eq!(states, [RunState::Queued, RunState::Cancelled, RunState::Running, RunState::Finished]);
+}

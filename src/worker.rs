@@ -1,0 +1,261 @@
+//! Workers: claim a queued run, run its sweep on the CPU pool, persist every finished unit
+//! before announcing it, and end the run.
+//!
+//! Concurrency: tree fitting runs on a dedicated rayon pool sized by the config, never on
+//! tokio's threads; async code hands work over with [`cpu`] and awaits a oneshot. A std
+//! `Mutex` guards the cancel flags, since no `.await` is held while it is locked.
+
+use std::collections::HashMap;
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::{Arc, Mutex};
+use std::time::Duration;
+
+use tokio::sync::{watch, Notify};
+use tracing::{error, info, info_span, warn};
+
+use crate::config::Config;
+use crate::data::csv::{read_dataset, CsvOptions};
+use crate::data::{Dataset, Task};
+use crate::job::{DatasetMeta, EventKind, Run, RunOutcome, RunState};
+use crate::store::Store;
+use crate::sweep::{self, Flow, SweepError, SweepSpec};
+
+/// What every handler and worker shares.
+pub struct Shared {
+    pub store: Store,
+    pub config: Config,
+    pub pool: rayon::ThreadPool,
+    /// Bumped after events are stored, so followers know to read.
+    pub changed: watch::Sender<u64>,
+    /// Signalled when a run is queued.
+    pub queued: Notify,
+    /// Cancel flags of the runs being executed.
+    pub cancels: Mutex<HashMap<String, Arc<AtomicBool>>>,
+    /// Set when the server stops: running runs stop at the next unit and stay `running`, to
+    /// be resumed from their stored units at the next start.
+    pub stopping: AtomicBool,
+    /// Flips to true when the server stops (for tasks that wait).
+    pub shutdown: watch::Sender<bool>,
+}
+
+impl Shared {
+    pub fn new(store: Store, config: Config) -> Result<Arc<Shared>, String> {
+        let pool = rayon::ThreadPoolBuilder::new()
+            .num_threads(config.cpu_threads)
+            .thread_name(|i| format!("pollard-cpu-{i}"))
+            .build()
+            .map_err(|e| format!("cannot start the CPU pool: {e}"))?;
+        Ok(Arc::new(Shared {
+            store,
+            config,
+            pool,
+            changed: watch::channel(0).0,
+            queued: Notify::new(),
+            cancels: Mutex::new(HashMap::new()),
+            stopping: AtomicBool::new(false),
+            shutdown: watch::channel(false).0,
+        }))
+    }
+
+    /// Tells followers that events were stored.
+    pub fn announce(&self) {
+        self.changed.send_modify(|v| *v += 1);
+    }
+
+    /// Raises a running run's cancel flag; false when this server is not executing it.
+    pub fn request_cancel(&self, run_id: &str) -> bool {
+        match self.cancels.lock().unwrap().get(run_id) {
+            Some(flag) => {
+                flag.store(true, Ordering::SeqCst);
+                true
+            }
+            None => false,
+        }
+    }
+}
+
+/// Runs `f` on the CPU pool and awaits its result.
+pub async fn cpu<T: Send + 'static>(shared: &Arc<Shared>, f: impl FnOnce() -> T + Send + 'static) -> T {
+    let (tx, rx) = tokio::sync::oneshot::channel();
+    shared.pool.spawn(move || {
+        let _ = tx.send(f());
+    });
+    rx.await.expect("the CPU pool dropped a job")
+}
+
+/// Unix milliseconds now.
+pub fn now_ms() -> i64 {
+    chrono::Utc::now().timestamp_millis()
+}
+
+/// Parses a stored dataset for a run: its bytes, with the run's target and task.
+pub fn load_dataset(store: &Store, meta: &DatasetMeta, target: &str, task: Option<Task>, max_rows: usize, max_columns: usize) -> Result<Dataset, String> {
+    let bytes = store.dataset_bytes(&meta.id).map_err(|e| e.to_string())?.ok_or_else(|| format!("dataset {} has no stored bytes", meta.id))?;
+    let mut options = CsvOptions::new(target);
+    options.task = task;
+    options.categorical = meta.categorical.clone();
+    options.max_rows = Some(max_rows);
+    options.max_columns = Some(max_columns);
+    read_dataset(&bytes[..], &options).map_err(|e| e.to_string())
+}
+
+/// A worker: waits for queued runs and executes them one at a time, until shutdown.
+pub async fn worker_loop(shared: Arc<Shared>) {
+    let mut shutdown = shared.shutdown.subscribe();
+    loop {
+        if *shutdown.borrow() {
+            return;
+        }
+        let claimed = shared.store.claim_next(now_ms());
+        match claimed {
+            Ok(Some(run)) => {
+                shared.announce();
+                execute(&shared, run).await;
+                continue;
+            }
+            Ok(None) => {}
+            Err(e) => error!("cannot read the queue: {e}"),
+        }
+        // Wake on a new run, on shutdown, or every few seconds as a safety net.
+        tokio::select! {
+            _ = shared.queued.notified() => {}
+            _ = shutdown.changed() => {}
+            _ = tokio::time::sleep(Duration::from_secs(2)) => {}
+        }
+    }
+}
+
+/// Resumes runs a previous process left running, one task each.
+pub async fn resume_running(shared: Arc<Shared>) {
+    match shared.store.running_runs() {
+        Ok(runs) => {
+            for run in runs {
+                info!(run_id = %run.id, units_done = run.units_done, "resuming run");
+                let s = shared.clone();
+                tokio::spawn(async move { execute(&s, run).await });
+            }
+        }
+        Err(e) => error!("cannot list running runs: {e}"),
+    }
+}
+
+/// Executes one running run to its end (or to shutdown) on the CPU pool.
+pub async fn execute(shared: &Arc<Shared>, run: Run) {
+    let flag = Arc::new(AtomicBool::new(false));
+    shared.cancels.lock().unwrap().insert(run.id.clone(), flag.clone());
+    if shared.stopping.load(Ordering::SeqCst) {
+        flag.store(true, Ordering::SeqCst);
+    }
+    let s = shared.clone();
+    let id = run.id.clone();
+    let end = cpu(shared, move || {
+        let span = info_span!("run", run_id = %run.id);
+        span.in_scope(|| execute_blocking(&s, &run, &flag))
+    })
+    .await;
+    shared.cancels.lock().unwrap().remove(&id);
+    let now = now_ms();
+    let ended = match end {
+        Ending::Finished(outcome) => shared.store.finish_run(&id, &outcome, now).map(|_| ()),
+        Ending::Failed(reason) => {
+            warn!(run_id = %id, "run failed: {reason}");
+            shared.store.end_run(&id, RunState::Failed, &reason, now).map(|_| ())
+        }
+        Ending::Cancelled => shared.store.end_run(&id, RunState::Cancelled, "cancelled by request", now).map(|_| ()),
+        Ending::Checkpointed => {
+            info!(run_id = %id, "stopped for shutdown; finished units are kept");
+            Ok(())
+        }
+    };
+    if let Err(e) = ended {
+        error!(run_id = %id, "cannot record the end of the run: {e}");
+    }
+    shared.announce();
+}
+
+enum Ending {
+    Finished(RunOutcome),
+    Failed(String),
+    Cancelled,
+    /// Stopped by shutdown: the run stays running and resumes at the next start.
+    Checkpointed,
+}
+
+fn execute_blocking(shared: &Shared, run: &Run, cancel: &AtomicBool) -> Ending {
+    let cfg = &shared.config;
+    let meta = match shared.store.dataset(&run.dataset_id) {
+        Ok(Some(m)) => m,
+        Ok(None) => return Ending::Failed(format!("dataset {} no longer exists", run.dataset_id)),
+        Err(e) => return Ending::Failed(e.to_string()),
+    };
+    let data = match load_dataset(&shared.store, &meta, &run.target, run.spec.task, cfg.max_rows, cfg.max_columns) {
+        Ok(d) => d,
+        Err(e) => return Ending::Failed(e),
+    };
+    let spec = SweepSpec { max_settings: Some(cfg.max_settings), ..run.spec.clone() };
+    let plan = match sweep::plan(&data, &spec) {
+        Ok(p) => p,
+        Err(e) => return Ending::Failed(e.to_string()),
+    };
+    if let Err(e) = shared.store.set_plan_size(&run.id, plan.settings.len() as u32, plan.units.len() as u32) {
+        return Ending::Failed(e.to_string());
+    }
+    let done = match shared.store.units(&run.id) {
+        Ok(u) => u,
+        Err(e) => return Ending::Failed(e.to_string()),
+    };
+    info!(settings = plan.settings.len(), units = plan.units.len(), resumed_units = done.len(), "sweep planned");
+    // Units so far, to score a shaping key's settings once all its splits are in.
+    let so_far: Mutex<Vec<sweep::UnitResult>> = Mutex::new(done.clone());
+    let store_failed: Mutex<Option<String>> = Mutex::new(None);
+    let sink = |unit: &sweep::UnitResult, progress: sweep::Progress| {
+        let key = plan.units[unit.unit].1;
+        let scored = {
+            let mut all = so_far.lock().unwrap();
+            all.push(unit.clone());
+            sweep::key_scores(&plan, &all, key)
+        };
+        let mut events = vec![EventKind::Progress(progress)];
+        for (index, score) in scored.into_iter().flatten() {
+            events.push(EventKind::Scored { index: index as u32, score: Box::new(score) });
+        }
+        // The unit and its events are stored in one transaction before anyone hears of them.
+        match shared.store.record_unit(&run.id, unit, events, now_ms()) {
+            Ok(_) => {
+                shared.announce();
+                Flow::Continue
+            }
+            Err(e) => {
+                *store_failed.lock().unwrap() = Some(e.to_string());
+                Flow::Stop
+            }
+        }
+    };
+    let units = shared.pool.install(|| sweep::run(&plan, done, &sink, cancel));
+    if let Some(e) = store_failed.lock().unwrap().take() {
+        return Ending::Failed(format!("cannot store a finished unit: {e}"));
+    }
+    let units = match units {
+        Ok(u) => u,
+        Err(SweepError::Cancelled) if shared.stopping.load(Ordering::SeqCst) => return Ending::Checkpointed,
+        Err(SweepError::Cancelled) => return Ending::Cancelled,
+        Err(e) => return Ending::Failed(e.to_string()),
+    };
+    let result = sweep::summarize(&plan, &units);
+    let model = if spec.fit_final {
+        match shared.pool.install(|| sweep::fit_final(&plan, &result.scores[result.picked].setting)) {
+            Ok(t) => Some(t),
+            Err(e) => return Ending::Failed(e.to_string()),
+        }
+    } else {
+        None
+    };
+    info!(picked = result.picked, valid_mean = result.scores[result.picked].valid_mean, "sweep finished");
+    Ending::Finished(RunOutcome {
+        scores: result.scores,
+        picked: result.picked as u32,
+        best: result.best as u32,
+        model,
+        fold_assignment: plan.folds.assignment.clone(),
+    })
+}
