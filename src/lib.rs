@@ -6,6 +6,7 @@
 //! - [`export`] model files: the versioned JSON format, DOT and plain text
 //! - [`sweep`]  cross-validated scores for a grid of settings from one growth per fold
 //! - [`job`]    runs, events and datasets as plain values with pure state transitions
+//! - [`reefer`] the demo's invented, SYNTHETIC reefer-container voyages (CSV text or a dataset)
 //!
 //! The shell:
 //! - [`store`]  the only module that names sled: datasets, runs, events, the queue
@@ -17,6 +18,7 @@ pub mod config;
 pub mod data;
 pub mod export;
 pub mod job;
+pub mod reefer;
 pub mod rpc;
 pub mod server;
 pub mod store;
@@ -30,4 +32,33 @@ pub mod pb {
 
     /// Encoded descriptors of every pollard proto, for server reflection.
     pub const DESCRIPTOR: &[u8] = tonic::include_file_descriptor_set!("pollard_descriptor");
+}
+
+#[cfg(test)]
+mod layering {
+    /// The pure core names no network, storage, runtime or logging crate and no shell module.
+    #[test]
+    fn core_modules_stay_pure() {
+        let root = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("src");
+        let forbidden = ["tokio", "tonic", "prost", "sled", "tracing", "crate::store", "crate::rpc", "crate::worker", "crate::server", "crate::cli", "crate::pb", "crate::config"];
+        let mut files = Vec::new();
+        for core in ["data", "tree", "sweep", "export"] {
+            for e in std::fs::read_dir(root.join(core)).unwrap() {
+                files.push(e.unwrap().path());
+            }
+        }
+        files.push(root.join("job.rs"));
+        let mut bad = Vec::new();
+        for f in &files {
+            let text = std::fs::read_to_string(f).unwrap();
+            for (i, line) in text.lines().enumerate() {
+                let code = line.split("//").next().unwrap();
+                if forbidden.iter().any(|w| code.contains(&format!("{w}::")) || code.contains(&format!("use {w}"))) {
+                    bad.push(format!("{}:{}: {}", f.display(), i + 1, line.trim()));
+                }
+            }
+        }
+        assert!(files.len() > 10, "scanned only {} files", files.len());
+        assert!(bad.is_empty(), "core files reach into the shell:\n{}", bad.join("\n"));
+    }
 }

@@ -199,7 +199,7 @@ fn range_from(field: &str, r: &Option<pb::LimitRange>) -> Result<Option<Range>, 
     }))
 }
 
-fn range_to(r: &Option<Range>) -> Option<pb::LimitRange> {
+pub fn range_to(r: &Option<Range>) -> Option<pb::LimitRange> {
     r.as_ref().map(|r| pb::LimitRange {
         kind: Some(match r {
             Range::Values(v) => pb::limit_range::Kind::Values(pb::ValueList {
@@ -546,4 +546,33 @@ pub fn model_from(m: &pb::Model) -> Result<Tree, String> {
             class_weight: ClassWeight::parse(&g.class_weight).unwrap_or_default(),
         },
     })
+}
+
+/// A setting score from the wire (for clients that plot or store what a server sent).
+pub fn score_from(s: &pb::SettingScore) -> SettingScore {
+    let l = s.limits.clone().unwrap_or_default();
+    SettingScore {
+        setting: crate::sweep::Setting {
+            key: 0,
+            options: FitOptions {
+                limits: Limits {
+                    max_depth: l.max_depth,
+                    min_split_rows: l.min_split_rows,
+                    min_leaf_rows: l.min_leaf_rows,
+                    max_leaves: l.max_leaves,
+                    min_gain: l.min_gain,
+                    prune_alpha: l.prune_alpha,
+                },
+                criterion: Criterion::parse(&l.criterion),
+                class_weight: ClassWeight::parse(&l.class_weight).unwrap_or_default(),
+            },
+        },
+        fold_scores: s.fold_scores.clone(),
+        valid_mean: s.valid_mean,
+        valid_sd: s.valid_sd,
+        train_mean: s.train_mean,
+        gap: s.gap,
+        mean_leaves: s.mean_leaves,
+        mean_depth: s.mean_depth,
+    }
 }

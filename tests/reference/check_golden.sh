@@ -1,5 +1,5 @@
 #!/usr/bin/env bash
-# Regenerate the reference data and golden trees in a temporary folder and compare
+# Regenerate the reference data, golden trees and golden sweeps in a temporary folder and compare
 # them byte-for-byte with the committed files. Exits non-zero on any difference.
 #
 #   bash tests/reference/check_golden.sh
@@ -88,8 +88,14 @@ done
 
 # --- 3. golden trees (read from the committed CSVs) ---------------------------------
 (cd "$root" && "$py" "$here/make_golden.py" "$tmp/golden") || fail "make_golden.py failed"
+
+# --- 4. golden sweeps (read the committed CSVs and the committed fold files) ----------
+# folds_<dataset>.csv are inputs written by pollard (`pollard folds`), not by Python; they
+# are copied as they are, and tests/reference_sweep.rs checks pollard still assigns them.
+(cd "$root" && "$py" "$here/make_sweep_golden.py" "$tmp/golden") || fail "make_sweep_golden.py failed"
+cp "$here"/golden/folds_*.csv "$tmp/golden/"
 if diff -r -q "$tmp/golden" "$here/golden" >"$tmp/golden.diff" 2>&1; then
-    say "tests/reference/golden: identical ($(ls "$here/golden" | wc -l) files)"
+    say "tests/reference/golden: identical ($(ls "$here/golden" | wc -l) files, $(ls "$here"/golden/folds_*.csv | wc -l) of them pollard's fold files)"
 else
     echo "check_golden: FAIL: tests/reference/golden differs from a fresh regeneration:" >&2
     cat "$tmp/golden.diff" >&2

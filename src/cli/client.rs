@@ -1,0 +1,370 @@
+//! Client commands against a pollard server, and the local (in-process) sweep.
+
+use std::sync::atomic::AtomicBool;
+use std::time::Duration;
+
+use indicatif::{ProgressBar, ProgressStyle};
+use serde_json::json;
+use tonic::transport::Channel;
+
+use super::output::{self, higher_is_better};
+use super::{labels, Command, LocalArgs, PutArgs, RunsArgs, SweepArgs};
+use crate::data::csv::{read_dataset, CsvOptions};
+use crate::pb;
+use crate::pb::datasets_client::DatasetsClient;
+use crate::pb::models_client::ModelsClient;
+use crate::pb::runs_client::RunsClient;
+use crate::rpc::convert;
+
+/// A status as one line: its code and message.
+pub fn status_line(s: tonic::Status) -> String {
+    format!("{:?}: {}", s.code(), s.message())
+}
+
+pub async fn connect(server: &str) -> Result<Channel, String> {
+    let endpoint = Channel::from_shared(server.to_string()).map_err(|e| format!("--server '{server}': {e}"))?.connect_timeout(Duration::from_secs(5));
+    endpoint.connect().await.map_err(|e| format!("cannot reach the pollard server at {server} ({e}); start one with `pollard serve` or set --server"))
+}
+
+fn runtime() -> Result<tokio::runtime::Runtime, String> {
+    tokio::runtime::Builder::new_multi_thread().worker_threads(2).enable_all().build().map_err(|e| e.to_string())
+}
+
+pub fn run(command: Command, server: &str, json_out: bool) -> Result<(), String> {
+    runtime()?.block_on(async move {
+        let ch = connect(server).await?;
+        match command {
+            Command::Put(a) => put(ch, a, json_out).await,
+            Command::Datasets { name } => datasets(ch, name, json_out).await,
+            Command::Sweep(a) => sweep(ch, a, json_out).await,
+            Command::Follow { run, after } => follow(ch, &run, after, if json_out { Follow::JsonLines } else { Follow::Bar }).await.map(|_| ()),
+            Command::Show { run, top } => show(ch, &run, top, json_out).await,
+            Command::Runs(a) => runs(ch, a, json_out).await,
+            Command::Cancel { run } => {
+                let r = RunsClient::new(ch).cancel_run(pb::CancelRunRequest { id: run }).await.map_err(status_line)?.into_inner();
+                print_run(&r, json_out);
+                Ok(())
+            }
+            Command::Model { run, format, out } => model(ch, &run, &format, out, json_out).await,
+            Command::Predict { run, file } => predict(ch, &run, &file, json_out).await,
+            _ => unreachable!("handled by the caller"),
+        }
+    })
+}
+
+fn print_run(r: &pb::RunInfo, json_out: bool) {
+    if json_out {
+        println!("{}", output::run_json(r));
+    } else {
+        println!("{}", output::run_line(r));
+    }
+}
+
+/// Uploads a file in chunks with a progress bar.
+pub async fn upload_bytes(ch: Channel, name: &str, target: &str, categorical: Vec<String>, bytes: Vec<u8>, show: bool) -> Result<pb::DatasetInfo, String> {
+    let bar = if show { ProgressBar::new(bytes.len() as u64) } else { ProgressBar::hidden() };
+    bar.set_style(ProgressStyle::with_template("uploading {bar:30} {bytes}/{total_bytes}").unwrap());
+    let header = pb::UploadChunk { part: Some(pb::upload_chunk::Part::Header(pb::UploadHeader { name: name.into(), format: pb::DataFormat::Csv as i32, target: target.into(), categorical })) };
+    let chunks: Vec<pb::UploadChunk> = bytes.chunks(256 << 10).map(|c| pb::UploadChunk { part: Some(pb::upload_chunk::Part::Data(c.to_vec())) }).collect();
+    let b = bar.clone();
+    let stream = tokio_stream::iter(std::iter::once(header).chain(chunks.into_iter().inspect(move |c| {
+        if let Some(pb::upload_chunk::Part::Data(d)) = &c.part {
+            b.inc(d.len() as u64);
+        }
+    })));
+    let info = DatasetsClient::new(ch).upload(stream).await.map_err(status_line)?.into_inner();
+    bar.finish_and_clear();
+    Ok(info)
+}
+
+async fn put(ch: Channel, a: PutArgs, json_out: bool) -> Result<(), String> {
+    let bytes = std::fs::read(&a.file).map_err(|e| format!("{}: {e}", a.file.display()))?;
+    let info = upload_bytes(ch, &a.name, &a.target, a.categorical, bytes, !json_out).await?;
+    if json_out {
+        println!("{}", output::dataset_json(&info));
+    } else {
+        println!("{}", output::dataset_line(&info));
+    }
+    Ok(())
+}
+
+async fn datasets(ch: Channel, name: Option<String>, json_out: bool) -> Result<(), String> {
+    let mut client = DatasetsClient::new(ch);
+    let mut token = String::new();
+    let mut all = Vec::new();
+    loop {
+        let r = client.list_datasets(pb::ListDatasetsRequest { name: name.clone().unwrap_or_default(), page_size: 100, page_token: token }).await.map_err(status_line)?.into_inner();
+        all.extend(r.datasets);
+        if r.next_page_token.is_empty() {
+            break;
+        }
+        token = r.next_page_token;
+    }
+    if json_out {
+        println!("{}", json!(all.iter().map(output::dataset_json).collect::<Vec<_>>()));
+    } else {
+        for d in &all {
+            println!("{}", output::dataset_line(d));
+        }
+    }
+    Ok(())
+}
+
+async fn sweep(ch: Channel, a: SweepArgs, json_out: bool) -> Result<(), String> {
+    let spec = a.grid.to_spec()?;
+    let (dataset_id, dataset_name) = if a.dataset.starts_with("ds_") { (a.dataset.clone(), String::new()) } else { (String::new(), a.dataset.clone()) };
+    let req = pb::StartRunRequest { dataset_id, dataset_name, spec: Some(spec), idempotency_key: a.idempotency_key, labels: labels(&a.labels)? };
+    let run = RunsClient::new(ch.clone()).start_run(req).await.map_err(status_line)?.into_inner();
+    if !a.follow {
+        print_run(&run, json_out);
+        return Ok(());
+    }
+    if !json_out {
+        println!("started {}", run.id);
+    }
+    follow(ch.clone(), &run.id, 0, if json_out { Follow::JsonLines } else { Follow::Bar }).await?;
+    if !json_out {
+        show(ch, &run.id, 10, false).await?;
+    }
+    Ok(())
+}
+
+/// How a follower shows events.
+#[derive(Clone, Copy, PartialEq, Eq)]
+pub enum Follow {
+    /// A live progress bar, then one line with the end.
+    Bar,
+    /// One JSON object per event.
+    JsonLines,
+    /// Nothing.
+    Silent,
+}
+
+/// Streams a run's events; returns how it ended ("finished", "failed: …", "cancelled: …").
+pub async fn follow(ch: Channel, id: &str, after: u64, mode: Follow) -> Result<String, String> {
+    let json_out = mode == Follow::JsonLines;
+    let mut stream = RunsClient::new(ch).follow_run(pb::FollowRunRequest { id: id.into(), after_sequence: after }).await.map_err(status_line)?.into_inner();
+    let bar = if mode == Follow::Bar { ProgressBar::new(0) } else { ProgressBar::hidden() };
+    bar.set_style(ProgressStyle::with_template("{spinner} work units {pos}/{len} {bar:30} settings scored {msg} [{elapsed}]").unwrap());
+    bar.enable_steady_tick(Duration::from_millis(200));
+    let mut scored = 0;
+    let mut end = "running".to_string();
+    while let Some(ev) = stream.message().await.map_err(status_line)? {
+        if json_out {
+            println!("{}", event_json(&ev));
+        }
+        match ev.kind {
+            Some(pb::run_event::Kind::Progress(p)) => {
+                bar.set_length(p.units_total as u64);
+                bar.set_position(p.units_done as u64);
+            }
+            Some(pb::run_event::Kind::Scored(_)) => {
+                scored += 1;
+                bar.set_message(scored.to_string());
+            }
+            Some(pb::run_event::Kind::Finished(_)) => end = "finished".into(),
+            Some(pb::run_event::Kind::Failed(m)) => end = format!("failed: {m}"),
+            Some(pb::run_event::Kind::Cancelled(m)) => end = format!("cancelled: {m}"),
+            None => {}
+        }
+    }
+    bar.finish_and_clear();
+    if mode == Follow::Bar {
+        println!("run {id}: {end}");
+    }
+    Ok(end)
+}
+
+fn event_json(e: &pb::RunEvent) -> serde_json::Value {
+    let (kind, body) = match &e.kind {
+        Some(pb::run_event::Kind::Progress(p)) => ("progress", json!({"units_done": p.units_done, "units_total": p.units_total, "scores_done": p.scores_done, "scores_total": p.scores_total})),
+        Some(pb::run_event::Kind::Scored(s)) => ("scored", output::score_json(s)),
+        Some(pb::run_event::Kind::Finished(f)) => ("finished", json!({"picked": f.picked, "best": f.best, "settings": f.scores.len(), "model_nodes": f.model.as_ref().map(|m| m.nodes.len())})),
+        Some(pb::run_event::Kind::Failed(m)) => ("failed", json!({"reason": m})),
+        Some(pb::run_event::Kind::Cancelled(m)) => ("cancelled", json!({"reason": m})),
+        None => ("unknown", json!({})),
+    };
+    json!({"sequence": e.sequence, "run_id": e.run_id, "at": e.at, "kind": kind, "event": body})
+}
+
+pub async fn show(ch: Channel, id: &str, top: usize, json_out: bool) -> Result<(), String> {
+    let r = RunsClient::new(ch).get_run(pb::GetRunRequest { id: id.into() }).await.map_err(status_line)?.into_inner();
+    if json_out {
+        println!("{}", output::run_json(&r));
+        return Ok(());
+    }
+    println!("{}", output::run_line(&r));
+    if !r.scores.is_empty() {
+        let metric = if r.metric.is_empty() { "score" } else { &r.metric };
+        print!("{}", output::scores_table(&r.scores, metric, higher_is_better(metric), top, r.picked, r.best));
+        let rule = r.spec.as_ref().map_or("highest", |s| if s.pick.is_empty() { "highest" } else { s.pick.as_str() }).to_string();
+        if let Some(p) = r.picked {
+            println!("pick rule {rule}: grid# {p}");
+        }
+    }
+    if let Some(m) = &r.model {
+        println!("model: {} nodes, {} leaves, depth {}", m.nodes, m.leaves, m.depth);
+    }
+    Ok(())
+}
+
+async fn runs(ch: Channel, a: RunsArgs, json_out: bool) -> Result<(), String> {
+    let state = match a.state.as_deref() {
+        None => 0,
+        Some(s) => convert::state_to(crate::job::RunState::parse(s).ok_or_else(|| format!("--state: '{s}' is not queued, running, finished, failed or cancelled"))?) as i32,
+    };
+    let req = pb::ListRunsRequest {
+        dataset_name: a.dataset.unwrap_or_default(),
+        state,
+        label: a.label.unwrap_or_default(),
+        schedule_id: a.schedule.unwrap_or_default(),
+        created_from: a.from.unwrap_or_default(),
+        created_to: a.to.unwrap_or_default(),
+        page_size: a.limit,
+        page_token: String::new(),
+    };
+    let r = RunsClient::new(ch).list_runs(req).await.map_err(status_line)?.into_inner();
+    if json_out {
+        println!("{}", json!(r.runs.iter().map(output::run_json).collect::<Vec<_>>()));
+    } else {
+        for run in &r.runs {
+            println!("{}", output::run_line(run));
+        }
+    }
+    Ok(())
+}
+
+fn model_format(f: &str) -> Result<pb::ModelFormat, String> {
+    Ok(match f {
+        "json" => pb::ModelFormat::Json,
+        "dot" => pb::ModelFormat::Dot,
+        "text" => pb::ModelFormat::Text,
+        "protobuf" => pb::ModelFormat::Protobuf,
+        _ => return Err(format!("--format: '{f}' is not json, dot, text or protobuf")),
+    })
+}
+
+async fn model(ch: Channel, id: &str, format: &str, out: Option<std::path::PathBuf>, json_out: bool) -> Result<(), String> {
+    let f = model_format(format)?;
+    let file = ModelsClient::new(ch).get_model(pb::GetModelRequest { run_id: id.into(), format: f as i32 }).await.map_err(status_line)?.into_inner();
+    let bytes = match f {
+        pb::ModelFormat::Protobuf => prost::Message::encode_to_vec(&file.model.unwrap_or_default()),
+        _ => file.text.into_bytes(),
+    };
+    match out {
+        Some(p) => {
+            std::fs::write(&p, &bytes).map_err(|e| format!("{}: {e}", p.display()))?;
+            if json_out {
+                println!("{}", json!({"run_id": id, "format": format, "path": p.display().to_string(), "bytes": bytes.len()}));
+            } else {
+                println!("wrote {} ({} bytes)", p.display(), bytes.len());
+            }
+        }
+        None if f == pb::ModelFormat::Protobuf => return Err("--format protobuf is binary; give --out FILE".into()),
+        None => print!("{}", String::from_utf8_lossy(&bytes)),
+    }
+    Ok(())
+}
+
+async fn predict(ch: Channel, id: &str, file: &std::path::Path, json_out: bool) -> Result<(), String> {
+    let bytes = std::fs::read(file).map_err(|e| format!("{}: {e}", file.display()))?;
+    let table = csv_table(&bytes).map_err(|e| format!("{}: {e}", file.display()))?;
+    let r = ModelsClient::new(ch).predict(pb::PredictRequest { run_id: id.into(), rows: Some(table) }).await.map_err(status_line)?.into_inner();
+    if json_out {
+        println!("{}", json!({"predicted": r.predicted, "classes": r.classes, "probabilities": r.probabilities, "values": r.values}));
+    } else if !r.predicted.is_empty() {
+        println!("row,predicted,{}", r.classes.iter().map(|c| format!("p_{c}")).collect::<Vec<_>>().join(","));
+        let k = r.classes.len();
+        for (i, p) in r.predicted.iter().enumerate() {
+            let probs: Vec<String> = r.probabilities[i * k..(i + 1) * k].iter().map(|x| format!("{x:.4}")).collect();
+            println!("{},{p},{}", i + 1, probs.join(","));
+        }
+    } else {
+        println!("row,value");
+        for (i, v) in r.values.iter().enumerate() {
+            println!("{},{v}", i + 1);
+        }
+    }
+    Ok(())
+}
+
+/// A CSV file as a columnar table: a column whose every present cell is a number travels as
+/// numbers, any other as texts; empty, NA, N/A and NaN cells are missing.
+pub fn csv_table(bytes: &[u8]) -> Result<pb::Table, String> {
+    let mut r = csv::ReaderBuilder::new().from_reader(bytes);
+    let header: Vec<String> = r.headers().map_err(|e| e.to_string())?.iter().map(|h| h.trim().to_string()).collect();
+    let mut cells: Vec<Vec<String>> = vec![Vec::new(); header.len()];
+    for (i, rec) in r.records().enumerate() {
+        let rec = rec.map_err(|e| format!("row {}: {e}", i + 1))?;
+        if rec.len() != header.len() {
+            return Err(format!("row {} has {} fields, the header has {}", i + 1, rec.len(), header.len()));
+        }
+        for (c, v) in rec.iter().enumerate() {
+            cells[c].push(v.trim().to_string());
+        }
+    }
+    let missing = |s: &str| s.is_empty() || s == "NA" || s == "N/A" || s.eq_ignore_ascii_case("nan");
+    let columns = header
+        .into_iter()
+        .zip(cells)
+        .map(|(name, v)| {
+            let numeric = v.iter().all(|s| missing(s) || s.parse::<f64>().is_ok());
+            let flags: Vec<bool> = v.iter().map(|s| missing(s)).collect();
+            let cells = if numeric {
+                pb::table_column::Cells::Numbers(pb::NumberCells { values: v.iter().map(|s| s.parse().unwrap_or(f64::NAN)).collect(), missing: flags })
+            } else {
+                pb::table_column::Cells::Texts(pb::TextCells { values: v, missing: flags })
+            };
+            pb::TableColumn { name, cells: Some(cells) }
+        })
+        .collect();
+    Ok(pb::Table { columns })
+}
+
+/// A sweep in this process, no server: same flags and the same table.
+pub fn local(a: LocalArgs, json_out: bool) -> Result<(), String> {
+    let wire = a.grid.to_spec()?;
+    if wire.target.is_empty() {
+        return Err("--target: name the column to predict".into());
+    }
+    let bytes = std::fs::read(&a.file).map_err(|e| format!("{}: {e}", a.file.display()))?;
+    let mut options = CsvOptions::new(wire.target.clone());
+    options.task = crate::data::Task::parse(&wire.task);
+    let data = read_dataset(&bytes[..], &options).map_err(|e| format!("{}: {e}", a.file.display()))?;
+    let spec = convert::spec_from(&wire, data.task()).map_err(|s| s.message().to_string())?;
+    let plan = crate::sweep::plan(&data, &spec).map_err(|e| e.to_string())?;
+    let bar = if json_out { ProgressBar::hidden() } else { ProgressBar::new(plan.units.len() as u64) };
+    bar.set_style(ProgressStyle::with_template("{spinner} work units {pos}/{len} {bar:30} [{elapsed}]").unwrap());
+    let cancel = AtomicBool::new(false);
+    let b = bar.clone();
+    let units = crate::sweep::run(&plan, Vec::new(), &move |_, p| {
+        b.set_position(p.units_done as u64);
+        crate::sweep::Flow::Continue
+    }, &cancel)
+    .map_err(|e| e.to_string())?;
+    bar.finish_and_clear();
+    let result = crate::sweep::summarize(&plan, &units);
+    let scores: Vec<pb::SettingScore> = result.scores.iter().enumerate().map(|(i, s)| convert::score_to(i, s)).collect();
+    let model = if spec.fit_final { Some(crate::sweep::fit_final(&plan, &result.scores[result.picked].setting).map_err(|e| e.to_string())?) } else { None };
+    if let (Some(m), Some(p)) = (&model, &a.model_out) {
+        std::fs::write(p, crate::export::to_json(m)).map_err(|e| format!("{}: {e}", p.display()))?;
+    }
+    if json_out {
+        println!(
+            "{}",
+            json!({
+                "metric": result.metric.as_str(), "pick": result.pick_rule.as_str(), "picked": result.picked, "best": result.best,
+                "scores": scores.iter().map(output::score_json).collect::<Vec<_>>(),
+                "fold_assignment": plan.folds.assignment,
+                "model": model.as_ref().map(|m| json!({"nodes": m.nodes.len(), "leaves": m.n_leaves(), "depth": m.depth()})),
+            })
+        );
+    } else {
+        print!("{}", output::scores_table(&scores, result.metric.as_str(), result.metric.higher_is_better(), a.top, Some(result.picked as u32), Some(result.best as u32)));
+        println!("pick rule {}: grid# {}", result.pick_rule.as_str(), result.picked);
+        if let Some(m) = &model {
+            println!("model: {} nodes, {} leaves, depth {}", m.nodes.len(), m.n_leaves(), m.depth());
+        }
+    }
+    Ok(())
+}

@@ -1,0 +1,303 @@
+//! Command-line entry point: flags -> checked command -> serve | demo | client commands |
+//! local sweep. Every command takes `--json` for machine-readable output; client commands
+//! talk to `--server` (or `POLLARD_SERVER`).
+
+mod client;
+// mod demo; (waits for src/reefer.rs and src/cli/plots.rs)
+mod output;
+pub mod plots;
+pub mod ranges;
+mod spec;
+
+use std::collections::HashMap;
+use std::fs::File;
+use std::io::Write;
+use std::path::PathBuf;
+
+use clap::{Args, Parser, Subcommand};
+
+use crate::data::csv::{read_dataset, CsvOptions};
+use crate::sweep::{FoldPlan, FoldScheme};
+
+pub use spec::GridArgs;
+
+/// The default server address.
+pub const DEFAULT_SERVER: &str = "http://127.0.0.1:7311";
+
+#[derive(Parser, Debug)]
+#[command(name = "pollard", version, about = "Tunes the complexity limits of decision trees by cross-validated sweeps", long_about = None)]
+pub struct Cli {
+    /// Address of the pollard server for client commands.
+    #[arg(long, global = true, env = "POLLARD_SERVER", default_value = DEFAULT_SERVER)]
+    pub server: String,
+    /// Print machine-readable JSON instead of tables.
+    #[arg(long, global = true)]
+    pub json: bool,
+    #[command(subcommand)]
+    pub command: Command,
+}
+
+#[derive(Subcommand, Debug)]
+pub enum Command {
+    /// Run the gRPC service.
+    Serve(ServeArgs),
+    /// Tune a tree on synthetic reefer-container voyages, end to end, and write the results.
+    Demo(DemoArgs),
+    /// Upload a CSV file as a dataset.
+    Put(PutArgs),
+    /// List datasets.
+    Datasets {
+        /// Only versions of this name.
+        #[arg(long)]
+        name: Option<String>,
+    },
+    /// Start a sweep on a dataset.
+    Sweep(SweepArgs),
+    /// Stream a run's events until it ends.
+    Follow {
+        run: String,
+        /// Resume after this event sequence number.
+        #[arg(long, default_value_t = 0)]
+        after: u64,
+    },
+    /// Show one run: its state, its best settings and its pick.
+    Show {
+        run: String,
+        /// Settings to list, best first.
+        #[arg(long, default_value_t = 10)]
+        top: usize,
+    },
+    /// List runs, newest first.
+    Runs(RunsArgs),
+    /// Cancel a queued or running run.
+    Cancel { run: String },
+    /// Fetch the model of a finished run.
+    Model {
+        run: String,
+        /// json, dot, text or protobuf.
+        #[arg(long, default_value = "text")]
+        format: String,
+        /// Write to this file instead of standard output.
+        #[arg(long)]
+        out: Option<PathBuf>,
+    },
+    /// Predict the rows of a CSV file with a run's model.
+    Predict {
+        run: String,
+        file: PathBuf,
+    },
+    /// Run a sweep in this process on a CSV file, with no server.
+    Local(LocalArgs),
+    /// Print the fold assignment a sweep with this plan uses, as CSV row,repeat,fold.
+    Folds(FoldsArgs),
+}
+
+#[derive(Args, Debug)]
+pub struct ServeArgs {
+    /// Address to listen on, such as 127.0.0.1:7311.
+    #[arg(long)]
+    pub listen: Option<String>,
+    /// Directory of the store.
+    #[arg(long)]
+    pub data: Option<String>,
+    /// TOML configuration file.
+    #[arg(long)]
+    pub config: Option<PathBuf>,
+}
+
+#[derive(Args, Debug)]
+pub struct DemoArgs {
+    /// Where to write the model, scores and plots.
+    #[arg(long, default_value = "pollard-demo")]
+    pub out: PathBuf,
+    /// Voyages to generate.
+    #[arg(long, default_value_t = 4000)]
+    pub rows: usize,
+    /// Use the server at --server instead of starting one in this process.
+    #[arg(long)]
+    pub remote: bool,
+    /// Seed of the generated data.
+    #[arg(long, default_value_t = 20261202)]
+    pub seed: u64,
+}
+
+#[derive(Args, Debug)]
+pub struct PutArgs {
+    pub file: PathBuf,
+    /// Name under which uploads form a version history.
+    #[arg(long)]
+    pub name: String,
+    /// Column to predict (may also be named per sweep).
+    #[arg(long, default_value = "")]
+    pub target: String,
+    /// Columns to read as categories even when numeric (comma-separated).
+    #[arg(long, value_delimiter = ',')]
+    pub categorical: Vec<String>,
+}
+
+#[derive(Args, Debug)]
+pub struct SweepArgs {
+    /// Dataset id (ds_...) or name (its latest version).
+    #[arg(long)]
+    pub dataset: String,
+    #[command(flatten)]
+    pub grid: GridArgs,
+    /// Stream the run until it ends.
+    #[arg(long)]
+    pub follow: bool,
+    /// Labels key=value (repeatable).
+    #[arg(long = "label")]
+    pub labels: Vec<String>,
+    /// A retried command with the same key returns the first run.
+    #[arg(long, default_value = "")]
+    pub idempotency_key: String,
+}
+
+#[derive(Args, Debug)]
+pub struct RunsArgs {
+    #[arg(long)]
+    pub dataset: Option<String>,
+    /// queued, running, finished, failed or cancelled.
+    #[arg(long)]
+    pub state: Option<String>,
+    /// key=value.
+    #[arg(long)]
+    pub label: Option<String>,
+    #[arg(long)]
+    pub schedule: Option<String>,
+    /// Created at or after this RFC 3339 time.
+    #[arg(long)]
+    pub from: Option<String>,
+    /// Created before this RFC 3339 time.
+    #[arg(long)]
+    pub to: Option<String>,
+    #[arg(long, default_value_t = 20)]
+    pub limit: u32,
+}
+
+#[derive(Args, Debug)]
+pub struct LocalArgs {
+    pub file: PathBuf,
+    #[command(flatten)]
+    pub grid: GridArgs,
+    /// Write the model (JSON) here.
+    #[arg(long)]
+    pub model_out: Option<PathBuf>,
+    /// Settings to list, best first.
+    #[arg(long, default_value_t = 10)]
+    pub top: usize,
+}
+
+#[derive(Args, Debug)]
+pub struct FoldsArgs {
+    #[arg(long)]
+    pub data: PathBuf,
+    #[arg(long)]
+    pub target: String,
+    /// shuffled, stratified, grouped, forward or given (default: the task's).
+    #[arg(long)]
+    pub scheme: Option<String>,
+    #[arg(long, default_value_t = 5)]
+    pub k: u32,
+    #[arg(long, default_value_t = 1)]
+    pub repeats: u32,
+    #[arg(long, default_value_t = 0)]
+    pub seed: u64,
+    /// Column of grouped, forward and given plans.
+    #[arg(long)]
+    pub column: Option<String>,
+}
+
+/// Runs the command named by `args` (without the program name).
+pub fn run(args: &[String]) -> Result<(), String> {
+    let cli = match Cli::try_parse_from(std::iter::once("pollard".to_string()).chain(args.iter().cloned())) {
+        Ok(c) => c,
+        Err(e) if matches!(e.kind(), clap::error::ErrorKind::DisplayHelp | clap::error::ErrorKind::DisplayVersion) => {
+            print!("{e}");
+            return Ok(());
+        }
+        Err(e) => return Err(e.to_string().trim_end().to_string()),
+    };
+    match cli.command {
+        Command::Serve(a) => serve(a),
+        Command::Folds(a) => folds(a),
+        Command::Local(a) => client::local(a, cli.json),
+        Command::Demo(_) => Err("pollard demo: not built yet".into()),
+        other => client::run(other, &cli.server, cli.json),
+    }
+}
+
+fn folds(a: FoldsArgs) -> Result<(), String> {
+    let path = a.data.display().to_string();
+    let file = File::open(&a.data).map_err(|e| format!("{path}: {e}"))?;
+    let data = read_dataset(file, &CsvOptions::new(a.target.clone())).map_err(|e| format!("{path}: {e}"))?;
+    let column = || a.column.clone().ok_or_else(|| "--column C is required for this scheme".to_string());
+    let scheme = match a.scheme.as_deref() {
+        None => FoldPlan::default_for(data.task()).scheme,
+        Some("shuffled") => FoldScheme::Shuffled,
+        Some("stratified") => FoldScheme::Stratified,
+        Some("grouped") => FoldScheme::Grouped { column: column()? },
+        Some("forward") => FoldScheme::Forward { column: column()? },
+        Some("given") => FoldScheme::Given { column: column()? },
+        Some(s) => return Err(format!("--scheme: '{s}' is not one of shuffled, stratified, grouped, forward, given")),
+    };
+    let plan = FoldPlan { scheme, k: a.k, repeats: a.repeats };
+    plan.check(&data).map_err(|e| e.to_string())?;
+    let folds = plan.assign(&data, a.seed).map_err(|e| e.to_string())?;
+    let mut out = std::io::BufWriter::new(std::io::stdout().lock());
+    let w = |e: std::io::Error| e.to_string();
+    writeln!(out, "row,repeat,fold").map_err(w)?;
+    for (rep, fold_of) in folds.assignment.iter().enumerate() {
+        for (row, fold) in fold_of.iter().enumerate() {
+            writeln!(out, "{},{rep},{fold}", row + 1).map_err(w)?;
+        }
+    }
+    out.flush().map_err(w)
+}
+
+fn serve(a: ServeArgs) -> Result<(), String> {
+    let flags = crate::config::Flags { config_file: a.config, listen: a.listen, data_dir: a.data };
+    let config = crate::config::Config::load(&flags, &|k| std::env::var(k).ok())?;
+    init_logging(&config);
+    let runtime = tokio::runtime::Builder::new_multi_thread().enable_all().build().map_err(|e| e.to_string())?;
+    runtime.block_on(async move {
+        let store = crate::store::Store::open(&config.data_dir).map_err(|e| format!("{}: {e}", config.data_dir.display()))?;
+        let listener = tokio::net::TcpListener::bind(config.listen).await.map_err(|e| format!("cannot listen on {}: {e}", config.listen))?;
+        crate::server::run(listener, config, store, shutdown_signal()).await
+    })
+}
+
+/// Completes on SIGINT or SIGTERM.
+pub async fn shutdown_signal() {
+    let interrupt = tokio::signal::ctrl_c();
+    #[cfg(unix)]
+    {
+        let mut term = match tokio::signal::unix::signal(tokio::signal::unix::SignalKind::terminate()) {
+            Ok(t) => t,
+            Err(_) => return interrupt.await.unwrap_or(()),
+        };
+        tokio::select! {
+            _ = interrupt => {}
+            _ = term.recv() => {}
+        }
+    }
+    #[cfg(not(unix))]
+    interrupt.await.unwrap_or(());
+}
+
+/// Log lines through `tracing`, plain or JSON; every line of a run carries its id.
+pub fn init_logging(config: &crate::config::Config) {
+    let filter = tracing_subscriber::EnvFilter::try_new(&config.log_filter).unwrap_or_else(|_| tracing_subscriber::EnvFilter::new("info"));
+    let builder = tracing_subscriber::fmt().with_env_filter(filter).with_writer(std::io::stderr);
+    let _ = match config.log_format {
+        crate::config::LogFormat::Json => builder.json().try_init(),
+        crate::config::LogFormat::Plain => builder.try_init(),
+    };
+}
+
+/// `key=value` pairs.
+fn labels(list: &[String]) -> Result<HashMap<String, String>, String> {
+    list.iter()
+        .map(|l| l.split_once('=').map(|(k, v)| (k.to_string(), v.to_string())).ok_or_else(|| format!("--label: '{l}' is not key=value")))
+        .collect()
+}

@@ -1,0 +1,150 @@
+//! What the command line prints: tables for people, JSON for scripts.
+
+use serde_json::{json, Value};
+
+use crate::pb;
+
+fn limit(v: Option<u32>) -> String {
+    v.map_or("none".into(), |x| x.to_string())
+}
+
+fn short(x: f64) -> String {
+    if x == 0.0 {
+        "0".into()
+    } else if x.abs() >= 0.001 && x.abs() < 1e6 {
+        format!("{}", (x * 1e6).round() / 1e6)
+    } else {
+        format!("{x:.3e}")
+    }
+}
+
+pub fn limits_json(l: &pb::SettingLimits) -> Value {
+    json!({
+        "criterion": l.criterion, "class_weight": l.class_weight,
+        "max_depth": l.max_depth, "min_split_rows": l.min_split_rows, "min_leaf_rows": l.min_leaf_rows,
+        "max_leaves": l.max_leaves, "min_gain": l.min_gain, "prune_alpha": l.prune_alpha,
+    })
+}
+
+fn num(x: f64) -> Value {
+    if x.is_finite() {
+        json!(x)
+    } else {
+        Value::Null
+    }
+}
+
+pub fn score_json(s: &pb::SettingScore) -> Value {
+    json!({
+        "index": s.index,
+        "limits": s.limits.as_ref().map(limits_json),
+        "fold_scores": s.fold_scores.iter().map(|x| num(*x)).collect::<Vec<_>>(),
+        "valid_mean": num(s.valid_mean), "valid_sd": num(s.valid_sd), "train_mean": num(s.train_mean),
+        "gap": num(s.gap), "mean_leaves": s.mean_leaves, "mean_depth": s.mean_depth,
+    })
+}
+
+pub fn state_name(s: i32) -> &'static str {
+    match pb::RunState::try_from(s).unwrap_or(pb::RunState::Unspecified) {
+        pb::RunState::Queued => "queued",
+        pb::RunState::Running => "running",
+        pb::RunState::Finished => "finished",
+        pb::RunState::Failed => "failed",
+        pb::RunState::Cancelled => "cancelled",
+        pb::RunState::Unspecified => "unknown",
+    }
+}
+
+pub fn run_json(r: &pb::RunInfo) -> Value {
+    json!({
+        "id": r.id, "state": state_name(r.state), "dataset_id": r.dataset_id, "dataset_name": r.dataset_name,
+        "dataset_version": r.dataset_version, "labels": r.labels, "created_at": r.created_at,
+        "started_at": r.started_at, "finished_at": r.finished_at, "reason": r.reason, "metric": r.metric,
+        "settings": r.settings, "units_done": r.units_done, "units_total": r.units_total,
+        "picked": r.picked, "best": r.best, "schedule_id": r.schedule_id,
+        "scores": r.scores.iter().map(score_json).collect::<Vec<_>>(),
+        "model": r.model.as_ref().map(|m| json!({"nodes": m.nodes, "leaves": m.leaves, "depth": m.depth, "classes": m.classes})),
+    })
+}
+
+pub fn dataset_json(d: &pb::DatasetInfo) -> Value {
+    json!({
+        "id": d.id, "name": d.name, "version": d.version, "rows": d.rows, "target": d.target, "task": d.task,
+        "created_at": d.created_at, "bytes": d.bytes,
+        "columns": d.columns.iter().map(|c| json!({"name": c.name, "kind": if c.kind == pb::ColumnKind::Categorical as i32 { "categorical" } else { "numeric" }, "missing": c.missing, "levels": c.levels})).collect::<Vec<_>>(),
+    })
+}
+
+/// The scores table: settings best first (by validation score), with training and
+/// validation side by side.
+pub fn scores_table(scores: &[pb::SettingScore], metric: &str, higher_is_better: bool, top: usize, picked: Option<u32>, best: Option<u32>) -> String {
+    let mut order: Vec<&pb::SettingScore> = scores.iter().collect();
+    order.sort_by(|a, b| {
+        let (x, y) = if higher_is_better { (b.valid_mean, a.valid_mean) } else { (a.valid_mean, b.valid_mean) };
+        x.total_cmp(&y).then(a.mean_leaves.total_cmp(&b.mean_leaves))
+    });
+    let folds = scores.first().map_or(0, |s| s.fold_scores.len());
+    let mut out = format!("settings by validation {metric}, best first ({folds} folds; ± is the fold scores' sample sd)\n");
+    out.push_str(&format!(
+        "{:>5}  {:>9} {:>14} {:>13} {:>10} {:>9} {:>11}  {:>9}  {:>17}  {:>8}  {:>7}  {}\n",
+        "grid#", "max_depth", "min_split_rows", "min_leaf_rows", "max_leaves", "min_gain", "prune_alpha", "training", "validation", "gap", "leaves", ""
+    ));
+    let mut shown: Vec<&pb::SettingScore> = order.iter().take(top).copied().collect();
+    for extra in [picked, best].into_iter().flatten() {
+        if !shown.iter().any(|s| s.index == extra) {
+            if let Some(s) = scores.iter().find(|s| s.index == extra) {
+                shown.push(s);
+            }
+        }
+    }
+    for s in shown {
+        let l = s.limits.clone().unwrap_or_default();
+        let mut tags = Vec::new();
+        if best == Some(s.index) {
+            tags.push("best");
+        }
+        if picked == Some(s.index) {
+            tags.push("picked");
+        }
+        out.push_str(&format!(
+            "{:>5}  {:>9} {:>14} {:>13} {:>10} {:>9} {:>11}  {:>9.4}  {:>9.4} ± {:<6.4}  {:>+8.4}  {:>7.1}  {}\n",
+            s.index,
+            limit(l.max_depth),
+            l.min_split_rows,
+            l.min_leaf_rows,
+            limit(l.max_leaves),
+            short(l.min_gain),
+            short(l.prune_alpha),
+            s.train_mean,
+            s.valid_mean,
+            s.valid_sd,
+            s.gap,
+            s.mean_leaves,
+            tags.join(", ")
+        ));
+    }
+    out
+}
+
+pub fn run_line(r: &pb::RunInfo) -> String {
+    format!(
+        "{}  {:<9}  {}@v{}  {}  {}/{} units{}",
+        r.id,
+        state_name(r.state),
+        if r.dataset_name.is_empty() { &r.dataset_id } else { &r.dataset_name },
+        r.dataset_version,
+        r.created_at,
+        r.units_done,
+        r.units_total,
+        if r.reason.is_empty() { String::new() } else { format!("  ({})", r.reason) }
+    )
+}
+
+pub fn dataset_line(d: &pb::DatasetInfo) -> String {
+    format!("{}  {}  v{}  {} rows  {} columns  target '{}' ({})  {}", d.id, d.name, d.version, d.rows, d.columns.len(), d.target, if d.task.is_empty() { "none" } else { &d.task }, d.created_at)
+}
+
+/// Whether a metric's larger values are better (by name, as the wire carries it).
+pub fn higher_is_better(metric: &str) -> bool {
+    crate::sweep::Metric::parse(metric).is_none_or(|m| m.higher_is_better())
+}

@@ -1,0 +1,176 @@
+//! A sweep spec from command-line flags and, optionally, a TOML spec file (flags win).
+//!
+//! Spec file (every key optional; limits use the range syntax of [`super::ranges`]):
+//!
+//! ```toml
+//! target = "excursion"
+//! metric = "accuracy"
+//! pick = "one_se"
+//! seed = 7
+//! criteria = ["gini", "entropy"]
+//! class_weights = ["none", "balanced"]
+//! [limits]
+//! max_depth = "2,4,8,none"
+//! min_leaf_rows = "lin(1,21,5)"
+//! min_gain = "log(0.0001,0.01,3)"
+//! [folds]
+//! scheme = "stratified"
+//! k = 5
+//! repeats = 1
+//! ```
+
+use std::path::PathBuf;
+
+use clap::Args;
+use serde::Deserialize;
+
+use super::ranges::parse_range;
+use crate::pb;
+use crate::rpc::convert::range_to;
+
+#[derive(Args, Debug, Clone, Default)]
+pub struct GridArgs {
+    /// TOML spec file; flags given here override it.
+    #[arg(long)]
+    pub spec: Option<PathBuf>,
+    /// Column to predict.
+    #[arg(long)]
+    pub target: Option<String>,
+    /// classify or regress (default: inferred from the target).
+    #[arg(long)]
+    pub task: Option<String>,
+    /// Range of max_depth, e.g. 2,4,8,none or lin(1,12,1).
+    #[arg(long)]
+    pub max_depth: Option<String>,
+    /// Range of min_split_rows, e.g. 2,10,50.
+    #[arg(long)]
+    pub min_split_rows: Option<String>,
+    /// Range of min_leaf_rows, e.g. lin(1,21,5).
+    #[arg(long)]
+    pub min_leaf_rows: Option<String>,
+    /// Range of max_leaves, e.g. 8,32,none.
+    #[arg(long)]
+    pub max_leaves: Option<String>,
+    /// Range of min_gain, e.g. 0,log(0.0001,0.01,3) is written as log(0.0001,0.01,3).
+    #[arg(long)]
+    pub min_gain: Option<String>,
+    /// Range of prune_alpha, e.g. 0,0.001,0.01.
+    #[arg(long)]
+    pub prune_alpha: Option<String>,
+    /// Score every α on the pruning path instead of a prune_alpha range.
+    #[arg(long)]
+    pub prune_path: bool,
+    /// Criteria to try (comma-separated): gini, entropy, squared_error.
+    #[arg(long, value_delimiter = ',')]
+    pub criteria: Vec<String>,
+    /// Class weightings to try (comma-separated): none, balanced.
+    #[arg(long, value_delimiter = ',')]
+    pub class_weights: Vec<String>,
+    /// Fold scheme: shuffled, stratified, grouped, forward or given.
+    #[arg(long)]
+    pub folds: Option<String>,
+    /// Number of folds.
+    #[arg(long)]
+    pub k: Option<u32>,
+    /// Repeats of the fold plan.
+    #[arg(long)]
+    pub repeats: Option<u32>,
+    /// Column read by grouped, forward and given folds.
+    #[arg(long)]
+    pub fold_column: Option<String>,
+    /// accuracy, balanced_accuracy, macro_f1, log_loss, brier, roc_auc, rmse, mae or r2.
+    #[arg(long)]
+    pub metric: Option<String>,
+    /// highest or one_se.
+    #[arg(long)]
+    pub pick: Option<String>,
+    #[arg(long)]
+    pub seed: Option<u64>,
+    /// Do not refit the picked setting on all rows.
+    #[arg(long)]
+    pub skip_final: bool,
+}
+
+#[derive(Deserialize, Default)]
+#[serde(deny_unknown_fields)]
+struct SpecFile {
+    target: Option<String>,
+    task: Option<String>,
+    metric: Option<String>,
+    pick: Option<String>,
+    seed: Option<u64>,
+    criteria: Option<Vec<String>>,
+    class_weights: Option<Vec<String>>,
+    prune_path: Option<bool>,
+    skip_final: Option<bool>,
+    #[serde(default)]
+    limits: LimitsFile,
+    #[serde(default)]
+    folds: FoldsFile,
+}
+
+#[derive(Deserialize, Default)]
+#[serde(deny_unknown_fields)]
+struct LimitsFile {
+    max_depth: Option<String>,
+    min_split_rows: Option<String>,
+    min_leaf_rows: Option<String>,
+    max_leaves: Option<String>,
+    min_gain: Option<String>,
+    prune_alpha: Option<String>,
+}
+
+#[derive(Deserialize, Default)]
+#[serde(deny_unknown_fields)]
+struct FoldsFile {
+    scheme: Option<String>,
+    k: Option<u32>,
+    repeats: Option<u32>,
+    column: Option<String>,
+}
+
+fn range(name: &str, flag: &Option<String>, file: &Option<String>) -> Result<Option<pb::LimitRange>, String> {
+    match flag.as_ref().or(file.as_ref()) {
+        None => Ok(None),
+        Some(text) => Ok(range_to(&Some(parse_range(text).map_err(|e| format!("--{}: {e}", name.replace('_', "-")))?))),
+    }
+}
+
+impl GridArgs {
+    /// The wire spec these flags (and the spec file) describe.
+    pub fn to_spec(&self) -> Result<pb::SweepSpec, String> {
+        let file: SpecFile = match &self.spec {
+            None => SpecFile::default(),
+            Some(p) => {
+                let text = std::fs::read_to_string(p).map_err(|e| format!("{}: {e}", p.display()))?;
+                toml::from_str(&text).map_err(|e| format!("{}: {e}", p.display()))?
+            }
+        };
+        let l = &file.limits;
+        let pick = |flag: &Vec<String>, f: &Option<Vec<String>>| if flag.is_empty() { f.clone().unwrap_or_default() } else { flag.clone() };
+        let folds = pb::FoldPlan {
+            scheme: self.folds.clone().or(file.folds.scheme.clone()).unwrap_or_default(),
+            k: self.k.or(file.folds.k).unwrap_or(0),
+            repeats: self.repeats.or(file.folds.repeats).unwrap_or(0),
+            column: self.fold_column.clone().or(file.folds.column.clone()).unwrap_or_default(),
+        };
+        Ok(pb::SweepSpec {
+            target: self.target.clone().or(file.target).unwrap_or_default(),
+            task: self.task.clone().or(file.task).unwrap_or_default(),
+            criteria: pick(&self.criteria, &file.criteria),
+            class_weights: pick(&self.class_weights, &file.class_weights),
+            max_depth: range("max_depth", &self.max_depth, &l.max_depth)?,
+            min_split_rows: range("min_split_rows", &self.min_split_rows, &l.min_split_rows)?,
+            min_leaf_rows: range("min_leaf_rows", &self.min_leaf_rows, &l.min_leaf_rows)?,
+            max_leaves: range("max_leaves", &self.max_leaves, &l.max_leaves)?,
+            min_gain: range("min_gain", &self.min_gain, &l.min_gain)?,
+            prune_alpha: range("prune_alpha", &self.prune_alpha, &l.prune_alpha)?,
+            prune_path: self.prune_path || file.prune_path.unwrap_or(false),
+            folds: Some(folds),
+            metric: self.metric.clone().or(file.metric).unwrap_or_default(),
+            pick: self.pick.clone().or(file.pick).unwrap_or_default(),
+            seed: self.seed.or(file.seed).unwrap_or(0),
+            skip_final: self.skip_final || file.skip_final.unwrap_or(false),
+        })
+    }
+}
