@@ -3,7 +3,7 @@
 //! talk to `--server` (or `POLLARD_SERVER`).
 
 mod client;
-// mod demo; (waits for src/reefer.rs and src/cli/plots.rs)
+mod demo;
 mod output;
 pub mod plots;
 pub mod ranges;
@@ -222,7 +222,7 @@ pub fn run(args: &[String]) -> Result<(), String> {
         Command::Serve(a) => serve(a),
         Command::Folds(a) => folds(a),
         Command::Local(a) => client::local(a, cli.json),
-        Command::Demo(_) => Err("pollard demo: not built yet".into()),
+        Command::Demo(a) => demo::run(a, &cli.server, cli.json),
         other => client::run(other, &cli.server, cli.json),
     }
 }

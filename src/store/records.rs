@@ -7,9 +7,10 @@
 //!
 //! Numbers: every `f64` is written as a JSON *string* holding Rust's shortest round-trip
 //! form (`"0.1"`, `"1e-300"`, `"NaN"`, `"inf"`, `"-inf"`). JSON has no NaN or infinity, and
-//! serde_json's default number parser (without its `float_roundtrip` feature) may land one
-//! unit in the last place away from the written value, while `str::parse::<f64>` is
-//! correctly rounded, so a string gives back the very same bits (NaN payloads aside).
+//! a JSON number reads back exactly only when serde_json's `float_roundtrip` feature is on
+//! (its default parser may land one unit in the last place off), while `str::parse::<f64>`
+//! is always correctly rounded: strings give back the very same bits (NaN payloads aside)
+//! whatever features the build enables.
 //! Enumerations are stored by their `as_str` names, so reordering a Rust enum changes nothing.
 //!
 //! The model tree of a [`RunOutcome`] is stored as its `pollard.model` text

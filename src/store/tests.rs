@@ -372,14 +372,14 @@ enum Op {
 fn op() -> impl Strategy<Value = Op> {
     prop_oneof![
         3 => (0..CONTENTS, 0..NAMES_USED.len()).prop_map(|(content, name)| Op::PutDataset { content, name }),
-        5 => (0..CONTENTS, proptest::option::of(0..3usize), any::<bool>()).prop_map(|(dataset, key, label)| Op::CreateRun { dataset, key, label }),
+        5 => (0..64usize, proptest::option::of(0..3usize), any::<bool>()).prop_map(|(dataset, key, label)| Op::CreateRun { dataset, key, label }),
         3 => Just(Op::Claim),
         2 => (0..64usize).prop_map(|run| Op::Plan { run }),
         5 => (0..64usize, 0..4u32, 0..3usize).prop_map(|(run, unit, events)| Op::RecordUnit { run, unit, events }),
         1 => (0..64usize).prop_map(|run| Op::Progress { run }),
         2 => (0..64usize).prop_map(|run| Op::Finish { run }),
         2 => (0..64usize, any::<bool>()).prop_map(|(run, cancel)| Op::End { run, cancel }),
-        2 => (0..CONTENTS).prop_map(|dataset| Op::DeleteDataset { dataset }),
+        2 => (0..64usize).prop_map(|dataset| Op::DeleteDataset { dataset }),
         1 => (0..64usize).prop_map(|run| Op::DeleteRun { run }),
         1 => Just(Op::Reopen),
     ]
@@ -403,11 +403,26 @@ struct Model {
 }
 
 impl Model {
-    fn pick(&self, i: usize) -> String {
-        if self.ids.is_empty() {
+    /// A run id for a change: mostly one the change applies to (`wanted`), sometimes any
+    /// run ever made (deleted ones too), or an unknown id when none was made.
+    fn pick(&self, i: usize, wanted: impl Fn(&Run) -> bool) -> String {
+        let fitting: Vec<&String> = self.runs.values().filter(|r| wanted(r)).map(|r| &r.id).collect();
+        if i % 5 != 0 && !fitting.is_empty() {
+            fitting[i % fitting.len()].clone()
+        } else if self.ids.is_empty() {
             "run_none".into()
         } else {
             self.ids[i % self.ids.len()].clone()
+        }
+    }
+
+    /// A dataset content: mostly one stored, sometimes any.
+    fn pick_content(&self, i: usize) -> usize {
+        let stored: Vec<usize> = (0..CONTENTS).filter(|&c| self.datasets.contains_key(&content_id(c))).collect();
+        if i % 5 != 0 && !stored.is_empty() {
+            stored[i % stored.len()]
+        } else {
+            i % CONTENTS
         }
     }
 
@@ -440,6 +455,10 @@ fn unit_events(n: usize, now: i64) -> Vec<EventKind> {
         .collect()
 }
 
+fn is_running(r: &Run) -> bool {
+    r.state == RunState::Running
+}
+
 /// Applies one change to the store and the model and checks they answered alike.
 fn step(store: &Store, model: &mut Model, op: &Op, now: i64) {
     match op {
@@ -467,7 +486,8 @@ fn step(store: &Store, model: &mut Model, op: &Op, now: i64) {
         Op::CreateRun { dataset, key, label } => {
             let id = format!("run_{:06}", model.ids.len());
             model.ids.push(id.clone());
-            let ds = model.datasets.get(&content_id(*dataset)).map(|d| d.0.clone()).unwrap_or_else(|| meta(&content_id(*dataset), "", 0, 0));
+            let dataset = model.pick_content(*dataset);
+            let ds = model.datasets.get(&content_id(dataset)).map(|d| d.0.clone()).unwrap_or_else(|| meta(&content_id(dataset), "", 0, 0));
             let mut run = Run::queued(id.clone(), &ds, "spoiled".into(), full_spec(now as u64), now);
             if let Some(k) = key {
                 run.idempotency_key = format!("key-{k}");
@@ -502,14 +522,14 @@ fn step(store: &Store, model: &mut Model, op: &Op, now: i64) {
             assert_eq!(store.claim_next(now).unwrap(), want);
         }
         Op::Plan { run } => {
-            let id = model.pick(*run);
+            let id = model.pick(*run, is_running);
             if let Some(r) = model.runs.get_mut(&id).filter(|r| r.state == RunState::Running) {
                 (r.settings, r.units_total) = (3, 4);
             }
             store.set_plan_size(&id, 3, 4).unwrap();
         }
         Op::RecordUnit { run, unit, events } => {
-            let id = model.pick(*run);
+            let id = model.pick(*run, is_running);
             let u = unit_result(*unit, now);
             let kinds = unit_events(*events, now);
             let fresh = model.runs.get(&id).is_some_and(|r| r.state == RunState::Running) && !model.units.get(&id).is_some_and(|m| m.contains_key(&u.unit));
@@ -524,13 +544,13 @@ fn step(store: &Store, model: &mut Model, op: &Op, now: i64) {
             assert_same!(store.record_unit(&id, &u, kinds, now).unwrap(), want);
         }
         Op::Progress { run } => {
-            let id = model.pick(*run);
+            let id = model.pick(*run, is_running);
             let kind = EventKind::Progress(Progress { units_done: 1, units_total: 4, scores_done: 2, scores_total: 8 });
             let want = model.runs.get(&id).filter(|r| r.state == RunState::Running).is_some().then(|| model.append(&id, kind.clone(), now));
             assert_eq!(store.append_event(&id, kind, now).unwrap(), want);
         }
         Op::Finish { run } => {
-            let id = model.pick(*run);
+            let id = model.pick(*run, is_running);
             let o = outcome(None);
             let want = if model.runs.get(&id).is_some_and(|r| r.state == RunState::Running) {
                 let e = model.append(&id, EventKind::Finished { picked: 1, best: 0 }, now);
@@ -543,7 +563,7 @@ fn step(store: &Store, model: &mut Model, op: &Op, now: i64) {
             assert_eq!(store.finish_run(&id, &o, now).unwrap(), want);
         }
         Op::End { run, cancel } => {
-            let id = model.pick(*run);
+            let id = model.pick(*run, |r| !r.state.is_terminal());
             let (state, reason) = if *cancel { (RunState::Cancelled, "asked to stop") } else { (RunState::Failed, "fit failed") };
             let want = if model.runs.get(&id).is_some_and(|r| !r.state.is_terminal()) {
                 model.queue.retain(|q| *q != id);
@@ -558,7 +578,7 @@ fn step(store: &Store, model: &mut Model, op: &Op, now: i64) {
             assert_eq!(store.end_run(&id, state, reason, now).unwrap(), want);
         }
         Op::DeleteDataset { dataset } => {
-            let id = content_id(*dataset);
+            let id = content_id(model.pick_content(*dataset));
             let want = if !model.datasets.contains_key(&id) {
                 DeleteDataset::NotFound
             } else if let Some(run_id) = model.oldest_active_of(&id) {
@@ -570,7 +590,7 @@ fn step(store: &Store, model: &mut Model, op: &Op, now: i64) {
             assert_eq!(store.delete_dataset(&id).unwrap(), want);
         }
         Op::DeleteRun { run } => {
-            let id = model.pick(*run);
+            let id = model.pick(*run, |r| r.state.is_terminal());
             let want = model.runs.get(&id).is_some_and(|r| r.state.is_terminal());
             if want {
                 model.runs.remove(&id);
@@ -680,7 +700,7 @@ proptest! {
     #![proptest_config(ProptestConfig { cases: 48, failure_persistence: None, ..ProptestConfig::default() })]
 
     #[test]
-    fn store_agrees_with_the_model(ops in proptest::collection::vec(op(), 1..48)) {
+    fn store_agrees_with_the_model(ops in proptest::collection::vec(op(), 1..64)) {
         let dir = TempDir::new("model");
         let mut store = Store::open(dir.path()).unwrap();
         let mut model = Model::default();
@@ -740,8 +760,8 @@ fn dump(store: &Store) -> String {
         out += &format!("{:?}\n", store.dataset_bytes(id).unwrap().map(|b| b.len()));
     }
     out += &format!("{:?}\n{:?}\n", store.latest_dataset("reefer").unwrap(), store.running_runs().unwrap());
-    for t in 0..TREE_NAMES.len() {
-        out += &format!("{} {}\n", TREE_NAMES[t], store.tree(t).len());
+    for (t, name) in TREE_NAMES.iter().enumerate() {
+        out += &format!("{name} {}\n", store.tree(t).len());
     }
     out
 }
