@@ -48,6 +48,7 @@ mod layering {
             }
         }
         files.push(root.join("job.rs"));
+        files.push(root.join("reefer.rs"));
         let mut bad = Vec::new();
         for f in &files {
             let text = std::fs::read_to_string(f).unwrap();

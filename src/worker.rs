@@ -2,8 +2,11 @@
 //! before announcing it, and end the run.
 //!
 //! Concurrency: tree fitting runs on a dedicated rayon pool sized by the config, never on
-//! tokio's threads; async code hands work over with [`cpu`] and awaits a oneshot. A std
-//! `Mutex` guards the cancel flags, since no `.await` is held while it is locked.
+//! tokio's threads; async code hands work over with [`cpu`] and awaits a oneshot. Sweeps and
+//! the short CPU work of calls (reading uploads, checking specs, predicting) get one pool
+//! each: a rayon worker busy in a sweep's parallel loop takes its own queued work before a
+//! job injected from outside, so a call sharing the sweep pool would wait for the whole
+//! sweep. A std `Mutex` guards the cancel flags, since no `.await` is held while it is locked.
 
 use std::collections::HashMap;
 use std::sync::atomic::{AtomicBool, Ordering};
@@ -24,7 +27,10 @@ use crate::sweep::{self, Flow, SweepError, SweepSpec};
 pub struct Shared {
     pub store: Store,
     pub config: Config,
+    /// Runs sweeps.
     pub pool: rayon::ThreadPool,
+    /// Runs the CPU work of calls, apart from sweeps (see the module notes).
+    pub calls: rayon::ThreadPool,
     /// Bumped after events are stored, so followers know to read.
     pub changed: watch::Sender<u64>,
     /// Signalled when a run is queued.
@@ -45,10 +51,16 @@ impl Shared {
             .thread_name(|i| format!("pollard-cpu-{i}"))
             .build()
             .map_err(|e| format!("cannot start the CPU pool: {e}"))?;
+        let calls = rayon::ThreadPoolBuilder::new()
+            .num_threads(config.cpu_threads)
+            .thread_name(|i| format!("pollard-calls-{i}"))
+            .build()
+            .map_err(|e| format!("cannot start the CPU pool for calls: {e}"))?;
         Ok(Arc::new(Shared {
             store,
             config,
             pool,
+            calls,
             changed: watch::channel(0).0,
             queued: Notify::new(),
             cancels: Mutex::new(HashMap::new()),
@@ -74,10 +86,14 @@ impl Shared {
     }
 }
 
-/// Runs `f` on the CPU pool and awaits its result.
+/// Runs `f` on the CPU pool for calls and awaits its result.
 pub async fn cpu<T: Send + 'static>(shared: &Arc<Shared>, f: impl FnOnce() -> T + Send + 'static) -> T {
+    on_pool(&shared.calls, f).await
+}
+
+async fn on_pool<T: Send + 'static>(pool: &rayon::ThreadPool, f: impl FnOnce() -> T + Send + 'static) -> T {
     let (tx, rx) = tokio::sync::oneshot::channel();
-    shared.pool.spawn(move || {
+    pool.spawn(move || {
         let _ = tx.send(f());
     });
     rx.await.expect("the CPU pool dropped a job")
@@ -148,7 +164,7 @@ pub async fn execute(shared: &Arc<Shared>, run: Run) {
     }
     let s = shared.clone();
     let id = run.id.clone();
-    let end = cpu(shared, move || {
+    let end = on_pool(&shared.pool, move || {
         let span = info_span!("run", run_id = %run.id);
         span.in_scope(|| execute_blocking(&s, &run, &flag))
     })

@@ -131,7 +131,7 @@ const WIDTH: f64 = 760.0;
 const HEIGHT: f64 = 480.0;
 const LEFT: f64 = 80.0;
 const RIGHT: f64 = 730.0;
-const TOP: f64 = 106.0;
+const TOP: f64 = 114.0;
 const BOTTOM: f64 = 396.0;
 const TRAIN_COLOUR: &str = "#b4651e";
 const VALID_COLOUR: &str = "#1d5f8a";
@@ -252,7 +252,10 @@ fn number(v: f64) -> String {
     } else if v.fract() == 0.0 && v.abs() < 1e9 {
         format!("{}", v as i64)
     } else if v.abs() < 1e-3 {
-        format!("{v:e}")
+        // Four significant digits, trailing zeros dropped: 9.999999999999997e-6 reads 1e-5.
+        let e = format!("{v:.3e}");
+        let (mantissa, exponent) = e.split_once('e').expect("e-notation");
+        format!("{}e{exponent}", mantissa.trim_end_matches('0').trim_end_matches('.'))
     } else {
         let s = format!("{v:.6}");
         s.trim_end_matches('0').trim_end_matches('.').to_string()
@@ -315,18 +318,16 @@ fn draw(limit: &str, metric: Metric, points: &[Point], folds: usize) -> String {
             format!("{a} to {b} settings")
         }
     };
-    let _ = writeln!(
-        w,
-        r#"<text x="{LEFT}" y="52" fill="{MUTED}">{}</text>"#,
-        esc(&format!("Each point: the setting with the best validation {m} among those with that {limit} value ({per} per value)."))
+    let note = format!(
+        "Each point: the setting with the best validation {m} among the {per} with that {limit} value. \
+         Band and bars: validation mean ± 1 standard deviation over {folds} folds. \
+         A gap that widens between the lines is overfitting; both lines low is underfitting."
     );
-    let _ = writeln!(
-        w,
-        r#"<text x="{LEFT}" y="68" fill="{MUTED}">{}</text>"#,
-        esc(&format!("Band and bars: validation mean ± 1 standard deviation over {folds} folds. A widening gap between the lines means overfitting."))
-    );
+    for (i, text) in wrap(&note, 104).iter().take(3).enumerate() {
+        let _ = writeln!(w, r#"<text x="{LEFT}" y="{}" font-size="11.5" fill="{MUTED}">{}</text>"#, 50.0 + 15.0 * i as f64, esc(text));
+    }
     // Legend.
-    let ly = 90.0;
+    let ly = 100.0;
     let _ = writeln!(w, r#"<line x1="{LEFT}" y1="{ly}" x2="{}" y2="{ly}" stroke="{TRAIN_COLOUR}" stroke-width="2.5" stroke-dasharray="7 4"/>"#, LEFT + 28.0);
     let _ = writeln!(w, r#"<text x="{}" y="{}">training</text>"#, LEFT + 34.0, ly + 4.0);
     let v0 = LEFT + 110.0;
@@ -441,7 +442,8 @@ fn draw(limit: &str, metric: Metric, points: &[Point], folds: usize) -> String {
     if let Some(b) = points.iter().filter(|p| p.valid.is_finite()).min_by(|a, b| oriented(b).total_cmp(&oriented(a))) {
         let (bx, by) = (x.px(b.x), py(b.valid));
         let _ = writeln!(w, r#"<circle cx="{bx:.2}" cy="{by:.2}" r="9" fill="none" stroke="{VALID_COLOUR}" stroke-width="1.5"/>"#);
-        let below = by - TOP < 28.0;
+        // The training line usually lies on the better side of validation: label the other side.
+        let below = if metric.higher_is_better() { BOTTOM - by > 28.0 } else { by - TOP < 28.0 };
         let ty = if below { by + 24.0 } else { by - 15.0 };
         let _ = writeln!(w, r#"<text x="{bx:.2}" y="{ty:.2}" text-anchor="middle" fill="{VALID_COLOUR}" font-weight="bold">best</text>"#);
     }
@@ -450,6 +452,25 @@ fn draw(limit: &str, metric: Metric, points: &[Point], folds: usize) -> String {
     }
     let _ = writeln!(w, "</svg>");
     s
+}
+
+/// Words packed into lines of at most `width` characters (a long word gets its own line).
+fn wrap(text: &str, width: usize) -> Vec<String> {
+    let mut lines: Vec<String> = Vec::new();
+    let mut line = String::new();
+    for word in text.split_whitespace() {
+        if !line.is_empty() && line.chars().count() + 1 + word.chars().count() > width {
+            lines.push(std::mem::take(&mut line));
+        }
+        if !line.is_empty() {
+            line.push(' ');
+        }
+        line.push_str(word);
+    }
+    if !line.is_empty() {
+        lines.push(line);
+    }
+    lines
 }
 
 fn is_slot(x: &XAxis, v: X) -> bool {
@@ -589,6 +610,17 @@ mod tests {
     }
 
     #[test]
+    fn labels_are_short() {
+        assert_eq!(number(9.999999999999997e-6), "1e-5");
+        assert_eq!(number(2.5e-4), "2.5e-4");
+        assert_eq!(number(0.0010000000000000002), "0.001");
+        assert_eq!(number(0.05), "0.05");
+        assert_eq!(number(12.0), "12");
+        assert_eq!(wrap("aa bb cc", 5), ["aa bb", "cc"]);
+        assert_eq!(wrap("abcdefgh ij", 4), ["abcdefgh", "ij"]);
+    }
+
+    #[test]
     fn the_checker_rejects_broken_xml() {
         assert_eq!(well_formed(r#"<?xml version="1.0"?><svg a="1"><g><text>x &amp; y</text></g><line b='2'/></svg>"#), Ok("svg".into()));
         for bad in ["<svg><g></svg>", "<svg>a & b</svg>", "<svg a=1/>", "<svg/><svg/>", "<svg><g></g>", "<svg a=\"1\" a=\"2\"/>", "<svg a=\"x<y\"/>", "text<svg/>"] {
@@ -651,7 +683,7 @@ mod tests {
         assert!(depth.contains(">no limit</text>") && !depth.contains("log scale"));
         let gain = std::fs::read_to_string(dir.join("min_gain.svg")).unwrap();
         assert!(gain.contains("min_gain (log scale)") && gain.contains(">0</text>") && gain.contains(">1e-5</text>"));
-        std::fs::remove_dir_all(&dir).unwrap();
+        finish(&dir);
     }
 
     #[test]
@@ -715,8 +747,13 @@ mod tests {
             assert_eq!(well_formed(&text), Ok("svg".to_string()), "{}", f.display());
         }
         assert!(std::fs::read_to_string(dir.join("prune_alpha.svg")).unwrap().contains("prune_alpha (log scale)"));
+        finish(&dir);
+    }
+
+    /// Removes a test's plots, or keeps them for a look when `POLLARD_KEEP_PLOTS` is set.
+    fn finish(dir: &Path) {
         if std::env::var_os("POLLARD_KEEP_PLOTS").is_none() {
-            std::fs::remove_dir_all(&dir).unwrap();
+            std::fs::remove_dir_all(dir).unwrap();
         } else {
             eprintln!("plots kept in {}", dir.display());
         }

@@ -136,6 +136,21 @@ fn range(name: &str, flag: &Option<String>, file: &Option<String>) -> Result<Opt
     }
 }
 
+/// A TOML error on one line, `line L, column C: message` (the error's own text also quotes
+/// the source across several lines).
+fn toml_error(text: &str, e: &toml::de::Error) -> String {
+    let message = e.message().trim().replace('\n', "; ");
+    match e.span() {
+        Some(span) => {
+            let before = &text[..span.start.min(text.len())];
+            let line = before.matches('\n').count() + 1;
+            let column = before[before.rfind('\n').map_or(0, |i| i + 1)..].chars().count() + 1;
+            format!("line {line}, column {column}: {message}")
+        }
+        None => message,
+    }
+}
+
 impl GridArgs {
     /// The wire spec these flags (and the spec file) describe.
     pub fn to_spec(&self) -> Result<pb::SweepSpec, String> {
@@ -143,7 +158,7 @@ impl GridArgs {
             None => SpecFile::default(),
             Some(p) => {
                 let text = std::fs::read_to_string(p).map_err(|e| format!("{}: {e}", p.display()))?;
-                toml::from_str(&text).map_err(|e| format!("{}: {e}", p.display()))?
+                toml::from_str(&text).map_err(|e: toml::de::Error| format!("{}: {}", p.display(), toml_error(&text, &e)))?
             }
         };
         let l = &file.limits;

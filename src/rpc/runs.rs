@@ -98,6 +98,11 @@ impl pb::runs_server::Runs for Api {
             loop {
                 // Mark the version seen before reading, so no event slips between read and wait.
                 changed.borrow_and_update();
+                // Read the state before the events: a run already terminal has stored all its
+                // events, so an empty read after it means the caller has seen them all. (Read
+                // after the events, a run that ended in between would end the stream without
+                // its terminal event.)
+                let ended = matches!(shared.store.run(&r.id), Ok(Some(run)) if run.state.is_terminal());
                 let events = match shared.store.events(&r.id, after) {
                     Ok(e) => e,
                     Err(e) => {
@@ -116,13 +121,9 @@ impl pb::runs_server::Runs for Api {
                         return;
                     }
                 }
-                if events.is_empty() {
+                if events.is_empty() && ended {
                     // A terminal run whose events the caller has all seen: end the stream.
-                    if let Ok(Some(run)) = shared.store.run(&r.id) {
-                        if run.state.is_terminal() {
-                            return;
-                        }
-                    }
+                    return;
                 }
                 tokio::select! {
                     _ = changed.changed() => {}

@@ -246,8 +246,21 @@ fn retrying<A>(mut attempt: impl FnMut() -> Result<A, Abort>) -> Result<A, Store
 impl Store {
     /// Opens (or creates) the database in `dir`.
     pub fn open(dir: &Path) -> Result<Store, StoreError> {
-        let db = sled::Config::new().path(dir).open().map_err(|e| StoreError::Io(format!("cannot open the store at {}: {e}", dir.display())))?;
-        Store::with(db)
+        // sled releases its file lock only when the last thread of a closed database lets go,
+        // which can lag the close by a moment (a restart in the same process): wait for it a
+        // little while before calling the store taken.
+        let deadline = std::time::Instant::now() + std::time::Duration::from_secs(30);
+        loop {
+            // No background flusher: every change is flushed before it returns anyway, and the
+            // flusher thread is what keeps a closed database's lock alive.
+            match sled::Config::new().path(dir).flush_every_ms(None).open() {
+                Ok(db) => return Store::with(db),
+                Err(sled::Error::Io(e)) if e.kind() == std::io::ErrorKind::WouldBlock && std::time::Instant::now() < deadline => {
+                    std::thread::sleep(std::time::Duration::from_millis(20));
+                }
+                Err(e) => return Err(StoreError::Io(format!("cannot open the store at {}: {e}", dir.display()))),
+            }
+        }
     }
 
     /// A database that lives only as long as its last handle (for tests and the demo).

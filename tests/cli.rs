@@ -1,0 +1,841 @@
+//! The `pollard` binary as a user runs it: every command is a real subprocess
+//! (`CARGO_BIN_EXE_pollard`), and client commands talk to a real `pollard serve` subprocess on
+//! a free loopback port with its own store directory.
+//!
+//! Data: the open datasets in tests/data (iris, wine, breast_cancer, diabetes; sources and
+//! licences in tests/data/SOURCES.md). Where a test needs a smaller file it takes the first
+//! rows of one of those, and says so. The demo's data is its own synthetic reefer set.
+//!
+//! No fixed sleeps: every wait is on a condition (a port accepting, a run state, a process
+//! ending) polled with a deadline.
+
+use std::collections::{BTreeSet, HashMap};
+use std::io::Read;
+use std::net::{SocketAddr, TcpListener, TcpStream};
+use std::path::{Path, PathBuf};
+use std::process::{Child, Command, Stdio};
+use std::sync::atomic::{AtomicUsize, Ordering};
+use std::time::{Duration, Instant};
+
+use serde_json::Value;
+
+// ------------------------------------------------------------------ harness
+
+const BIN: &str = env!("CARGO_BIN_EXE_pollard");
+/// Interval between polls of a condition (never a wait for its own sake).
+const POLL: Duration = Duration::from_millis(25);
+/// How long any one command or condition may take before the test fails.
+const PATIENCE: Duration = Duration::from_secs(45);
+
+fn data(name: &str) -> PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/data").join(name)
+}
+
+/// A fresh directory under the system temp dir, removed on drop.
+struct TempDir(PathBuf);
+
+impl TempDir {
+    fn new(what: &str) -> TempDir {
+        static N: AtomicUsize = AtomicUsize::new(0);
+        let nanos = std::time::SystemTime::now().duration_since(std::time::UNIX_EPOCH).unwrap().as_nanos();
+        let p = std::env::temp_dir().join(format!("pollard-cli-{what}-{}-{nanos}-{}", std::process::id(), N.fetch_add(1, Ordering::Relaxed)));
+        std::fs::create_dir_all(&p).unwrap();
+        TempDir(p)
+    }
+    fn join(&self, name: &str) -> PathBuf {
+        self.0.join(name)
+    }
+}
+
+impl Drop for TempDir {
+    fn drop(&mut self) {
+        let _ = std::fs::remove_dir_all(&self.0);
+    }
+}
+
+/// A `pollard` command line with no `POLLARD_*` variables from the test's environment.
+fn command(args: &[&str]) -> Command {
+    let mut c = Command::new(BIN);
+    c.args(args);
+    for (k, _) in std::env::vars() {
+        if k.starts_with("POLLARD_") {
+            c.env_remove(k);
+        }
+    }
+    c.env("NO_COLOR", "1");
+    c
+}
+
+/// A child process killed (and reaped) on drop, so a failing test leaves nothing running.
+struct KillOnDrop(Child);
+
+impl Drop for KillOnDrop {
+    fn drop(&mut self) {
+        let _ = self.0.kill();
+        let _ = self.0.wait();
+    }
+}
+
+struct Out {
+    args: String,
+    code: Option<i32>,
+    stdout: String,
+    stderr: String,
+}
+
+impl Out {
+    fn describe(&self) -> String {
+        format!("`pollard {}` exited {:?}\n--- stdout\n{}\n--- stderr\n{}", self.args, self.code, self.stdout, self.stderr)
+    }
+
+    /// Asserts success with nothing on stderr; returns stdout.
+    fn ok(self) -> String {
+        assert_eq!(self.code, Some(0), "{}", self.describe());
+        assert!(self.stderr.is_empty(), "a successful command wrote to stderr: {}", self.describe());
+        self.stdout
+    }
+
+    fn json(self) -> Value {
+        let what = self.describe();
+        let text = self.ok();
+        assert_eq!(text.trim_end().lines().count(), 1, "--json output is one line: {what}");
+        serde_json::from_str(&text).unwrap_or_else(|e| panic!("not JSON ({e}): {what}"))
+    }
+
+    /// One JSON object per line.
+    fn json_lines(self) -> Vec<Value> {
+        let what = self.describe();
+        self.ok().lines().map(|l| serde_json::from_str(l).unwrap_or_else(|e| panic!("line {l:?} is not JSON ({e}): {what}"))).collect()
+    }
+
+    /// Asserts failure with exactly one line on stderr, `pollard: …`, and nothing on stdout;
+    /// returns that line.
+    fn fails(self) -> String {
+        assert!(matches!(self.code, Some(c) if c != 0), "expected a non-zero exit: {}", self.describe());
+        let lines: Vec<&str> = self.stderr.lines().collect();
+        assert_eq!(lines.len(), 1, "an error is one line on stderr: {}", self.describe());
+        assert!(lines[0].starts_with("pollard: ") && lines[0].len() > "pollard: ".len() + 10, "{}", self.describe());
+        assert!(self.stdout.is_empty(), "a failed command printed to stdout: {}", self.describe());
+        lines[0].to_string()
+    }
+}
+
+/// Runs `pollard ARGS` to its end (killed after PATIENCE).
+fn pollard(args: &[&str]) -> Out {
+    let mut child = command(args).stdin(Stdio::null()).stdout(Stdio::piped()).stderr(Stdio::piped()).spawn().expect("start pollard");
+    let mut so = child.stdout.take().unwrap();
+    let mut se = child.stderr.take().unwrap();
+    let t_out = std::thread::spawn(move || {
+        let mut s = String::new();
+        so.read_to_string(&mut s).map(|_| s)
+    });
+    let t_err = std::thread::spawn(move || {
+        let mut s = String::new();
+        se.read_to_string(&mut s).map(|_| s)
+    });
+    let mut child = KillOnDrop(child);
+    let deadline = Instant::now() + PATIENCE;
+    let status = loop {
+        if let Some(s) = child.0.try_wait().unwrap() {
+            break s;
+        }
+        assert!(Instant::now() < deadline, "`pollard {}` did not end within {PATIENCE:?}", args.join(" "));
+        std::thread::sleep(POLL);
+    };
+    Out { args: args.join(" "), code: status.code(), stdout: t_out.join().unwrap().unwrap(), stderr: t_err.join().unwrap().unwrap() }
+}
+
+/// `pollard --server URL ARGS`.
+fn client(server: &str, args: &[&str]) -> Out {
+    let mut all = vec!["--server", server];
+    all.extend_from_slice(args);
+    pollard(&all)
+}
+
+/// `pollard serve` on a free loopback port with a fresh store; killed on drop.
+struct Serve {
+    url: String,
+    child: Option<KillOnDrop>,
+    log: PathBuf,
+    _dir: TempDir,
+}
+
+fn free_port() -> u16 {
+    TcpListener::bind("127.0.0.1:0").unwrap().local_addr().unwrap().port()
+}
+
+impl Serve {
+    fn start() -> Serve {
+        // The port is free when picked; should another process take it before the server
+        // binds, the server exits with "cannot listen" and we try another.
+        for _ in 0..3 {
+            let dir = TempDir::new("serve");
+            let port = free_port();
+            let log = dir.join("serve.log");
+            let listen = format!("127.0.0.1:{port}");
+            let store = dir.join("store");
+            let child = command(&["serve", "--listen", &listen, "--data", store.to_str().unwrap()])
+                .stdin(Stdio::null())
+                .stdout(std::fs::File::create(dir.join("serve.out")).unwrap())
+                .stderr(std::fs::File::create(&log).unwrap())
+                .spawn()
+                .expect("start pollard serve");
+            let mut child = KillOnDrop(child);
+            let addr: SocketAddr = listen.parse().unwrap();
+            let deadline = Instant::now() + PATIENCE;
+            loop {
+                if let Some(status) = child.0.try_wait().unwrap() {
+                    let text = std::fs::read_to_string(&log).unwrap_or_default();
+                    assert!(text.contains("cannot listen"), "pollard serve exited {status} before taking calls:\n{text}");
+                    break;
+                }
+                if TcpStream::connect_timeout(&addr, Duration::from_millis(200)).is_ok() {
+                    return Serve { url: format!("http://{listen}"), child: Some(child), log, _dir: dir };
+                }
+                assert!(Instant::now() < deadline, "pollard serve did not take calls within {PATIENCE:?}");
+                std::thread::sleep(POLL);
+            }
+        }
+        panic!("could not start pollard serve on a free port");
+    }
+
+    fn run(&self, args: &[&str]) -> Out {
+        client(&self.url, args)
+    }
+}
+
+impl Drop for Serve {
+    fn drop(&mut self) {
+        drop(self.child.take());
+        if std::thread::panicking() {
+            eprintln!("--- server log\n{}", std::fs::read_to_string(&self.log).unwrap_or_default());
+        }
+    }
+}
+
+fn s<'a>(v: &'a Value, key: &str) -> &'a str {
+    v[key].as_str().unwrap_or_else(|| panic!("'{key}' is not a string in {v}"))
+}
+
+fn u(v: &Value, key: &str) -> u64 {
+    v[key].as_u64().unwrap_or_else(|| panic!("'{key}' is not a count in {v}"))
+}
+
+fn arr<'a>(v: &'a Value, key: &str) -> &'a Vec<Value> {
+    v[key].as_array().unwrap_or_else(|| panic!("'{key}' is not an array in {v}"))
+}
+
+fn ids(list: &Value) -> Vec<String> {
+    list.as_array().expect("a JSON list").iter().map(|r| s(r, "id").to_string()).collect()
+}
+
+/// Follows a run to its end with `follow --json`; checks the event stream's shape and returns
+/// the events.
+fn follow_to_end(server: &Serve, run: &str) -> Vec<Value> {
+    let events = server.run(&["follow", run, "--json"]).json_lines();
+    check_events(run, &events);
+    events
+}
+
+fn check_events(run: &str, events: &[Value]) {
+    assert!(!events.is_empty(), "no events for {run}");
+    for (i, e) in events.iter().enumerate() {
+        assert_eq!(s(e, "run_id"), run, "{e}");
+        assert_eq!(u(e, "sequence"), i as u64 + 1, "sequence numbers run 1, 2, …: {e}");
+        assert!(["progress", "scored", "finished", "failed", "cancelled"].contains(&s(e, "kind")), "{e}");
+        assert!(s(e, "at").contains('T'), "RFC 3339 time: {e}");
+    }
+    let ends = events.iter().filter(|e| ["finished", "failed", "cancelled"].contains(&s(e, "kind"))).count();
+    assert_eq!(ends, 1, "exactly one end event, and it is last: {events:?}");
+    assert!(["finished", "failed", "cancelled"].contains(&s(events.last().unwrap(), "kind")));
+}
+
+/// Data rows of a `show`/`local` table: the lines between the column header and the
+/// `pick rule` line.
+fn table_rows(text: &str) -> Vec<String> {
+    let lines: Vec<&str> = text.lines().collect();
+    let head = lines.iter().position(|l| l.trim_start().starts_with("grid#")).unwrap_or_else(|| panic!("no table header in:\n{text}"));
+    lines[head + 1..].iter().take_while(|l| !l.starts_with("pick rule") && !l.starts_with("model:")).map(|l| l.to_string()).collect()
+}
+
+/// The set of values one limit takes over a run's scores (null = no limit), as text.
+fn limit_values(scores: &[Value], limit: &str) -> BTreeSet<String> {
+    scores.iter().map(|sc| sc["limits"][limit].to_string()).collect()
+}
+
+/// DOT node statements: `  n<id> [ …];` (edges are `n<a> -> n<b> …`).
+fn dot_nodes(dot: &str) -> usize {
+    dot.lines()
+        .filter(|l| {
+            let t = l.trim_start();
+            t.starts_with('n') && t[1..].split_once(' ').is_some_and(|(id, rest)| !id.is_empty() && id.bytes().all(|b| b.is_ascii_digit()) && rest.starts_with('['))
+        })
+        .count()
+}
+
+fn read_tree(path: &Path) -> pollard::tree::Tree {
+    pollard::export::from_json(&std::fs::read_to_string(path).unwrap()).unwrap_or_else(|e| panic!("{}: {e}", path.display()))
+}
+
+// ------------------------------------------------------------------ client commands
+
+#[test]
+fn put_sweep_follow_show_runs_model_predict() {
+    let server = Serve::start();
+    let tmp = TempDir::new("client");
+    let iris_csv = data("iris.csv");
+    let iris_path = iris_csv.to_str().unwrap();
+
+    // put, JSON and table.
+    let iris = server.run(&["put", iris_path, "--name", "iris", "--target", "target", "--json"]).json();
+    let iris_id = s(&iris, "id").to_string();
+    assert!(iris_id.starts_with("ds_") && iris_id.len() > 10, "{iris}");
+    assert_eq!((s(&iris, "name"), u(&iris, "version"), u(&iris, "rows"), s(&iris, "target"), s(&iris, "task")), ("iris", 1, 150, "target", "classify"));
+    let columns: Vec<&str> = arr(&iris, "columns").iter().map(|c| s(c, "name")).collect();
+    assert_eq!(columns, ["sepal_length_cm", "sepal_width_cm", "petal_length_cm", "petal_width_cm"]);
+    assert!(arr(&iris, "columns").iter().all(|c| s(c, "kind") == "numeric" && u(c, "missing") == 0));
+    let wine_line = server.run(&["put", data("wine.csv").to_str().unwrap(), "--name", "wine", "--target", "target"]).ok();
+    assert_eq!(wine_line.lines().count(), 1, "{wine_line}");
+    assert!(wine_line.starts_with("ds_") && wine_line.contains("wine") && wine_line.contains("178 rows") && wine_line.contains("13 columns"), "{wine_line}");
+    let wine_id = wine_line.split_whitespace().next().unwrap().to_string();
+    // The same bytes under the same name are the same dataset (its id is a content hash).
+    let again = server.run(&["put", iris_path, "--name", "iris", "--target", "target", "--json"]).json();
+    assert_eq!((s(&again, "id"), u(&again, "version")), (iris_id.as_str(), 1));
+
+    // datasets, JSON, table and --name.
+    let all = server.run(&["datasets", "--json"]).json();
+    let mut listed = ids(&all);
+    listed.sort();
+    let mut want = vec![iris_id.clone(), wine_id.clone()];
+    want.sort();
+    assert_eq!(listed, want);
+    assert!(all.as_array().unwrap().iter().all(|d| s(d, "id").starts_with("ds_") && !s(d, "created_at").is_empty()));
+    let table = server.run(&["datasets"]).ok();
+    assert_eq!(table.lines().count(), 2, "{table}");
+    assert!(table.lines().any(|l| l.starts_with(&iris_id)) && table.lines().any(|l| l.starts_with(&wine_id)), "{table}");
+    assert_eq!(ids(&server.run(&["datasets", "--name", "wine", "--json"]).json()), [wine_id.clone()]);
+
+    // sweep with each form of the range syntax; 3 × 3 × 3 = 27 settings.
+    let grid = ["--max-depth", "2,4,none", "--min-leaf-rows", "lin(1,5,2)", "--min-gain", "log(0.001,0.1,3)"];
+    let mut args = vec!["sweep", "--dataset", "iris", "--label", "team=alpha", "--json"];
+    args.extend_from_slice(&grid);
+    let started = server.run(&args).json();
+    let r1 = s(&started, "id").to_string();
+    assert!(r1.starts_with("run_"), "{started}");
+    assert!(["queued", "running", "finished"].contains(&s(&started, "state")), "{started}");
+    assert_eq!((s(&started, "dataset_id"), s(&started, "dataset_name")), (iris_id.as_str(), "iris"));
+    assert_eq!(started["labels"], serde_json::json!({"team": "alpha"}));
+
+    // follow --json: every event, then the end.
+    let events = follow_to_end(&server, &r1);
+    let last = events.last().unwrap();
+    assert_eq!(s(last, "kind"), "finished", "{last}");
+    assert_eq!(u(&last["event"], "settings"), 27, "{last}");
+    assert_eq!(events.iter().filter(|e| s(e, "kind") == "scored").count(), 27);
+    assert!(events.iter().any(|e| s(e, "kind") == "progress"));
+    // follow --after resumes after a sequence number.
+    let resumed = server.run(&["follow", &r1, "--after", "3", "--json"]).json_lines();
+    assert_eq!(resumed.len(), events.len() - 3);
+    assert_eq!(resumed[0], events[3]);
+    // follow as a table: one line naming the end.
+    assert_eq!(server.run(&["follow", &r1]).ok(), format!("run {r1}: finished\n"));
+
+    // show --json: the grid the range syntax described.
+    let shown = server.run(&["show", &r1, "--json"]).json();
+    assert_eq!((s(&shown, "id"), s(&shown, "state"), u(&shown, "settings")), (r1.as_str(), "finished", 27));
+    let scores = arr(&shown, "scores");
+    assert_eq!(scores.len(), 27);
+    assert_eq!(limit_values(scores, "max_depth"), ["2", "4", "null"].map(String::from).into());
+    assert_eq!(limit_values(scores, "min_leaf_rows"), ["1", "3", "5"].map(String::from).into());
+    let gains: BTreeSet<u64> = scores.iter().map(|sc| sc["limits"]["min_gain"].as_f64().unwrap().to_bits()).collect();
+    let gains: Vec<f64> = gains.into_iter().map(f64::from_bits).collect();
+    assert_eq!(gains.len(), 3, "{gains:?}");
+    let mut sorted = gains.clone();
+    sorted.sort_by(f64::total_cmp);
+    for (g, want) in sorted.iter().zip([0.001, 0.01, 0.1]) {
+        assert!((g - want).abs() <= 1e-12, "min_gain {g} (want {want})");
+    }
+    for (i, sc) in scores.iter().enumerate() {
+        assert_eq!(u(sc, "index"), i as u64);
+        assert_eq!(arr(sc, "fold_scores").len(), 5, "default folds: 5");
+    }
+    let (picked, best) = (u(&shown, "picked"), u(&shown, "best"));
+    assert!(picked < 27 && best < 27);
+    let model_nodes = u(&shown["model"], "nodes");
+    assert!(model_nodes >= 3 && model_nodes % 2 == 1, "{shown}");
+    assert_eq!(shown["model"]["classes"], serde_json::json!(["setosa", "versicolor", "virginica"]));
+
+    // show as a table: the run line, the top settings and the pick.
+    let text = server.run(&["show", &r1, "--top", "3"]).ok();
+    assert!(text.lines().next().unwrap().starts_with(&format!("{r1}  finished")), "{text}");
+    let rows = table_rows(&text);
+    assert!((3..=5).contains(&rows.len()), "three best, plus the pick and the best if not among them:\n{text}");
+    assert!(rows.iter().any(|r| r.trim_start().starts_with(&format!("{picked} ")) && r.contains("picked")), "{text}");
+    assert!(text.contains(&format!("pick rule highest: grid# {picked}")), "{text}");
+    assert!(text.contains(&format!("model: {model_nodes} nodes")), "{text}");
+
+    // local, with the same flags, scores the same folds the same way as the server.
+    let mut args = vec!["local", iris_path, "--target", "target", "--json"];
+    args.extend_from_slice(&grid);
+    let local = pollard(&args).json();
+    let local_scores = arr(&local, "scores");
+    assert_eq!(local_scores.len(), 27);
+    for (a, b) in local_scores.iter().zip(scores) {
+        assert_eq!(a["limits"], b["limits"]);
+        assert_eq!(a["fold_scores"], b["fold_scores"], "local and served scores of setting {}", a["index"]);
+    }
+    assert_eq!((u(&local, "picked"), u(&local, "best")), (picked, best));
+
+    // sweep from a TOML spec file; a flag (--k 4) wins over the file (k = 3).
+    let spec = tmp.join("wine.toml");
+    std::fs::write(
+        &spec,
+        "target = \"target\"\nmetric = \"balanced_accuracy\"\npick = \"one_se\"\nseed = 7\ncriteria = [\"gini\", \"entropy\"]\n\n[limits]\nmax_depth = \"lin(1,3,1)\"\nmin_leaf_rows = \"2\"\n\n[folds]\nscheme = \"stratified\"\nk = 3\n",
+    )
+    .unwrap();
+    let lines = server.run(&["sweep", "--dataset", &wine_id, "--spec", spec.to_str().unwrap(), "--k", "4", "--label", "team=beta", "--follow", "--json"]).json_lines();
+    let r2 = s(&lines[0], "run_id").to_string();
+    check_events(&r2, &lines);
+    assert_eq!(s(lines.last().unwrap(), "kind"), "finished", "{lines:?}");
+    let shown2 = server.run(&["show", &r2, "--json"]).json();
+    assert_eq!((s(&shown2, "state"), s(&shown2, "metric"), u(&shown2, "settings")), ("finished", "balanced_accuracy", 6));
+    assert_eq!(s(&shown2, "dataset_name"), "wine");
+    let scores2 = arr(&shown2, "scores");
+    assert_eq!(limit_values(scores2, "max_depth"), ["1", "2", "3"].map(String::from).into());
+    assert_eq!(limit_values(scores2, "criterion"), ["\"entropy\"", "\"gini\""].map(String::from).into());
+    assert_eq!(limit_values(scores2, "min_leaf_rows"), ["2"].map(String::from).into());
+    assert!(scores2.iter().all(|sc| arr(sc, "fold_scores").len() == 4), "--k 4 wins over the file's k = 3");
+    let table2 = server.run(&["show", &r2]).ok();
+    assert!(table2.contains("pick rule one_se: grid#"), "{table2}");
+    assert!(table2.contains("balanced_accuracy"), "{table2}");
+
+    // sweep --follow as a table: started, the end, then the run shown.
+    let text = server.run(&["sweep", "--dataset", "iris", "--max-depth", "1,3", "--follow"]).ok();
+    let first = text.lines().next().unwrap();
+    let r3 = first.strip_prefix("started ").unwrap_or_else(|| panic!("{text}")).to_string();
+    assert!(r3.starts_with("run_"));
+    assert!(text.contains(&format!("run {r3}: finished")), "{text}");
+    assert!(text.lines().any(|l| l.starts_with(&format!("{r3}  finished"))), "{text}");
+    assert_eq!(table_rows(&text).len(), 2, "{text}");
+
+    // runs: newest first, and each filter.
+    let every = server.run(&["runs", "--json"]).json();
+    assert_eq!(ids(&every), [r3.clone(), r2.clone(), r1.clone()]);
+    assert!(every.as_array().unwrap().iter().all(|r| s(r, "state") == "finished"));
+    let table = server.run(&["runs"]).ok();
+    let firsts: Vec<&str> = table.lines().map(|l| l.split_whitespace().next().unwrap()).collect();
+    assert_eq!(firsts, [r3.as_str(), r2.as_str(), r1.as_str()], "{table}");
+    assert_eq!(ids(&server.run(&["runs", "--dataset", "wine", "--json"]).json()), [r2.clone()]);
+    assert_eq!(ids(&server.run(&["runs", "--dataset", "iris", "--json"]).json()), [r3.clone(), r1.clone()]);
+    assert_eq!(ids(&server.run(&["runs", "--state", "finished", "--json"]).json()), [r3.clone(), r2.clone(), r1.clone()]);
+    assert_eq!(ids(&server.run(&["runs", "--state", "queued", "--json"]).json()), Vec::<String>::new());
+    assert_eq!(server.run(&["runs", "--state", "running"]).ok(), "");
+    assert_eq!(ids(&server.run(&["runs", "--label", "team=alpha", "--json"]).json()), [r1.clone()]);
+    assert_eq!(ids(&server.run(&["runs", "--label", "team=beta", "--json"]).json()), [r2.clone()]);
+    assert_eq!(ids(&server.run(&["runs", "--limit", "1", "--json"]).json()), [r3.clone()]);
+    let t2 = s(&shown2, "created_at").to_string();
+    assert_eq!(ids(&server.run(&["runs", "--from", &t2, "--json"]).json()), [r3.clone(), r2.clone()], "--from {t2} is inclusive");
+    assert_eq!(ids(&server.run(&["runs", "--to", &t2, "--json"]).json()), [r1.clone()], "--to {t2} is exclusive");
+    assert_eq!(ids(&server.run(&["runs", "--dataset", "iris", "--label", "team=alpha", "--state", "finished", "--json"]).json()), [r1.clone()]);
+
+    // model: json, dot and text on stdout; each to a file; protobuf to a file.
+    let json_text = server.run(&["model", &r1, "--format", "json"]).ok();
+    let json_file = tmp.join("model.json");
+    let wrote = server.run(&["model", &r1, "--format", "json", "--out", json_file.to_str().unwrap(), "--json"]).json();
+    assert_eq!((s(&wrote, "run_id"), s(&wrote, "format"), s(&wrote, "path")), (r1.as_str(), "json", json_file.to_str().unwrap()));
+    assert_eq!(std::fs::read_to_string(&json_file).unwrap(), json_text, "stdout and --out carry the same bytes");
+    assert_eq!(u(&wrote, "bytes"), json_text.len() as u64);
+    let tree = read_tree(&json_file);
+    assert_eq!(tree.nodes.len() as u64, model_nodes);
+    assert_eq!(tree.labels, ["setosa", "versicolor", "virginica"]);
+    let dot = server.run(&["model", &r1, "--format", "dot"]).ok();
+    assert!(dot.starts_with("digraph ") && dot.trim_end().ends_with('}'), "{dot}");
+    assert_eq!(dot_nodes(&dot), tree.nodes.len(), "{dot}");
+    assert_eq!(dot.matches(" -> ").count(), tree.nodes.len() - 1, "{dot}");
+    let text = server.run(&["model", &r1]).ok();
+    assert_eq!(text, server.run(&["model", &r1, "--format", "text"]).ok(), "text is the default format");
+    assert!(text.lines().last().unwrap().starts_with(&format!("{} leaves, depth {}", tree.n_leaves(), tree.depth())), "{text}");
+    let pb_file = tmp.join("model.pb");
+    let line = server.run(&["model", &r1, "--format", "protobuf", "--out", pb_file.to_str().unwrap()]).ok();
+    let bytes = std::fs::read(&pb_file).unwrap();
+    assert_eq!(line, format!("wrote {} ({} bytes)\n", pb_file.display(), bytes.len()));
+    let decoded = <pollard::pb::Model as prost::Message>::decode(&bytes[..]).expect("a pollard.v1.Model message");
+    assert_eq!(decoded.nodes.len(), tree.nodes.len());
+    assert_eq!(pollard::rpc::convert::model_from(&decoded).unwrap(), tree, "the protobuf and the JSON model are the same tree");
+
+    // predict: the server's answers are the model's own, row by row.
+    let ds = pollard::data::csv::read_dataset(std::fs::File::open(&iris_csv).unwrap(), &pollard::data::csv::CsvOptions::new("target")).unwrap();
+    let (classes, probabilities) = match tree.predict(&ds.frame) {
+        pollard::tree::Predictions::Classes { classes, probabilities } => (classes, probabilities),
+        other => panic!("{other:?}"),
+    };
+    let got = server.run(&["predict", &r1, iris_path, "--json"]).json();
+    let want_labels: Vec<&str> = classes.iter().map(|&c| tree.labels[c as usize].as_str()).collect();
+    assert_eq!(arr(&got, "predicted").iter().map(|v| v.as_str().unwrap()).collect::<Vec<_>>(), want_labels);
+    assert_eq!(arr(&got, "probabilities").iter().map(|v| v.as_f64().unwrap()).collect::<Vec<_>>(), probabilities);
+    assert_eq!(got["classes"], serde_json::json!(["setosa", "versicolor", "virginica"]));
+    assert_eq!(arr(&got, "values").len(), 0);
+    // As CSV, on the first 20 rows of iris without the target column.
+    let few = tmp.join("few.csv");
+    let source = std::fs::read_to_string(&iris_csv).unwrap();
+    let cut: String = source.lines().take(21).map(|l| l.rsplit_once(',').unwrap().0.to_string() + "\n").collect();
+    std::fs::write(&few, cut).unwrap();
+    let text = server.run(&["predict", &r1, few.to_str().unwrap()]).ok();
+    let lines: Vec<&str> = text.lines().collect();
+    assert_eq!(lines[0], "row,predicted,p_setosa,p_versicolor,p_virginica");
+    assert_eq!(lines.len(), 21, "{text}");
+    for (i, l) in lines[1..].iter().enumerate() {
+        let p = &probabilities[i * 3..i * 3 + 3];
+        assert_eq!(*l, format!("{},{},{:.4},{:.4},{:.4}", i + 1, want_labels[i], p[0], p[1], p[2]));
+    }
+}
+
+#[test]
+fn cancel_a_running_and_a_queued_run() {
+    let server = Serve::start();
+    let cancer = server.run(&["put", data("breast_cancer.csv").to_str().unwrap(), "--name", "breast_cancer", "--target", "target", "--json"]).json();
+    server.run(&["put", data("iris.csv").to_str().unwrap(), "--name", "iris", "--target", "target", "--json"]).json();
+    // Far longer than the test lets it run: 2 criteria × 2 weightings × 5 min_leaf_rows ×
+    // 12 max_depth = 240 settings on 10 folds × 30 repeats, 6,000 work units.
+    let long = server
+        .run(&[
+            "sweep", "--dataset", s(&cancer, "id"), "--criteria", "gini,entropy", "--class-weights", "none,balanced", "--min-leaf-rows", "1,2,4,8,16", "--max-depth", "lin(1,12,1)", "--folds", "stratified",
+            "--k", "10", "--repeats", "30", "--seed", "5", "--json",
+        ])
+        .json();
+    let long_id = s(&long, "id").to_string();
+    // The server runs one run at a time (the default), so this one waits.
+    let queued = server.run(&["sweep", "--dataset", "iris", "--max-depth", "1,2", "--json"]).json();
+    let queued_id = s(&queued, "id").to_string();
+
+    // A follower of the long run, in the background.
+    let mut child = command(&["--server", &server.url, "follow", &long_id, "--json"]).stdin(Stdio::null()).stdout(Stdio::piped()).stderr(Stdio::piped()).spawn().unwrap();
+    let mut so = child.stdout.take().unwrap();
+    let reader = std::thread::spawn(move || {
+        let mut s = String::new();
+        so.read_to_string(&mut s).map(|_| s)
+    });
+    let mut follower = KillOnDrop(child);
+
+    let deadline = Instant::now() + PATIENCE;
+    let running = loop {
+        let r = server.run(&["show", &long_id, "--json"]).json();
+        if s(&r, "state") == "running" && u(&r, "units_done") >= 1 {
+            break r;
+        }
+        assert!(["queued", "running"].contains(&s(&r, "state")), "{r}");
+        assert!(Instant::now() < deadline, "the long run did not start: {r}");
+        std::thread::sleep(POLL);
+    };
+    assert_eq!((u(&running, "settings"), u(&running, "units_total")), (240, 6000));
+    assert_eq!(s(&server.run(&["show", &queued_id, "--json"]).json(), "state"), "queued");
+    assert_eq!(ids(&server.run(&["runs", "--state", "running", "--json"]).json()), [long_id.clone()]);
+    assert_eq!(ids(&server.run(&["runs", "--state", "queued", "--json"]).json()), [queued_id.clone()]);
+    let refused = server.run(&["model", &long_id]).fails();
+    assert!(refused.contains("FailedPrecondition") && refused.contains(&long_id), "{refused}");
+
+    // Cancelling the queued run ends it at once.
+    let c = server.run(&["cancel", &queued_id, "--json"]).json();
+    assert_eq!((s(&c, "id"), s(&c, "state")), (queued_id.as_str(), "cancelled"));
+    let events = follow_to_end(&server, &queued_id);
+    assert_eq!(events.len(), 1, "{events:?}");
+    assert_eq!(s(&events[0], "kind"), "cancelled");
+
+    // Cancelling the running run: it stops within a few units and the follower hears so.
+    let line = server.run(&["cancel", &long_id]).ok();
+    assert!(line.starts_with(&long_id), "{line}");
+    let deadline = Instant::now() + PATIENCE;
+    let status = loop {
+        if let Some(st) = follower.0.try_wait().unwrap() {
+            break st;
+        }
+        assert!(Instant::now() < deadline, "the follower did not end after the cancel");
+        std::thread::sleep(POLL);
+    };
+    assert!(status.success(), "follow exits 0 once the run has ended, however it ended: {status}");
+    let text = reader.join().unwrap().unwrap();
+    let events: Vec<Value> = text.lines().map(|l| serde_json::from_str(l).unwrap()).collect();
+    check_events(&long_id, &events);
+    let last = events.last().unwrap();
+    assert_eq!(s(last, "kind"), "cancelled", "{last}");
+    assert!(s(&last["event"], "reason").contains("cancel"), "{last}");
+
+    let ended = server.run(&["show", &long_id, "--json"]).json();
+    assert_eq!(s(&ended, "state"), "cancelled");
+    assert!(s(&ended, "reason").contains("cancel") && !s(&ended, "finished_at").is_empty(), "{ended}");
+    assert!(u(&ended, "units_done") < 6000);
+    let text = server.run(&["show", &long_id]).ok();
+    assert!(text.lines().next().unwrap().starts_with(&format!("{long_id}  cancelled")), "{text}");
+    assert_eq!(server.run(&["follow", &long_id]).ok(), format!("run {long_id}: cancelled: {}\n", s(&last["event"], "reason")));
+    // Cancelling twice is harmless.
+    assert_eq!(s(&server.run(&["cancel", &long_id, "--json"]).json(), "state"), "cancelled");
+    let mut both = ids(&server.run(&["runs", "--state", "cancelled", "--json"]).json());
+    both.sort();
+    let mut want = vec![long_id.clone(), queued_id.clone()];
+    want.sort();
+    assert_eq!(both, want);
+    let refused = server.run(&["predict", &long_id, data("breast_cancer.csv").to_str().unwrap()]).fails();
+    assert!(refused.contains("FailedPrecondition") && refused.contains("cancelled"), "{refused}");
+}
+
+// ------------------------------------------------------------------ errors
+
+#[test]
+fn errors_exit_non_zero_with_one_line() {
+    let server = Serve::start();
+    let tmp = TempDir::new("errors");
+    server.run(&["put", data("iris.csv").to_str().unwrap(), "--name", "iris", "--target", "target", "--json"]).json();
+    let iris = data("iris.csv");
+    let iris = iris.to_str().unwrap();
+
+    // Unknown run ids: NotFound, naming the id, for every command that takes one.
+    for args in [vec!["show", "run_nothing"], vec!["cancel", "run_nothing"], vec!["follow", "run_nothing"], vec!["model", "run_nothing", "--format", "json"], vec!["predict", "run_nothing", iris]] {
+        let e = server.run(&args).fails();
+        assert!(e.contains("NotFound") && e.contains("run_nothing"), "{args:?}: {e}");
+    }
+    let e = server.run(&["show", "run_nothing", "--json"]).fails();
+    assert!(e.contains("NotFound"), "{e}");
+    let e = server.run(&["sweep", "--dataset", "no_such_name", "--max-depth", "2"]).fails();
+    assert!(e.contains("NotFound") && e.contains("no_such_name"), "{e}");
+
+    // Bad range syntax names the flag and what is wrong; nothing is started.
+    for (flag, range, needle) in [
+        ("--max-depth", "lin(1,2)", "three numbers"),
+        ("--max-depth", "2,x", "'x'"),
+        ("--min-gain", "log(0.001,0.1,2.5)", "whole number"),
+        ("--min-leaf-rows", "lin(1,a,2)", "'a'"),
+        ("--max-leaves", "", "at least one value"),
+    ] {
+        let e = server.run(&["sweep", "--dataset", "iris", flag, range]).fails();
+        assert!(e.contains(flag) && e.contains(needle), "{flag} {range:?}: {e}");
+        let e = pollard(&["local", iris, "--target", "target", flag, range]).fails();
+        assert!(e.contains(flag) && e.contains(needle), "local {flag} {range:?}: {e}");
+    }
+    assert_eq!(ids(&server.run(&["runs", "--json"]).json()), Vec::<String>::new(), "no run was started by a bad command");
+
+    // Other bad flags.
+    let e = server.run(&["runs", "--state", "sleeping"]).fails();
+    assert!(e.contains("--state") && e.contains("sleeping"), "{e}");
+    let e = server.run(&["sweep", "--dataset", "iris", "--label", "nokey"]).fails();
+    assert!(e.contains("--label") && e.contains("nokey"), "{e}");
+    let e = server.run(&["model", "run_nothing", "--format", "xml"]).fails();
+    assert!(e.contains("--format") && e.contains("xml"), "{e}");
+
+    // An unreachable server: a clear message naming the address.
+    let closed = format!("http://127.0.0.1:{}", free_port());
+    for args in [vec!["runs"], vec!["datasets", "--json"], vec!["show", "run_nothing"], vec!["put", iris, "--name", "iris"]] {
+        let e = client(&closed, &args).fails();
+        assert!(e.contains("cannot reach") && e.contains(&closed), "{args:?}: {e}");
+    }
+    let e = client("not a url", &["runs"]).fails();
+    assert!(e.contains("--server") && e.contains("not a url"), "{e}");
+
+    // Missing files name the path.
+    let missing = tmp.join("absent.csv");
+    let missing = missing.to_str().unwrap();
+    let e = server.run(&["put", missing, "--name", "x"]).fails();
+    assert!(e.contains(missing), "{e}");
+    let e = server.run(&["predict", "run_nothing", missing]).fails();
+    assert!(e.contains(missing), "{e}");
+    let e = pollard(&["local", missing, "--target", "target"]).fails();
+    assert!(e.contains(missing), "{e}");
+    let e = pollard(&["folds", "--data", missing, "--target", "target"]).fails();
+    assert!(e.contains(missing), "{e}");
+    let toml = tmp.join("absent.toml");
+    let e = server.run(&["sweep", "--dataset", "iris", "--spec", toml.to_str().unwrap()]).fails();
+    assert!(e.contains(toml.to_str().unwrap()), "{e}");
+
+    // A spec file with a key of no meaning names the file and the key.
+    let bad = tmp.join("bad.toml");
+    std::fs::write(&bad, "[limits]\nmax_depth = \"2,4\"\ndepth_cap = \"3\"\n").unwrap();
+    let e = server.run(&["sweep", "--dataset", "iris", "--spec", bad.to_str().unwrap()]).fails();
+    assert!(e.contains(bad.to_str().unwrap()) && e.contains("line 3, column 1") && e.contains("depth_cap"), "{e}");
+    let broken = tmp.join("broken.toml");
+    std::fs::write(&broken, "metric = \"accuracy\"\n[limits\nmax_depth = \"2\"\n").unwrap();
+    let e = server.run(&["sweep", "--dataset", "iris", "--spec", broken.to_str().unwrap()]).fails();
+    assert!(e.contains(broken.to_str().unwrap()) && e.contains("line 2"), "{e}");
+    let e = pollard(&["local", iris, "--spec", bad.to_str().unwrap()]).fails();
+    assert!(e.contains("depth_cap"), "{e}");
+
+    // Without --out, protobuf (binary) is refused rather than written to a terminal.
+    let done = server.run(&["sweep", "--dataset", "iris", "--max-depth", "2", "--json"]).json();
+    let id = s(&done, "id").to_string();
+    follow_to_end(&server, &id);
+    let e = server.run(&["model", &id, "--format", "protobuf"]).fails();
+    assert!(e.contains("--out"), "{e}");
+    // Writing to a directory that does not exist names the path.
+    let nowhere = tmp.join("no/such/dir/model.json");
+    let e = server.run(&["model", &id, "--format", "json", "--out", nowhere.to_str().unwrap()]).fails();
+    assert!(e.contains(nowhere.to_str().unwrap()), "{e}");
+    // A CSV whose rows are ragged (the first rows of iris with one field dropped from row 3).
+    let ragged = tmp.join("ragged.csv");
+    let text: Vec<String> = std::fs::read_to_string(iris).unwrap().lines().take(5).map(String::from).collect();
+    let mut text = text;
+    text[3] = text[3].rsplit_once(',').unwrap().0.to_string();
+    std::fs::write(&ragged, text.join("\n") + "\n").unwrap();
+    let e = server.run(&["predict", &id, ragged.to_str().unwrap()]).fails();
+    assert!(e.contains(ragged.to_str().unwrap()) && e.contains("row 3"), "{e}");
+
+    // Local and folds without a target.
+    let e = pollard(&["local", iris, "--max-depth", "2"]).fails();
+    assert!(e.contains("--target"), "{e}");
+    let e = pollard(&["folds", "--data", iris, "--target", "target", "--scheme", "grouped"]).fails();
+    assert!(e.contains("--column"), "{e}");
+    let e = pollard(&["folds", "--data", iris, "--target", "target", "--scheme", "lucky"]).fails();
+    assert!(e.contains("--scheme") && e.contains("lucky"), "{e}");
+}
+
+// ------------------------------------------------------------------ no server
+
+#[test]
+fn local_and_folds() {
+    let tmp = TempDir::new("local");
+    let iris = data("iris.csv");
+    let iris = iris.to_str().unwrap();
+    let model = tmp.join("model.json");
+    // 3 × 2 × 2 = 12 settings on 3 folds.
+    let r = pollard(&[
+        "local", iris, "--target", "target", "--max-depth", "1,3,none", "--min-split-rows", "lin(2,12,10)", "--prune-alpha", "log(0.001,0.01,2)", "--k", "3", "--seed", "11", "--model-out", model.to_str().unwrap(),
+        "--json",
+    ])
+    .json();
+    let scores = arr(&r, "scores");
+    assert_eq!(scores.len(), 12, "the grid's size");
+    assert_eq!(s(&r, "metric"), "accuracy");
+    assert_eq!(s(&r, "pick"), "highest");
+    assert!(scores.iter().all(|sc| arr(sc, "fold_scores").len() == 3));
+    assert_eq!(limit_values(scores, "min_split_rows"), ["12", "2"].map(String::from).into());
+    assert_eq!(limit_values(scores, "max_depth"), ["1", "3", "null"].map(String::from).into());
+    let picked = u(&r, "picked") as usize;
+    let best = u(&r, "best") as usize;
+    assert!(picked < 12 && best < 12);
+    let best_mean = scores[best]["valid_mean"].as_f64().unwrap();
+    assert!(scores.iter().all(|sc| sc["valid_mean"].as_f64().unwrap() <= best_mean), "best has the highest validation accuracy");
+    let tree = read_tree(&model);
+    assert_eq!(u(&r["model"], "nodes"), tree.nodes.len() as u64);
+    assert_eq!(u(&r["model"], "leaves"), tree.n_leaves() as u64);
+    let folds = arr(&r, "fold_assignment");
+    assert_eq!(folds.len(), 1);
+    assert_eq!(arr(&r, "fold_assignment")[0].as_array().unwrap().len(), 150);
+
+    // The fold assignment `folds` prints is the one the sweep used.
+    let text = pollard(&["folds", "--data", iris, "--target", "target", "--k", "3", "--seed", "11"]).ok();
+    let lines: Vec<&str> = text.lines().collect();
+    assert_eq!(lines[0], "row,repeat,fold");
+    assert_eq!(lines.len(), 151, "a header and one line per row");
+    let mut per_fold: HashMap<u32, usize> = HashMap::new();
+    for (i, l) in lines[1..].iter().enumerate() {
+        let f: Vec<&str> = l.split(',').collect();
+        assert_eq!(f.len(), 3, "{l}");
+        assert_eq!((f[0].parse::<usize>().unwrap(), f[1]), (i + 1, "0"));
+        let fold: u32 = f[2].parse().unwrap();
+        assert_eq!(Value::from(fold), folds[0][i], "row {}", i + 1);
+        *per_fold.entry(fold).or_default() += 1;
+    }
+    assert_eq!(per_fold, HashMap::from([(0, 50), (1, 50), (2, 50)]), "stratified folds of iris (50 per class) are even");
+    // Two repeats: a line per row per repeat; a different seed, a different assignment.
+    let two = pollard(&["folds", "--data", iris, "--target", "target", "--k", "5", "--repeats", "2", "--seed", "3"]).ok();
+    assert_eq!(two.lines().count(), 1 + 300);
+    assert_eq!(two.lines().filter(|l| l.contains(",1,")).count(), 150);
+    assert_ne!(pollard(&["folds", "--data", iris, "--target", "target", "--k", "3", "--seed", "12"]).ok(), text);
+
+    // As a table.
+    let text = pollard(&["local", iris, "--target", "target", "--max-depth", "1,3,none", "--top", "2"]).ok();
+    let rows = table_rows(&text);
+    assert!((2..=4).contains(&rows.len()), "{text}");
+    assert!(text.contains("settings by validation accuracy"), "{text}");
+    assert!(text.contains("pick rule highest: grid# "), "{text}");
+    assert!(text.lines().any(|l| l.starts_with("model: ") && l.contains(" nodes")), "{text}");
+}
+
+#[test]
+fn demo_writes_files_that_parse() {
+    let tmp = TempDir::new("demo");
+    let out = tmp.join("out");
+    let r = pollard(&["demo", "--out", out.to_str().unwrap(), "--rows", "1500", "--json"]).json();
+    assert!(s(&r, "run_id").starts_with("run_"), "{r}");
+    assert!(s(&r, "dataset_id").starts_with("ds_"), "{r}");
+    // 10 max_depth × 3 of each of the other five limits.
+    let settings = u(&r, "settings") as usize;
+    assert_eq!(settings, 10 * 3 * 3 * 3 * 3 * 3);
+    let (picked, best) = (u(&r, "picked"), u(&r, "best"));
+    let files: Vec<PathBuf> = arr(&r, "files").iter().map(|f| PathBuf::from(f.as_str().unwrap())).collect();
+    for f in &files {
+        assert!(f.is_file(), "{} is listed but not written", f.display());
+        assert!(f.starts_with(&out), "{}", f.display());
+    }
+    let names: BTreeSet<String> = files.iter().map(|f| f.file_name().unwrap().to_string_lossy().into_owned()).collect();
+    for want in ["model.json", "model.dot", "model.txt", "scores.csv", "reefer-voyages-synthetic.csv"] {
+        assert!(names.contains(want), "{want} missing from {names:?}");
+    }
+    let on_disk: BTreeSet<String> = std::fs::read_dir(&out).unwrap().map(|e| e.unwrap().file_name().to_string_lossy().into_owned()).collect();
+    assert_eq!(on_disk, names, "every file written is listed");
+
+    // One well-formed SVG per limit (all six vary).
+    let svgs: Vec<&PathBuf> = files.iter().filter(|f| f.extension().is_some_and(|e| e == "svg")).collect();
+    let svg_names: BTreeSet<String> = svgs.iter().map(|f| f.file_stem().unwrap().to_string_lossy().into_owned()).collect();
+    assert_eq!(svg_names, ["max_depth", "min_split_rows", "min_leaf_rows", "max_leaves", "min_gain", "prune_alpha"].map(String::from).into());
+    for f in &svgs {
+        let text = std::fs::read_to_string(f).unwrap();
+        let doc = roxmltree::Document::parse(&text).unwrap_or_else(|e| panic!("{}: not well-formed XML: {e}", f.display()));
+        let root = doc.root_element();
+        assert_eq!(root.tag_name().name(), "svg", "{}", f.display());
+        assert_eq!(root.tag_name().namespace(), Some("http://www.w3.org/2000/svg"), "{}", f.display());
+        assert!(root.descendants().any(|n| n.has_tag_name("title")), "{}", f.display());
+    }
+
+    // The model: JSON readable by the library, DOT with a node statement per node, text
+    // whose summary agrees.
+    let tree = read_tree(&out.join("model.json"));
+    assert_eq!(tree.target, "excursion");
+    let dot = std::fs::read_to_string(out.join("model.dot")).unwrap();
+    assert_eq!(dot_nodes(&dot), tree.nodes.len(), "{dot}");
+    let txt = std::fs::read_to_string(out.join("model.txt")).unwrap();
+    assert!(txt.lines().last().unwrap().starts_with(&format!("{} leaves, depth {}, 1500 rows", tree.n_leaves(), tree.depth())), "{txt}");
+
+    // scores.csv: a header and one row per setting, the best and the pick marked once.
+    let mut reader = csv::Reader::from_path(out.join("scores.csv")).unwrap();
+    let header: Vec<String> = reader.headers().unwrap().iter().map(String::from).collect();
+    assert_eq!(header[0], "grid_index");
+    assert!(header.iter().any(|h| h == "valid_mean") && header.iter().any(|h| h == "train_mean"));
+    assert_eq!(header.iter().filter(|h| h.starts_with("fold_")).count(), 5);
+    assert_eq!(header.last().unwrap(), "marks");
+    let records: Vec<csv::StringRecord> = reader.records().map(|r| r.unwrap()).collect();
+    assert_eq!(records.len(), settings);
+    let marks = header.len() - 1;
+    for (i, rec) in records.iter().enumerate() {
+        assert_eq!(rec.len(), header.len());
+        assert_eq!(rec[0].parse::<usize>().unwrap(), i);
+    }
+    let marked = |word: &str| records.iter().filter(|r| r[marks].split(' ').any(|m| m == word)).map(|r| r[0].parse::<u64>().unwrap()).collect::<Vec<_>>();
+    assert_eq!(marked("best"), [best]);
+    assert_eq!(marked("picked"), [picked]);
+    let data_rows = std::fs::read_to_string(out.join("reefer-voyages-synthetic.csv")).unwrap().lines().count();
+    assert_eq!(data_rows, 1 + 1500);
+
+    // The same demo for people: it says what it did and where the files went.
+    let out2 = tmp.join("people");
+    let text = pollard(&["demo", "--out", out2.to_str().unwrap(), "--rows", "1500"]).ok();
+    assert!(text.contains("synthetic") && text.contains(&format!("{settings} settings scored")), "{text}");
+    assert!(text.contains(&format!("wrote {} files to {}", files.len(), out2.display())), "{text}");
+    assert!(text.contains(&format!("one-SE pick: grid# {picked}")), "the same seed gives the same pick:\n{text}");
+}
+
+// ------------------------------------------------------------------ regress runs
+
+/// A run whose spec names no metric is scored by the task's default; `show` must name that
+/// metric and, for a lower-is-better metric, list the lowest first.
+#[test]
+fn show_names_the_default_metric_of_a_regress_run() {
+    let server = Serve::start();
+    server.run(&["put", data("diabetes.csv").to_str().unwrap(), "--name", "diabetes", "--target", "target", "--json"]).json();
+    let lines = server.run(&["sweep", "--dataset", "diabetes", "--max-depth", "1,3,none", "--follow", "--json"]).json_lines();
+    let id = s(&lines[0], "run_id").to_string();
+    assert_eq!(s(lines.last().unwrap(), "kind"), "finished");
+    let r = server.run(&["show", &id, "--json"]).json();
+    assert_eq!(s(&r, "metric"), "rmse", "the run names the metric it was scored by: {r}");
+    let text = server.run(&["show", &id]).ok();
+    assert!(text.contains("settings by validation rmse"), "{text}");
+    let rows = table_rows(&text);
+    assert!(rows[0].contains("best"), "best first:\n{text}");
+}
