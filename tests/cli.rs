@@ -189,7 +189,10 @@ impl Serve {
                     assert!(text.contains("cannot listen"), "pollard serve exited {status} before taking calls:\n{text}");
                     break;
                 }
-                if TcpStream::connect_timeout(&addr, Duration::from_millis(200)).is_ok() {
+                // Ready once this child says it serves on this port (so a connect that reaches
+                // some other process that took the port cannot pass for it) and takes a connection.
+                let said = std::fs::read_to_string(&log).unwrap_or_default();
+                if said.contains(&format!("pollard serving addr={listen} ")) && TcpStream::connect_timeout(&addr, Duration::from_millis(200)).is_ok() {
                     return Serve { url: format!("http://{listen}"), child: Some(child), log, _dir: dir };
                 }
                 assert!(Instant::now() < deadline, "pollard serve did not take calls within {PATIENCE:?}");
@@ -370,7 +373,7 @@ fn put_sweep_follow_show_runs_model_predict() {
     assert!(text.lines().next().unwrap().starts_with(&format!("{r1}  finished")), "{text}");
     let rows = table_rows(&text);
     assert!((3..=5).contains(&rows.len()), "three best, plus the pick and the best if not among them:\n{text}");
-    assert!(rows.iter().any(|r| r.trim_start().starts_with(&format!("{picked} ")) && r.contains("picked")), "{text}");
+    assert!(rows.iter().any(|r| r.starts_with("picked") && r.split_whitespace().nth(1) == Some(picked.to_string().as_str())), "{text}");
     assert!(text.contains(&format!("pick rule highest: grid# {picked}")), "{text}");
     assert!(text.contains(&format!("model: {model_nodes} nodes")), "{text}");
 
@@ -416,7 +419,8 @@ fn put_sweep_follow_show_runs_model_predict() {
     assert!(r3.starts_with("run_"));
     assert!(text.contains(&format!("run {r3}: finished")), "{text}");
     assert!(text.lines().any(|l| l.starts_with(&format!("{r3}  finished"))), "{text}");
-    assert_eq!(table_rows(&text).len(), 2, "{text}");
+    // The pick, then both settings ranked.
+    assert_eq!(table_rows(&text).len(), 3, "{text}");
 
     // runs: newest first, and each filter.
     let every = server.run(&["runs", "--json"]).json();
@@ -622,7 +626,10 @@ fn errors_exit_non_zero_with_one_line() {
     assert!(e.contains("--format") && e.contains("xml"), "{e}");
 
     // An unreachable server: a clear message naming the address.
-    let closed = format!("http://127.0.0.1:{}", free_port());
+    // Port 1 (not a port picked from the ephemeral range, which a server of another test may
+    // be given at the same moment); checked closed first.
+    assert!(TcpStream::connect_timeout(&"127.0.0.1:1".parse().unwrap(), Duration::from_secs(1)).is_err(), "something listens on 127.0.0.1:1");
+    let closed = "http://127.0.0.1:1".to_string();
     for args in [vec!["runs"], vec!["datasets", "--json"], vec!["show", "run_nothing"], vec!["put", iris, "--name", "iris"]] {
         let e = client(&closed, &args).fails();
         assert!(e.contains("cannot reach") && e.contains(&closed), "{args:?}: {e}");
@@ -743,7 +750,7 @@ fn local_and_folds() {
     let text = pollard(&["local", iris, "--target", "target", "--max-depth", "1,3,none", "--top", "2"]).ok();
     let rows = table_rows(&text);
     assert!((2..=4).contains(&rows.len()), "{text}");
-    assert!(text.contains("settings by validation accuracy"), "{text}");
+    assert!(text.contains("accuracy: training and validation means"), "{text}");
     assert!(text.contains("pick rule highest: grid# "), "{text}");
     assert!(text.lines().any(|l| l.starts_with("model: ") && l.contains(" nodes")), "{text}");
 }
@@ -835,7 +842,11 @@ fn show_names_the_default_metric_of_a_regress_run() {
     let r = server.run(&["show", &id, "--json"]).json();
     assert_eq!(s(&r, "metric"), "rmse", "the run names the metric it was scored by: {r}");
     let text = server.run(&["show", &id]).ok();
-    assert!(text.contains("settings by validation rmse"), "{text}");
+    assert!(text.contains("rmse: training and validation means"), "{text}");
     let rows = table_rows(&text);
-    assert!(rows[0].contains("best"), "best first:\n{text}");
+    // Under `highest` the pick is the best: the first ranked row (lowest RMSE) shows it.
+    let grid = |r: &str| r.split_whitespace().nth(1).map(str::to_string);
+    assert!(rows[0].starts_with("picked") && rows[1].starts_with("#1") && grid(&rows[0]) == grid(&rows[1]), "best first:\n{text}");
+    let rmse = |r: &str| r.split_whitespace().nth(9).and_then(|v| v.parse::<f64>().ok()).unwrap();
+    assert!(rmse(&rows[1]) <= rmse(&rows[2]), "lower RMSE ranks first:\n{text}");
 }

@@ -103,10 +103,8 @@ async fn demo(a: &DemoArgs, address: &str, json_out: bool) -> Result<(), String>
         print!("{}", scores_table(&r.scores, &metric, higher_is_better(&metric), 8, r.picked, r.best));
         if let (Some(p), Some(b)) = (r.picked, r.best) {
             let (ps, bs) = (&r.scores[p as usize], &r.scores[b as usize]);
-            println!(
-                "best validation {metric}: grid# {b} ({:.4} ± {:.4}, {:.1} leaves); one-SE pick: grid# {p} ({:.4}, {:.1} leaves): the simplest tree within one standard error of the best",
-                bs.valid_mean, bs.valid_sd, bs.mean_leaves, ps.valid_mean, ps.mean_leaves
-            );
+            println!("best validation {metric}: grid# {b}, {:.4} ± {:.4} with {:.1} leaves", bs.valid_mean, bs.valid_sd, bs.mean_leaves);
+            println!("one-SE pick: grid# {p}, {:.4} with {:.1} leaves (the fewest leaves within one standard error of the best)", ps.valid_mean, ps.mean_leaves);
         }
     }
     let mut models = ModelsClient::new(ch.clone());

@@ -9,12 +9,16 @@ fn limit(v: Option<u32>) -> String {
 }
 
 fn short(x: f64) -> String {
+    // Plain decimals (0.0005, 0.002), rounded to 6 significant digits.
     if x == 0.0 {
-        "0".into()
-    } else if x.abs() >= 0.001 && x.abs() < 1e6 {
-        format!("{}", (x * 1e6).round() / 1e6)
+        return "0".into();
+    }
+    let digits = (6 - 1 - x.abs().log10().floor() as i32).max(0) as usize;
+    let s = format!("{x:.digits$}");
+    if s.contains('.') {
+        s.trim_end_matches('0').trim_end_matches('.').to_string()
     } else {
-        format!("{x:.3e}")
+        s
     }
 }
 
@@ -75,39 +79,33 @@ pub fn dataset_json(d: &pb::DatasetInfo) -> Value {
     })
 }
 
-/// The scores table: settings best first (by validation score), with training and
-/// validation side by side.
+/// The scores table: the picked setting first, then settings best first by validation score,
+/// training and validation side by side. Settings whose scores are identical on every fold
+/// (they grew the same trees) share one row, shown by the lowest grid number, with a count.
 pub fn scores_table(scores: &[pb::SettingScore], metric: &str, higher_is_better: bool, top: usize, picked: Option<u32>, best: Option<u32>) -> String {
     let mut order: Vec<&pb::SettingScore> = scores.iter().collect();
     order.sort_by(|a, b| {
         let (x, y) = if higher_is_better { (b.valid_mean, a.valid_mean) } else { (a.valid_mean, b.valid_mean) };
-        x.total_cmp(&y).then(a.mean_leaves.total_cmp(&b.mean_leaves))
+        x.total_cmp(&y).then(a.mean_leaves.total_cmp(&b.mean_leaves)).then(a.index.cmp(&b.index))
     });
-    let folds = scores.first().map_or(0, |s| s.fold_scores.len());
-    let mut out = format!("settings by validation {metric}, best first ({folds} folds; ± is the fold scores' sample sd)\n");
-    out.push_str(&format!(
-        "{:>5}  {:>9} {:>14} {:>13} {:>10} {:>9} {:>11}  {:>9}  {:>17}  {:>8}  {:>7}  {}\n",
-        "grid#", "max_depth", "min_split_rows", "min_leaf_rows", "max_leaves", "min_gain", "prune_alpha", "training", "validation", "gap", "leaves", ""
-    ));
-    let mut shown: Vec<&pb::SettingScore> = order.iter().take(top).copied().collect();
-    for extra in [picked, best].into_iter().flatten() {
-        if !shown.iter().any(|s| s.index == extra) {
-            if let Some(s) = scores.iter().find(|s| s.index == extra) {
-                shown.push(s);
-            }
+    let same = |a: &pb::SettingScore, b: &pb::SettingScore| a.fold_scores == b.fold_scores && a.train_mean == b.train_mean && a.mean_leaves == b.mean_leaves && a.mean_depth == b.mean_depth;
+    // Groups of identical results, in ranking order.
+    let mut groups: Vec<Vec<&pb::SettingScore>> = Vec::new();
+    for s in order {
+        match groups.iter_mut().find(|g| same(g[0], s)) {
+            Some(g) => g.push(s),
+            None => groups.push(vec![s]),
         }
     }
-    for s in shown {
+    let folds = scores.first().map_or(0, |s| s.fold_scores.len());
+    let mut out = String::new();
+    let row = |g: &[&pb::SettingScore], mark: &str| {
+        let s = g.iter().min_by_key(|s| s.index).unwrap();
         let l = s.limits.clone().unwrap_or_default();
-        let mut tags = Vec::new();
-        if best == Some(s.index) {
-            tags.push("best");
-        }
-        if picked == Some(s.index) {
-            tags.push("picked");
-        }
-        out.push_str(&format!(
-            "{:>5}  {:>9} {:>14} {:>13} {:>10} {:>9} {:>11}  {:>9.4}  {:>9.4} ± {:<6.4}  {:>+8.4}  {:>7.1}  {}\n",
+        let also = if g.len() > 1 { format!(" (+{} alike)", g.len() - 1) } else { String::new() };
+        format!(
+            "{:<8} {:>6}  {:>9} {:>14} {:>13} {:>10} {:>9} {:>11}   {:>8.4}   {:>8.4} ± {:<6.4} {:>+8.4} {:>11.1}{also}\n",
+            mark,
             s.index,
             limit(l.max_depth),
             l.min_split_rows,
@@ -120,8 +118,26 @@ pub fn scores_table(scores: &[pb::SettingScore], metric: &str, higher_is_better:
             s.valid_sd,
             s.gap,
             s.mean_leaves,
-            tags.join(", ")
-        ));
+        )
+    };
+    out.push_str(&format!("{metric}: training and validation means over {folds} folds (± = sample sd of the fold scores)\n"));
+    out.push_str(&format!(
+        "{:<8} {:>6}  {:>9} {:>14} {:>13} {:>10} {:>9} {:>11}   {:>8}   {:>17} {:>8} {:>11}\n",
+        "", "grid#", "max_depth", "min_split_rows", "min_leaf_rows", "max_leaves", "min_gain", "prune_alpha", "training", "validation", "gap", "mean_leaves"
+    ));
+    let find = |i: Option<u32>| i.and_then(|i| groups.iter().find(|g| g.iter().any(|s| s.index == i)));
+    if let Some(g) = find(picked) {
+        out.push_str(&row(g, "picked"));
+    }
+    // The best is listed as #1 anyway; say so only when it is not the first group shown.
+    let first_best = groups.first().is_some_and(|g| g.iter().any(|s| Some(s.index) == best));
+    if best != picked && !first_best {
+        if let Some(g) = find(best) {
+            out.push_str(&row(g, "best"));
+        }
+    }
+    for (rank, g) in groups.iter().take(top).enumerate() {
+        out.push_str(&row(g, &format!("#{}", rank + 1)));
     }
     out
 }

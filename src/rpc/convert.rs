@@ -390,9 +390,6 @@ pub fn run_info(r: &Run, outcome: Option<&RunOutcome>) -> pb::RunInfo {
         if let Some(m) = &o.model {
             info.model = Some(pb::ModelSummary { nodes: m.nodes.len() as u32, leaves: m.n_leaves() as u32, depth: m.depth(), classes: m.labels.clone() });
         }
-        if info.metric.is_empty() {
-            info.metric = o.scores.first().map(|_| String::new()).unwrap_or_default();
-        }
     }
     info
 }

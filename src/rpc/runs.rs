@@ -41,19 +41,18 @@ impl Api {
         let cfg = self.shared.config.clone();
         let (meta2, target2) = (meta.clone(), target.clone());
         // Parse and check on the CPU pool, so a bad spec fails now, not in the queue.
-        let (spec, settings_cap_ok) = cpu(&self.shared, move || -> Result<(SweepSpec, bool), Status> {
+        let spec = cpu(&self.shared, move || -> Result<SweepSpec, Status> {
             let task = match wire.task.as_str() {
                 "" => None,
                 t => Some(crate::data::Task::parse(t).ok_or_else(|| Status::invalid_argument(format!("spec.task: '{t}' is not classify or regress")))?),
             };
             let data = load_dataset(&store, &meta2, &target2, task, cfg.max_rows, cfg.max_columns).map_err(Status::invalid_argument)?;
             let spec = convert::spec_from(&wire, data.task())?;
-            let checked = SweepSpec { max_settings: Some(cfg.max_settings), ..spec.clone() };
-            checked.check(&data).map_err(|e| error::spec(&e))?;
-            Ok((spec, true))
+            let checked = SweepSpec { max_settings: Some(cfg.max_settings), ..spec.clone() }.check(&data).map_err(|e| error::spec(&e))?;
+            // Record what the run uses, defaults made explicit, so it reads the same later.
+            Ok(SweepSpec { task: Some(checked.task), metric: Some(checked.metric), folds: Some(checked.folds), ..spec })
         })
         .await?;
-        debug_assert!(settings_cap_ok);
         let mut run = Run::queued(new_run_id(), &meta, target, spec, now_ms());
         run.labels = r.labels.into_iter().collect();
         run.idempotency_key = r.idempotency_key;
