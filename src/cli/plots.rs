@@ -13,7 +13,7 @@
 //!   says so and how many settings share each value;
 //! - two lines: "training" (the mean training score over the folds, dashed) and
 //!   "validation" (the mean validation score, solid), with the validation mean ± one sample
-//!   standard deviation over the folds as a shaded band and as bars;
+//!   fold scores as dots with their mean as a bar, and the one-SE floor as a dashed rule;
 //! - the best validation point is ringed and marked "best";
 //! - every point carries a tooltip (`<title>`) with its numbers.
 //!
@@ -87,6 +87,8 @@ struct Point {
     train: f64,
     valid: f64,
     sd: f64,
+    /// The validation score of each fold.
+    folds: Vec<f64>,
     /// Settings that share this value.
     settings: usize,
 }
@@ -120,7 +122,7 @@ fn profile(scores: &[SettingScore], limit: usize, metric: Metric) -> Vec<Point> 
             })
             .expect("a non-empty group");
         let s = &scores[best];
-        points.push(Point { x, train: s.train_mean, valid: s.valid_mean, sd: s.valid_sd, settings: j - i });
+        points.push(Point { x, train: s.train_mean, valid: s.valid_mean, sd: s.valid_sd, folds: s.fold_scores.clone(), settings: j - i });
         i = j;
     }
     points
@@ -283,6 +285,7 @@ fn draw(limit: &str, metric: Metric, points: &[Point], folds: usize) -> String {
     for p in points {
         let sd = if p.sd.is_finite() { p.sd } else { 0.0 };
         ys.extend([p.train, p.valid, p.valid - sd, p.valid + sd]);
+        ys.extend(p.folds.iter().copied());
     }
     ys.retain(|v| v.is_finite());
     let (mut lo, mut hi) = ys.iter().fold((f64::INFINITY, f64::NEG_INFINITY), |(a, b), &v| (a.min(v), b.max(v)));
@@ -320,8 +323,8 @@ fn draw(limit: &str, metric: Metric, points: &[Point], folds: usize) -> String {
     };
     let note = format!(
         "Each point: the setting with the best validation {m} among the {per} with that {limit} value. \
-         Band and bars: validation mean ± 1 standard deviation over {folds} folds. \
-         A gap that widens between the lines is overfitting; both lines low is underfitting."
+         Dots: its {folds} fold scores; bar: their mean. The dashed rule is the one-SE floor \
+         (best mean minus one standard error). A widening gap is overfitting; both low is underfitting."
     );
     for (i, text) in wrap(&note, 104).iter().take(3).enumerate() {
         let _ = writeln!(w, r#"<text x="{LEFT}" y="{}" font-size="11.5" fill="{MUTED}">{}</text>"#, 50.0 + 15.0 * i as f64, esc(text));
@@ -331,9 +334,12 @@ fn draw(limit: &str, metric: Metric, points: &[Point], folds: usize) -> String {
     let _ = writeln!(w, r#"<line x1="{LEFT}" y1="{ly}" x2="{}" y2="{ly}" stroke="{TRAIN_COLOUR}" stroke-width="2.5" stroke-dasharray="7 4"/>"#, LEFT + 28.0);
     let _ = writeln!(w, r#"<text x="{}" y="{}">training</text>"#, LEFT + 34.0, ly + 4.0);
     let v0 = LEFT + 110.0;
-    let _ = writeln!(w, r#"<rect x="{v0}" y="{}" width="28" height="10" fill="{VALID_COLOUR}" fill-opacity="0.15"/>"#, ly - 5.0);
-    let _ = writeln!(w, r#"<line x1="{v0}" y1="{ly}" x2="{}" y2="{ly}" stroke="{VALID_COLOUR}" stroke-width="2.5"/>"#, v0 + 28.0);
-    let _ = writeln!(w, r#"<text x="{}" y="{}">validation (± 1 sd)</text>"#, v0 + 34.0, ly + 4.0);
+    let _ = writeln!(w, r#"<circle cx="{}" cy="{ly}" r="2.5" fill="{VALID_COLOUR}" fill-opacity="0.55"/>"#, v0 + 6.0);
+    let _ = writeln!(w, r#"<line x1="{}" y1="{ly}" x2="{}" y2="{ly}" stroke="{VALID_COLOUR}" stroke-width="3"/>"#, v0 + 12.0, v0 + 28.0);
+    let _ = writeln!(w, r#"<text x="{}" y="{}">validation: fold scores and mean</text>"#, v0 + 34.0, ly + 4.0);
+    let f0 = v0 + 250.0;
+    let _ = writeln!(w, r#"<line x1="{f0}" y1="{ly}" x2="{}" y2="{ly}" stroke="{MUTED}" stroke-width="1.2" stroke-dasharray="3 3"/>"#, f0 + 28.0);
+    let _ = writeln!(w, r#"<text x="{}" y="{}">one-SE floor</text>"#, f0 + 34.0, ly + 4.0);
 
     // Horizontal rules and y labels.
     let mut k = 0;
@@ -381,19 +387,26 @@ fn draw(limit: &str, metric: Metric, points: &[Point], folds: usize) -> String {
     let cy = (TOP + BOTTOM) / 2.0;
     let _ = writeln!(w, r#"<text x="22" y="{cy:.2}" text-anchor="middle" font-size="14" transform="rotate(-90 22 {cy:.2})">{}</text>"#, esc(&format!("{m} ({better})")));
 
-    // Validation band over the main stretch of the axis (the slots get bars only).
-    let main: Vec<&Point> = points.iter().filter(|p| p.valid.is_finite() && !is_slot(&x, p.x)).collect();
-    if main.len() >= 2 {
-        let sd = |p: &Point| if p.sd.is_finite() { p.sd } else { 0.0 };
-        let mut pts: Vec<String> = main.iter().map(|p| format!("{:.2},{:.2}", x.px(p.x), py(p.valid + sd(p)))).collect();
-        pts.extend(main.iter().rev().map(|p| format!("{:.2},{:.2}", x.px(p.x), py(p.valid - sd(p)))));
-        let _ = writeln!(w, r#"<polygon points="{}" fill="{VALID_COLOUR}" fill-opacity="0.15" stroke="none"/>"#, pts.join(" "));
-    }
-    // Error bars.
-    for p in points.iter().filter(|p| p.valid.is_finite() && p.sd.is_finite() && p.sd > 0.0) {
+    // Each fold's validation score as a dot, spread a little sideways so equal scores show,
+    // and the mean as a short bar.
+    for p in points.iter().filter(|p| p.valid.is_finite()) {
         let px = x.px(p.x);
-        let (a, b) = (py(p.valid - p.sd), py(p.valid + p.sd));
-        let _ = writeln!(w, r#"<path d="M{px:.2},{a:.2}V{b:.2}M{:.2},{a:.2}h8M{:.2},{b:.2}h8" stroke="{VALID_COLOUR}" stroke-opacity="0.6" fill="none"/>"#, px - 4.0, px - 4.0);
+        let n = p.folds.len().max(1) as f64;
+        for (i, v) in p.folds.iter().enumerate().filter(|(_, v)| v.is_finite()) {
+            let dx = (i as f64 - (n - 1.0) / 2.0) * 3.0;
+            let _ = writeln!(w, r#"<circle cx="{:.2}" cy="{:.2}" r="2.5" fill="{VALID_COLOUR}" fill-opacity="0.45"/>"#, px + dx, py(*v));
+        }
+        let _ = writeln!(w, r#"<line x1="{:.2}" y1="{:.2}" x2="{:.2}" y2="{:.2}" stroke="{VALID_COLOUR}" stroke-width="3"/>"#, px - 9.0, py(p.valid), px + 9.0, py(p.valid));
+    }
+    // The one-SE floor: the best mean less one standard error (sd / √folds).
+    let better = |a: &Point, b: &Point| if metric.higher_is_better() { a.valid.total_cmp(&b.valid) } else { b.valid.total_cmp(&a.valid) };
+    if let Some(b) = points.iter().filter(|p| p.valid.is_finite()).max_by(|a, b| better(a, b)) {
+        let se = if b.sd.is_finite() && !b.folds.is_empty() { b.sd / (b.folds.len() as f64).sqrt() } else { 0.0 };
+        let floor = if metric.higher_is_better() { b.valid - se } else { b.valid + se };
+        if floor.is_finite() && floor >= lo && floor <= hi {
+            let fy = py(floor);
+            let _ = writeln!(w, r#"<line x1="{LEFT}" y1="{fy:.2}" x2="{RIGHT}" y2="{fy:.2}" stroke="{MUTED}" stroke-width="1.2" stroke-dasharray="3 3"/>"#);
+        }
     }
     // Lines: solid within the main stretch, dotted across an axis break.
     let line = |w: &mut String, value: &dyn Fn(&Point) -> f64, colour: &str, dash: &str| {
@@ -413,7 +426,7 @@ fn draw(limit: &str, metric: Metric, points: &[Point], folds: usize) -> String {
         }
     };
     line(w, &|p| p.train, TRAIN_COLOUR, r#" stroke-dasharray="7 4""#);
-    line(w, &|p| p.valid, VALID_COLOUR, "");
+    line(w, &|p| p.valid, VALID_COLOUR, r#" stroke-opacity="0.5""#);
     // Markers with tooltips.
     let label = |p: &Point| match p.x {
         X::NoLimit => format!("{limit}: no limit"),

@@ -255,7 +255,8 @@ impl Store {
             // flusher thread is what keeps a closed database's lock alive.
             match sled::Config::new().path(dir).flush_every_ms(None).open() {
                 Ok(db) => return Store::with(db),
-                Err(sled::Error::Io(e)) if e.kind() == std::io::ErrorKind::WouldBlock && std::time::Instant::now() < deadline => {
+                // sled reports the taken lock as an I/O error whose text says so.
+                Err(sled::Error::Io(e)) if (e.kind() == std::io::ErrorKind::WouldBlock || e.to_string().contains("could not acquire lock")) && std::time::Instant::now() < deadline => {
                     std::thread::sleep(std::time::Duration::from_millis(20));
                 }
                 Err(e) => return Err(StoreError::Io(format!("cannot open the store at {}: {e}", dir.display()))),
