@@ -56,36 +56,7 @@ trap 'rm -rf "$tmp"' EXIT
 export PIP_DISABLE_PIP_VERSION_CHECK=1 PIP_NO_INPUT=1 PYTHONHASHSEED=0
 
 # --- 1. interpreter with the pinned packages --------------------------------------
-if [[ -n "${POLLARD_REF_VENV:-}" ]]; then
-    venv="$POLLARD_REF_VENV"
-    [[ -x "$venv/bin/python" ]] || fail "POLLARD_REF_VENV=$venv has no bin/python"
-    say "using venv $venv"
-else
-    venv="$tmp/venv"
-    say "creating venv in $venv"
-    "${PYTHON:-python3}" -m venv "$venv" || fail "could not create a venv with ${PYTHON:-python3}"
-fi
-py="$venv/bin/python"
-"$py" -m pip install --quiet -r "$req" </dev/null || fail "pip install -r $req failed"
-"$py" - "$req" <<'EOF' || fail "installed versions do not match $req"
-import sys
-from importlib.metadata import version, PackageNotFoundError
-bad = []
-for line in open(sys.argv[1]):
-    line = line.split("#", 1)[0].strip()
-    if not line:
-        continue
-    name, want = line.split("==")
-    try:
-        have = version(name)
-    except PackageNotFoundError:
-        have = None
-    if have != want:
-        bad.append(f"{name}: want {want}, have {have}")
-if bad:
-    print("\n".join(bad), file=sys.stderr)
-    sys.exit(1)
-EOF
+source "$root/tests/reference/venv.sh"
 
 # --- 2. build the bench and the binary before any timing ------------------------------
 say "building the sweep bench and the pollard binary (release)"
