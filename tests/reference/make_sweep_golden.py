@@ -41,6 +41,10 @@ from sklearn.metrics import (accuracy_score, balanced_accuracy_score, brier_scor
 from sklearn.model_selection import PredefinedSplit, cross_validate
 from sklearn.tree import DecisionTreeClassifier, DecisionTreeRegressor
 
+# The CSV reading rules are the single-tree golden script's (this folder is on sys.path
+# when the script runs).
+from make_golden import read_csv
+
 HERE = os.path.dirname(os.path.abspath(__file__))
 REPO = os.path.normpath(os.path.join(HERE, "..", ".."))
 DEFAULT_OUT = os.path.join(HERE, "golden")
@@ -127,21 +131,6 @@ def metrics_for(task, classes):
         # 3+ classes: one-vs-rest, macro mean over classes.
         ("roc_auc", "roc_auc" if binary else "roc_auc_ovr", 1.0),
     ]
-
-
-def read_csv(path, task):
-    with open(path, newline="", encoding="utf-8") as fh:
-        rows = list(csv.reader(fh))
-    header, body = rows[0], rows[1:]
-    ti = header.index("target")
-    features = [h for i, h in enumerate(header) if i != ti]
-    X = np.array([[float(c) if c != "" else math.nan
-                   for i, c in enumerate(r) if i != ti] for r in body], dtype=np.float64)
-    if task == "classify":
-        y = np.array([r[ti] for r in body], dtype=object).astype(str)
-    else:
-        y = np.array([float(r[ti]) for r in body], dtype=np.float64)
-    return features, X, y
 
 
 def read_folds(path, n):
