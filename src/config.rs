@@ -29,6 +29,9 @@ pub struct Config {
     pub max_columns: usize,
     /// Most settings in one sweep.
     pub max_settings: usize,
+    /// How late a schedule's fire may be handled and still count as on time (seconds); older
+    /// fires count as missed (caught up once, or skipped, by the schedule's rule).
+    pub fire_grace_secs: u64,
     pub log_format: LogFormat,
     /// A tracing filter such as `info` or `pollard=debug`.
     pub log_filter: String,
@@ -45,6 +48,7 @@ impl Default for Config {
             max_rows: 5_000_000,
             max_columns: 2_000,
             max_settings: 100_000,
+            fire_grace_secs: 300,
             log_format: LogFormat::Plain,
             log_filter: "info".into(),
         }
@@ -63,6 +67,7 @@ struct FileConfig {
     max_rows: Option<usize>,
     max_columns: Option<usize>,
     max_settings: Option<usize>,
+    fire_grace_secs: Option<u64>,
     log_format: Option<String>,
     log_filter: Option<String>,
 }
@@ -110,6 +115,7 @@ impl Config {
         num!(max_rows, "max_rows", "POLLARD_MAX_ROWS", usize);
         num!(max_columns, "max_columns", "POLLARD_MAX_COLUMNS", usize);
         num!(max_settings, "max_settings", "POLLARD_MAX_SETTINGS", usize);
+        num!(fire_grace_secs, "fire_grace_secs", "POLLARD_FIRE_GRACE_SECS", u64);
         if let Some((from, v)) = set("log_format", file.log_format, "POLLARD_LOG_FORMAT", None) {
             c.log_format = match v.as_str() {
                 "plain" => LogFormat::Plain,

@@ -3,6 +3,7 @@
 
 use std::collections::BTreeMap;
 
+use crate::drift::{DriftReport, DriftThresholds};
 use crate::sweep::{Progress, SettingScore, SweepSpec, UnitResult};
 use crate::tree::Tree;
 
@@ -79,6 +80,8 @@ pub struct Run {
     pub dataset_id: String,
     pub dataset_name: String,
     pub dataset_version: u32,
+    /// Rows of the dataset version the run used.
+    pub dataset_rows: u64,
     /// The target column the sweep predicts.
     pub target: String,
     pub spec: SweepSpec,
@@ -95,6 +98,8 @@ pub struct Run {
     pub units_done: u32,
     /// Sequence number the next event gets (events start at 1).
     pub next_sequence: u64,
+    /// A finished scheduled run's comparison with the previous finished run of its schedule.
+    pub drift: Option<DriftReport>,
 }
 
 impl Run {
@@ -106,6 +111,7 @@ impl Run {
             dataset_id: dataset.id.clone(),
             dataset_name: dataset.name.clone(),
             dataset_version: dataset.version,
+            dataset_rows: dataset.rows,
             target,
             spec,
             labels: BTreeMap::new(),
@@ -119,6 +125,7 @@ impl Run {
             units_total: 0,
             units_done: 0,
             next_sequence: 1,
+            drift: None,
         }
     }
 
@@ -186,3 +193,156 @@ pub struct RunOutcome {
 
 /// A stored work unit of a run.
 pub type StoredUnit = UnitResult;
+
+/// How many runs of a schedule to keep; a run is kept when either rule keeps it.
+#[derive(Clone, Copy, Debug, Default, PartialEq, Eq)]
+pub struct Retention {
+    /// Keep the newest N runs (`None`: no count rule).
+    pub keep_last: Option<u32>,
+    /// Keep runs created less than D days ago (`None`: no age rule).
+    pub keep_days: Option<u32>,
+}
+
+impl Retention {
+    pub fn is_unlimited(&self) -> bool {
+        self.keep_last.is_none() && self.keep_days.is_none()
+    }
+
+    /// Which of a schedule's runs (given newest first) to delete at `now`. Runs count by their
+    /// place among all the schedule's runs; a run is kept when either rule keeps it; queued
+    /// and running runs are never deleted, nor the newest finished run (the next drift
+    /// report's baseline).
+    pub fn expired<'a>(&self, runs_newest_first: &'a [Run], now: i64) -> Vec<&'a Run> {
+        if self.is_unlimited() {
+            return Vec::new();
+        }
+        let baseline = runs_newest_first.iter().find(|r| r.state == RunState::Finished).map(|r| r.id.as_str());
+        runs_newest_first
+            .iter()
+            .enumerate()
+            .filter(|(i, r)| {
+                let by_count = self.keep_last.is_some_and(|n| (*i as u64) < n as u64);
+                let by_age = self.keep_days.is_some_and(|d| now - r.created_at < d as i64 * 86_400_000);
+                r.state.is_terminal() && !(by_count || by_age || Some(r.id.as_str()) == baseline)
+            })
+            .map(|(_, r)| r)
+            .collect()
+    }
+}
+
+/// A recurring sweep: a template started at the fire times of a crontab expression.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Schedule {
+    /// `sch_` + a time-ordered UUID (version 7).
+    pub id: String,
+    /// A free name for people ("" allowed).
+    pub name: String,
+    /// 5-field crontab expression.
+    pub cron: String,
+    /// IANA time zone the expression is read in.
+    pub time_zone: String,
+    /// Every run sweeps the latest version of this dataset name at its fire.
+    pub dataset_name: String,
+    pub target: String,
+    pub spec: SweepSpec,
+    /// Labels every run of the schedule carries.
+    pub labels: BTreeMap<String, String>,
+    pub retention: Retention,
+    /// "once" or "skip": what a start-up after missed fires does.
+    pub catch_up: String,
+    /// Skip a fire when the dataset has no version newer than the last run's.
+    pub skip_unchanged: bool,
+    pub drift: DriftThresholds,
+    pub paused: bool,
+    pub created_at: i64,
+    /// Every fire instant up to this one is handled (fired, skipped or passed over).
+    pub considered_until: i64,
+    /// The last run the schedule started, and the dataset it used.
+    pub last_run_id: String,
+    pub last_dataset_id: String,
+    /// Sequence number of the next fire record.
+    pub next_fire_sequence: u64,
+}
+
+/// What became of one fire of a schedule.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum FireOutcome {
+    /// A run was queued.
+    Started,
+    /// The previous run was still queued or running.
+    SkippedBusy,
+    /// The dataset had no new version since the last run.
+    SkippedUnchanged,
+    /// Fires passed while the server was down, and the catch-up rule is `skip`.
+    SkippedMissed,
+    /// The run could not be queued (the dataset is gone, or the spec no longer fits it).
+    Failed,
+}
+
+impl FireOutcome {
+    pub const ALL: [FireOutcome; 5] = [FireOutcome::Started, FireOutcome::SkippedBusy, FireOutcome::SkippedUnchanged, FireOutcome::SkippedMissed, FireOutcome::Failed];
+
+    pub fn as_str(self) -> &'static str {
+        match self {
+            FireOutcome::Started => "started",
+            FireOutcome::SkippedBusy => "skipped_busy",
+            FireOutcome::SkippedUnchanged => "skipped_unchanged",
+            FireOutcome::SkippedMissed => "skipped_missed",
+            FireOutcome::Failed => "failed",
+        }
+    }
+
+    pub fn parse(s: &str) -> Option<FireOutcome> {
+        FireOutcome::ALL.into_iter().find(|o| o.as_str() == s)
+    }
+}
+
+/// The record of one fire of a schedule.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Fire {
+    pub sequence: u64,
+    /// The scheduled instant this fire was for.
+    pub scheduled_for: i64,
+    /// When the scheduler handled it.
+    pub handled_at: i64,
+    pub outcome: FireOutcome,
+    /// The run started, or the busy run that caused a skip.
+    pub run_id: String,
+    /// Scheduled instants passed over during downtime and covered by this fire.
+    pub missed: u64,
+    pub detail: String,
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn run(id: &str, state: RunState, created_at: i64) -> Run {
+        let meta = DatasetMeta { id: "ds_a".into(), name: "a".into(), version: 1, rows: 3, columns: vec![], target: "y".into(), task: "classify".into(), created_at: 0, bytes: 0, categorical: vec![] };
+        Run { state, ..Run::queued(id.into(), &meta, "y".into(), SweepSpec::default(), created_at) }
+    }
+
+    const DAY: i64 = 86_400_000;
+
+    #[test]
+    fn retention_keeps_either_rule_active_runs_and_the_drift_baseline() {
+        // Newest first: r5 running, r4 cancelled, r3 failed, r2 finished, r1 finished.
+        let runs = vec![
+            run("r5", RunState::Running, 5 * DAY),
+            run("r4", RunState::Cancelled, 4 * DAY),
+            run("r3", RunState::Failed, 3 * DAY),
+            run("r2", RunState::Finished, 2 * DAY),
+            run("r1", RunState::Finished, DAY),
+        ];
+        let ids = |r: Retention, now: i64| r.expired(&runs, now).iter().map(|r| r.id.clone()).collect::<Vec<_>>();
+        assert!(ids(Retention::default(), 100 * DAY).is_empty());
+        // Count: r5 and r4 are the newest two; r2 stays as the newest finished run.
+        assert_eq!(ids(Retention { keep_last: Some(2), keep_days: None }, 6 * DAY), vec!["r3", "r1"]);
+        // Age at day 6 with 3 days: r5 (1 day), r4 (2 days) are younger; r3 is exactly 3 days old, not younger.
+        assert_eq!(ids(Retention { keep_last: None, keep_days: Some(3) }, 6 * DAY), vec!["r3", "r1"]);
+        // Either rule keeps a run: the newest one by count, r4 by age (2.5 days old).
+        assert_eq!(ids(Retention { keep_last: Some(1), keep_days: Some(3) }, 6 * DAY + DAY / 2), vec!["r3", "r1"]);
+        // The running run is never deleted, even when both rules would let it go.
+        assert_eq!(ids(Retention { keep_last: Some(1), keep_days: Some(1) }, 100 * DAY), vec!["r4", "r3", "r1"]);
+    }
+}

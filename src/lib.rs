@@ -5,21 +5,29 @@
 //! - [`tree`]   CART growth with the six complexity limits, pruning path, predict and apply
 //! - [`export`] model files: the versioned JSON format, DOT and plain text
 //! - [`sweep`]  cross-validated scores for a grid of settings from one growth per fold
-//! - [`job`]    runs, events and datasets as plain values with pure state transitions
+//! - [`job`]    runs, events, datasets and schedules as plain values with pure state transitions
+//! - [`drift`]  the drift report: a scheduled run compared with the run before it
+//! - [`schedule`] crontab expressions in IANA zones: fire instants across DST, what is due
 //! - [`reefer`] the demo's invented, SYNTHETIC reefer-container voyages (CSV text or a dataset)
 //!
 //! The shell:
-//! - [`store`]  the only module that names sled: datasets, runs, events, the queue
+//! - [`store`]  the only module that names sled: datasets, runs, events, the queue, schedules
+//! - [`clock`]  the system clock, or a test clock moved by hand
+//! - [`scheduler`] the task that starts schedules' runs at their fire times
 //! - [`cli`]    command-line entry point
 //! - [`pb`]     generated protobuf types (only the shell sees them)
 
 pub mod cli;
+pub mod clock;
 pub mod config;
 pub mod data;
+pub mod drift;
 pub mod export;
 pub mod job;
 pub mod reefer;
 pub mod rpc;
+pub mod schedule;
+pub mod scheduler;
 pub mod server;
 pub mod store;
 pub mod sweep;
@@ -48,6 +56,8 @@ mod layering {
             }
         }
         files.push(root.join("job.rs"));
+        files.push(root.join("drift.rs"));
+        files.push(root.join("schedule.rs"));
         files.push(root.join("reefer.rs"));
         let mut bad = Vec::new();
         for f in &files {

@@ -8,26 +8,34 @@ use tokio::net::TcpListener;
 use tokio_stream::wrappers::TcpListenerStream;
 use tracing::info;
 
+use crate::clock::{Clock, SystemClock};
 use crate::config::Config;
+use crate::scheduler;
 use crate::pb;
 use crate::rpc::Api;
 use crate::store::Store;
 use crate::worker::{self, Shared};
 
 /// The gRPC services the server registers, by full name (also what health checks name).
-pub const SERVICES: [&str; 3] = ["pollard.v1.Datasets", "pollard.v1.Runs", "pollard.v1.Models"];
+pub const SERVICES: [&str; 4] = ["pollard.v1.Datasets", "pollard.v1.Runs", "pollard.v1.Models", "pollard.v1.Schedules"];
 
 /// Serves on `listener` until `shutdown` completes, then stops taking calls, lets running
 /// runs stop at their next unit (their finished units stay stored, so they resume at the
 /// next start), and flushes the store.
 pub async fn run(listener: TcpListener, config: Config, store: Store, shutdown: impl Future<Output = ()> + Send + 'static) -> Result<(), String> {
-    let shared = Shared::new(store, config)?;
+    run_with_clock(listener, config, store, Arc::new(SystemClock), shutdown).await
+}
+
+/// [`run`] with a given clock (tests move a [`crate::clock::TestClock`] by hand).
+pub async fn run_with_clock(listener: TcpListener, config: Config, store: Store, clock: Arc<dyn Clock>, shutdown: impl Future<Output = ()> + Send + 'static) -> Result<(), String> {
+    let shared = Shared::with_clock(store, config, clock)?;
     let addr = listener.local_addr().map_err(|e| e.to_string())?;
     let mut workers = Vec::new();
     worker::resume_running(shared.clone()).await;
     for _ in 0..shared.config.concurrent_runs {
         workers.push(tokio::spawn(worker::worker_loop(shared.clone())));
     }
+    workers.push(tokio::spawn(scheduler::scheduler_loop(shared.clone())));
     let api = Api { shared: shared.clone() };
     let (health_reporter, health) = tonic_health::server::health_reporter();
     for name in SERVICES {
@@ -55,6 +63,7 @@ pub async fn run(listener: TcpListener, config: Config, store: Store, shutdown: 
         .add_service(reflection)
         .add_service(pb::datasets_server::DatasetsServer::new(api.clone()).max_decoding_message_size(message_limit(&shared)))
         .add_service(pb::runs_server::RunsServer::new(api.clone()))
+        .add_service(pb::schedules_server::SchedulesServer::new(api.clone()))
         .add_service(pb::models_server::ModelsServer::new(api.clone()).max_decoding_message_size(message_limit(&shared)))
         .serve_with_incoming_shutdown(TcpListenerStream::new(listener), stop)
         .await

@@ -16,11 +16,13 @@ use std::time::Duration;
 use tokio::sync::{watch, Notify};
 use tracing::{error, info, info_span, warn};
 
+use crate::clock::{Clock, SystemClock};
 use crate::config::Config;
+use crate::drift::{self, DriftThresholds, RunSide};
 use crate::data::csv::{read_dataset, CsvOptions};
 use crate::data::{Dataset, Task};
 use crate::job::{DatasetMeta, EventKind, Run, RunOutcome, RunState};
-use crate::store::Store;
+use crate::store::{RunFilter, Store};
 use crate::sweep::{self, Flow, SweepError, SweepSpec};
 
 /// What every handler and worker shares.
@@ -42,10 +44,18 @@ pub struct Shared {
     pub stopping: AtomicBool,
     /// Flips to true when the server stops (for tasks that wait).
     pub shutdown: watch::Sender<bool>,
+    /// Where every time the server records comes from.
+    pub clock: Arc<dyn Clock>,
+    /// Signalled when a schedule is created, resumed or deleted, so the scheduler looks again.
+    pub schedules_changed: Notify,
 }
 
 impl Shared {
     pub fn new(store: Store, config: Config) -> Result<Arc<Shared>, String> {
+        Shared::with_clock(store, config, Arc::new(SystemClock))
+    }
+
+    pub fn with_clock(store: Store, config: Config, clock: Arc<dyn Clock>) -> Result<Arc<Shared>, String> {
         let pool = rayon::ThreadPoolBuilder::new()
             .num_threads(config.cpu_threads)
             .thread_name(|i| format!("pollard-cpu-{i}"))
@@ -66,7 +76,14 @@ impl Shared {
             cancels: Mutex::new(HashMap::new()),
             stopping: AtomicBool::new(false),
             shutdown: watch::channel(false).0,
+            clock,
+            schedules_changed: Notify::new(),
         }))
+    }
+
+    /// Now, by the server's clock, in Unix milliseconds.
+    pub fn now(&self) -> i64 {
+        self.clock.now_ms()
     }
 
     /// Tells followers that events were stored.
@@ -99,11 +116,6 @@ async fn on_pool<T: Send + 'static>(pool: &rayon::ThreadPool, f: impl FnOnce() -
     rx.await.expect("the CPU pool dropped a job")
 }
 
-/// Unix milliseconds now.
-pub fn now_ms() -> i64 {
-    chrono::Utc::now().timestamp_millis()
-}
-
 /// Parses a stored dataset for a run: its bytes, with the run's target and task.
 pub fn load_dataset(store: &Store, meta: &DatasetMeta, target: &str, task: Option<Task>, max_rows: usize, max_columns: usize) -> Result<Dataset, String> {
     let bytes = store.dataset_bytes(&meta.id).map_err(|e| e.to_string())?.ok_or_else(|| format!("dataset {} has no stored bytes", meta.id))?;
@@ -122,7 +134,7 @@ pub async fn worker_loop(shared: Arc<Shared>) {
         if *shutdown.borrow() {
             return;
         }
-        let claimed = shared.store.claim_next(now_ms());
+        let claimed = shared.store.claim_next(shared.now());
         match claimed {
             Ok(Some(run)) => {
                 shared.announce();
@@ -164,15 +176,19 @@ pub async fn execute(shared: &Arc<Shared>, run: Run) {
     }
     let s = shared.clone();
     let id = run.id.clone();
+    let schedule_id = run.schedule_id.clone();
     let end = on_pool(&shared.pool, move || {
         let span = info_span!("run", run_id = %run.id);
         span.in_scope(|| execute_blocking(&s, &run, &flag))
     })
     .await;
     shared.cancels.lock().unwrap().remove(&id);
-    let now = now_ms();
+    let now = shared.now();
     let ended = match end {
-        Ending::Finished(outcome) => shared.store.finish_run(&id, &outcome, now).map(|_| ()),
+        Ending::Finished(outcome) => {
+            let drift = if schedule_id.is_empty() { None } else { drift_report(shared, &id, &schedule_id, &outcome) };
+            shared.store.finish_run(&id, &outcome, drift, now).map(|_| ())
+        }
         Ending::Failed(reason) => {
             warn!(run_id = %id, "run failed: {reason}");
             shared.store.end_run(&id, RunState::Failed, &reason, now).map(|_| ())
@@ -236,7 +252,7 @@ fn execute_blocking(shared: &Shared, run: &Run, cancel: &AtomicBool) -> Ending {
             events.push(EventKind::Scored { index: index as u32, score: Box::new(score) });
         }
         // The unit and its events are stored in one transaction before anyone hears of them.
-        match shared.store.record_unit(&run.id, unit, events, now_ms()) {
+        match shared.store.record_unit(&run.id, unit, events, shared.now()) {
             Ok(_) => {
                 shared.announce();
                 Flow::Continue
@@ -274,4 +290,51 @@ fn execute_blocking(shared: &Shared, run: &Run, cancel: &AtomicBool) -> Ending {
         model,
         fold_assignment: plan.folds.assignment.clone(),
     })
+}
+
+/// Compares a finished run of a schedule with the previous finished run of that schedule
+/// (the newest one created before it); `None` for the schedule's first finished run. A
+/// failure to read the store only costs the report, so it is logged, not fatal.
+fn drift_report(shared: &Shared, run_id: &str, schedule_id: &str, outcome: &RunOutcome) -> Option<drift::DriftReport> {
+    let read = || -> Result<Option<drift::DriftReport>, crate::store::StoreError> {
+        let Some(current) = shared.store.run(run_id)? else { return Ok(None) };
+        let filter = RunFilter { schedule_id: Some(schedule_id.to_string()), state: Some(RunState::Finished), ..RunFilter::default() };
+        // Run ids are time-ordered: the listing below `run_id` starts with the runs before it.
+        let (before, _) = shared.store.list_runs(&filter, Some(run_id), 1)?;
+        let Some(previous) = before.into_iter().next() else { return Ok(None) };
+        let Some(prev_outcome) = shared.store.outcome(&previous.id)? else { return Ok(None) };
+        let thresholds = shared.store.schedule(schedule_id)?.map_or(DriftThresholds::default(), |s| s.drift);
+        let side = |run: &'_ Run, o: &'_ RunOutcome| -> Option<(crate::sweep::Metric, f64)> {
+            let picked = o.scores.get(o.picked as usize)?;
+            let leaves = o.model.as_ref().map_or(picked.mean_leaves, |m| m.n_leaves() as f64);
+            Some((run.spec.metric?, leaves))
+        };
+        let (Some((m_prev, l_prev)), Some((m_cur, l_cur))) = (side(&previous, &prev_outcome), side(&current, outcome)) else { return Ok(None) };
+        let before = RunSide {
+            run_id: &previous.id,
+            dataset_id: &previous.dataset_id,
+            dataset_version: previous.dataset_version,
+            rows: previous.dataset_rows,
+            metric: m_prev,
+            picked: &prev_outcome.scores[prev_outcome.picked as usize],
+            leaves: l_prev,
+        };
+        let now = RunSide {
+            run_id: &current.id,
+            dataset_id: &current.dataset_id,
+            dataset_version: current.dataset_version,
+            rows: current.dataset_rows,
+            metric: m_cur,
+            picked: &outcome.scores[outcome.picked as usize],
+            leaves: l_cur,
+        };
+        Ok(Some(drift::compare(&before, &now, thresholds)))
+    };
+    match read() {
+        Ok(r) => r,
+        Err(e) => {
+            warn!(run_id, "no drift report: {e}");
+            None
+        }
+    }
 }

@@ -20,54 +20,16 @@ use pollard::pb::models_client::ModelsClient;
 use pollard::pb::runs_client::RunsClient;
 use pollard::store::Store;
 use pollard::tree::{Predictions, SplitRule, Tree};
-use tokio::sync::oneshot;
 use tonic::transport::Channel;
 use tonic::{Code, Status};
 
 // ------------------------------------------------------------------ harness
 
-struct Server {
-    addr: std::net::SocketAddr,
-    stop: Option<oneshot::Sender<()>>,
-    done: tokio::task::JoinHandle<Result<(), String>>,
-}
+#[path = "support/server.rs"]
+mod support;
+use support::{start, POLL};
 
-async fn start(store: Store, config: Config) -> Server {
-    let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap();
-    let addr = listener.local_addr().unwrap();
-    let (tx, rx) = oneshot::channel();
-    let done = tokio::spawn(pollard::server::run(listener, config, store, async move {
-        let _ = rx.await;
-    }));
-    Server { addr, stop: Some(tx), done }
-}
 
-impl Server {
-    async fn channel(&self) -> Channel {
-        let url = format!("http://{}", self.addr);
-        let deadline = Instant::now() + Duration::from_secs(10);
-        loop {
-            if let Ok(c) = Channel::from_shared(url.clone()).unwrap().connect().await {
-                return c;
-            }
-            assert!(Instant::now() < deadline, "server did not come up");
-            tokio::time::sleep(POLL).await;
-        }
-    }
-
-    /// Drops the shutdown oneshot: the server stops taking calls and drains.
-    fn signal_stop(&mut self) {
-        drop(self.stop.take());
-    }
-
-    async fn stop(mut self) {
-        self.signal_stop();
-        tokio::time::timeout(Duration::from_secs(30), self.done).await.expect("the server did not drain").unwrap().unwrap();
-    }
-}
-
-/// Interval between polls of a condition (never a wait for its own sake).
-const POLL: Duration = Duration::from_millis(20);
 /// How long any one condition may take before the test fails.
 const PATIENCE: Duration = Duration::from_secs(45);
 

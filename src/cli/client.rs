@@ -47,6 +47,7 @@ pub fn run(command: Command, server: &str, json_out: bool) -> Result<(), String>
             }
             Command::Model { run, format, out } => model(ch, &run, &format, out, json_out).await,
             Command::Predict { run, file } => predict(ch, &run, &file, json_out).await,
+            Command::Schedule { action } => super::schedules::run(ch, action, json_out).await,
             _ => unreachable!("handled by the caller"),
         }
     })
@@ -205,6 +206,9 @@ pub async fn show(ch: Channel, id: &str, top: usize, json_out: bool) -> Result<(
     if let Some(m) = &r.model {
         println!("model: {} nodes, {} leaves, depth {}", m.nodes, m.leaves, m.depth);
     }
+    if let Some(d) = &r.drift {
+        print!("{}", super::schedules::drift_lines(d, if r.metric.is_empty() { "score" } else { &r.metric }));
+    }
     Ok(())
 }
 
@@ -222,6 +226,8 @@ async fn runs(ch: Channel, a: RunsArgs, json_out: bool) -> Result<(), String> {
         created_to: a.to.unwrap_or_default(),
         page_size: a.limit,
         page_token: String::new(),
+        score_fell: a.score_fell,
+        drift_flagged: a.flagged,
     };
     let r = RunsClient::new(ch).list_runs(req).await.map_err(status_line)?.into_inner();
     if json_out {

@@ -7,6 +7,7 @@ mod demo;
 mod output;
 pub mod plots;
 pub mod ranges;
+mod schedules;
 mod spec;
 
 use std::collections::HashMap;
@@ -90,6 +91,11 @@ pub enum Command {
     Local(LocalArgs),
     /// Print the fold assignment a sweep with this plan uses, as CSV row,repeat,fold.
     Folds(FoldsArgs),
+    /// Manage schedules: recurring sweeps compared run to run.
+    Schedule {
+        #[command(subcommand)]
+        action: schedules::ScheduleCommand,
+    },
 }
 
 #[derive(Args, Debug)]
@@ -171,6 +177,12 @@ pub struct RunsArgs {
     /// Created before this RFC 3339 time.
     #[arg(long)]
     pub to: Option<String>,
+    /// Only runs whose drift report says the score fell.
+    #[arg(long)]
+    pub score_fell: bool,
+    /// Only runs whose drift report raised any flag.
+    #[arg(long)]
+    pub flagged: bool,
     #[arg(long, default_value_t = 20)]
     pub limit: u32,
 }

@@ -8,7 +8,7 @@ fn limit(v: Option<u32>) -> String {
     v.map_or("none".into(), |x| x.to_string())
 }
 
-fn short(x: f64) -> String {
+pub fn short(x: f64) -> String {
     // Plain decimals (0.0005, 0.002), rounded to 6 significant digits.
     if x == 0.0 {
         return "0".into();
@@ -30,7 +30,7 @@ pub fn limits_json(l: &pb::SettingLimits) -> Value {
     })
 }
 
-fn num(x: f64) -> Value {
+pub fn num(x: f64) -> Value {
     if x.is_finite() {
         json!(x)
     } else {
@@ -68,6 +68,8 @@ pub fn run_json(r: &pb::RunInfo) -> Value {
         "picked": r.picked, "best": r.best, "schedule_id": r.schedule_id,
         "scores": r.scores.iter().map(score_json).collect::<Vec<_>>(),
         "model": r.model.as_ref().map(|m| json!({"nodes": m.nodes, "leaves": m.leaves, "depth": m.depth, "classes": m.classes})),
+        "dataset_rows": r.dataset_rows,
+        "drift": r.drift.as_ref().map(super::schedules::drift_json),
     })
 }
 

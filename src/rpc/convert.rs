@@ -4,7 +4,9 @@ use chrono::{DateTime, SecondsFormat, Utc};
 use tonic::Status;
 
 use crate::data::{Column, ColumnKind, Feature, Frame, Task, MISSING_CODE};
-use crate::job::{DatasetMeta, Event, EventKind, Run, RunOutcome, RunState};
+use crate::drift::{DriftReport, DriftThresholds};
+use crate::job::{DatasetMeta, Event, EventKind, Fire, FireOutcome, Retention, Run, RunOutcome, RunState, Schedule};
+use crate::schedule::CatchUp;
 use crate::pb;
 use crate::sweep::{FoldPlan, FoldScheme, Metric, PickRule, Range, SettingScore, SweepSpec};
 use crate::tree::{ClassWeight, ColumnInfo, Criterion, FitOptions, Limits, Node, Split, SplitRule, Tree, NO_NODE};
@@ -380,6 +382,8 @@ pub fn run_info(r: &Run, outcome: Option<&RunOutcome>) -> pb::RunInfo {
         units_done: r.units_done,
         units_total: r.units_total,
         schedule_id: r.schedule_id.clone(),
+        drift: r.drift.as_ref().map(drift_to),
+        dataset_rows: r.dataset_rows,
         ..Default::default()
     };
     if let Some(o) = outcome {
@@ -395,7 +399,7 @@ pub fn run_info(r: &Run, outcome: Option<&RunOutcome>) -> pb::RunInfo {
 }
 
 /// An event for the wire; a finished event takes its scores and model from `outcome`.
-pub fn event_to(run_id: &str, e: &Event, outcome: Option<&RunOutcome>) -> pb::RunEvent {
+pub fn event_to(run_id: &str, e: &Event, outcome: Option<&RunOutcome>, drift: Option<&DriftReport>) -> pb::RunEvent {
     use pb::run_event::Kind;
     let kind = match &e.kind {
         EventKind::Progress(p) => Kind::Progress(pb::ProgressEvent {
@@ -410,11 +414,116 @@ pub fn event_to(run_id: &str, e: &Event, outcome: Option<&RunOutcome>) -> pb::Ru
             best: *best,
             scores: outcome.map(|o| o.scores.iter().enumerate().map(|(i, s)| score_to(i, s)).collect()).unwrap_or_default(),
             model: outcome.and_then(|o| o.model.as_ref()).map(model_to),
+            drift: drift.map(drift_to),
         }),
         EventKind::Failed(m) => Kind::Failed(m.clone()),
         EventKind::Cancelled(m) => Kind::Cancelled(m.clone()),
     };
     pb::RunEvent { sequence: e.sequence, run_id: run_id.to_string(), at: time(e.at), kind: Some(kind) }
+}
+
+pub fn drift_to(d: &DriftReport) -> pb::DriftReport {
+    pb::DriftReport {
+        previous_run_id: d.previous_run_id.clone(),
+        picked_changed: d.picked_changed,
+        moved: d.moved.iter().map(|m| pb::LimitChange { limit: m.limit.clone(), from: m.from.clone(), to: m.to.clone() }).collect(),
+        previous_score: d.previous_score,
+        score: d.score,
+        score_delta: d.score_delta,
+        score_delta_se: d.score_delta_se,
+        previous_dataset_id: d.previous_dataset_id.clone(),
+        dataset_id: d.dataset_id.clone(),
+        previous_version: d.previous_version,
+        version: d.version,
+        previous_rows: d.previous_rows,
+        rows: d.rows,
+        previous_leaves: d.previous_leaves,
+        leaves: d.leaves,
+        score_fell: d.score_fell,
+        tree_grew: d.tree_grew,
+        tree_shrank: d.tree_shrank,
+        thresholds: Some(thresholds_to(&d.thresholds)),
+    }
+}
+
+pub fn thresholds_to(t: &DriftThresholds) -> pb::DriftThresholds {
+    pb::DriftThresholds { score_drop: t.score_drop, size_factor: t.size_factor }
+}
+
+// ------------------------------------------------------------------ schedules
+
+/// Wire thresholds, zeros taking the defaults.
+pub fn thresholds_from(t: Option<&pb::DriftThresholds>) -> Result<DriftThresholds, Status> {
+    let d = DriftThresholds::default();
+    let t = match t {
+        None => d,
+        Some(t) => DriftThresholds { score_drop: if t.score_drop == 0.0 { d.score_drop } else { t.score_drop }, size_factor: if t.size_factor == 0.0 { d.size_factor } else { t.size_factor } },
+    };
+    t.check().map_err(Status::invalid_argument)?;
+    Ok(t)
+}
+
+pub fn retention_from(r: Option<&pb::Retention>) -> Retention {
+    let nonzero = |n: u32| (n > 0).then_some(n);
+    r.map_or(Retention::default(), |r| Retention { keep_last: nonzero(r.keep_last), keep_days: nonzero(r.keep_days) })
+}
+
+pub fn catch_up_from(c: i32) -> Result<CatchUp, Status> {
+    match pb::CatchUp::try_from(c).map_err(|_| invalid("catch_up", format!("{c} is not a catch-up rule")))? {
+        pb::CatchUp::Unspecified | pb::CatchUp::Once => Ok(CatchUp::Once),
+        pb::CatchUp::Skip => Ok(CatchUp::Skip),
+    }
+}
+
+fn catch_up_to(name: &str) -> pb::CatchUp {
+    match CatchUp::parse(name) {
+        Some(CatchUp::Skip) => pb::CatchUp::Skip,
+        _ => pb::CatchUp::Once,
+    }
+}
+
+fn fire_outcome_to(o: FireOutcome) -> pb::FireOutcome {
+    match o {
+        FireOutcome::Started => pb::FireOutcome::Started,
+        FireOutcome::SkippedBusy => pb::FireOutcome::SkippedBusy,
+        FireOutcome::SkippedUnchanged => pb::FireOutcome::SkippedUnchanged,
+        FireOutcome::SkippedMissed => pb::FireOutcome::SkippedMissed,
+        FireOutcome::Failed => pb::FireOutcome::Failed,
+    }
+}
+
+pub fn fire_to(f: &Fire) -> pb::Fire {
+    pb::Fire {
+        sequence: f.sequence,
+        scheduled_for: time(f.scheduled_for),
+        handled_at: time(f.handled_at),
+        outcome: fire_outcome_to(f.outcome) as i32,
+        run_id: f.run_id.clone(),
+        missed: f.missed,
+        detail: f.detail.clone(),
+    }
+}
+
+/// A schedule for the wire; `next_fire` is computed by the caller (empty while paused).
+pub fn schedule_info(s: &Schedule, next_fire: Option<i64>, last_fire: Option<&Fire>) -> pb::ScheduleInfo {
+    pb::ScheduleInfo {
+        id: s.id.clone(),
+        name: s.name.clone(),
+        cron: s.cron.clone(),
+        time_zone: s.time_zone.clone(),
+        dataset_name: s.dataset_name.clone(),
+        spec: Some(spec_to(&s.spec, &s.target)),
+        labels: s.labels.clone().into_iter().collect(),
+        retention: Some(pb::Retention { keep_last: s.retention.keep_last.unwrap_or(0), keep_days: s.retention.keep_days.unwrap_or(0) }),
+        catch_up: catch_up_to(&s.catch_up) as i32,
+        skip_unchanged: s.skip_unchanged,
+        drift: Some(thresholds_to(&s.drift)),
+        paused: s.paused,
+        created_at: time(s.created_at),
+        next_fire_at: if s.paused { String::new() } else { opt_time(next_fire) },
+        last_run_id: s.last_run_id.clone(),
+        last_fire: last_fire.map(fire_to),
+    }
 }
 
 // ------------------------------------------------------------------ models

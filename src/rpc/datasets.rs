@@ -9,7 +9,7 @@ use crate::data::{Column, Frame};
 use crate::job::{ColumnMeta, DatasetMeta};
 use crate::pb;
 use crate::store::{DeleteDataset, PutDataset};
-use crate::worker::{cpu, now_ms};
+use crate::worker::cpu;
 
 /// "ds_" + hex SHA-256 of the bytes.
 pub fn dataset_id(bytes: &[u8]) -> String {
@@ -44,6 +44,7 @@ impl Api {
         let shared = self.shared.clone();
         let cfg = shared.config.clone();
         let store = shared.store.clone();
+        let clock = shared.clock.clone();
         cpu(&shared, move || {
             let mut options = CsvOptions::new(target.clone());
             options.categorical = categorical.clone();
@@ -64,7 +65,7 @@ impl Api {
                 columns: summarize(&frame),
                 target,
                 task,
-                created_at: now_ms(),
+                created_at: clock.now_ms(),
                 bytes: bytes.len() as u64,
                 categorical,
             };

@@ -6,12 +6,13 @@ pub mod datasets;
 pub mod error;
 pub mod models;
 pub mod runs;
+pub mod schedules;
 
 use std::sync::Arc;
 
 use crate::worker::Shared;
 
-/// The handler state: one per server, shared by the three services.
+/// The handler state: one per server, shared by the four services.
 #[derive(Clone)]
 pub struct Api {
     pub shared: Arc<Shared>,

@@ -8,55 +8,71 @@ use tonic::{Request, Response, Status};
 use tracing::info;
 
 use super::{convert, error, page_size, token, Api};
-use crate::job::{EventKind, Run, RunState};
+use std::sync::Arc;
+
+use crate::job::{DatasetMeta, EventKind, Run, RunState};
 use crate::pb;
 use crate::store::{CreateRun, RunFilter};
 use crate::sweep::SweepSpec;
-use crate::worker::{cpu, load_dataset, now_ms};
+use crate::worker::{cpu, load_dataset, Shared};
 
 /// A new run id: "run_" + a version 7 UUID, which sorts by creation time.
 pub fn new_run_id() -> String {
     format!("run_{}", uuid::Uuid::now_v7().simple())
 }
 
-impl Api {
-    /// Checks a sweep against its dataset and queues it (shared by StartRun and schedules).
-    pub async fn queue_run(&self, r: pb::StartRunRequest, schedule_id: String) -> Result<Run, Status> {
-        let store = self.shared.store.clone();
-        let meta = if !r.dataset_id.is_empty() {
-            store.dataset(&r.dataset_id).map_err(error::store)?.ok_or_else(|| error::not_found("dataset", &r.dataset_id))?
-        } else if !r.dataset_name.is_empty() {
-            store
-                .latest_dataset(&r.dataset_name)
-                .map_err(error::store)?
-                .ok_or_else(|| Status::not_found(format!("no dataset named '{}'", r.dataset_name)))?
-        } else {
-            return Err(Status::invalid_argument("dataset_id or dataset_name: name the dataset to sweep"));
+/// The dataset a request names: an exact id, or the latest version under a name.
+pub fn resolve_dataset(shared: &Shared, dataset_id: &str, dataset_name: &str) -> Result<DatasetMeta, Status> {
+    let store = &shared.store;
+    if !dataset_id.is_empty() {
+        store.dataset(dataset_id).map_err(error::store)?.ok_or_else(|| error::not_found("dataset", dataset_id))
+    } else if !dataset_name.is_empty() {
+        store.latest_dataset(dataset_name).map_err(error::store)?.ok_or_else(|| Status::not_found(format!("no dataset named '{dataset_name}'")))
+    } else {
+        Err(Status::invalid_argument("dataset_id or dataset_name: name the dataset to sweep"))
+    }
+}
+
+/// Checks a wire spec against a stored dataset on the CPU pool for calls, so a bad spec fails
+/// now, not in the queue. Returns the spec with its defaults made explicit (task, metric,
+/// folds), so a run reads the same later, and the target column.
+pub async fn check_sweep(shared: &Arc<Shared>, meta: &DatasetMeta, wire: pb::SweepSpec) -> Result<(SweepSpec, String), Status> {
+    let target = if wire.target.is_empty() { meta.target.clone() } else { wire.target.clone() };
+    if target.is_empty() {
+        return Err(Status::invalid_argument(format!("spec.target: dataset '{}' has no default target; name the column to predict", meta.id)));
+    }
+    let (store, cfg) = (shared.store.clone(), shared.config.clone());
+    let (meta, target2) = (meta.clone(), target.clone());
+    let spec = cpu(shared, move || -> Result<SweepSpec, Status> {
+        let task = match wire.task.as_str() {
+            "" => None,
+            t => Some(crate::data::Task::parse(t).ok_or_else(|| Status::invalid_argument(format!("spec.task: '{t}' is not classify or regress")))?),
         };
-        let wire = r.spec.unwrap_or_default();
-        let target = if wire.target.is_empty() { meta.target.clone() } else { wire.target.clone() };
-        if target.is_empty() {
-            return Err(Status::invalid_argument(format!("spec.target: dataset '{}' has no default target; name the column to predict", meta.id)));
-        }
-        let cfg = self.shared.config.clone();
-        let (meta2, target2) = (meta.clone(), target.clone());
-        // Parse and check on the CPU pool, so a bad spec fails now, not in the queue.
-        let spec = cpu(&self.shared, move || -> Result<SweepSpec, Status> {
-            let task = match wire.task.as_str() {
-                "" => None,
-                t => Some(crate::data::Task::parse(t).ok_or_else(|| Status::invalid_argument(format!("spec.task: '{t}' is not classify or regress")))?),
-            };
-            let data = load_dataset(&store, &meta2, &target2, task, cfg.max_rows, cfg.max_columns).map_err(Status::invalid_argument)?;
-            let spec = convert::spec_from(&wire, data.task())?;
-            let checked = SweepSpec { max_settings: Some(cfg.max_settings), ..spec.clone() }.check(&data).map_err(|e| error::spec(&e))?;
-            // Record what the run uses, defaults made explicit, so it reads the same later.
-            Ok(SweepSpec { task: Some(checked.task), metric: Some(checked.metric), folds: Some(checked.folds), ..spec })
-        })
-        .await?;
-        let mut run = Run::queued(new_run_id(), &meta, target, spec, now_ms());
-        run.labels = r.labels.into_iter().collect();
-        run.idempotency_key = r.idempotency_key;
-        run.schedule_id = schedule_id;
+        let data = load_dataset(&store, &meta, &target2, task, cfg.max_rows, cfg.max_columns).map_err(Status::invalid_argument)?;
+        let spec = convert::spec_from(&wire, data.task())?;
+        let checked = SweepSpec { max_settings: Some(cfg.max_settings), ..spec.clone() }.check(&data).map_err(|e| error::spec(&e))?;
+        Ok(SweepSpec { task: Some(checked.task), metric: Some(checked.metric), folds: Some(checked.folds), ..spec })
+    })
+    .await?;
+    Ok((spec, target))
+}
+
+/// A checked, queued run for a request, not yet stored (shared by StartRun and schedules).
+pub async fn prepare_run(shared: &Arc<Shared>, r: pb::StartRunRequest, schedule_id: String) -> Result<Run, Status> {
+    let meta = resolve_dataset(shared, &r.dataset_id, &r.dataset_name)?;
+    let (spec, target) = check_sweep(shared, &meta, r.spec.unwrap_or_default()).await?;
+    let mut run = Run::queued(new_run_id(), &meta, target, spec, shared.now());
+    run.labels = r.labels.into_iter().collect();
+    run.idempotency_key = r.idempotency_key;
+    run.schedule_id = schedule_id;
+    Ok(run)
+}
+
+impl Api {
+    /// Checks a sweep against its dataset and queues it.
+    pub async fn queue_run(&self, r: pb::StartRunRequest) -> Result<Run, Status> {
+        let run = prepare_run(&self.shared, r, String::new()).await?;
+        let dataset_id = run.dataset_id.clone();
         let run = match self.shared.store.create_run(run).map_err(error::store)? {
             CreateRun::Created(run) => {
                 info!(run_id = %run.id, dataset = %run.dataset_id, "run queued");
@@ -64,7 +80,7 @@ impl Api {
                 run
             }
             CreateRun::Existing(run) => run,
-            CreateRun::DatasetMissing => return Err(error::not_found("dataset", &meta.id)),
+            CreateRun::DatasetMissing => return Err(error::not_found("dataset", &dataset_id)),
         };
         Ok(run)
     }
@@ -79,7 +95,7 @@ type EventStream = Pin<Box<dyn Stream<Item = Result<pb::RunEvent, Status>> + Sen
 #[tonic::async_trait]
 impl pb::runs_server::Runs for Api {
     async fn start_run(&self, request: Request<pb::StartRunRequest>) -> Result<Response<pb::RunInfo>, Status> {
-        let run = self.queue_run(request.into_inner(), String::new()).await?;
+        let run = self.queue_run(request.into_inner()).await?;
         Ok(Response::new(convert::run_info(&run, None)))
     }
 
@@ -109,10 +125,12 @@ impl pb::runs_server::Runs for Api {
                         return;
                     }
                 };
-                let outcome = if events.iter().any(|e| matches!(e.kind, EventKind::Finished { .. })) { shared.store.outcome(&r.id).ok().flatten() } else { None };
+                let finished = events.iter().any(|e| matches!(e.kind, EventKind::Finished { .. }));
+                let outcome = if finished { shared.store.outcome(&r.id).ok().flatten() } else { None };
+                let drift = if finished { shared.store.run(&r.id).ok().flatten().and_then(|run| run.drift) } else { None };
                 for e in &events {
                     after = e.sequence;
-                    let msg = convert::event_to(&r.id, e, outcome.as_ref());
+                    let msg = convert::event_to(&r.id, e, outcome.as_ref(), drift.as_ref());
                     if tx.send(Ok(msg)).await.is_err() {
                         return;
                     }
@@ -160,6 +178,8 @@ impl pb::runs_server::Runs for Api {
             schedule_id: (!r.schedule_id.is_empty()).then_some(r.schedule_id),
             created_from: convert::parse_time("created_from", &r.created_from)?,
             created_to: convert::parse_time("created_to", &r.created_to)?,
+            score_fell: r.score_fell,
+            drift_flagged: r.drift_flagged,
         };
         let (runs, next) = self.shared.store.list_runs(&filter, token(&r.page_token), page_size(r.page_size)).map_err(error::store)?;
         Ok(Response::new(pb::ListRunsReply { runs: runs.iter().map(|run| convert::run_info(run, None)).collect(), next_page_token: next.unwrap_or_default() }))
@@ -170,13 +190,13 @@ impl pb::runs_server::Runs for Api {
         let run = self.run_or_not_found(&id)?;
         match run.state {
             RunState::Queued => {
-                self.shared.store.end_run(&id, RunState::Cancelled, "cancelled by request", now_ms()).map_err(error::store)?;
+                self.shared.store.end_run(&id, RunState::Cancelled, "cancelled by request", self.shared.now()).map_err(error::store)?;
                 self.shared.announce();
             }
             RunState::Running => {
                 // The worker stops before its next unit and records the cancellation.
                 if !self.shared.request_cancel(&id) {
-                    self.shared.store.end_run(&id, RunState::Cancelled, "cancelled by request", now_ms()).map_err(error::store)?;
+                    self.shared.store.end_run(&id, RunState::Cancelled, "cancelled by request", self.shared.now()).map_err(error::store)?;
                     self.shared.announce();
                 }
             }

@@ -33,6 +33,11 @@ pub fn event(run_id: &str, sequence: u64) -> Vec<u8> {
     join(run_id.as_bytes(), &sequence.to_be_bytes())
 }
 
+/// `schedule id ++ be u64 fire sequence`.
+pub fn fire(schedule_id: &str, sequence: u64) -> Vec<u8> {
+    join(schedule_id.as_bytes(), &sequence.to_be_bytes())
+}
+
 /// `run id ++ be u32 unit index`.
 pub fn unit(run_id: &str, unit: u32) -> Vec<u8> {
     join(run_id.as_bytes(), &unit.to_be_bytes())

@@ -15,6 +15,12 @@
 //! | `units` | run id ++ be u32 unit | unit record |
 //! | `queue` | run id | empty (run ids are time-ordered: key order is creation order) |
 //! | `idempotency` | idempotency key | run id |
+//! | `dataset_refs` | dataset id | be u64 count of stored runs (any state) that used it |
+//! | `schedules` | schedule id | schedule record |
+//! | `fires` | schedule id ++ be u64 sequence | fire record |
+//!
+//! `dataset_refs` also holds the key [`REFS_COUNTED`]: its absence (a store written before
+//! the counts existed) makes [`Store::open`] count the stored runs once.
 //!
 //! A deleted dataset leaves an empty value at its name and version, so versions under a
 //! name only ever grow and a run's `dataset_version` never comes to name another table.
@@ -43,7 +49,8 @@ use std::path::Path;
 use sled::transaction::{ConflictableTransactionError, TransactionError, TransactionalTree, UnabortableTransactionError};
 use sled::{IVec, Transactional};
 
-use crate::job::{DatasetMeta, Event, EventKind, Run, RunOutcome, RunState};
+use crate::drift::DriftReport;
+use crate::job::{DatasetMeta, Event, EventKind, Fire, FireOutcome, Run, RunOutcome, RunState, Schedule};
 use crate::sweep::UnitResult;
 use records::HoldsRecord;
 
@@ -120,6 +127,10 @@ pub struct RunFilter {
     pub created_from: Option<i64>,
     /// `created_at < created_to`.
     pub created_to: Option<i64>,
+    /// Only runs whose drift report says the score fell.
+    pub score_fell: bool,
+    /// Only runs whose drift report raised a flag.
+    pub drift_flagged: bool,
 }
 
 impl RunFilter {
@@ -130,6 +141,8 @@ impl RunFilter {
             && self.schedule_id.as_ref().is_none_or(|s| *s == run.schedule_id)
             && self.created_from.is_none_or(|t| run.created_at >= t)
             && self.created_to.is_none_or(|t| run.created_at < t)
+            && (!self.score_fell || run.drift.as_ref().is_some_and(|d| d.score_fell))
+            && (!self.drift_flagged || run.drift.as_ref().is_some_and(|d| d.flagged()))
     }
 }
 
@@ -151,7 +164,27 @@ const EVENTS: usize = 6;
 const UNITS: usize = 7;
 const QUEUE: usize = 8;
 const IDEMPOTENCY: usize = 9;
-const TREE_NAMES: [&str; 10] = ["datasets", "dataset_chunks", "dataset_names", "dataset_holds", "runs", "results", "events", "units", "queue", "idempotency"];
+const REFS: usize = 10;
+const SCHEDULES: usize = 11;
+const FIRES: usize = 12;
+const TREE_NAMES: [&str; 13] = [
+    "datasets",
+    "dataset_chunks",
+    "dataset_names",
+    "dataset_holds",
+    "runs",
+    "results",
+    "events",
+    "units",
+    "queue",
+    "idempotency",
+    "dataset_refs",
+    "schedules",
+    "fires",
+];
+
+/// The marker key of `dataset_refs` saying the counts are complete (no dataset id starts with 0x00).
+pub const REFS_COUNTED: &[u8] = b"\0counted";
 
 /// Why a transaction stopped without committing.
 enum Abort {
@@ -224,6 +257,86 @@ impl Tx<'_> {
         Ok(())
     }
 
+    /// How many stored runs used a dataset.
+    fn refs(&self, dataset_id: &str) -> TxResult<u64> {
+        match self.get(REFS, dataset_id)? {
+            None => Ok(0),
+            Some(v) => read(count_of(&v)),
+        }
+    }
+
+    fn add_ref(&self, dataset_id: &str, delta: i64) -> TxResult<()> {
+        let n = (self.refs(dataset_id)? as i64 + delta).max(0) as u64;
+        if n == 0 {
+            self.remove(REFS, dataset_id)?;
+        } else {
+            self.insert(REFS, dataset_id, &n.to_be_bytes())?;
+        }
+        Ok(())
+    }
+
+    /// Stores a queued run and enqueues it, unless its idempotency key or id names a stored
+    /// run (that run is returned) or its dataset is not stored.
+    fn insert_run(&self, run: &Run) -> TxResult<CreateRun> {
+        if !run.idempotency_key.is_empty() {
+            if let Some(id) = self.get(IDEMPOTENCY, &run.idempotency_key)? {
+                let id = read(String::from_utf8(id.to_vec()).map_err(|_| StoreError::Corrupt("idempotency entry is not UTF-8".into())))?;
+                if let Some(existing) = self.run(&id)? {
+                    return Ok(CreateRun::Existing(existing));
+                }
+            }
+        }
+        if let Some(existing) = self.run(&run.id)? {
+            return Ok(CreateRun::Existing(existing));
+        }
+        if self.get(DATASETS, &run.dataset_id)?.is_none() {
+            return Ok(CreateRun::DatasetMissing);
+        }
+        self.put_run(run)?;
+        self.insert(QUEUE, &run.id, IVec::default())?;
+        if !run.idempotency_key.is_empty() {
+            self.insert(IDEMPOTENCY, &run.idempotency_key, run.id.as_bytes())?;
+        }
+        self.hold(&run.dataset_id, &run.id)?;
+        self.add_ref(&run.dataset_id, 1)?;
+        Ok(CreateRun::Created(run.clone()))
+    }
+
+    fn delete_dataset(&self, id: &str, only_unused: bool) -> TxResult<DeleteDataset> {
+        let Some(v) = self.get(DATASETS, id)? else { return Ok(DeleteDataset::NotFound) };
+        let meta = read(records::decode_dataset(&v))?;
+        if let Some(run_id) = self.holds(id)?.runs.first() {
+            return Ok(DeleteDataset::InUse { run_id: run_id.clone() });
+        }
+        if only_unused && self.refs(id)? > 0 {
+            return Ok(DeleteDataset::InUse { run_id: String::new() });
+        }
+        self.remove(DATASETS, id)?;
+        // Chunks are numbered from 0 without gaps.
+        let mut i = 0u32;
+        while self.remove(CHUNKS, keys::chunk(id, i))?.is_some() {
+            i += 1;
+        }
+        if !meta.name.is_empty() {
+            let key = keys::name_version(&meta.name, meta.version);
+            if self.get(NAMES, &key)?.is_some_and(|v| v == id.as_bytes()) {
+                self.insert(NAMES, key, IVec::default())?;
+            }
+        }
+        Ok(DeleteDataset::Deleted)
+    }
+
+    fn schedule(&self, id: &str) -> TxResult<Option<Schedule>> {
+        match self.get(SCHEDULES, id)? {
+            None => Ok(None),
+            Some(v) => read(records::decode_schedule(&v)).map(Some),
+        }
+    }
+
+    fn put_schedule(&self, s: &Schedule) -> TxResult<()> {
+        Ok(self.insert(SCHEDULES, &s.id, records::encode_schedule(s))?)
+    }
+
     /// Numbers and stores an event of `run` (which the caller saves afterwards).
     fn append(&self, run: &mut Run, kind: EventKind, now: i64) -> TxResult<Event> {
         let event = Event { sequence: run.take_sequence(), at: now, kind };
@@ -271,7 +384,31 @@ impl Store {
 
     fn with(db: sled::Db) -> Result<Store, StoreError> {
         let trees = TREE_NAMES.iter().map(|n| db.open_tree(n)).collect::<Result<_, _>>()?;
-        Ok(Store { db, trees })
+        let store = Store { db, trees };
+        store.count_refs_once()?;
+        Ok(store)
+    }
+
+    /// Fills `dataset_refs` from the stored runs when it was never filled (see the module
+    /// notes). Cleared first and marked last, so a crash in between counts again.
+    fn count_refs_once(&self) -> Result<(), StoreError> {
+        let refs = self.tree(REFS);
+        if refs.contains_key(REFS_COUNTED)? {
+            return Ok(());
+        }
+        refs.clear()?;
+        let mut counts: std::collections::BTreeMap<String, u64> = std::collections::BTreeMap::new();
+        for kv in self.tree(RUNS).iter() {
+            *counts.entry(records::decode_run(&kv?.1)?.dataset_id).or_default() += 1;
+        }
+        let mut batch = sled::Batch::default();
+        for (id, n) in counts {
+            batch.insert(id.as_bytes(), &n.to_be_bytes());
+        }
+        batch.insert(REFS_COUNTED, &[]);
+        refs.apply_batch(batch)?;
+        self.db.flush()?;
+        Ok(())
     }
 
     /// Writes everything to disk (changes already are, when they return; this is for shutdown).
@@ -422,28 +559,13 @@ impl Store {
     /// Deletes a dataset unless a queued or running run uses it; checked and deleted in one
     /// transaction, so no run can be created for it in between.
     pub fn delete_dataset(&self, id: &str) -> Result<DeleteDataset, StoreError> {
-        retrying(|| {
-            self.transact(|tx| {
-                let Some(v) = tx.get(DATASETS, id)? else { return Ok(DeleteDataset::NotFound) };
-                let meta = read(records::decode_dataset(&v))?;
-                if let Some(run_id) = tx.holds(id)?.runs.first() {
-                    return Ok(DeleteDataset::InUse { run_id: run_id.clone() });
-                }
-                tx.remove(DATASETS, id)?;
-                // Chunks are numbered from 0 without gaps.
-                let mut i = 0u32;
-                while tx.remove(CHUNKS, keys::chunk(id, i))?.is_some() {
-                    i += 1;
-                }
-                if !meta.name.is_empty() {
-                    let key = keys::name_version(&meta.name, meta.version);
-                    if tx.get(NAMES, &key)?.is_some_and(|v| v == id.as_bytes()) {
-                        tx.insert(NAMES, key, IVec::default())?;
-                    }
-                }
-                Ok(DeleteDataset::Deleted)
-            })
-        })
+        retrying(|| self.transact(|tx| tx.delete_dataset(id, false)))
+    }
+
+    /// Deletes a dataset only when no stored run (of any state) used it, checked in the same
+    /// transaction; `InUse` names no run then. For retention.
+    pub fn delete_dataset_if_unused(&self, id: &str) -> Result<DeleteDataset, StoreError> {
+        retrying(|| self.transact(|tx| tx.delete_dataset(id, true)))
     }
 
     // -------------------------------------------------------------------------------------
@@ -454,31 +576,7 @@ impl Store {
     /// instead. The dataset must exist (checked inside the transaction).
     pub fn create_run(&self, run: Run) -> Result<CreateRun, StoreError> {
         debug_assert_eq!(run.state, RunState::Queued, "create_run takes a queued run");
-        retrying(|| {
-            self.transact(|tx| {
-                if !run.idempotency_key.is_empty() {
-                    if let Some(id) = tx.get(IDEMPOTENCY, &run.idempotency_key)? {
-                        let id = read(String::from_utf8(id.to_vec()).map_err(|_| StoreError::Corrupt("idempotency entry is not UTF-8".into())))?;
-                        if let Some(existing) = tx.run(&id)? {
-                            return Ok(CreateRun::Existing(existing));
-                        }
-                    }
-                }
-                if let Some(existing) = tx.run(&run.id)? {
-                    return Ok(CreateRun::Existing(existing));
-                }
-                if tx.get(DATASETS, &run.dataset_id)?.is_none() {
-                    return Ok(CreateRun::DatasetMissing);
-                }
-                tx.put_run(&run)?;
-                tx.insert(QUEUE, &run.id, IVec::default())?;
-                if !run.idempotency_key.is_empty() {
-                    tx.insert(IDEMPOTENCY, &run.idempotency_key, run.id.as_bytes())?;
-                }
-                tx.hold(&run.dataset_id, &run.id)?;
-                Ok(CreateRun::Created(run.clone()))
-            })
-        })
+        retrying(|| self.transact(|tx| tx.insert_run(&run)))
     }
 
     pub fn run(&self, id: &str) -> Result<Option<Run>, StoreError> {
@@ -596,15 +694,16 @@ impl Store {
         Ok(out)
     }
 
-    /// Running → finished: stores the outcome, appends the finished event, sets
-    /// `finished_at`; one transaction. `None` when the run is not running (it was cancelled
+    /// Running → finished: stores the outcome and the drift report, appends the finished
+    /// event, sets `finished_at`; one transaction. `None` when the run is not running (it was cancelled
     /// or failed meanwhile, or is unknown): nothing is stored then.
-    pub fn finish_run(&self, run_id: &str, outcome: &RunOutcome, now: i64) -> Result<Option<Event>, StoreError> {
+    pub fn finish_run(&self, run_id: &str, outcome: &RunOutcome, drift: Option<DriftReport>, now: i64) -> Result<Option<Event>, StoreError> {
         let bytes = records::encode_outcome(outcome);
         retrying(|| {
             self.transact(|tx| {
                 let Some(mut run) = tx.run(run_id)?.filter(|r| r.state == RunState::Running) else { return Ok(None) };
                 tx.insert(RESULTS, run_id, bytes.clone())?;
+                run.drift = drift.clone();
                 let event = tx.append(&mut run, EventKind::Finished { picked: outcome.picked, best: outcome.best }, now)?;
                 run.end(RunState::Finished, now, "");
                 tx.put_run(&run)?;
@@ -712,9 +811,156 @@ impl Store {
                 if !run.idempotency_key.is_empty() && tx.get(IDEMPOTENCY, &run.idempotency_key)?.is_some_and(|v| v == run_id.as_bytes()) {
                     tx.remove(IDEMPOTENCY, &run.idempotency_key)?;
                 }
+                tx.add_ref(&run.dataset_id, -1)?;
                 Ok(true)
             })
         })
+    }
+
+    // -------------------------------------------------------------------------------------
+    // Schedules
+
+    /// Stores a new schedule; `false` (nothing changed) when its id is taken.
+    pub fn create_schedule(&self, schedule: &Schedule) -> Result<bool, StoreError> {
+        retrying(|| {
+            self.transact(|tx| {
+                if tx.get(SCHEDULES, &schedule.id)?.is_some() {
+                    return Ok(false);
+                }
+                tx.put_schedule(schedule)?;
+                Ok(true)
+            })
+        })
+    }
+
+    pub fn schedule(&self, id: &str) -> Result<Option<Schedule>, StoreError> {
+        self.tree(SCHEDULES).get(id)?.map(|v| records::decode_schedule(&v)).transpose()
+    }
+
+    /// Schedules newest first (ids are time-ordered); the page token is the last id returned.
+    pub fn list_schedules(&self, page_token: Option<&str>, limit: usize) -> Result<(Vec<Schedule>, Option<String>), StoreError> {
+        let iter = match page_token {
+            Some(t) => self.tree(SCHEDULES).range(..t.as_bytes()),
+            None => self.tree(SCHEDULES).iter(),
+        };
+        let mut found = Vec::new();
+        for kv in iter.rev() {
+            found.push(records::decode_schedule(&kv?.1)?);
+            if found.len() > limit.max(1) {
+                break;
+            }
+        }
+        Ok(page(found, limit, |s| s.id.clone(), |s| s))
+    }
+
+    /// Every schedule, oldest first.
+    pub fn all_schedules(&self) -> Result<Vec<Schedule>, StoreError> {
+        self.tree(SCHEDULES).iter().map(|kv| records::decode_schedule(&kv?.1)).collect()
+    }
+
+    /// Changes a schedule in one transaction; `None` when it is unknown.
+    pub fn update_schedule(&self, id: &str, change: impl Fn(&mut Schedule)) -> Result<Option<Schedule>, StoreError> {
+        retrying(|| {
+            self.transact(|tx| {
+                let Some(mut s) = tx.schedule(id)? else { return Ok(None) };
+                change(&mut s);
+                tx.put_schedule(&s)?;
+                Ok(Some(s))
+            })
+        })
+    }
+
+    /// Deletes a schedule and its fire records (its runs stay); `false` when unknown.
+    pub fn delete_schedule(&self, id: &str) -> Result<bool, StoreError> {
+        retrying(|| {
+            let Some(seen) = self.schedule(id).map_err(Abort::Store)? else { return Ok(false) };
+            let mut fire_keys = Vec::new();
+            for kv in self.tree(FIRES).scan_prefix(id) {
+                let (k, _) = kv.map_err(|e| Abort::Store(e.into()))?;
+                if keys::belongs(id, 8, &k) {
+                    fire_keys.push(k);
+                }
+            }
+            self.transact(|tx| {
+                let Some(s) = tx.schedule(id)? else { return Ok(false) };
+                // A fire recorded after the scan would be left behind: scan again.
+                if s.next_fire_sequence != seen.next_fire_sequence {
+                    return stale();
+                }
+                tx.remove(SCHEDULES, id)?;
+                for k in &fire_keys {
+                    tx.remove(FIRES, k)?;
+                }
+                Ok(true)
+            })
+        })
+    }
+
+    /// Records one fire of a schedule in one transaction, with the run it starts:
+    /// - `None` (nothing stored) when the schedule is unknown, paused, or its
+    ///   `considered_until` is no longer `seen_considered` (another change came first);
+    /// - with a run, it is queued unless the schedule's last run is still queued or running
+    ///   (the fire becomes [`FireOutcome::SkippedBusy`]) or the dataset is gone
+    ///   ([`FireOutcome::Failed`]); a run whose idempotency key is already stored is not
+    ///   queued again.
+    ///
+    /// The fire gets its sequence number here, and `considered_until` becomes `considered`.
+    /// Returns the schedule, the stored fire and the run created, if any.
+    pub fn record_fire(&self, id: &str, seen_considered: i64, considered: i64, draft: &Fire, run: Option<&Run>) -> Result<Option<(Schedule, Fire, Option<Run>)>, StoreError> {
+        retrying(|| {
+            self.transact(|tx| {
+                let Some(mut s) = tx.schedule(id)?.filter(|s| s.considered_until == seen_considered && !s.paused) else { return Ok(None) };
+                let mut fire = draft.clone();
+                let mut created = None;
+                if let Some(run) = run {
+                    let busy = match s.last_run_id.as_str() {
+                        "" => None,
+                        last => tx.run(last)?.filter(|r| r.state.is_active()),
+                    };
+                    if let Some(busy) = busy {
+                        fire.outcome = FireOutcome::SkippedBusy;
+                        fire.detail = format!("the previous run {} is still {}", busy.id, busy.state.as_str());
+                        fire.run_id = busy.id;
+                    } else {
+                        match tx.insert_run(run)? {
+                            CreateRun::Created(r) => {
+                                s.last_run_id = r.id.clone();
+                                s.last_dataset_id = r.dataset_id.clone();
+                                fire.run_id = r.id.clone();
+                                created = Some(r);
+                            }
+                            CreateRun::Existing(r) => fire.run_id = r.id,
+                            CreateRun::DatasetMissing => {
+                                fire.outcome = FireOutcome::Failed;
+                                fire.detail = format!("dataset {} was deleted before the run could be queued", run.dataset_id);
+                            }
+                        }
+                    }
+                }
+                fire.sequence = s.next_fire_sequence;
+                s.next_fire_sequence += 1;
+                s.considered_until = considered;
+                tx.insert(FIRES, keys::fire(id, fire.sequence), records::encode_fire(&fire))?;
+                tx.put_schedule(&s)?;
+                Ok(Some((s, fire, created.clone())))
+            })
+        })
+    }
+
+    /// A schedule's fires newest first; the page token is the last sequence returned.
+    pub fn fires(&self, id: &str, page_token: Option<u64>, limit: usize) -> Result<(Vec<Fire>, Option<String>), StoreError> {
+        let upper = page_token.unwrap_or(u64::MAX);
+        let mut found = Vec::new();
+        for kv in self.tree(FIRES).range(keys::fire(id, 0)..keys::fire(id, upper)).rev() {
+            let (k, v) = kv?;
+            if keys::belongs(id, 8, &k) {
+                found.push(records::decode_fire(&v)?);
+                if found.len() > limit.max(1) {
+                    break;
+                }
+            }
+        }
+        Ok(page(found, limit, |f| f.sequence.to_string(), |f| f))
     }
 }
 
@@ -733,4 +979,9 @@ fn page<I, T>(items: Vec<I>, limit: usize, position: impl Fn(&I) -> String, valu
     kept.truncate(limit);
     let token = if more { kept.last().map(&position) } else { None };
     (kept.into_iter().map(value).collect(), token)
+}
+
+/// A stored big-endian u64 count.
+fn count_of(v: &[u8]) -> Result<u64, StoreError> {
+    <[u8; 8]>::try_from(v).map(u64::from_be_bytes).map_err(|_| StoreError::Corrupt(format!("a dataset reference count has {} bytes, not 8", v.len())))
 }

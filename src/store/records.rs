@@ -25,7 +25,8 @@ use serde::{Deserialize, Deserializer, Serialize, Serializer};
 use super::StoreError;
 use crate::data::Task;
 use crate::export::json::{from_json, to_json};
-use crate::job::{ColumnMeta, DatasetMeta, Event, EventKind, Run, RunOutcome, RunState};
+use crate::drift::{DriftReport, DriftThresholds, LimitMove};
+use crate::job::{ColumnMeta, DatasetMeta, Event, EventKind, Fire, FireOutcome, Retention, Run, RunOutcome, RunState, Schedule};
 use crate::sweep::{FoldPlan, FoldScheme, FoldScore, Metric, PickRule, Progress, Range, Setting, SettingScore, SweepSpec, UnitResult};
 use crate::tree::{ClassWeight, Criterion, FitOptions, Limits};
 
@@ -295,6 +296,9 @@ pub struct RunRecord {
     dataset_id: String,
     dataset_name: String,
     dataset_version: u32,
+    /// Absent in records written before drift reports existed.
+    #[serde(default)]
+    dataset_rows: u64,
     target: String,
     spec: SpecRecord,
     labels: BTreeMap<String, String>,
@@ -308,6 +312,8 @@ pub struct RunRecord {
     units_total: u32,
     units_done: u32,
     next_sequence: u64,
+    #[serde(default)]
+    drift: Option<DriftRecord>,
 }
 
 impl From<&Run> for RunRecord {
@@ -318,6 +324,7 @@ impl From<&Run> for RunRecord {
             dataset_id: r.dataset_id.clone(),
             dataset_name: r.dataset_name.clone(),
             dataset_version: r.dataset_version,
+            dataset_rows: r.dataset_rows,
             target: r.target.clone(),
             spec: SpecRecord::from(&r.spec),
             labels: r.labels.clone(),
@@ -331,6 +338,7 @@ impl From<&Run> for RunRecord {
             units_total: r.units_total,
             units_done: r.units_done,
             next_sequence: r.next_sequence,
+            drift: r.drift.as_ref().map(DriftRecord::from),
         }
     }
 }
@@ -345,6 +353,7 @@ impl TryFrom<RunRecord> for Run {
             dataset_id: r.dataset_id,
             dataset_name: r.dataset_name,
             dataset_version: r.dataset_version,
+            dataset_rows: r.dataset_rows,
             target: r.target,
             labels: r.labels,
             idempotency_key: r.idempotency_key,
@@ -357,6 +366,202 @@ impl TryFrom<RunRecord> for Run {
             units_total: r.units_total,
             units_done: r.units_done,
             next_sequence: r.next_sequence,
+            drift: r.drift.map(DriftReport::from),
+        })
+    }
+}
+
+#[derive(Serialize, Deserialize)]
+struct DriftRecord {
+    previous_run_id: String,
+    moved: Vec<[String; 3]>,
+    previous_score: Real,
+    score: Real,
+    score_delta: Real,
+    score_delta_se: Real,
+    previous_dataset_id: String,
+    dataset_id: String,
+    previous_version: u32,
+    version: u32,
+    previous_rows: u64,
+    rows: u64,
+    previous_leaves: Real,
+    leaves: Real,
+    score_fell: bool,
+    tree_grew: bool,
+    tree_shrank: bool,
+    score_drop: Real,
+    size_factor: Real,
+}
+
+impl From<&DriftReport> for DriftRecord {
+    fn from(d: &DriftReport) -> Self {
+        DriftRecord {
+            previous_run_id: d.previous_run_id.clone(),
+            moved: d.moved.iter().map(|m| [m.limit.clone(), m.from.clone(), m.to.clone()]).collect(),
+            previous_score: Real(d.previous_score),
+            score: Real(d.score),
+            score_delta: Real(d.score_delta),
+            score_delta_se: Real(d.score_delta_se),
+            previous_dataset_id: d.previous_dataset_id.clone(),
+            dataset_id: d.dataset_id.clone(),
+            previous_version: d.previous_version,
+            version: d.version,
+            previous_rows: d.previous_rows,
+            rows: d.rows,
+            previous_leaves: Real(d.previous_leaves),
+            leaves: Real(d.leaves),
+            score_fell: d.score_fell,
+            tree_grew: d.tree_grew,
+            tree_shrank: d.tree_shrank,
+            score_drop: Real(d.thresholds.score_drop),
+            size_factor: Real(d.thresholds.size_factor),
+        }
+    }
+}
+
+impl From<DriftRecord> for DriftReport {
+    fn from(d: DriftRecord) -> Self {
+        DriftReport {
+            picked_changed: !d.moved.is_empty(),
+            moved: d.moved.into_iter().map(|[limit, from, to]| LimitMove { limit, from, to }).collect(),
+            previous_run_id: d.previous_run_id,
+            previous_score: d.previous_score.0,
+            score: d.score.0,
+            score_delta: d.score_delta.0,
+            score_delta_se: d.score_delta_se.0,
+            previous_dataset_id: d.previous_dataset_id,
+            dataset_id: d.dataset_id,
+            previous_version: d.previous_version,
+            version: d.version,
+            previous_rows: d.previous_rows,
+            rows: d.rows,
+            previous_leaves: d.previous_leaves.0,
+            leaves: d.leaves.0,
+            score_fell: d.score_fell,
+            tree_grew: d.tree_grew,
+            tree_shrank: d.tree_shrank,
+            thresholds: DriftThresholds { score_drop: d.score_drop.0, size_factor: d.size_factor.0 },
+        }
+    }
+}
+
+// ---------------------------------------------------------------------------------------
+// Schedules and their fires
+
+#[derive(Serialize, Deserialize)]
+pub struct ScheduleRecord {
+    id: String,
+    name: String,
+    cron: String,
+    time_zone: String,
+    dataset_name: String,
+    target: String,
+    spec: SpecRecord,
+    labels: BTreeMap<String, String>,
+    keep_last: Option<u32>,
+    keep_days: Option<u32>,
+    catch_up: String,
+    skip_unchanged: bool,
+    score_drop: Real,
+    size_factor: Real,
+    paused: bool,
+    created_at: i64,
+    considered_until: i64,
+    last_run_id: String,
+    last_dataset_id: String,
+    next_fire_sequence: u64,
+}
+
+impl From<&Schedule> for ScheduleRecord {
+    fn from(s: &Schedule) -> Self {
+        ScheduleRecord {
+            id: s.id.clone(),
+            name: s.name.clone(),
+            cron: s.cron.clone(),
+            time_zone: s.time_zone.clone(),
+            dataset_name: s.dataset_name.clone(),
+            target: s.target.clone(),
+            spec: SpecRecord::from(&s.spec),
+            labels: s.labels.clone(),
+            keep_last: s.retention.keep_last,
+            keep_days: s.retention.keep_days,
+            catch_up: s.catch_up.clone(),
+            skip_unchanged: s.skip_unchanged,
+            score_drop: Real(s.drift.score_drop),
+            size_factor: Real(s.drift.size_factor),
+            paused: s.paused,
+            created_at: s.created_at,
+            considered_until: s.considered_until,
+            last_run_id: s.last_run_id.clone(),
+            last_dataset_id: s.last_dataset_id.clone(),
+            next_fire_sequence: s.next_fire_sequence,
+        }
+    }
+}
+
+impl TryFrom<ScheduleRecord> for Schedule {
+    type Error = StoreError;
+    fn try_from(r: ScheduleRecord) -> Result<Self, StoreError> {
+        Ok(Schedule {
+            spec: SweepSpec::try_from(r.spec)?,
+            id: r.id,
+            name: r.name,
+            cron: r.cron,
+            time_zone: r.time_zone,
+            dataset_name: r.dataset_name,
+            target: r.target,
+            labels: r.labels,
+            retention: Retention { keep_last: r.keep_last, keep_days: r.keep_days },
+            catch_up: r.catch_up,
+            skip_unchanged: r.skip_unchanged,
+            drift: DriftThresholds { score_drop: r.score_drop.0, size_factor: r.size_factor.0 },
+            paused: r.paused,
+            created_at: r.created_at,
+            considered_until: r.considered_until,
+            last_run_id: r.last_run_id,
+            last_dataset_id: r.last_dataset_id,
+            next_fire_sequence: r.next_fire_sequence,
+        })
+    }
+}
+
+#[derive(Serialize, Deserialize)]
+pub struct FireRecord {
+    sequence: u64,
+    scheduled_for: i64,
+    handled_at: i64,
+    outcome: String,
+    run_id: String,
+    missed: u64,
+    detail: String,
+}
+
+impl From<&Fire> for FireRecord {
+    fn from(f: &Fire) -> Self {
+        FireRecord {
+            sequence: f.sequence,
+            scheduled_for: f.scheduled_for,
+            handled_at: f.handled_at,
+            outcome: f.outcome.as_str().to_string(),
+            run_id: f.run_id.clone(),
+            missed: f.missed,
+            detail: f.detail.clone(),
+        }
+    }
+}
+
+impl TryFrom<FireRecord> for Fire {
+    type Error = StoreError;
+    fn try_from(r: FireRecord) -> Result<Self, StoreError> {
+        Ok(Fire {
+            outcome: parse_name("fire", "outcome", &r.outcome, FireOutcome::parse)?,
+            sequence: r.sequence,
+            scheduled_for: r.scheduled_for,
+            handled_at: r.handled_at,
+            run_id: r.run_id,
+            missed: r.missed,
+            detail: r.detail,
         })
     }
 }
@@ -638,4 +843,16 @@ pub fn encode_holds(h: &HoldsRecord) -> Vec<u8> {
 }
 pub fn decode_holds(bytes: &[u8]) -> Result<HoldsRecord, StoreError> {
     decode("dataset holds", bytes)
+}
+pub fn encode_schedule(s: &Schedule) -> Vec<u8> {
+    encode(&ScheduleRecord::from(s))
+}
+pub fn decode_schedule(bytes: &[u8]) -> Result<Schedule, StoreError> {
+    decode::<ScheduleRecord>("schedule", bytes).and_then(Schedule::try_from)
+}
+pub fn encode_fire(f: &Fire) -> Vec<u8> {
+    encode(&FireRecord::from(f))
+}
+pub fn decode_fire(bytes: &[u8]) -> Result<Fire, StoreError> {
+    decode::<FireRecord>("fire", bytes).and_then(Fire::try_from)
 }

@@ -560,7 +560,7 @@ fn step(store: &Store, model: &mut Model, op: &Op, now: i64) {
             } else {
                 None
             };
-            assert_eq!(store.finish_run(&id, &o, now).unwrap(), want);
+            assert_eq!(store.finish_run(&id, &o, None, now).unwrap(), want);
         }
         Op::End { run, cancel } => {
             let id = model.pick(*run, |r| !r.state.is_terminal());
@@ -740,7 +740,7 @@ fn crash_script(store: &Store) {
     for u in 0..2 {
         store.record_unit(&first.id, &unit_result(u, 21 + u as i64), unit_events(3, 21), 21).unwrap();
     }
-    store.finish_run(&first.id, &outcome(Some(fitted("iris.csv", Limits { max_depth: Some(2), ..Limits::default() }))), 30).unwrap().unwrap();
+    store.finish_run(&first.id, &outcome(Some(fitted("iris.csv", Limits { max_depth: Some(2), ..Limits::default() }))), None, 30).unwrap().unwrap();
     let second = store.claim_next(31).unwrap().unwrap();
     store.record_unit(&second.id, &unit_result(1, 32), unit_events(1, 32), 32).unwrap();
     store.end_run("run_2", RunState::Cancelled, "asked to stop", 33).unwrap().unwrap();

@@ -1,0 +1,198 @@
+//! The scheduler: one task that sleeps until the next fire of any schedule (or until a
+//! schedule changes, or shutdown), then handles what is due and sleeps again.
+//!
+//! Handling one due schedule (the decision itself is [`crate::schedule::due`], pure):
+//! - fires that passed while the server was down are caught up once, or recorded as
+//!   skipped, by the schedule's `catch_up` rule;
+//! - a fire whose previous run is still queued or running is recorded as skipped (busy);
+//! - with `skip_unchanged`, a fire whose dataset name has no version newer than the last
+//!   run's is recorded as skipped (unchanged);
+//! - otherwise the template is checked against the latest version of the dataset and queued
+//!   through the same queue as every other run; the run records the schedule's id.
+//!
+//! The fire record, the schedule's bookkeeping and the new run are stored in one transaction
+//! ([`crate::store::Store::record_fire`]), and the run's idempotency key is the schedule id
+//! and the fire instant, so a crash or a restart never starts one fire twice. After each
+//! fire the schedule's retention rule deletes its expired runs and the datasets no stored
+//! run uses any more (the latest version of the name always stays).
+
+use std::collections::BTreeSet;
+use std::sync::Arc;
+
+use tracing::{error, info, warn};
+
+use crate::job::{Fire, FireOutcome, Run, Schedule};
+use crate::pb;
+use crate::rpc::convert;
+use crate::rpc::runs::prepare_run;
+use crate::schedule::{self, CatchUp, Cron, Due};
+use crate::store::{DeleteDataset, RunFilter, StoreError};
+use crate::worker::Shared;
+
+/// Runs until shutdown.
+pub async fn scheduler_loop(shared: Arc<Shared>) {
+    let mut shutdown = shared.shutdown.subscribe();
+    loop {
+        if *shutdown.borrow() {
+            return;
+        }
+        let next = tick(&shared).await;
+        let clock = shared.clock.clone();
+        tokio::select! {
+            _ = clock.sleep_until(next.unwrap_or(i64::MAX)) => {}
+            _ = shared.schedules_changed.notified() => {}
+            _ = shutdown.changed() => {}
+        }
+    }
+}
+
+/// Handles every due schedule once; returns the earliest next fire instant.
+pub async fn tick(shared: &Arc<Shared>) -> Option<i64> {
+    let now = shared.now();
+    let schedules = match shared.store.all_schedules() {
+        Ok(s) => s,
+        Err(e) => {
+            error!("cannot read the schedules: {e}");
+            return Some(now + 60_000);
+        }
+    };
+    let grace = (shared.config.fire_grace_secs as i64).saturating_mul(1000);
+    let mut earliest: Option<i64> = None;
+    for s in schedules.into_iter().filter(|s| !s.paused) {
+        let cron = match Cron::parse(&s.cron, &s.time_zone) {
+            Ok(c) => c,
+            Err(e) => {
+                error!(schedule_id = %s.id, "stored schedule does not parse: {e}");
+                continue;
+            }
+        };
+        let catch_up = CatchUp::parse(&s.catch_up).unwrap_or(CatchUp::Once);
+        let due = schedule::due(&cron, s.considered_until, now, grace, catch_up);
+        if due.considered_until != s.considered_until {
+            if let Err(e) = handle(shared, &s, &due, now).await {
+                error!(schedule_id = %s.id, "cannot record a fire: {e}");
+            }
+        }
+        if let Some(n) = due.next {
+            earliest = Some(earliest.map_or(n, |e| e.min(n)));
+        }
+    }
+    earliest
+}
+
+/// Records what one due schedule does now, then applies its retention.
+async fn handle(shared: &Arc<Shared>, s: &Schedule, due: &Due, now: i64) -> Result<(), StoreError> {
+    let store = &shared.store;
+    let mut fire = Fire {
+        sequence: 0,
+        scheduled_for: due.fire_for.or(due.last_missed).unwrap_or(now),
+        handled_at: now,
+        outcome: FireOutcome::Started,
+        run_id: String::new(),
+        missed: due.missed,
+        detail: String::new(),
+    };
+    let mut run: Option<Run> = None;
+    match due.fire_for {
+        None => {
+            fire.outcome = FireOutcome::SkippedMissed;
+            fire.detail = format!("{} fire(s) passed while the server was down; the catch-up rule is skip", count(due));
+        }
+        Some(at) => {
+            if !due.on_time {
+                fire.detail = format!("catching up {} fire(s) missed while the server was down", count(due));
+            }
+            let busy = match s.last_run_id.as_str() {
+                "" => None,
+                last => store.run(last)?.filter(|r| r.state.is_active()),
+            };
+            let latest = store.latest_dataset(&s.dataset_name)?;
+            if let Some(busy) = busy {
+                fire.outcome = FireOutcome::SkippedBusy;
+                fire.detail = format!("the previous run {} is still {}", busy.id, busy.state.as_str());
+                fire.run_id = busy.id;
+            } else if let Some(latest) = latest {
+                if s.skip_unchanged && latest.id == s.last_dataset_id {
+                    fire.outcome = FireOutcome::SkippedUnchanged;
+                    fire.detail = format!("dataset '{}' has no version newer than {} (version {})", s.dataset_name, latest.id, latest.version);
+                } else {
+                    let request = pb::StartRunRequest {
+                        dataset_id: latest.id.clone(),
+                        dataset_name: String::new(),
+                        spec: Some(convert::spec_to(&s.spec, &s.target)),
+                        idempotency_key: format!("{}@{at}", s.id),
+                        labels: s.labels.clone().into_iter().collect(),
+                    };
+                    match prepare_run(shared, request, s.id.clone()).await {
+                        Ok(r) => run = Some(r),
+                        Err(status) => {
+                            fire.outcome = FireOutcome::Failed;
+                            fire.detail = format!("the template no longer fits dataset {}: {}", latest.id, status.message());
+                        }
+                    }
+                }
+            } else {
+                fire.outcome = FireOutcome::Failed;
+                fire.detail = format!("no dataset named '{}' is stored", s.dataset_name);
+            }
+        }
+    }
+    match store.record_fire(&s.id, s.considered_until, due.considered_until, &fire, run.as_ref())? {
+        None => warn!(schedule_id = %s.id, "the schedule changed while its fire was handled; it is looked at again"),
+        Some((_, fire, created)) => {
+            if let Some(r) = created {
+                info!(schedule_id = %s.id, run_id = %r.id, dataset = %r.dataset_id, "scheduled run queued");
+                shared.queued.notify_one();
+                shared.announce();
+            } else {
+                info!(schedule_id = %s.id, outcome = fire.outcome.as_str(), "{}", fire.detail);
+            }
+        }
+    }
+    apply_retention(shared, s, now)
+}
+
+fn count(due: &Due) -> String {
+    if due.missed_capped {
+        format!("at least {}", due.missed)
+    } else {
+        due.missed.to_string()
+    }
+}
+
+/// Deletes the schedule's expired runs, then the datasets they used that no stored run
+/// uses any more, apart from the latest version of each name (the next fire's data).
+pub fn apply_retention(shared: &Shared, s: &Schedule, now: i64) -> Result<(), StoreError> {
+    if s.retention.is_unlimited() {
+        return Ok(());
+    }
+    let store = &shared.store;
+    let filter = RunFilter { schedule_id: Some(s.id.clone()), ..RunFilter::default() };
+    let mut runs = Vec::new();
+    let mut token: Option<String> = None;
+    loop {
+        let (page, next) = store.list_runs(&filter, token.as_deref(), 500)?;
+        runs.extend(page);
+        match next {
+            Some(t) => token = Some(t),
+            None => break,
+        }
+    }
+    let mut datasets = BTreeSet::new();
+    for r in s.retention.expired(&runs, now) {
+        if store.delete_run(&r.id)? {
+            info!(schedule_id = %s.id, run_id = %r.id, "retention deleted a run");
+            datasets.insert(r.dataset_id.clone());
+        }
+    }
+    for id in datasets {
+        let Some(meta) = store.dataset(&id)? else { continue };
+        if !meta.name.is_empty() && store.latest_dataset(&meta.name)?.is_some_and(|l| l.id == id) {
+            continue;
+        }
+        if store.delete_dataset_if_unused(&id)? == DeleteDataset::Deleted {
+            info!(schedule_id = %s.id, dataset = %id, "retention deleted a dataset no run uses");
+        }
+    }
+    Ok(())
+}
