@@ -850,3 +850,59 @@ fn show_names_the_default_metric_of_a_regress_run() {
     let rmse = |r: &str| r.split_whitespace().nth(9).and_then(|v| v.parse::<f64>().ok()).unwrap();
     assert!(rmse(&rows[1]) <= rmse(&rows[2]), "lower RMSE ranks first:\n{text}");
 }
+
+#[test]
+fn schedule_commands() {
+    let server = Serve::start();
+    let iris = data("iris.csv");
+    server.run(&["put", iris.to_str().unwrap(), "--name", "iris", "--target", "target", "--json"]).json();
+    // Created: a nightly re-tune at 02:30 Berlin time, keeping the newest 5 runs.
+    let created = server
+        .run(&["schedule", "create", "--dataset", "iris", "--cron", "30 2 * * *", "--zone", "Europe/Berlin", "--name", "iris nightly", "--max-depth", "1,2,3", "--k", "3", "--keep-last", "5", "--catch-up", "skip", "--skip-unchanged", "--score-drop", "0.05", "--label", "team=triage", "--json"])
+        .json();
+    let id = s(&created, "id").to_string();
+    assert!(id.starts_with("sch_"), "{created}");
+    assert_eq!((s(&created, "cron"), s(&created, "time_zone"), s(&created, "catch_up")), ("30 2 * * *", "Europe/Berlin", "skip"));
+    assert_eq!((u(&created, "keep_last"), created["skip_unchanged"].as_bool(), created["score_drop"].as_f64()), (5, Some(true), Some(0.05)));
+    assert_eq!(created["labels"]["team"], "triage");
+    // The next fire is at 02:30 in Berlin: 00:30 or 01:30 UTC by the season.
+    let next = s(&created, "next_fire_at");
+    assert!(next.ends_with("T00:30:00.000Z") || next.ends_with("T01:30:00.000Z"), "{next}");
+
+    let listed = server.run(&["schedule", "list", "--json"]).json();
+    assert_eq!(ids(&listed), vec![id.clone()]);
+    let shown = server.run(&["schedule", "show", &id, "--json"]).json();
+    assert_eq!((s(&shown, "id"), shown["fires"].as_array().map(|f| f.is_empty())), (id.as_str(), Some(true)));
+    let paused = server.run(&["schedule", "pause", &id, "--json"]).json();
+    assert_eq!((paused["paused"].as_bool(), s(&paused, "next_fire_at")), (Some(true), ""));
+    let resumed = server.run(&["schedule", "resume", &id, "--json"]).json();
+    assert_eq!(resumed["paused"].as_bool(), Some(false));
+    assert_eq!(server.run(&["schedule", "fires", &id, "--json"]).json(), serde_json::json!([]));
+
+    // Human output: one line per schedule, and the show screen names the rules.
+    let text = server.run(&["schedule", "list"]).ok();
+    assert!(text.contains(&id) && text.contains("Europe/Berlin") && text.contains("next "), "{text}");
+    let text = server.run(&["schedule", "show", &id]).ok();
+    assert!(text.contains("catch-up skip") && text.contains("keep last 5"), "{text}");
+
+    // Drift filters on run listings.
+    assert_eq!(server.run(&["runs", "--score-fell", "--json"]).json(), serde_json::json!([]));
+    assert_eq!(server.run(&["runs", "--flagged", "--json"]).json(), serde_json::json!([]));
+
+    // Errors: one line, the field named.
+    let e = server.run(&["schedule", "create", "--dataset", "iris", "--cron", "30 2 * *"]).fails();
+    assert!(e.contains("InvalidArgument") && e.contains("cron"), "{e}");
+    let e = server.run(&["schedule", "create", "--dataset", "iris", "--cron", "30 2 * * *", "--zone", "Europe/Atlantis"]).fails();
+    assert!(e.contains("time_zone") && e.contains("Europe/Atlantis"), "{e}");
+    let e = server.run(&["schedule", "create", "--dataset", "no_such_name", "--cron", "30 2 * * *"]).fails();
+    assert!(e.contains("NotFound") && e.contains("no_such_name"), "{e}");
+    let e = server.run(&["schedule", "create", "--dataset", "iris", "--cron", "30 2 * * *", "--catch-up", "twice"]).fails();
+    assert!(e.contains("--catch-up") && e.contains("twice"), "{e}");
+
+    let deleted = server.run(&["schedule", "delete", &id, "--json"]).json();
+    assert_eq!(s(&deleted, "deleted"), id);
+    for action in ["show", "pause", "resume", "delete", "fires"] {
+        let e = server.run(&["schedule", action, &id]).fails();
+        assert!(e.contains("NotFound") && e.contains(&id), "{action}: {e}");
+    }
+}
