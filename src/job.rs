@@ -243,6 +243,8 @@ pub struct Schedule {
     pub time_zone: String,
     /// Every run sweeps the latest version of this dataset name at its fire.
     pub dataset_name: String,
+    /// When set, every run sweeps this one dataset instead of the latest version of the name.
+    pub dataset_id: String,
     pub target: String,
     pub spec: SweepSpec,
     /// Labels every run of the schedule carries.

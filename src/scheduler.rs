@@ -106,7 +106,7 @@ async fn handle(shared: &Arc<Shared>, s: &Schedule, due: &Due, now: i64) -> Resu
                 "" => None,
                 last => store.run(last)?.filter(|r| r.state.is_active()),
             };
-            let latest = store.latest_dataset(&s.dataset_name)?;
+            let latest = if s.dataset_id.is_empty() { store.latest_dataset(&s.dataset_name)? } else { store.dataset(&s.dataset_id)? };
             if let Some(busy) = busy {
                 fire.outcome = FireOutcome::SkippedBusy;
                 fire.detail = format!("the previous run {} is still {}", busy.id, busy.state.as_str());
@@ -131,9 +131,12 @@ async fn handle(shared: &Arc<Shared>, s: &Schedule, due: &Due, now: i64) -> Resu
                         }
                     }
                 }
-            } else {
+            } else if s.dataset_id.is_empty() {
                 fire.outcome = FireOutcome::Failed;
                 fire.detail = format!("no dataset named '{}' is stored", s.dataset_name);
+            } else {
+                fire.outcome = FireOutcome::Failed;
+                fire.detail = format!("dataset {} is no longer stored", s.dataset_id);
             }
         }
     }

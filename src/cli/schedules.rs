@@ -40,7 +40,7 @@ pub enum ScheduleCommand {
 
 #[derive(Args, Debug)]
 pub struct CreateArgs {
-    /// Dataset name; every fire sweeps its latest version.
+    /// Dataset name (every fire sweeps its latest version), or one exact id (ds_...).
     #[arg(long)]
     pub dataset: String,
     /// 5-field crontab expression, e.g. "30 2 * * *" for 02:30 every night.
@@ -90,7 +90,8 @@ pub async fn run(ch: Channel, command: ScheduleCommand, json_out: bool) -> Resul
                 name: a.name,
                 cron: a.cron,
                 time_zone: a.zone,
-                dataset_name: a.dataset,
+                dataset_name: if a.dataset.starts_with("ds_") { String::new() } else { a.dataset.clone() },
+                dataset_id: if a.dataset.starts_with("ds_") { a.dataset } else { String::new() },
                 spec: Some(a.grid.to_spec()?),
                 labels: labels(&a.labels)?,
                 retention: Some(pb::Retention { keep_last: a.keep_last.unwrap_or(0), keep_days: a.keep_days.unwrap_or(0) }),
@@ -191,7 +192,7 @@ pub fn schedule_json(s: &pb::ScheduleInfo) -> Value {
     let r = s.retention.unwrap_or_default();
     let d = s.drift.unwrap_or_default();
     json!({
-        "id": s.id, "name": s.name, "cron": s.cron, "time_zone": s.time_zone, "dataset_name": s.dataset_name,
+        "id": s.id, "name": s.name, "cron": s.cron, "time_zone": s.time_zone, "dataset_name": s.dataset_name, "dataset_id": s.dataset_id,
         "labels": s.labels, "keep_last": r.keep_last, "keep_days": r.keep_days, "catch_up": catch_up_name(s.catch_up),
         "skip_unchanged": s.skip_unchanged, "score_drop": d.score_drop, "size_factor": d.size_factor,
         "paused": s.paused, "created_at": s.created_at, "next_fire_at": s.next_fire_at, "last_run_id": s.last_run_id,

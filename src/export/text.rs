@@ -78,13 +78,27 @@ pub(crate) fn summary(tree: &Tree) -> String {
     )
 }
 
+/// A threshold as a reader wants it. Cells are stored as `f32` and thresholds are midpoints
+/// of two cells taken in `f64` (`30.65000057220459` between 30.6 and 30.7), so a cell goes
+/// left exactly when it is at most the largest `f32` at or below the threshold. That `f32`
+/// is shown, in its shortest form that reads back as the same `f32` (`30.65`); the model
+/// file keeps the exact value.
+pub(crate) fn show_threshold(t: f64) -> String {
+    if !t.is_finite() {
+        return t.to_string();
+    }
+    let near = t as f32;
+    let below = if near as f64 <= t { near } else { near.next_down() };
+    below.to_string()
+}
+
 /// The test of a split, as a reader would say it: `x <= 2.45`, `x is present`, `c in {a, b}`.
 pub(crate) fn describe_test(tree: &Tree, split: &Split) -> String {
     let column = tree.columns.get(split.feature as usize);
     let name = column.map_or_else(|| format!("column {}", split.feature), |c| clean(&c.name));
     match &split.rule {
         SplitRule::Threshold(t) if *t == f64::INFINITY => format!("{name} is present"),
-        SplitRule::Threshold(t) => format!("{name} <= {t}"),
+        SplitRule::Threshold(t) => format!("{name} <= {}", show_threshold(*t)),
         SplitRule::Categories(bits) => {
             let levels = column.map_or(&[][..], |c| &c.levels[..]);
             let chosen: Vec<&String> = levels
@@ -197,6 +211,27 @@ pub(crate) mod tests {
     use super::*;
     use crate::data::{Column, ColumnKind, Feature, Frame, Target, MISSING_CODE};
     use crate::tree::{fit, ColumnInfo, FitOptions, Node, TrainSet, NO_NODE};
+
+    #[test]
+    fn thresholds_show_the_shortest_decimal_that_splits_every_f32_alike() {
+        let mid = |a: f32, b: f32| a as f64 / 2.0 + b as f64 / 2.0;
+        assert_eq!(show_threshold(mid(30.6, 30.7)), "30.65");
+        assert_eq!(show_threshold(mid(2.4, 2.5)), "2.45");
+        assert_eq!(show_threshold(mid(-1.0, 0.0)), "-0.5");
+        assert_eq!(show_threshold(f64::INFINITY), "inf");
+        // Neighbouring cells, tiny and large values, negatives: the shown number, read as an
+        // f32 the way cells are stored, sends the f32 values around the threshold the way the
+        // threshold does.
+        let one = 1.0f32;
+        for (x, y) in [(30.6f32, 30.7f32), (one, one.next_up()), (0.1, 0.2), (123456.7, 123456.8), (-3.3, -3.2), (1e-30, 2e-30), (0.0, 1e-8)] {
+            let t = mid(x, y);
+            let shown: f32 = show_threshold(t).parse().unwrap();
+            let below = if (t as f32) as f64 <= t { t as f32 } else { (t as f32).next_down() };
+            for v in [below.next_down(), below, below.next_up(), below.next_up().next_up(), x, y] {
+                assert_eq!(v as f64 <= t, v <= shown, "{v} against {t} shown as {shown}");
+            }
+        }
+    }
 
     /// Category names of the small frame, with DOT's troublemakers among them.
     pub(crate) const COLOURS: [&str; 4] = ["red", "a\"b{c}", "<blue>", "back\\slash"];

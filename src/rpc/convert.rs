@@ -512,6 +512,7 @@ pub fn schedule_info(s: &Schedule, next_fire: Option<i64>, last_fire: Option<&Fi
         cron: s.cron.clone(),
         time_zone: s.time_zone.clone(),
         dataset_name: s.dataset_name.clone(),
+        dataset_id: s.dataset_id.clone(),
         spec: Some(spec_to(&s.spec, &s.target)),
         labels: s.labels.clone().into_iter().collect(),
         retention: Some(pb::Retention { keep_last: s.retention.keep_last.unwrap_or(0), keep_days: s.retention.keep_days.unwrap_or(0) }),

@@ -35,13 +35,13 @@ impl pb::schedules_server::Schedules for Api {
         let r = request.into_inner();
         let time_zone = if r.time_zone.is_empty() { "UTC".to_string() } else { r.time_zone.clone() };
         let cron = Cron::parse(&r.cron, &time_zone).map_err(|e| Status::invalid_argument(e.to_string()))?;
-        if r.dataset_name.is_empty() {
-            return Err(Status::invalid_argument("dataset_name: a schedule sweeps the latest version of a dataset name; name it"));
+        if r.dataset_name.is_empty() && r.dataset_id.is_empty() {
+            return Err(Status::invalid_argument("dataset_name: a schedule sweeps the latest version of a dataset name (or one dataset_id); name it"));
         }
         let catch_up = convert::catch_up_from(r.catch_up)?;
         let drift = convert::thresholds_from(r.drift.as_ref())?;
         // The template must fit the data it will sweep: check it against the latest version.
-        let latest = resolve_dataset(&self.shared, "", &r.dataset_name)?;
+        let latest = resolve_dataset(&self.shared, &r.dataset_id, &r.dataset_name)?;
         let (spec, target) = check_sweep(&self.shared, &latest, r.spec.unwrap_or_default()).await?;
         let now = self.shared.now();
         let schedule = Schedule {
@@ -49,7 +49,8 @@ impl pb::schedules_server::Schedules for Api {
             name: r.name,
             cron: cron.expr().to_string(),
             time_zone,
-            dataset_name: r.dataset_name,
+            dataset_name: if r.dataset_id.is_empty() { r.dataset_name } else { latest.name.clone() },
+            dataset_id: r.dataset_id,
             target,
             spec,
             labels: r.labels.into_iter().collect(),

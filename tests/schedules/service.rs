@@ -179,6 +179,20 @@ async fn skip_unchanged_waits_for_a_new_version() {
 }
 
 #[tokio::test]
+async fn a_schedule_on_one_exact_dataset_ignores_newer_versions() {
+    let (api, clock) = quiet("2027-05-01T00:00:00Z");
+    let v1 = put(&api, iris_head(150)).await;
+    let s = api.create_schedule(Request::new(pb::CreateScheduleRequest { dataset_name: String::new(), dataset_id: v1.id.clone(), ..request("0 3 * * *", "UTC") })).await.unwrap().into_inner();
+    assert_eq!((s.dataset_id.as_str(), s.dataset_name.as_str()), (v1.id.as_str(), "iris"));
+    put(&api, iris_head(149)).await;
+    clock.set(ms("2027-05-01T03:00:00Z"));
+    pollard::scheduler::tick(&api.shared).await;
+    let f = fires(&api, &s.id).await;
+    let run = api.shared.store.run(&f[0].run_id).unwrap().unwrap();
+    assert_eq!((run.dataset_id.as_str(), run.dataset_version), (v1.id.as_str(), 1), "{f:?}");
+}
+
+#[tokio::test]
 async fn retention_deletes_exactly_the_expired_runs_and_no_dataset_in_use() {
     let (api, clock) = quiet("2027-06-01T00:00:00Z");
     let v1 = put(&api, iris_head(150)).await;
