@@ -466,6 +466,13 @@ fn put_sweep_follow_show_runs_model_predict() {
     let decoded = <pollard::pb::Model as prost::Message>::decode(&bytes[..]).expect("a pollard.v1.Model message");
     assert_eq!(decoded.nodes.len(), tree.nodes.len());
     assert_eq!(pollard::rpc::convert::model_from(&decoded).unwrap(), tree, "the protobuf and the JSON model are the same tree");
+    let onnx_file = tmp.join("model.onnx");
+    let wrote = server.run(&["model", &r1, "--format", "onnx", "--out", onnx_file.to_str().unwrap(), "--json"]).json();
+    let bytes = std::fs::read(&onnx_file).unwrap();
+    assert_eq!((s(&wrote, "format"), u(&wrote, "bytes")), ("onnx", bytes.len() as u64), "{wrote}");
+    assert_eq!(bytes, pollard::export::onnx::to_onnx(&tree).unwrap(), "the file is the export of the run's tree");
+    let e = server.run(&["model", &r1, "--format", "onnx"]).fails();
+    assert!(e.contains("--out"), "{e}");
 
     // predict: the server's answers are the model's own, row by row.
     let ds = pollard::data::csv::read_dataset(std::fs::File::open(&iris_csv).unwrap(), &pollard::data::csv::CsvOptions::new("target")).unwrap();

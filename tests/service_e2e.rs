@@ -471,6 +471,15 @@ async fn sweep_follow_inspect_export_and_predict() {
     assert_eq!(dot.matches(" -> ").count(), 2 * (tree.nodes.len() - tree.n_leaves()), "two edges per split");
     let text = models.get_model(pb::GetModelRequest { run_id: first.id.clone(), format: pb::ModelFormat::Text as i32 }).await.unwrap().into_inner().text;
     assert_eq!(text.lines().count(), tree.nodes.len() + 1, "one line per node and a summary:\n{text}");
+    // ONNX: the bytes the core export writes for this tree, as a model with one tree node
+    // per pollard node (iris has no categorical columns, so no set-split chains).
+    let onnx = models.get_model(pb::GetModelRequest { run_id: first.id.clone(), format: pb::ModelFormat::Onnx as i32 }).await.unwrap().into_inner();
+    assert_eq!(onnx.format, pb::ModelFormat::Onnx as i32);
+    assert_eq!(onnx.data, pollard::export::onnx::to_onnx(&tree).unwrap(), "the served ONNX is the export of the served tree");
+    let decoded = <pollard::onnx_pb::ModelProto as prost::Message>::decode(&onnx.data[..]).expect("an onnx ModelProto");
+    let ensemble = decoded.graph.as_ref().unwrap().node.iter().find(|n| n.op_type.as_deref() == Some("TreeEnsembleClassifier")).expect("a tree ensemble node");
+    let node_ids = ensemble.attribute.iter().find(|a| a.name.as_deref() == Some("nodes_nodeids")).expect("nodes_nodeids");
+    assert_eq!(node_ids.ints.len(), tree.nodes.len());
     for n in tree.nodes.iter().filter_map(|n| n.split.as_ref()) {
         let column = &tree.columns[n.feature as usize].name;
         assert!(text.contains(column.as_str()), "the text names split column {column}:\n{text}");

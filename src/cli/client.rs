@@ -246,7 +246,8 @@ fn model_format(f: &str) -> Result<pb::ModelFormat, String> {
         "dot" => pb::ModelFormat::Dot,
         "text" => pb::ModelFormat::Text,
         "protobuf" => pb::ModelFormat::Protobuf,
-        _ => return Err(format!("--format: '{f}' is not json, dot, text or protobuf")),
+        "onnx" => pb::ModelFormat::Onnx,
+        _ => return Err(format!("--format: '{f}' is not json, dot, text, protobuf or onnx")),
     })
 }
 
@@ -255,6 +256,7 @@ async fn model(ch: Channel, id: &str, format: &str, out: Option<std::path::PathB
     let file = ModelsClient::new(ch).get_model(pb::GetModelRequest { run_id: id.into(), format: f as i32 }).await.map_err(status_line)?.into_inner();
     let bytes = match f {
         pb::ModelFormat::Protobuf => prost::Message::encode_to_vec(&file.model.unwrap_or_default()),
+        pb::ModelFormat::Onnx => file.data,
         _ => file.text.into_bytes(),
     };
     match out {
@@ -266,7 +268,7 @@ async fn model(ch: Channel, id: &str, format: &str, out: Option<std::path::PathB
                 println!("wrote {} ({} bytes)", p.display(), bytes.len());
             }
         }
-        None if f == pb::ModelFormat::Protobuf => return Err("--format protobuf is binary; give --out FILE".into()),
+        None if matches!(f, pb::ModelFormat::Protobuf | pb::ModelFormat::Onnx) => return Err(format!("--format {format} is binary; give --out FILE")),
         None => print!("{}", String::from_utf8_lossy(&bytes)),
     }
     Ok(())

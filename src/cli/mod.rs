@@ -75,7 +75,7 @@ pub enum Command {
     /// Fetch the model of a finished run.
     Model {
         run: String,
-        /// json, dot, text or protobuf.
+        /// json, dot, text, protobuf or onnx (the binary formats need --out).
         #[arg(long, default_value = "text")]
         format: String,
         /// Write to this file instead of standard output.

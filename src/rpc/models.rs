@@ -29,10 +29,14 @@ impl pb::models_server::Models for Api {
         let tree = self.model_of(&r.run_id)?;
         let format = pb::ModelFormat::try_from(r.format).map_err(|_| Status::invalid_argument(format!("format: {} is not a model format", r.format)))?;
         let file = match format {
-            pb::ModelFormat::Protobuf | pb::ModelFormat::Unspecified => pb::ModelFile { format: pb::ModelFormat::Protobuf as i32, model: Some(convert::model_to(&tree)), text: String::new() },
-            pb::ModelFormat::Json => pb::ModelFile { format: r.format, model: None, text: export::to_json(&tree) },
-            pb::ModelFormat::Dot => pb::ModelFile { format: r.format, model: None, text: export::to_dot(&tree) },
-            pb::ModelFormat::Text => pb::ModelFile { format: r.format, model: None, text: export::to_text(&tree) },
+            pb::ModelFormat::Protobuf | pb::ModelFormat::Unspecified => pb::ModelFile { format: pb::ModelFormat::Protobuf as i32, model: Some(convert::model_to(&tree)), ..Default::default() },
+            pb::ModelFormat::Json => pb::ModelFile { format: r.format, text: export::to_json(&tree), ..Default::default() },
+            pb::ModelFormat::Dot => pb::ModelFile { format: r.format, text: export::to_dot(&tree), ..Default::default() },
+            pb::ModelFormat::Text => pb::ModelFile { format: r.format, text: export::to_text(&tree), ..Default::default() },
+            pb::ModelFormat::Onnx => {
+                let data = export::to_onnx(&tree).map_err(|e| Status::failed_precondition(format!("run '{}': the model cannot be written as ONNX: {e}", r.run_id)))?;
+                pb::ModelFile { format: r.format, data, ..Default::default() }
+            }
         };
         Ok(Response::new(file))
     }
