@@ -624,6 +624,12 @@ fn errors_exit_non_zero_with_one_line() {
     }
     assert_eq!(ids(&server.run(&["runs", "--json"]).json()), Vec::<String>::new(), "no run was started by a bad command");
 
+    // Usage errors from the argument parser are one line too, naming the problem.
+    let e = pollard(&["runs", "--bogus"]).fails();
+    assert!(e.contains("--bogus") && e.contains("--help"), "{e}");
+    let e = pollard(&["schedule", "create", "--cron", "30 2 * * *"]).fails();
+    assert!(e.contains("--dataset"), "{e}");
+
     // Other bad flags.
     let e = server.run(&["runs", "--state", "sleeping"]).fails();
     assert!(e.contains("--state") && e.contains("sleeping"), "{e}");

@@ -228,7 +228,7 @@ pub fn run(args: &[String]) -> Result<(), String> {
             print!("{e}");
             return Ok(());
         }
-        Err(e) => return Err(e.to_string().trim_end().to_string()),
+        Err(e) => return Err(one_line_usage_error(&e.to_string())),
     };
     match cli.command {
         Command::Serve(a) => serve(a),
@@ -307,9 +307,38 @@ pub fn init_logging(config: &crate::config::Config) {
     };
 }
 
+/// A usage error as one line: the problem and any tip, without the usage block (errors are
+/// one line on stderr, so scripts can log them).
+fn one_line_usage_error(text: &str) -> String {
+    let parts: Vec<String> = text
+        .lines()
+        .map(str::trim)
+        .filter(|l| !l.is_empty() && !l.starts_with("Usage:") && !l.starts_with("For more information"))
+        .map(|l| if l.starts_with("tip: ") { format!("({l})") } else { l.strip_prefix("error: ").unwrap_or(l).to_string() })
+        .collect();
+    format!("{} (try --help)", parts.join(" "))
+}
+
 /// `key=value` pairs.
 fn labels(list: &[String]) -> Result<HashMap<String, String>, String> {
     list.iter()
         .map(|l| l.split_once('=').map(|(k, v)| (k.to_string(), v.to_string())).ok_or_else(|| format!("--label: '{l}' is not key=value")))
         .collect()
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn usage_errors_are_one_line() {
+        for args in [vec!["runs", "--bogus"], vec!["schedule", "create", "--cron", "x"], vec!["sweep", "--max-depth"], vec!["nonsense"]] {
+            let args: Vec<String> = args.into_iter().map(String::from).collect();
+            let e = run(&args).unwrap_err();
+            assert_eq!(e.lines().count(), 1, "{e}");
+            assert!(e.ends_with("(try --help)") && !e.contains("Usage:"), "{e}");
+        }
+        let e = run(&["schedule".into(), "create".into(), "--cron".into(), "x".into()]).unwrap_err();
+        assert!(e.contains("--dataset"), "{e}");
+    }
 }
