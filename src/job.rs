@@ -315,6 +315,21 @@ pub struct Fire {
     pub detail: String,
 }
 
+impl Fire {
+    /// Turns the fire into a skip because `busy`, the schedule's previous run, is still active.
+    pub fn skip_busy(&mut self, busy: Run) {
+        self.outcome = FireOutcome::SkippedBusy;
+        self.detail = format!("the previous run {} is still {}", busy.id, busy.state.as_str());
+        self.run_id = busy.id;
+    }
+
+    /// Turns the fire into a failure: no run could be queued.
+    pub fn fail(&mut self, detail: String) {
+        self.outcome = FireOutcome::Failed;
+        self.detail = detail;
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;

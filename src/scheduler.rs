@@ -92,54 +92,19 @@ async fn handle(shared: &Arc<Shared>, s: &Schedule, due: &Due, now: i64) -> Resu
         missed: due.missed,
         detail: String::new(),
     };
-    let mut run: Option<Run> = None;
-    match due.fire_for {
+    let run = match due.fire_for {
         None => {
             fire.outcome = FireOutcome::SkippedMissed;
             fire.detail = format!("{} fire(s) passed while the server was down; the catch-up rule is skip", count(due));
+            None
         }
         Some(at) => {
             if !due.on_time {
                 fire.detail = format!("catching up {} fire(s) missed while the server was down", count(due));
             }
-            let busy = match s.last_run_id.as_str() {
-                "" => None,
-                last => store.run(last)?.filter(|r| r.state.is_active()),
-            };
-            let latest = if s.dataset_id.is_empty() { store.latest_dataset(&s.dataset_name)? } else { store.dataset(&s.dataset_id)? };
-            if let Some(busy) = busy {
-                fire.outcome = FireOutcome::SkippedBusy;
-                fire.detail = format!("the previous run {} is still {}", busy.id, busy.state.as_str());
-                fire.run_id = busy.id;
-            } else if let Some(latest) = latest {
-                if s.skip_unchanged && latest.id == s.last_dataset_id {
-                    fire.outcome = FireOutcome::SkippedUnchanged;
-                    fire.detail = format!("dataset '{}' has no version newer than {} (version {})", s.dataset_name, latest.id, latest.version);
-                } else {
-                    let request = pb::StartRunRequest {
-                        dataset_id: latest.id.clone(),
-                        dataset_name: String::new(),
-                        spec: Some(convert::spec_to(&s.spec, &s.target)),
-                        idempotency_key: format!("{}@{at}", s.id),
-                        labels: s.labels.clone().into_iter().collect(),
-                    };
-                    match prepare_run(shared, request, s.id.clone()).await {
-                        Ok(r) => run = Some(r),
-                        Err(status) => {
-                            fire.outcome = FireOutcome::Failed;
-                            fire.detail = format!("the template no longer fits dataset {}: {}", latest.id, status.message());
-                        }
-                    }
-                }
-            } else if s.dataset_id.is_empty() {
-                fire.outcome = FireOutcome::Failed;
-                fire.detail = format!("no dataset named '{}' is stored", s.dataset_name);
-            } else {
-                fire.outcome = FireOutcome::Failed;
-                fire.detail = format!("dataset {} is no longer stored", s.dataset_id);
-            }
+            run_for(shared, s, at, &mut fire).await?
         }
-    }
+    };
     match store.record_fire(&s.id, s.considered_until, due.considered_until, &fire, run.as_ref())? {
         None => warn!(schedule_id = %s.id, "the schedule changed while its fire was handled; it is looked at again"),
         Some((_, fire, created)) => {
@@ -153,6 +118,41 @@ async fn handle(shared: &Arc<Shared>, s: &Schedule, due: &Due, now: i64) -> Resu
         }
     }
     apply_retention(shared, s, now)
+}
+
+/// The checked run a due fire at `at` starts, or `None` with `fire` turned into a skip (the
+/// previous run is busy, or the data is unchanged) or a failure. The store checks busy again
+/// when the fire is recorded; looking first saves checking a template for nothing.
+async fn run_for(shared: &Arc<Shared>, s: &Schedule, at: i64, fire: &mut Fire) -> Result<Option<Run>, StoreError> {
+    let store = &shared.store;
+    if let Some(busy) = store.run(&s.last_run_id)?.filter(|r| r.state.is_active()) {
+        fire.skip_busy(busy);
+        return Ok(None);
+    }
+    let latest = if s.dataset_id.is_empty() { store.latest_dataset(&s.dataset_name)? } else { store.dataset(&s.dataset_id)? };
+    let Some(latest) = latest else {
+        fire.fail(if s.dataset_id.is_empty() { format!("no dataset named '{}' is stored", s.dataset_name) } else { format!("dataset {} is no longer stored", s.dataset_id) });
+        return Ok(None);
+    };
+    if s.skip_unchanged && latest.id == s.last_dataset_id {
+        fire.outcome = FireOutcome::SkippedUnchanged;
+        fire.detail = format!("dataset '{}' has no version newer than {} (version {})", s.dataset_name, latest.id, latest.version);
+        return Ok(None);
+    }
+    let request = pb::StartRunRequest {
+        dataset_id: latest.id.clone(),
+        dataset_name: String::new(),
+        spec: Some(convert::spec_to(&s.spec, &s.target)),
+        idempotency_key: format!("{}@{at}", s.id),
+        labels: s.labels.clone().into_iter().collect(),
+    };
+    match prepare_run(shared, request, s.id.clone()).await {
+        Ok(r) => Ok(Some(r)),
+        Err(status) => {
+            fire.fail(format!("the template no longer fits dataset {}: {}", latest.id, status.message()));
+            Ok(None)
+        }
+    }
 }
 
 fn count(due: &Due) -> String {

@@ -16,7 +16,7 @@ use std::time::Duration;
 use tokio::sync::{watch, Notify};
 use tracing::{error, info, info_span, warn};
 
-use crate::clock::{Clock, SystemClock};
+use crate::clock::Clock;
 use crate::config::Config;
 use crate::drift::{self, DriftThresholds, RunSide};
 use crate::data::csv::{read_dataset, CsvOptions};
@@ -51,10 +51,6 @@ pub struct Shared {
 }
 
 impl Shared {
-    pub fn new(store: Store, config: Config) -> Result<Arc<Shared>, String> {
-        Shared::with_clock(store, config, Arc::new(SystemClock))
-    }
-
     pub fn with_clock(store: Store, config: Config, clock: Arc<dyn Clock>) -> Result<Arc<Shared>, String> {
         let pool = rayon::ThreadPoolBuilder::new()
             .num_threads(config.cpu_threads)
@@ -292,6 +288,21 @@ fn execute_blocking(shared: &Shared, run: &Run, cancel: &AtomicBool) -> Ending {
     })
 }
 
+/// What a finished run used and picked, for a drift report; `None` for a run without a
+/// metric or a picked score (never the case for runs this build finished).
+fn run_side<'a>(run: &'a Run, o: &'a RunOutcome) -> Option<RunSide<'a>> {
+    let picked = o.scores.get(o.picked as usize)?;
+    Some(RunSide {
+        run_id: &run.id,
+        dataset_id: &run.dataset_id,
+        dataset_version: run.dataset_version,
+        rows: run.dataset_rows,
+        metric: run.spec.metric?,
+        picked,
+        leaves: o.model.as_ref().map_or(picked.mean_leaves, |m| m.n_leaves() as f64),
+    })
+}
+
 /// Compares a finished run of a schedule with the previous finished run of that schedule
 /// (the newest one created before it); `None` for the schedule's first finished run. A
 /// failure to read the store only costs the report, so it is logged, not fatal.
@@ -304,30 +315,7 @@ fn drift_report(shared: &Shared, run_id: &str, schedule_id: &str, outcome: &RunO
         let Some(previous) = before.into_iter().next() else { return Ok(None) };
         let Some(prev_outcome) = shared.store.outcome(&previous.id)? else { return Ok(None) };
         let thresholds = shared.store.schedule(schedule_id)?.map_or(DriftThresholds::default(), |s| s.drift);
-        let side = |run: &'_ Run, o: &'_ RunOutcome| -> Option<(crate::sweep::Metric, f64)> {
-            let picked = o.scores.get(o.picked as usize)?;
-            let leaves = o.model.as_ref().map_or(picked.mean_leaves, |m| m.n_leaves() as f64);
-            Some((run.spec.metric?, leaves))
-        };
-        let (Some((m_prev, l_prev)), Some((m_cur, l_cur))) = (side(&previous, &prev_outcome), side(&current, outcome)) else { return Ok(None) };
-        let before = RunSide {
-            run_id: &previous.id,
-            dataset_id: &previous.dataset_id,
-            dataset_version: previous.dataset_version,
-            rows: previous.dataset_rows,
-            metric: m_prev,
-            picked: &prev_outcome.scores[prev_outcome.picked as usize],
-            leaves: l_prev,
-        };
-        let now = RunSide {
-            run_id: &current.id,
-            dataset_id: &current.dataset_id,
-            dataset_version: current.dataset_version,
-            rows: current.dataset_rows,
-            metric: m_cur,
-            picked: &outcome.scores[outcome.picked as usize],
-            leaves: l_cur,
-        };
+        let (Some(before), Some(now)) = (run_side(&previous, &prev_outcome), run_side(&current, outcome)) else { return Ok(None) };
         Ok(Some(drift::compare(&before, &now, thresholds)))
     };
     match read() {

@@ -50,7 +50,7 @@ use sled::transaction::{ConflictableTransactionError, TransactionError, Transact
 use sled::{IVec, Transactional};
 
 use crate::drift::DriftReport;
-use crate::job::{DatasetMeta, Event, EventKind, Fire, FireOutcome, Run, RunOutcome, RunState, Schedule};
+use crate::job::{DatasetMeta, Event, EventKind, Fire, Run, RunOutcome, RunState, Schedule};
 use crate::sweep::UnitResult;
 use records::HoldsRecord;
 
@@ -900,8 +900,8 @@ impl Store {
     /// - `None` (nothing stored) when the schedule is unknown, paused, or its
     ///   `considered_until` is no longer `seen_considered` (another change came first);
     /// - with a run, it is queued unless the schedule's last run is still queued or running
-    ///   (the fire becomes [`FireOutcome::SkippedBusy`]) or the dataset is gone
-    ///   ([`FireOutcome::Failed`]); a run whose idempotency key is already stored is not
+    ///   (the fire becomes [`crate::job::FireOutcome::SkippedBusy`]) or the dataset is gone
+    ///   ([`crate::job::FireOutcome::Failed`]); a run whose idempotency key is already stored is not
     ///   queued again.
     ///
     /// The fire gets its sequence number here, and `considered_until` becomes `considered`.
@@ -913,14 +913,9 @@ impl Store {
                 let mut fire = draft.clone();
                 let mut created = None;
                 if let Some(run) = run {
-                    let busy = match s.last_run_id.as_str() {
-                        "" => None,
-                        last => tx.run(last)?.filter(|r| r.state.is_active()),
-                    };
-                    if let Some(busy) = busy {
-                        fire.outcome = FireOutcome::SkippedBusy;
-                        fire.detail = format!("the previous run {} is still {}", busy.id, busy.state.as_str());
-                        fire.run_id = busy.id;
+                    // (No run has the empty id, so a schedule that never ran is never busy.)
+                    if let Some(busy) = tx.run(&s.last_run_id)?.filter(|r| r.state.is_active()) {
+                        fire.skip_busy(busy);
                     } else {
                         match tx.insert_run(run)? {
                             CreateRun::Created(r) => {
@@ -930,10 +925,7 @@ impl Store {
                                 created = Some(r);
                             }
                             CreateRun::Existing(r) => fire.run_id = r.id,
-                            CreateRun::DatasetMissing => {
-                                fire.outcome = FireOutcome::Failed;
-                                fire.detail = format!("dataset {} was deleted before the run could be queued", run.dataset_id);
-                            }
+                            CreateRun::DatasetMissing => fire.fail(format!("dataset {} was deleted before the run could be queued", run.dataset_id)),
                         }
                     }
                 }
