@@ -477,38 +477,107 @@ proptest! {
     /// root alone; the alphas do not decrease (Breiman et al. 1984, §3.3).
     #[test]
     fn pruning_follows_the_path(case in case_from(data(), limits().prop_map(|l| Limits { prune_alpha: 0.0, max_depth: None, ..l }).boxed(), true)) {
-        let tree = case.fit();
-        let path = pruning_path(&tree);
-        let steps = &path.steps;
-        prop_assert_eq!(steps[0].leaves, tree.n_leaves());
-        prop_assert!(close(steps[0].impurity, leaf_risk(&tree), 1e-12, 1e-15));
-        prop_assert_eq!(steps.last().unwrap().leaves, 1);
-        // One step per collapse; a collapse can take several splits at once.
-        prop_assert!(steps.len() <= tree.nodes.iter().filter(|n| !n.is_leaf()).count() + 1);
-        for pair in steps.windows(2) {
-            let (a, b) = (pair[0].alpha, pair[1].alpha);
-            prop_assert!(b >= a - 1e-12 * a.abs().max(1e-3), "path alphas decrease: {} then {}", a, b);
-        }
-
-        for i in 0..steps.len() - 1 {
-            let (a, b) = (steps[i].alpha, steps[i + 1].alpha);
-            let mid = a / 2.0 + b / 2.0;
-            if !(a < mid && mid < b) {
-                continue;
-            }
-            let pruned = prune(&tree, mid);
-            prop_assert_eq!(pruned.n_leaves(), steps[i].leaves, "alpha {} between steps {} and {}", mid, i, i + 1);
-            prop_assert!(close(leaf_risk(&pruned), steps[i].impurity, 1e-9, 1e-15));
-        }
-
-        let largest = path.alphas().into_iter().fold(0.0, f64::max);
-        let root = prune(&tree, largest);
-        prop_assert_eq!(root.nodes.len(), 1);
-        prop_assert_eq!(&root.nodes[0].split, &None);
-
-        // prune_alpha 0 keeps the grown tree (limits.rs), so pruning at 0 must too.
-        prop_assert_eq!(&prune(&tree, 0.0), &tree, "prune at alpha 0 changed the tree (path alphas {:?})", path.alphas());
+        check_pruning_path(&case)?;
     }
+}
+
+/// The pruning-path checks of property 8, for one case.
+fn check_pruning_path(case: &Case) -> Result<(), TestCaseError> {
+    let tree = case.fit();
+    let path = pruning_path(&tree);
+    let steps = &path.steps;
+    prop_assert_eq!(steps[0].leaves, tree.n_leaves());
+    prop_assert!(close(steps[0].impurity, leaf_risk(&tree), 1e-12, 1e-15));
+    prop_assert_eq!(steps.last().unwrap().leaves, 1);
+    // One step per collapse; a collapse can take several splits at once.
+    prop_assert!(steps.len() <= tree.nodes.iter().filter(|n| !n.is_leaf()).count() + 1);
+    for pair in steps.windows(2) {
+        let (a, b) = (pair[0].alpha, pair[1].alpha);
+        prop_assert!(b >= a - 1e-12 * a.abs().max(1e-3), "path alphas decrease: {} then {}", a, b);
+    }
+
+    for i in 0..steps.len() - 1 {
+        let (a, b) = (steps[i].alpha, steps[i + 1].alpha);
+        let mid = a / 2.0 + b / 2.0;
+        if !(a < mid && mid < b) {
+            continue;
+        }
+        let pruned = prune(&tree, mid);
+        prop_assert_eq!(pruned.n_leaves(), steps[i].leaves, "alpha {} between steps {} and {}", mid, i, i + 1);
+        prop_assert!(close(leaf_risk(&pruned), steps[i].impurity, 1e-9, 1e-15));
+    }
+
+    // Pruning at α = 0 keeps the grown tree by definition (below), so when every path α is 0
+    // (every split gained nothing) the root is reached at the smallest positive α.
+    let largest = path.alphas().into_iter().fold(0.0, f64::max).max(f64::MIN_POSITIVE);
+    let root = prune(&tree, largest);
+    prop_assert_eq!(root.nodes.len(), 1);
+    prop_assert_eq!(&root.nodes[0].split, &None);
+
+    // prune_alpha 0 keeps the grown tree (limits.rs), so pruning at 0 must too.
+    prop_assert_eq!(&prune(&tree, 0.0), &tree, "prune at alpha 0 changed the tree (path alphas {:?})", path.alphas());
+    Ok(())
+}
+
+/// Property 8 once found this weighted regression case (zero-weight rows, a split with no
+/// gain): the weakest link's α came out −4.4e-16 from rounding, so pruning between the
+/// first two path steps at a negative α kept a leaf the path said was gone. α = (R(t) −
+/// R(T_t)) / (|T_t| − 1) is never negative (Breiman et al. 1984, §3.3: R(t) ≥ R(T_t)); the
+/// path now says 0 for such a link.
+#[test]
+fn pruning_path_alphas_are_never_negative() {
+    let numbers = |v: &[f32]| Column::Numeric(v.to_vec());
+    let nan = f32::NAN;
+    let f0 = [
+        -1.0, -0.5, 0.0, 0.5, nan, 0.0, -0.5, -1.0, 0.5, -0.5, -0.5, 0.0, 0.0, -1.0, -1.0, nan, nan, 0.0, -0.5, -1.0, nan, -1.0, 0.5, 0.0, -0.5, -0.5, nan, -0.5, nan, 0.0, 0.0, -1.0,
+        -1.0, -0.5, 0.5,
+    ];
+    let f1 = [
+        -0.5, -1.0, -1.0, -0.5, -1.0, -0.5, -1.0, -0.5, -0.5, -0.5, -0.5, -1.0, -0.5, -1.0, -1.0, -1.0, -1.0, -0.5, -0.5, -1.0, -0.5, -0.5, -0.5, -1.0, -0.5, -1.0, -1.0, -1.0, -0.5,
+        -1.0, -0.5, -1.0, -0.5, -1.0, -0.5,
+    ];
+    let target = [
+        6.0, 4.5, 6.0, 0.0, 1.5, 7.5, 3.0, 0.0, 6.0, 3.0, 3.0, 1.5, 7.5, 7.5, 1.5, 1.5, 3.0, 0.0, 7.5, 4.5, 6.0, 3.0, 4.5, 6.0, 3.0, 7.5, 7.5, 3.0, 1.5, 1.5, 0.0, 1.5, 7.5, 4.5, 3.0,
+    ];
+    let weights = [
+        1.0, 0.5, 0.5, 0.0, 1.0, 2.0, 2.0, 0.5, 0.0, 0.0, 0.5, 0.5, 1.0, 1.0, 1.0, 0.5, 0.0, 0.5, 0.0, 2.0, 2.0, 0.5, 0.0, 2.0, 2.0, 0.0, 1.0, 0.0, 1.0, 0.5, 3.0, 1.0, 0.5, 1.0, 1.0,
+    ];
+    let frame = Frame { features: vec![Feature { name: "f0".into(), column: numbers(&f0) }, Feature { name: "f1".into(), column: numbers(&f1) }], rows: 35 };
+    let case = Case {
+        data: Data { frame, target: Target::Values(target.to_vec()), specs: vec![Spec::Numeric { distinct: 4, missing: true }, Spec::Numeric { distinct: 2, missing: false }] },
+        options: FitOptions::default(),
+        weights: Some(weights.to_vec()),
+    };
+    let alphas = pruning_path(&case.fit()).alphas();
+    assert!(alphas.iter().all(|a| *a >= 0.0), "{alphas:?}");
+    check_pruning_path(&case).unwrap();
+}
+
+/// Property 8 once found this case: `f0` is −1 or missing and `f1` constant, so the tree's
+/// splits (present against missing) gain nothing and every path α is 0. Pruning at α = 0
+/// keeps the grown tree, and any positive α leaves the root.
+#[test]
+fn a_tree_of_splits_without_gain_has_a_path_of_zero_alphas() {
+    let nan = f32::NAN;
+    let mut f0 = vec![-1.0f32; 30];
+    for i in [0, 9, 11, 13, 18, 20, 21, 27] {
+        f0[i] = nan;
+    }
+    let codes = vec![1, 1, 0, 1, 1, 1, 0, 0, 0, 1, 1, 0, 0, 0, 1, 0, 1, 1, 1, 1, 1, 0, 0, 0, 0, 0, 1, 0, 1, 0];
+    let frame = Frame { features: vec![Feature { name: "f0".into(), column: Column::Numeric(f0) }, Feature { name: "f1".into(), column: Column::Numeric(vec![-1.0; 30]) }], rows: 30 };
+    let case = Case {
+        data: Data {
+            frame,
+            target: Target::Classes { codes, labels: vec!["c0".into(), "c1".into()] },
+            specs: vec![Spec::Numeric { distinct: 1, missing: true }, Spec::Numeric { distinct: 1, missing: false }],
+        },
+        options: FitOptions::default(),
+        weights: None,
+    };
+    let tree = case.fit();
+    assert!(tree.nodes.len() > 1, "the case is about a tree that splits");
+    assert!(pruning_path(&tree).alphas().iter().all(|a| *a == 0.0), "{:?}", pruning_path(&tree).alphas());
+    check_pruning_path(&case).unwrap();
 }
 
 /// A seeded synthetic frame big enough that growth takes the parallel path at the root and at

@@ -103,7 +103,10 @@ pub fn pruning_path_of(tree: &Tree, keep: Option<&[bool]>) -> PruningPath {
             }
         }
     }
-    let alpha_of = |t: usize, r_branch: &[f64], n_leaves: &[usize]| (r_node[t] - r_branch[t]) / (n_leaves[t] - 1) as f64;
+    // α is never negative (R(t) ≥ R(T_t), Breiman et al. 1984, §3.3); a split with no gain
+    // can still come out a few ulps below 0 from rounding, which would order the path wrongly
+    // against pruning at α ≥ 0, so such a link gets 0.
+    let alpha_of = |t: usize, r_branch: &[f64], n_leaves: &[usize]| ((r_node[t] - r_branch[t]) / (n_leaves[t] - 1) as f64).max(0.0);
     let mut version = vec![0u32; n];
     let mut heap = BinaryHeap::new();
     for t in 0..n {
