@@ -1,0 +1,4 @@
+//! See the target root (main.rs).
+
+#[allow(unused_imports)]
+use super::*;
