@@ -670,6 +670,17 @@ fn show_names_the_default_metric_of_a_regress_run() {
     assert!(rows[0].starts_with("picked") && rows[1].starts_with("#1") && grid(&rows[0]) == grid(&rows[1]), "best first:\n{text}");
     let rmse = |r: &str| r.split_whitespace().nth(9).and_then(|v| v.parse::<f64>().ok()).unwrap();
     assert!(rmse(&rows[1]) <= rmse(&rows[2]), "lower RMSE ranks first:\n{text}");
+    // The gap grows with overfitting whichever way the metric points: an unlimited tree
+    // fits its training rows almost exactly (RMSE near 0) and validates worse, so its gap
+    // (validation RMSE minus training RMSE) is positive and the largest of the three.
+    let scores = arr(&r, "scores");
+    let gap_of = |depth: Value| scores.iter().find(|sc| sc["limits"]["max_depth"] == depth).map(|sc| sc["gap"].as_f64().unwrap()).unwrap();
+    let (g1, g3, gn) = (gap_of(Value::from(1)), gap_of(Value::from(3)), gap_of(Value::Null));
+    assert!(gn > 0.0 && gn > g3 && gn > g1, "gaps: depth 1 {g1}, depth 3 {g3}, no limit {gn}");
+    for sc in scores {
+        let want = sc["valid_mean"].as_f64().unwrap() - sc["train_mean"].as_f64().unwrap();
+        assert!((sc["gap"].as_f64().unwrap() - want).abs() < 1e-9, "{sc}");
+    }
 }
 
 #[test]

@@ -438,6 +438,7 @@ async fn sweep_follow_inspect_export_and_predict() {
         let mean = s.fold_scores.iter().sum::<f64>() / 10.0;
         assert!((s.valid_mean - mean).abs() < 1e-12, "valid_mean is the mean of the fold scores");
         assert!((0.0..=1.0).contains(&s.valid_mean), "accuracy {}", s.valid_mean);
+        // Accuracy: higher is better, so the gap is training minus validation.
         assert!((s.gap - (s.train_mean - s.valid_mean)).abs() < 1e-12);
         let limits = s.limits.clone().unwrap();
         assert!([1, 2, 3, 5].contains(&limits.max_depth.unwrap()) && [1, 5].contains(&limits.min_leaf_rows));

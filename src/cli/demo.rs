@@ -120,7 +120,7 @@ async fn demo(a: &DemoArgs, address: &str, json_out: bool) -> Result<(), String>
     written.push(scores_path);
     let core: Vec<crate::sweep::SettingScore> = r.scores.iter().map(convert::score_from).collect();
     let metric_kind = crate::sweep::Metric::parse(&metric).unwrap_or(crate::sweep::Metric::Accuracy);
-    written.extend(super::plots::limit_plots(&core, metric_kind, &a.out)?);
+    written.extend(super::plots::limit_plots(&core, metric_kind, r.picked.map(|p| p as usize), &a.out)?);
     if json_out {
         println!(
             "{}",

@@ -122,7 +122,9 @@ pub fn scores_table(scores: &[pb::SettingScore], metric: &str, higher_is_better:
             s.mean_leaves,
         )
     };
-    out.push_str(&format!("{metric}: training and validation means over {folds} folds (± = sample sd of the fold scores)\n"));
+    let better = if higher_is_better { "higher is better" } else { "lower is better" };
+    out.push_str(&format!("{metric}: training and validation means over {folds} folds ({better}; ± = sample sd of the fold scores)\n"));
+    out.push_str("gap = how much better training scores than validation (larger = more overfit); (+N alike) = N more settings grew the same trees and scored the same\n");
     out.push_str(&format!(
         "{:<8} {:>6}  {:>9} {:>14} {:>13} {:>10} {:>9} {:>11}   {:>8}   {:>17} {:>8} {:>11}\n",
         "", "grid#", "max_depth", "min_split_rows", "min_leaf_rows", "max_leaves", "min_gain", "prune_alpha", "training", "validation", "gap", "mean_leaves"

@@ -14,7 +14,9 @@
 //! - two lines: "training" (the mean training score over the folds, dashed) and
 //!   "validation" (the mean validation score, solid), with the validation mean ± one sample
 //!   fold scores as dots with their mean as a bar, and the one-SE floor as a dashed rule;
-//! - the best validation point is ringed and marked "best";
+//! - the best validation point is ringed and marked "best"; the picked setting (the pick
+//!   rule's choice, e.g. the simplest within one standard error) is a hollow diamond at its
+//!   own value and scores, marked "picked" (one mark, "best = picked", when they coincide);
 //! - every point carries a tooltip (`<title>`) with its numbers.
 //!
 //! The SVG is written by hand: no plotting crate, a look of our own, and nothing to build.
@@ -29,7 +31,8 @@ pub const LIMITS: [&str; 6] = ["max_depth", "min_split_rows", "min_leaf_rows", "
 
 /// Writes `<limit>.svg` into `out_dir` (created if missing) for each limit that takes more
 /// than one value in `scores`, and returns the paths written, in [`LIMITS`] order.
-pub fn limit_plots(scores: &[SettingScore], metric: Metric, out_dir: &Path) -> Result<Vec<PathBuf>, String> {
+/// `picked` is the index in `scores` of the pick rule's setting, marked on every plot.
+pub fn limit_plots(scores: &[SettingScore], metric: Metric, picked: Option<usize>, out_dir: &Path) -> Result<Vec<PathBuf>, String> {
     let mut written = Vec::new();
     for (i, name) in LIMITS.iter().enumerate() {
         let points = profile(scores, i, metric);
@@ -40,7 +43,8 @@ pub fn limit_plots(scores: &[SettingScore], metric: Metric, out_dir: &Path) -> R
             std::fs::create_dir_all(out_dir).map_err(|e| format!("{}: {e}", out_dir.display()))?;
         }
         let folds = scores.iter().map(|s| s.fold_scores.len()).max().unwrap_or(0);
-        let svg = draw(name, metric, &points, folds);
+        let mark = picked.and_then(|p| scores.get(p)).map(|p| Picked { x: limit_value(p, i), valid: p.valid_mean });
+        let svg = draw(name, metric, &points, folds, mark);
         let path = out_dir.join(format!("{name}.svg"));
         std::fs::write(&path, svg).map_err(|e| format!("{}: {e}", path.display()))?;
         written.push(path);
@@ -78,6 +82,13 @@ fn limit_value(s: &SettingScore, limit: usize) -> X {
         5 => X::Value(l.prune_alpha),
         _ => unreachable!("six limits"),
     }
+}
+
+/// Where the picked setting sits on one limit's plot.
+#[derive(Clone, Copy, Debug, PartialEq)]
+struct Picked {
+    x: X,
+    valid: f64,
 }
 
 /// One plotted position: the best-validating setting among those sharing a value of the limit.
@@ -135,8 +146,10 @@ const LEFT: f64 = 80.0;
 const RIGHT: f64 = 730.0;
 const TOP: f64 = 114.0;
 const BOTTOM: f64 = 396.0;
-const TRAIN_COLOUR: &str = "#b4651e";
-const VALID_COLOUR: &str = "#1d5f8a";
+/// Training in olive and validation in plum: our own pair, told apart without colour by
+/// marker (open square, filled circle) and line (dashed, solid).
+const TRAIN_COLOUR: &str = "#6b7d1f";
+const VALID_COLOUR: &str = "#7a2e6e";
 const INK: &str = "#2b2b2b";
 const MUTED: &str = "#6b6b6b";
 const RULE: &str = "#e4e4e4";
@@ -277,7 +290,7 @@ fn fmt_score(v: f64) -> String {
     }
 }
 
-fn draw(limit: &str, metric: Metric, points: &[Point], folds: usize) -> String {
+fn draw(limit: &str, metric: Metric, points: &[Point], folds: usize, picked: Option<Picked>) -> String {
     let m = metric.as_str();
     let x = XAxis::new(limit, points);
     // Y range over everything drawn.
@@ -450,15 +463,37 @@ fn draw(limit: &str, metric: Metric, points: &[Point], folds: usize) -> String {
             let _ = writeln!(w, r#"<circle cx="{px:.2}" cy="{:.2}" r="4" fill="{VALID_COLOUR}"><title>{tip}</title></circle>"#, py(p.valid));
         }
     }
-    // The best validation point.
+    // The best validation point, and the picked setting.
     let oriented = |p: &Point| if metric.higher_is_better() { p.valid } else { -p.valid };
-    if let Some(b) = points.iter().filter(|p| p.valid.is_finite()).min_by(|a, b| oriented(b).total_cmp(&oriented(a))) {
+    let best = points.iter().filter(|p| p.valid.is_finite()).min_by(|a, b| oriented(b).total_cmp(&oriented(a)));
+    let same = |b: &Point, p: &Picked| b.x == p.x && b.valid.to_bits() == p.valid.to_bits();
+    // The training line usually lies on the better side of validation: label the other side.
+    let label_y = |y: f64| {
+        let below = if metric.higher_is_better() { BOTTOM - y > 28.0 } else { y - TOP < 28.0 };
+        if below {
+            y + 24.0
+        } else {
+            y - 15.0
+        }
+    };
+    if let Some(b) = best {
         let (bx, by) = (x.px(b.x), py(b.valid));
         let _ = writeln!(w, r#"<circle cx="{bx:.2}" cy="{by:.2}" r="9" fill="none" stroke="{VALID_COLOUR}" stroke-width="1.5"/>"#);
-        // The training line usually lies on the better side of validation: label the other side.
-        let below = if metric.higher_is_better() { BOTTOM - by > 28.0 } else { by - TOP < 28.0 };
-        let ty = if below { by + 24.0 } else { by - 15.0 };
-        let _ = writeln!(w, r#"<text x="{bx:.2}" y="{ty:.2}" text-anchor="middle" fill="{VALID_COLOUR}" font-weight="bold">best</text>"#);
+        let word = if picked.is_some_and(|p| same(b, &p)) { "best = picked" } else { "best" };
+        let _ = writeln!(w, r#"<text x="{bx:.2}" y="{:.2}" text-anchor="middle" fill="{VALID_COLOUR}" font-weight="bold">{word}</text>"#, label_y(by));
+    }
+    if let Some(p) = picked.filter(|p| p.valid.is_finite() && !best.is_some_and(|b| same(b, p))) {
+        let (kx, ky) = (x.px(p.x), py(p.valid));
+        let _ = writeln!(
+            w,
+            r#"<path d="M {kx:.2} {:.2} L {:.2} {ky:.2} L {kx:.2} {:.2} L {:.2} {ky:.2} Z" fill="none" stroke="{INK}" stroke-width="1.8"><title>picked setting: validation {}</title></path>"#,
+            ky - 8.0,
+            kx + 8.0,
+            ky + 8.0,
+            kx - 8.0,
+            fmt_score(p.valid)
+        );
+        let _ = writeln!(w, r#"<text x="{kx:.2}" y="{:.2}" text-anchor="middle" fill="{INK}" font-weight="bold">picked</text>"#, label_y(ky));
     }
     if ys.is_empty() {
         let _ = writeln!(w, r#"<text x="{:.2}" y="{cy:.2}" text-anchor="middle" fill="{MUTED}">no finite scores to show</text>"#, (LEFT + RIGHT) / 2.0);
@@ -680,7 +715,10 @@ mod tests {
     #[test]
     fn one_well_formed_svg_per_varying_limit() {
         let dir = temp_dir("grid");
-        let files = limit_plots(&grid(), Metric::Accuracy, &dir).unwrap();
+        let g = grid();
+        // Pick a setting that is not the best of any plot: depth 1 (d = 0), l = 0, g = 1.
+        let picked = g.iter().position(|s| s.setting.options.limits.max_depth == Some(1) && s.setting.options.limits.min_leaf_rows == 1).unwrap();
+        let files = limit_plots(&g, Metric::Accuracy, Some(picked), &dir).unwrap();
         let names: Vec<String> = files.iter().map(|p| p.file_name().unwrap().to_string_lossy().into_owned()).collect();
         assert_eq!(names, ["max_depth.svg", "min_leaf_rows.svg", "min_gain.svg"]);
         let on_disk = std::fs::read_dir(&dir).unwrap().count();
@@ -688,7 +726,7 @@ mod tests {
         for (f, limit) in files.iter().zip(["max_depth", "min_leaf_rows", "min_gain"]) {
             let text = std::fs::read_to_string(f).unwrap();
             assert_eq!(well_formed(&text), Ok("svg".to_string()), "{}", f.display());
-            for word in ["training", "validation", "accuracy", limit, "best"] {
+            for word in ["training", "validation", "accuracy", limit, ">best<", ">picked<", "picked setting: validation"] {
                 assert!(text.contains(word), "{} lacks {word}", f.display());
             }
         }
@@ -721,13 +759,13 @@ mod tests {
     fn nothing_varies_no_files_and_nan_scores_still_draw() {
         let dir = temp_dir("flat");
         let one = vec![score(Limits::default(), 0.9, 0.8, 0.01)];
-        assert!(limit_plots(&one, Metric::Accuracy, &dir).unwrap().is_empty());
+        assert!(limit_plots(&one, Metric::Accuracy, Some(0), &dir).unwrap().is_empty());
         assert!(!dir.exists());
         let two = vec![
             score(Limits { prune_alpha: 0.0, ..Limits::default() }, 0.9, f64::NAN, f64::NAN),
             score(Limits { prune_alpha: 0.01, ..Limits::default() }, 0.7, f64::NAN, f64::NAN),
         ];
-        let files = limit_plots(&two, Metric::RocAuc, &dir).unwrap();
+        let files = limit_plots(&two, Metric::RocAuc, None, &dir).unwrap();
         assert_eq!(files.len(), 1);
         let text = std::fs::read_to_string(&files[0]).unwrap();
         assert_eq!(well_formed(&text), Ok("svg".to_string()));
@@ -753,11 +791,13 @@ mod tests {
         };
         let (_, r) = sweep(&data, &spec, &|_, _| Flow::Continue, &std::sync::atomic::AtomicBool::new(false)).unwrap();
         let dir = temp_dir("sweep");
-        let files = limit_plots(&r.scores, r.metric, &dir).unwrap();
+        let files = limit_plots(&r.scores, r.metric, Some(r.picked), &dir).unwrap();
         assert_eq!(files.len(), 6);
         for f in &files {
             let text = std::fs::read_to_string(f).unwrap();
             assert_eq!(well_formed(&text), Ok("svg".to_string()), "{}", f.display());
+            // The picked setting is marked on every plot, alone or as the best too.
+            assert!(text.contains(">picked</text>") || text.contains(">best = picked</text>"), "{}", f.display());
         }
         assert!(std::fs::read_to_string(dir.join("prune_alpha.svg")).unwrap().contains("prune_alpha (log scale)"));
         finish(&dir);

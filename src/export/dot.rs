@@ -2,10 +2,14 @@
 //!
 //! A `digraph` with one node statement per tree node, named `n<id>` after the node's index
 //! in the model (the nodes are stored in preorder, so ids run n0, n1, … down the left
-//! subtree first). Internal nodes are plain grey boxes showing their test and rows; leaves are
-//! rounded boxes, tinted by predicted class, showing the prediction and rows. The two edges
-//! of a split are labelled `yes` (the test holds) and `no`; the edge that missing cells take
-//! also says `+ missing`. The graph's caption is the one-line summary of the text rendering.
+//! subtree first). Our own look (see DEVELOPERS.md, "Our look"):
+//! - a condition is a pale sage hexagon showing its test and rows;
+//! - a leaf is a plain rectangle whose width grows with its share of the training rows,
+//!   filled by predicted class from a muted green, mauve and straw palette, showing the
+//!   prediction, the class mix in words (classify) and rows;
+//! - the two edges of a condition read `holds` (the test is true) and `fails`; the edge that
+//!   blank cells take is drawn bold and says `blanks too`.
+//! The graph's caption is the one-line summary of the text rendering.
 //!
 //! Tests, predictions and shares read exactly as in [`super::text`]. Every label is a quoted
 //! DOT string: `"` and `\` are escaped, and the only other backslash sequence written is the
@@ -13,24 +17,29 @@
 
 use std::fmt::Write as _;
 
-use super::text::{describe_test, prediction, rows_of, summary};
+use super::text::{branch_word, clean, describe_test, percent, prediction, rows_of, summary};
 use crate::data::Task;
 use crate::tree::Tree;
 
-/// Fill of internal nodes.
-const SPLIT_FILL: &str = "#f1f1f1";
+/// Fill and outline of conditions.
+const CONDITION_FILL: &str = "#eef0e6";
+const OUTLINE: &str = "#55604a";
 /// Fill of regress leaves.
-const VALUE_FILL: &str = "#dcebf7";
-/// Leaf fills by predicted class code, reused in turn when there are more classes.
-const CLASS_FILLS: [&str; 8] = ["#dcebf7", "#fbe3cd", "#dcf0d5", "#f5d9e6", "#e6def2", "#fdf3c4", "#d6efee", "#ece1d6"];
+const VALUE_FILL: &str = "#e2ead9";
+/// Leaf fills by predicted class code, reused in turn when there are more classes: muted
+/// sage, mauve, straw, sea-glass, clay, lavender, moss and rose.
+const CLASS_FILLS: [&str; 8] = ["#d8e8c8", "#e8d3ea", "#f3ecc2", "#cfe3df", "#eadbcf", "#dcdcef", "#e3e8b8", "#f0d6d6"];
+/// Most classes a leaf's mix names before summing up the rest.
+const MIX_LISTED: usize = 3;
 
 /// Renders a tree as a Graphviz DOT `digraph`.
 pub fn to_dot(tree: &Tree) -> String {
     let mut out = String::new();
     out.push_str("digraph pollard_model {\n");
-    let _ = writeln!(out, "  graph [label={}, labelloc=b, fontname=\"Helvetica\", fontsize=11];", quote(&[summary(tree)]));
-    out.push_str("  node [shape=box, fontname=\"Helvetica\", fontsize=11, color=\"#6b6b6b\"];\n");
-    out.push_str("  edge [fontname=\"Helvetica\", fontsize=10, color=\"#6b6b6b\"];\n");
+    let _ = writeln!(out, "  graph [label={}, labelloc=t, fontname=\"DejaVu Sans Mono\", fontsize=10, nodesep=0.3, ranksep=0.45];", quote(&[summary(tree)]));
+    let _ = writeln!(out, "  node [fontname=\"DejaVu Sans Mono\", fontsize=10, color=\"{OUTLINE}\", penwidth=0.8];");
+    let _ = writeln!(out, "  edge [fontname=\"DejaVu Sans Mono\", fontsize=9, color=\"{OUTLINE}\", arrowsize=0.6];");
+    let all = tree.nodes.first().map_or(0, |n| n.rows).max(1) as f64;
     // Preorder with an explicit stack, so deep trees cannot overflow.
     let mut stack = vec![0usize];
     while let Some(i) = stack.pop() {
@@ -38,10 +47,15 @@ pub fn to_dot(tree: &Tree) -> String {
         match &node.split {
             Some(split) => {
                 let label = quote(&[describe_test(tree, split), rows_of(tree, i)]);
-                let _ = writeln!(out, "  n{i} [style=filled, fillcolor=\"{SPLIT_FILL}\", label={label}];");
-                let (yes, no) = if split.missing_left { ("yes\\n+ missing", "no") } else { ("yes", "no\\n+ missing") };
-                let _ = writeln!(out, "  n{i} -> n{} [label=\"{yes}\"];", node.left);
-                let _ = writeln!(out, "  n{i} -> n{} [label=\"{no}\"];", node.right);
+                let _ = writeln!(out, "  n{i} [shape=hexagon, style=filled, fillcolor=\"{CONDITION_FILL}\", label={label}];");
+                for (child, left) in [(node.left, true), (node.right, false)] {
+                    let word = branch_word(left);
+                    if left == split.missing_left {
+                        let _ = writeln!(out, "  n{i} -> n{child} [label=\"{word}\\nblanks too\", style=bold];");
+                    } else {
+                        let _ = writeln!(out, "  n{i} -> n{child} [label=\"{word}\"];");
+                    }
+                }
                 stack.push(node.right as usize);
                 stack.push(node.left as usize);
             }
@@ -50,13 +64,39 @@ pub fn to_dot(tree: &Tree) -> String {
                     Task::Classify => CLASS_FILLS[tree.leaf_class(i as u32) as usize % CLASS_FILLS.len()],
                     Task::Regress => VALUE_FILL,
                 };
-                let label = quote(&[prediction(tree, i), rows_of(tree, i)]);
-                let _ = writeln!(out, "  n{i} [style=\"rounded,filled\", fillcolor=\"{fill}\", label={label}];");
+                let mut lines = vec![prediction(tree, i)];
+                if tree.task == Task::Classify {
+                    lines.extend(class_mix(tree, i));
+                }
+                lines.push(rows_of(tree, i));
+                // The share of training rows sets the width: 1 inch for a tiny leaf, 3 for all.
+                let width = 1.0 + 2.0 * node.rows as f64 / all;
+                let _ = writeln!(out, "  n{i} [shape=rect, style=filled, fillcolor=\"{fill}\", width={width:.2}, label={}];", quote(&lines));
             }
         }
     }
     out.push_str("}\n");
     out
+}
+
+/// A mixed leaf's classes in words, largest share first (lowest class code on ties), those
+/// with no rows left out: `scrap 60% · keep 40%`; `None` for a pure leaf.
+fn class_mix(tree: &Tree, node: usize) -> Option<String> {
+    let shares = tree.value(node);
+    let mut order: Vec<usize> = (0..shares.len()).filter(|&c| shares[c] > 0.0).collect();
+    order.sort_by(|&a, &b| shares[b].total_cmp(&shares[a]).then(a.cmp(&b)));
+    let mut parts: Vec<String> = order
+        .iter()
+        .take(MIX_LISTED)
+        .map(|&c| format!("{} {}", tree.labels.get(c).map_or_else(|| format!("class {c}"), |l| clean(l)), percent(shares[c])))
+        .collect();
+    if order.len() < 2 {
+        return None;
+    }
+    if order.len() > MIX_LISTED {
+        parts.push(format!("+{} more", order.len() - MIX_LISTED));
+    }
+    Some(parts.join(" · "))
 }
 
 /// Label lines as one quoted DOT string, lines joined by `\n`.
@@ -184,9 +224,10 @@ mod tests {
         assert!(labels.iter().any(|l| l == "hi\"gh 100%\n3 rows (37.5%)"), "{dot}");
         assert!(labels.iter().any(|l| l == "x is present\n5 rows (62.5%)"), "{dot}");
         assert!(labels.iter().any(|l| l == "3 leaves, depth 2, 8 rows; target grade \"A\" (classify)"), "{dot}");
-        // The root sends missing cells left, its left child right.
-        assert!(dot.contains("  n0 -> n1 [label=\"yes\\n+ missing\"];\n  n0 -> n4 [label=\"no\"];\n"), "{dot}");
-        assert!(dot.contains("  n1 -> n2 [label=\"yes\"];\n  n1 -> n3 [label=\"no\\n+ missing\"];\n"), "{dot}");
+        // The root sends blank cells left, its left child right; the mixed leaf names its mix.
+        assert!(labels.iter().any(|l| l == "lo{w} 66.7%\nlo{w} 66.7% · hi\"gh 33.3%\n3 rows (37.5%)"), "{dot}");
+        assert!(dot.contains("  n0 -> n1 [label=\"holds\\nblanks too\", style=bold];\n  n0 -> n4 [label=\"fails\"];\n"), "{dot}");
+        assert!(dot.contains("  n1 -> n2 [label=\"holds\"];\n  n1 -> n3 [label=\"fails\\nblanks too\", style=bold];\n"), "{dot}");
     }
 
     #[test]
@@ -199,12 +240,14 @@ mod tests {
         for leaf in tree.leaves() {
             let line = dot.lines().find(|l| l.starts_with(&format!("  n{leaf} ["))).unwrap();
             let label = &tree.labels[tree.leaf_class(leaf) as usize];
-            assert!(line.contains("rounded") && line.contains(&format!("label=\"{label} 100%\\n")), "{line}");
+            assert!(line.contains("shape=rect") && line.contains(&format!("label=\"{label} 100%\\n")), "{line}");
         }
         let dot = to_dot(&regress_tree());
         assert!(dot.contains("label=\"mean 1.5\\n9 rows (60%)\""), "{dot}");
         assert!(dot.contains("label=\"mean 10.5\\n6 rows (40%)\""), "{dot}");
-        assert!(dot.contains("  n0 [style=filled, fillcolor=\"#f1f1f1\", label=\"length <= 5\\n15 rows (100%)\"];"), "{dot}");
+        assert!(dot.contains("  n0 [shape=hexagon, style=filled, fillcolor=\"#eef0e6\", label=\"length <= 5\\n15 rows (100%)\"];"), "{dot}");
+        // Leaf width follows the share of rows: 9 of 15 rows is 1 + 2 × 0.6 inches.
+        assert!(dot.contains("width=2.20, label=\"mean 1.5\\n9 rows (60%)\""), "{dot}");
     }
 
     #[test]

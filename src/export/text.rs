@@ -1,28 +1,30 @@
 //! The plain-text model rendering, for reading a tree in a terminal.
 //!
-//! One line per node, two spaces of indentation per level. An internal node's line asks its
-//! test as a question and is followed by its two branches, `yes:` (the test holds) first and
-//! `no:` second; a leaf's line starts with `predict`. The last line sums the tree up.
+//! One line per node, two spaces of indentation per level. A condition's line states its
+//! test and is followed by its two branches: `holds ▸` (the test is true) first and
+//! `fails ▸` second. A leaf's line starts with `leaf:`, so a class named like a branch word
+//! cannot be read as one. Each condition says which branch cells with no value take
+//! (`blank cells: holds`). The last line sums the tree up.
 //!
 //! ```text
-//! colour in {red, back\slash}?  15 rows (100%), missing → yes
-//!   yes: length <= 4.5?  9 rows (60%), missing → yes
-//!     yes: predict scrap 100%, 5 rows (33.3%)
-//!     no: colour in {back\slash}?  4 rows (26.7%), missing → no
-//!       yes: predict scrap 100%, 1 row (6.7%)
-//!       no: predict keep 100%, 3 rows (20%)
-//!   no: predict keep 100%, 6 rows (40%)
+//! colour in {red, back\slash}  ·  15 rows (100%)  ·  blank cells: holds
+//!   holds ▸ length <= 4.5  ·  9 rows (60%)  ·  blank cells: holds
+//!     holds ▸ leaf: scrap 100%  ·  5 rows (33.3%)
+//!     fails ▸ colour in {back\slash}  ·  4 rows (26.7%)  ·  blank cells: fails
+//!       holds ▸ leaf: scrap 100%  ·  1 row (6.7%)
+//!       fails ▸ leaf: keep 100%  ·  3 rows (20%)
+//!   fails ▸ leaf: keep 100%  ·  6 rows (40%)
 //! 4 leaves, depth 3, 15 rows; target target (classify)
 //! ```
 //!
 //! (the classify tree of this file's tests.)
 //!
-//! Tests read `column <= value` (value in shortest round-trip form), `column is present`, or
-//! `column in {a, b}` (at most eight categories are listed, then `… (+N more)`). Shares of
-//! rows are of all training rows. A classify leaf shows its most likely class (lowest class
-//! code on ties, as prediction does) and that class's share of the leaf's (weighted) rows; a
-//! regress leaf shows its mean to four significant digits. Control characters in names are
-//! written as Rust-style escapes so every node stays on one line.
+//! Tests read `column <= value` (value in shortest round-trip form), `column is present`, or `column in {a, b}` (at most eight
+//! categories are listed, then `… (+N more)`). Shares of rows are of all training rows. A
+//! classify leaf shows its most likely class (lowest class code on ties, as prediction does)
+//! and that class's share of the leaf's (weighted) rows; a regress leaf shows its mean to
+//! four significant digits. Control characters in names are written as Rust-style escapes so
+//! every node stays on one line.
 //!
 //! The helpers here are shared with the DOT rendering, so both say the same thing.
 
@@ -46,23 +48,31 @@ pub fn to_text(tree: &Tree) -> String {
         }
         if let Some(word) = branch {
             out.push_str(word);
-            out.push_str(": ");
+            out.push_str(" ▸ ");
         }
         match &node.split {
             Some(split) => {
-                let side = if split.missing_left { "yes" } else { "no" };
-                let _ = writeln!(out, "{}?  {}, missing → {side}", describe_test(tree, split), rows_of(tree, i));
-                stack.push((node.right as usize, level + 1, Some("no")));
-                stack.push((node.left as usize, level + 1, Some("yes")));
+                let _ = writeln!(out, "{}  ·  {}  ·  blank cells: {}", describe_test(tree, split), rows_of(tree, i), branch_word(split.missing_left));
+                stack.push((node.right as usize, level + 1, Some(branch_word(false))));
+                stack.push((node.left as usize, level + 1, Some(branch_word(true))));
             }
             None => {
-                let _ = writeln!(out, "predict {}, {}", prediction(tree, i), rows_of(tree, i));
+                let _ = writeln!(out, "leaf: {}  ·  {}", prediction(tree, i), rows_of(tree, i));
             }
         }
     }
     out.push_str(&summary(tree));
     out.push('\n');
     out
+}
+
+/// The branch a test's outcome leads to: `holds` (left, the test is true) or `fails`.
+pub(crate) fn branch_word(left: bool) -> &'static str {
+    if left {
+        "holds"
+    } else {
+        "fails"
+    }
 }
 
 /// `3 leaves, depth 2, 150 rows; target species (classify)`.
@@ -223,7 +233,7 @@ pub(crate) mod tests {
         // f32 the way cells are stored, sends the f32 values around the threshold the way the
         // threshold does.
         let one = 1.0f32;
-        for (x, y) in [(30.6f32, 30.7f32), (one, one.next_up()), (0.1, 0.2), (123456.7, 123456.8), (-3.3, -3.2), (1e-30, 2e-30), (0.0, 1e-8)] {
+        for (x, y) in [(30.6f32, 30.7f32), (31.8, 31.9), (one, one.next_up()), (0.1, 0.2), (123456.7, 123456.8), (-3.3, -3.2), (1e-30, 2e-30), (0.0, 1e-8)] {
             let t = mid(x, y);
             let shown: f32 = show_threshold(t).parse().unwrap();
             let below = if (t as f32) as f64 <= t { t as f32 } else { (t as f32).next_down() };
@@ -369,17 +379,17 @@ pub(crate) mod tests {
         }
         assert!(text.contains("length"), "{text}");
         assert!(text.contains("colour in {"), "{text}");
-        // Every leaf is pure, so each reads `predict <class> 100%`, in preorder.
-        let leaf_lines: Vec<&str> = lines.iter().copied().filter(|l| l.trim_start().contains("predict ")).collect();
+        // Every leaf is pure, so each reads `leaf: <class> 100%`, in preorder.
+        let leaf_lines: Vec<&str> = lines.iter().copied().filter(|l| l.contains("leaf: ")).collect();
         let leaves = tree.leaves();
         assert_eq!(leaf_lines.len(), leaves.len());
         for (line, &leaf) in leaf_lines.iter().zip(&leaves) {
             let label = &tree.labels[tree.leaf_class(leaf) as usize];
-            assert!(line.contains(&format!("predict {label} 100%,")), "leaf {leaf}: {line}");
+            assert!(line.contains(&format!("leaf: {label} 100%  ·  ")), "leaf {leaf}: {line}");
         }
         assert!(lines[0].starts_with(|c: char| c.is_alphabetic()), "the root is not indented");
         assert!(lines[0].contains("15 rows (100%)"), "{}", lines[0]);
-        assert!(lines[1].starts_with("  yes: ") && !lines[1].starts_with("   "), "{text}");
+        assert!(lines[1].starts_with("  holds ▸ ") && !lines[1].starts_with("   "), "{text}");
         let summary = format!("{} leaves, depth {}, 15 rows; target target (classify)", tree.n_leaves(), tree.depth());
         assert_eq!(*lines.last().unwrap(), summary);
     }
@@ -391,10 +401,9 @@ pub(crate) mod tests {
         let text = to_text(&tree);
         // Eight rows have length <= 5 and target 1.5; the missing-length row (also 1.5) can
         // only join them for a pure split. The other six have 10.5.
-        assert!(text.starts_with("length <= 5?  15 rows (100%), missing → yes\n"), "{text}");
-        assert!(text.contains("predict mean 1.5, 9 rows (60%)"), "{text}");
-        assert!(text.contains("predict mean 10.5, 6 rows (40%)"), "{text}");
-        assert!(text.contains("missing → yes"), "{text}");
+        assert!(text.starts_with("length <= 5  ·  15 rows (100%)  ·  blank cells: holds\n"), "{text}");
+        assert!(text.contains("  holds ▸ leaf: mean 1.5  ·  9 rows (60%)\n"), "{text}");
+        assert!(text.contains("  fails ▸ leaf: mean 10.5  ·  6 rows (40%)\n"), "{text}");
         assert!(text.ends_with("2 leaves, depth 1, 15 rows; target target (regress)\n"), "{text}");
     }
 
@@ -402,11 +411,11 @@ pub(crate) mod tests {
     fn hand_tree_text() {
         let text = to_text(&hand_tree());
         let expected = "\
-shade in {a\"b{c}, <b>, c\\, line\\nbreak, s4, s5, s6, s7, … (+2 more)}?  8 rows (100%), missing → yes
-  yes: x is present?  5 rows (62.5%), missing → no
-    yes: predict hi\"gh 100%, 3 rows (37.5%)
-    no: predict lo{w} 100%, 2 rows (25%)
-  no: predict lo{w} 66.7%, 3 rows (37.5%)
+shade in {a\"b{c}, <b>, c\\, line\\nbreak, s4, s5, s6, s7, … (+2 more)}  ·  8 rows (100%)  ·  blank cells: holds
+  holds ▸ x is present  ·  5 rows (62.5%)  ·  blank cells: fails
+    holds ▸ leaf: hi\"gh 100%  ·  3 rows (37.5%)
+    fails ▸ leaf: lo{w} 100%  ·  2 rows (25%)
+  fails ▸ leaf: lo{w} 66.7%  ·  3 rows (37.5%)
 3 leaves, depth 2, 8 rows; target grade \"A\" (classify)
 ";
         assert_eq!(text, expected);

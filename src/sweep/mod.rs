@@ -269,7 +269,7 @@ pub fn summarize(plan: &Plan, units: &[UnitResult]) -> SweepResult {
     let scores: Vec<SettingScore> = per
         .into_iter()
         .zip(&plan.settings)
-        .map(|(folds, setting)| aggregate(setting, &folds.into_iter().map(|x| x.expect("every unit scored")).collect::<Vec<_>>()))
+        .map(|(folds, setting)| aggregate(setting, &folds.into_iter().map(|x| x.expect("every unit scored")).collect::<Vec<_>>(), plan.spec.metric))
         .collect();
     let metric = plan.spec.metric;
     let best = pick(&scores, PickRule::Highest, metric);
@@ -277,8 +277,10 @@ pub fn summarize(plan: &Plan, units: &[UnitResult]) -> SweepResult {
     SweepResult { metric, pick_rule: plan.spec.spec.pick, scores, picked, best, model: None }
 }
 
-/// One setting's score from its fold scores, in split order.
-pub fn aggregate(setting: &Setting, f: &[FoldScore]) -> SettingScore {
+/// One setting's score from its fold scores, in split order. The gap is oriented by the
+/// metric so that a larger gap always means more overfitting: training minus validation
+/// where higher is better (accuracy), validation minus training where lower is better (RMSE).
+pub fn aggregate(setting: &Setting, f: &[FoldScore], metric: Metric) -> SettingScore {
     let k = f.len() as f64;
     let fold_scores: Vec<f64> = f.iter().map(|x| x.valid).collect();
     let valid_mean = fold_scores.iter().sum::<f64>() / k;
@@ -290,9 +292,19 @@ pub fn aggregate(setting: &Setting, f: &[FoldScore]) -> SettingScore {
         valid_mean,
         valid_sd,
         train_mean,
-        gap: train_mean - valid_mean,
+        gap: overfit_gap(train_mean, valid_mean, metric),
         mean_leaves: f.iter().map(|x| x.leaves as f64).sum::<f64>() / k,
         mean_depth: f.iter().map(|x| x.depth as f64).sum::<f64>() / k,
+    }
+}
+
+/// How far training scores better than validation, in the metric's units; positive when the
+/// tree fits its training rows better than unseen rows, whichever way the metric points.
+pub fn overfit_gap(train_mean: f64, valid_mean: f64, metric: Metric) -> f64 {
+    if metric.higher_is_better() {
+        train_mean - valid_mean
+    } else {
+        valid_mean - train_mean
     }
 }
 
@@ -310,7 +322,7 @@ pub fn key_scores(plan: &Plan, units: &[UnitResult], key: usize) -> Option<Vec<(
     let mut out = Vec::new();
     for (s, folds) in per {
         let folds: Option<Vec<FoldScore>> = folds.into_iter().collect();
-        out.push((s, aggregate(&plan.settings[s], &folds?)));
+        out.push((s, aggregate(&plan.settings[s], &folds?, plan.spec.metric)));
     }
     (!out.is_empty()).then_some(out)
 }
