@@ -110,6 +110,11 @@ pub fn table_to_csv(table: &pb::Table) -> Result<Vec<u8>, Status> {
                 None => unreachable!("checked above"),
             });
         }
+        // In a table of one column an empty cell would be a blank line, which the CSV reader
+        // skips: the row would be lost. `NA` reads back as the same missing cell.
+        if record.len() == 1 && record[0].trim_ascii().is_empty() {
+            record[0] = "NA".into();
+        }
         w.write_record(&record).map_err(|e| Status::internal(e.to_string()))?;
     }
     w.into_inner().map_err(|e| Status::internal(e.to_string()))
