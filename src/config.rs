@@ -34,11 +34,12 @@ pub struct Config {
     pub fire_grace_secs: u64,
     /// Largest request and reply message of each service, in bytes (see [`MessageLimits`]).
     pub messages: MessageLimits,
-    /// Calls that send a table (Upload, PutTable, Predict) at the same time; more get
-    /// RESOURCE_EXHAUSTED at once.
+    /// Uploads (Upload, PutTable) at the same time; more wait for a slot.
     pub max_concurrent_uploads: usize,
-    /// Request bytes those calls may hold at the same time, across calls; a call that would
-    /// go over gets RESOURCE_EXHAUSTED.
+    /// How long an upload waits for a slot before RESOURCE_EXHAUSTED (seconds).
+    pub upload_wait_secs: u64,
+    /// Request bytes the calls that send a table (Upload, PutTable, Predict) may hold at the
+    /// same time, across calls; a call that would go over gets RESOURCE_EXHAUSTED.
     pub max_upload_bytes_in_flight: u64,
     /// A call that sends a table and receives no data for this long is ended (seconds).
     pub upload_idle_secs: u64,
@@ -64,6 +65,7 @@ impl Default for Config {
             fire_grace_secs: 300,
             messages: MessageLimits::default(),
             max_concurrent_uploads: 4,
+            upload_wait_secs: 10,
             max_upload_bytes_in_flight: 256 << 20,
             upload_idle_secs: 30,
             drain_secs: 5,
@@ -141,6 +143,7 @@ struct FileConfig {
     schedules_max_request_bytes: Option<usize>,
     schedules_max_reply_bytes: Option<usize>,
     max_concurrent_uploads: Option<usize>,
+    upload_wait_secs: Option<u64>,
     max_upload_bytes_in_flight: Option<u64>,
     upload_idle_secs: Option<u64>,
     drain_secs: Option<u64>,
@@ -204,6 +207,7 @@ impl Config {
         num!(c.messages.schedules.request, schedules_max_request_bytes, "schedules_max_request_bytes", "POLLARD_SCHEDULES_MAX_REQUEST_BYTES", usize);
         num!(c.messages.schedules.reply, schedules_max_reply_bytes, "schedules_max_reply_bytes", "POLLARD_SCHEDULES_MAX_REPLY_BYTES", usize);
         num!(max_concurrent_uploads, "max_concurrent_uploads", "POLLARD_MAX_CONCURRENT_UPLOADS", usize);
+        num!(upload_wait_secs, "upload_wait_secs", "POLLARD_UPLOAD_WAIT_SECS", u64);
         num!(max_upload_bytes_in_flight, "max_upload_bytes_in_flight", "POLLARD_MAX_UPLOAD_BYTES_IN_FLIGHT", u64);
         num!(upload_idle_secs, "upload_idle_secs", "POLLARD_UPLOAD_IDLE_SECS", u64);
         num!(drain_secs, "drain_secs", "POLLARD_DRAIN_SECS", u64);

@@ -76,9 +76,9 @@ pub fn message_too_large(status: &Status, service: &str, limits: &crate::config:
     Some(Status::resource_exhausted(format!("the {what} message is {found} bytes, over the limit of {limit} bytes for {service} ({key})")))
 }
 
-/// A call that sends a table while `limit` such calls are running.
-pub fn uploads_busy(limit: usize) -> Status {
-    Status::resource_exhausted(format!("{limit} calls that send a table (Upload, PutTable, Predict) are running, the limit (max_concurrent_uploads); try again when one has finished"))
+/// An upload that found `limit` uploads running for `waited` seconds.
+pub fn uploads_busy(limit: usize, waited: u64) -> Status {
+    Status::resource_exhausted(format!("{limit} uploads (Upload, PutTable) are running, the limit (max_concurrent_uploads), and none ended within {waited} s (upload_wait_secs); try again later"))
 }
 
 /// Request bytes that would take the calls sending tables over their shared budget.

@@ -1,9 +1,12 @@
 //! The transport guard: one tower layer around every service that
-//! - gives the calls that send a table (Upload, PutTable, Predict) a slot among
-//!   `max_concurrent_uploads` and counts their request bytes against
-//!   `max_upload_bytes_in_flight` (held until the reply is sent), ending a call whose data
-//!   stops arriving for `upload_idle_secs`; these checks run as the bytes arrive, before
-//!   tonic decodes a message, since a unary message is decoded whole before its handler runs;
+//! - gives the calls that store a dataset (Upload, PutTable) one of `max_concurrent_uploads`
+//!   slots, waiting up to `upload_wait_secs` for one (then RESOURCE_EXHAUSTED);
+//! - counts the request bytes of the calls that send a table (those two and Predict) against
+//!   `max_upload_bytes_in_flight` (held until the reply is sent; a call that would go over
+//!   gets RESOURCE_EXHAUSTED at once, since waiting while holding bytes could deadlock) and
+//!   ends such a call when its data stops arriving for `upload_idle_secs` (DEADLINE_EXCEEDED);
+//!   these checks run as the bytes arrive, before tonic decodes a message, since a unary
+//!   message is decoded whole before its handler runs;
 //! - turns tonic's OUT_OF_RANGE for a message over a size limit into RESOURCE_EXHAUSTED
 //!   naming the limit ([`error::message_too_large`]), in trailers-only replies (a refused
 //!   request) and in trailers (a reply over its limit).
@@ -24,14 +27,19 @@ use tonic::Status;
 use super::error;
 use crate::config::{Config, MessageLimits};
 
-/// The calls whose requests may be as large as a table.
+/// The calls whose requests may be as large as a table: their bytes are counted and they end
+/// when data stops arriving.
 const TABLE_CALLS: [&str; 3] = ["/pollard.v1.Datasets/Upload", "/pollard.v1.Datasets/PutTable", "/pollard.v1.Models/Predict"];
+/// The calls that store a dataset: they also take an upload slot.
+const UPLOAD_CALLS: [&str; 2] = ["/pollard.v1.Datasets/Upload", "/pollard.v1.Datasets/PutTable"];
 
 /// What the guard shares across calls.
 struct Gate {
     messages: MessageLimits,
     slots: Arc<Semaphore>,
     max_slots: usize,
+    /// How long a call waits for a slot before it is refused.
+    slot_wait: Duration,
     bytes: Arc<Semaphore>,
     max_bytes: u64,
     idle: Duration,
@@ -48,6 +56,7 @@ impl GuardLayer {
             messages: config.messages,
             slots: Arc::new(Semaphore::new(config.max_concurrent_uploads.min(Semaphore::MAX_PERMITS))),
             max_slots: config.max_concurrent_uploads,
+            slot_wait: Duration::from_secs(config.upload_wait_secs),
             bytes: Arc::new(Semaphore::new(max_bytes as usize)),
             max_bytes,
             idle: Duration::from_secs(config.upload_idle_secs),
@@ -70,7 +79,7 @@ pub struct Guard<S> {
 
 /// A table call's slot and the request bytes it holds; released when the reply is dropped.
 struct Ticket {
-    _slot: OwnedSemaphorePermit,
+    _slot: Option<OwnedSemaphorePermit>,
     bytes: Mutex<Option<OwnedSemaphorePermit>>,
 }
 
@@ -94,19 +103,27 @@ where
         let gate = self.gate.clone();
         let path = request.uri().path().to_string();
         let service = path.trim_start_matches('/').split('/').next().unwrap_or_default().to_string();
-        let (request, ticket) = if TABLE_CALLS.contains(&path.as_str()) {
-            let Ok(slot) = gate.slots.clone().try_acquire_owned() else {
-                let refused = Response::new(Body::empty());
-                return Box::pin(async move { Ok(trailers_only(refused, error::uploads_busy(gate.max_slots))) });
-            };
-            let ticket = Arc::new(Ticket { _slot: slot, bytes: Mutex::new(None) });
-            let (parts, body) = request.into_parts();
-            let counted = Counted { inner: body, gate: gate.clone(), ticket: ticket.clone(), idle: Box::pin(tokio::time::sleep(gate.idle)) };
-            (Request::from_parts(parts, Body::new(counted)), Some(ticket))
-        } else {
-            (request, None)
-        };
         Box::pin(async move {
+            let mut ticket = None;
+            let request = if TABLE_CALLS.contains(&path.as_str()) {
+                let slot = if UPLOAD_CALLS.contains(&path.as_str()) {
+                    // Waiting costs a stream and no body bytes: HTTP/2 flow control holds the
+                    // caller's data until the body is read.
+                    match tokio::time::timeout(gate.slot_wait, gate.slots.clone().acquire_owned()).await {
+                        Ok(Ok(slot)) => Some(slot),
+                        _ => return Ok(trailers_only(Response::new(Body::empty()), error::uploads_busy(gate.max_slots, gate.slot_wait.as_secs()))),
+                    }
+                } else {
+                    None
+                };
+                let t = Arc::new(Ticket { _slot: slot, bytes: Mutex::new(None) });
+                ticket = Some(t.clone());
+                let (parts, body) = request.into_parts();
+                let counted = Counted { inner: body, gate: gate.clone(), ticket: t, idle: Box::pin(tokio::time::sleep(gate.idle)) };
+                Request::from_parts(parts, Body::new(counted))
+            } else {
+                request
+            };
             let response = inner.call(request).await?;
             let (mut parts, body) = response.into_parts();
             rewrite(&mut parts.headers, &service, &gate.messages);

@@ -266,20 +266,21 @@ fn an_upload_over_max_upload_bytes_is_resource_exhausted_and_stores_nothing() {
 
 #[test]
 fn uploads_over_max_concurrent_uploads_are_resource_exhausted_until_one_ends() {
-    let mut server = serve("max_concurrent_uploads = 2\n");
+    let mut server = serve("max_concurrent_uploads = 2\nupload_wait_secs = 1\n");
     let before = snapshot(&server);
     let rt = runtime();
     let ch = rt.block_on(channel(&server));
     let a = open_upload(&rt, &ch, "a");
     let b = open_upload(&rt, &ch, "b");
-    // Once both hold their slots, a third is refused (before that it gets through to the
-    // handler and is refused there for its missing target column, storing nothing).
+    // Once both hold their slots, a third waits upload_wait_secs and is refused (before that
+    // it gets through to the handler and is refused there for its missing target column,
+    // storing nothing).
     let third = untargeted(100);
     until("a third upload is refused for the cap", || {
         let r = rt.block_on(upload(&ch, "c", "target", &third));
         match r {
             Err(s) if s.code() == Code::ResourceExhausted => {
-                assert!(s.message().contains("max_concurrent_uploads") && s.message().contains('2'), "{s:?}");
+                assert!(s.message().contains("max_concurrent_uploads") && s.message().contains("upload_wait_secs"), "{s:?}");
                 Some(())
             }
             Err(s) if s.code() == Code::InvalidArgument => None,
