@@ -6,6 +6,7 @@ use std::sync::Arc;
 
 use tokio::net::TcpListener;
 use tokio_stream::wrappers::TcpListenerStream;
+use tokio_stream::StreamExt as _;
 use tracing::info;
 
 use crate::clock::{Clock, SystemClock};
@@ -68,10 +69,19 @@ pub async fn run_with_clock(listener: TcpListener, config: Config, store: Store,
         .add_service(pb::runs_server::RunsServer::new(api.clone()).max_decoding_message_size(m.runs.request).max_encoding_message_size(m.runs.reply))
         .add_service(pb::schedules_server::SchedulesServer::new(api.clone()).max_decoding_message_size(m.schedules.request).max_encoding_message_size(m.schedules.reply))
         .add_service(pb::models_server::ModelsServer::new(api.clone()).max_decoding_message_size(m.models.request).max_encoding_message_size(m.models.reply))
-        .serve_with_incoming_shutdown(TcpListenerStream::new(listener), stop);
+        .serve_with_incoming_shutdown(TcpListenerStream::new(listener).map(no_delay), stop);
     let served = until_drained(&shared, served).await.map_err(|e| format!("server: {e}"));
     drain(&shared, workers).await;
     served
+}
+
+/// Sends small writes at once: with Nagle's algorithm on, a reply written in pieces waits for
+/// the caller's delayed ACK (about 40 ms on Linux).
+fn no_delay(s: std::io::Result<tokio::net::TcpStream>) -> std::io::Result<tokio::net::TcpStream> {
+    if let Ok(s) = &s {
+        let _ = s.set_nodelay(true);
+    }
+    s
 }
 
 /// Waits for the server to end, but no longer than `drain_secs` after shutdown began: open
