@@ -32,6 +32,20 @@ pub struct Config {
     /// How late a schedule's fire may be handled and still count as on time (seconds); older
     /// fires count as missed (caught up once, or skipped, by the schedule's rule).
     pub fire_grace_secs: u64,
+    /// Largest request and reply message of each service, in bytes (see [`MessageLimits`]).
+    pub messages: MessageLimits,
+    /// Uploads (Upload, PutTable) at the same time; more wait for a slot.
+    pub max_concurrent_uploads: usize,
+    /// How long an upload waits for a slot before RESOURCE_EXHAUSTED (seconds).
+    pub upload_wait_secs: u64,
+    /// Request bytes the calls that send a table (Upload, PutTable, Predict) may hold at the
+    /// same time, across calls; a call that would go over gets RESOURCE_EXHAUSTED.
+    pub max_upload_bytes_in_flight: u64,
+    /// A call that sends a table and receives no data for this long is ended (seconds).
+    pub upload_idle_secs: u64,
+    /// After SIGTERM, how long open calls (uploads, follows) may take to end before the
+    /// server closes them and exits (seconds).
+    pub drain_secs: u64,
     pub log_format: LogFormat,
     /// A tracing filter such as `info` or `pollard=debug`.
     pub log_filter: String,
@@ -49,8 +63,60 @@ impl Default for Config {
             max_columns: 2_000,
             max_settings: 100_000,
             fire_grace_secs: 300,
+            messages: MessageLimits::default(),
+            max_concurrent_uploads: 4,
+            upload_wait_secs: 10,
+            max_upload_bytes_in_flight: 256 << 20,
+            upload_idle_secs: 30,
+            drain_secs: 5,
             log_format: LogFormat::Plain,
             log_filter: "info".into(),
+        }
+    }
+}
+
+/// Message size limits per service, in bytes: `request` for what a caller sends (larger
+/// messages are refused before a handler runs), `reply` for what the server sends.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub struct MessageLimits {
+    pub datasets: Limit,
+    pub runs: Limit,
+    pub models: Limit,
+    pub schedules: Limit,
+}
+
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub struct Limit {
+    pub request: usize,
+    pub reply: usize,
+}
+
+/// Requests of the services that carry tables: the default upload cap and 1 MiB for the rest
+/// of the message.
+pub const TABLE_REQUEST_BYTES: usize = (256 << 20) + (1 << 20);
+/// Requests of the other services (the usual gRPC default).
+pub const SMALL_REQUEST_BYTES: usize = 4 << 20;
+/// Replies of every service.
+pub const REPLY_BYTES: usize = 256 << 20;
+
+impl Default for MessageLimits {
+    fn default() -> Self {
+        let table = Limit { request: TABLE_REQUEST_BYTES, reply: REPLY_BYTES };
+        let small = Limit { request: SMALL_REQUEST_BYTES, reply: REPLY_BYTES };
+        MessageLimits { datasets: table, runs: small, models: table, schedules: small }
+    }
+}
+
+impl MessageLimits {
+    /// The limits of a service by its full name (`pollard.v1.Runs`) with the config key of
+    /// its request limit; `None` for services pollard does not configure (health, reflection).
+    pub fn of(&self, service: &str) -> Option<(Limit, &'static str, &'static str)> {
+        match service {
+            "pollard.v1.Datasets" => Some((self.datasets, "datasets_max_request_bytes", "datasets_max_reply_bytes")),
+            "pollard.v1.Runs" => Some((self.runs, "runs_max_request_bytes", "runs_max_reply_bytes")),
+            "pollard.v1.Models" => Some((self.models, "models_max_request_bytes", "models_max_reply_bytes")),
+            "pollard.v1.Schedules" => Some((self.schedules, "schedules_max_request_bytes", "schedules_max_reply_bytes")),
+            _ => None,
         }
     }
 }
@@ -68,6 +134,19 @@ struct FileConfig {
     max_columns: Option<usize>,
     max_settings: Option<usize>,
     fire_grace_secs: Option<u64>,
+    datasets_max_request_bytes: Option<usize>,
+    datasets_max_reply_bytes: Option<usize>,
+    runs_max_request_bytes: Option<usize>,
+    runs_max_reply_bytes: Option<usize>,
+    models_max_request_bytes: Option<usize>,
+    models_max_reply_bytes: Option<usize>,
+    schedules_max_request_bytes: Option<usize>,
+    schedules_max_reply_bytes: Option<usize>,
+    max_concurrent_uploads: Option<usize>,
+    upload_wait_secs: Option<u64>,
+    max_upload_bytes_in_flight: Option<u64>,
+    upload_idle_secs: Option<u64>,
+    drain_secs: Option<u64>,
     log_format: Option<String>,
     log_filter: Option<String>,
 }
@@ -104,8 +183,11 @@ impl Config {
         let number = |from: &str, v: &str| v.parse::<u64>().map_err(|_| format!("{from}: '{v}' is not a whole number"));
         macro_rules! num {
             ($field:ident, $key:literal, $env:literal, $ty:ty) => {
+                num!(c.$field, $field, $key, $env, $ty)
+            };
+            ($target:expr, $field:ident, $key:literal, $env:literal, $ty:ty) => {
                 if let Some((from, v)) = set($key, file.$field.map(|x| x.to_string()), $env, None) {
-                    c.$field = number(&from, &v)? as $ty;
+                    $target = number(&from, &v)? as $ty;
                 }
             };
         }
@@ -116,6 +198,19 @@ impl Config {
         num!(max_columns, "max_columns", "POLLARD_MAX_COLUMNS", usize);
         num!(max_settings, "max_settings", "POLLARD_MAX_SETTINGS", usize);
         num!(fire_grace_secs, "fire_grace_secs", "POLLARD_FIRE_GRACE_SECS", u64);
+        num!(c.messages.datasets.request, datasets_max_request_bytes, "datasets_max_request_bytes", "POLLARD_DATASETS_MAX_REQUEST_BYTES", usize);
+        num!(c.messages.datasets.reply, datasets_max_reply_bytes, "datasets_max_reply_bytes", "POLLARD_DATASETS_MAX_REPLY_BYTES", usize);
+        num!(c.messages.runs.request, runs_max_request_bytes, "runs_max_request_bytes", "POLLARD_RUNS_MAX_REQUEST_BYTES", usize);
+        num!(c.messages.runs.reply, runs_max_reply_bytes, "runs_max_reply_bytes", "POLLARD_RUNS_MAX_REPLY_BYTES", usize);
+        num!(c.messages.models.request, models_max_request_bytes, "models_max_request_bytes", "POLLARD_MODELS_MAX_REQUEST_BYTES", usize);
+        num!(c.messages.models.reply, models_max_reply_bytes, "models_max_reply_bytes", "POLLARD_MODELS_MAX_REPLY_BYTES", usize);
+        num!(c.messages.schedules.request, schedules_max_request_bytes, "schedules_max_request_bytes", "POLLARD_SCHEDULES_MAX_REQUEST_BYTES", usize);
+        num!(c.messages.schedules.reply, schedules_max_reply_bytes, "schedules_max_reply_bytes", "POLLARD_SCHEDULES_MAX_REPLY_BYTES", usize);
+        num!(max_concurrent_uploads, "max_concurrent_uploads", "POLLARD_MAX_CONCURRENT_UPLOADS", usize);
+        num!(upload_wait_secs, "upload_wait_secs", "POLLARD_UPLOAD_WAIT_SECS", u64);
+        num!(max_upload_bytes_in_flight, "max_upload_bytes_in_flight", "POLLARD_MAX_UPLOAD_BYTES_IN_FLIGHT", u64);
+        num!(upload_idle_secs, "upload_idle_secs", "POLLARD_UPLOAD_IDLE_SECS", u64);
+        num!(drain_secs, "drain_secs", "POLLARD_DRAIN_SECS", u64);
         if let Some((from, v)) = set("log_format", file.log_format, "POLLARD_LOG_FORMAT", None) {
             c.log_format = match v.as_str() {
                 "plain" => LogFormat::Plain,
@@ -131,6 +226,16 @@ impl Config {
         }
         if c.max_settings == 0 || c.max_rows == 0 || c.max_columns == 0 || c.max_upload_bytes == 0 {
             return Err("the caps (max_upload_bytes, max_rows, max_columns, max_settings) must be at least 1".into());
+        }
+        if c.max_concurrent_uploads == 0 || c.max_upload_bytes_in_flight == 0 || c.upload_idle_secs == 0 {
+            return Err("max_concurrent_uploads, max_upload_bytes_in_flight and upload_idle_secs must be at least 1".into());
+        }
+        let m = c.messages;
+        for service in [m.datasets, m.runs, m.models, m.schedules] {
+            // A message must at least hold its 5-byte gRPC frame header and a few fields.
+            if service.request < 1024 || service.reply < 1024 {
+                return Err("the message limits (*_max_request_bytes, *_max_reply_bytes) must be at least 1024".into());
+            }
         }
         Ok(c)
     }

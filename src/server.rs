@@ -6,12 +6,14 @@ use std::sync::Arc;
 
 use tokio::net::TcpListener;
 use tokio_stream::wrappers::TcpListenerStream;
+use tokio_stream::StreamExt as _;
 use tracing::info;
 
 use crate::clock::{Clock, SystemClock};
 use crate::config::Config;
 use crate::scheduler;
 use crate::pb;
+use crate::rpc::limits::GuardLayer;
 use crate::rpc::Api;
 use crate::store::Store;
 use crate::worker::{self, Shared};
@@ -58,23 +60,46 @@ pub async fn run_with_clock(listener: TcpListener, config: Config, store: Store,
             let _ = shared.shutdown.send(true);
         }
     };
+    let m = shared.config.messages;
     let served = tonic::transport::Server::builder()
+        .layer(GuardLayer::new(&shared.config))
         .add_service(health)
         .add_service(reflection)
-        .add_service(pb::datasets_server::DatasetsServer::new(api.clone()).max_decoding_message_size(message_limit(&shared)))
-        .add_service(pb::runs_server::RunsServer::new(api.clone()))
-        .add_service(pb::schedules_server::SchedulesServer::new(api.clone()))
-        .add_service(pb::models_server::ModelsServer::new(api.clone()).max_decoding_message_size(message_limit(&shared)))
-        .serve_with_incoming_shutdown(TcpListenerStream::new(listener), stop)
-        .await
-        .map_err(|e| format!("server: {e}"));
+        .add_service(pb::datasets_server::DatasetsServer::new(api.clone()).max_decoding_message_size(m.datasets.request).max_encoding_message_size(m.datasets.reply))
+        .add_service(pb::runs_server::RunsServer::new(api.clone()).max_decoding_message_size(m.runs.request).max_encoding_message_size(m.runs.reply))
+        .add_service(pb::schedules_server::SchedulesServer::new(api.clone()).max_decoding_message_size(m.schedules.request).max_encoding_message_size(m.schedules.reply))
+        .add_service(pb::models_server::ModelsServer::new(api.clone()).max_decoding_message_size(m.models.request).max_encoding_message_size(m.models.reply))
+        .serve_with_incoming_shutdown(TcpListenerStream::new(listener).map(no_delay), stop);
+    let served = until_drained(&shared, served).await.map_err(|e| format!("server: {e}"));
     drain(&shared, workers).await;
     served
 }
 
-/// Table messages may be as large as an upload.
-fn message_limit(shared: &Arc<Shared>) -> usize {
-    (shared.config.max_upload_bytes as usize).saturating_add(1 << 20)
+/// Sends small writes at once: with Nagle's algorithm on, a reply written in pieces waits for
+/// the caller's delayed ACK (about 40 ms on Linux).
+fn no_delay(s: std::io::Result<tokio::net::TcpStream>) -> std::io::Result<tokio::net::TcpStream> {
+    if let Ok(s) = &s {
+        let _ = s.set_nodelay(true);
+    }
+    s
+}
+
+/// Waits for the server to end, but no longer than `drain_secs` after shutdown began: open
+/// streams end themselves with UNAVAILABLE when the shutdown flag flips, and whatever is
+/// still open at the deadline is dropped with its connection.
+async fn until_drained<E>(shared: &Arc<Shared>, served: impl Future<Output = Result<(), E>>) -> Result<(), E> {
+    let mut stopping = shared.shutdown.subscribe();
+    let deadline = async move {
+        let _ = stopping.wait_for(|s| *s).await;
+        tokio::time::sleep(std::time::Duration::from_secs(shared.config.drain_secs)).await;
+    };
+    tokio::select! {
+        r = served => r,
+        _ = deadline => {
+            tracing::warn!(drain_secs = shared.config.drain_secs, "calls still open at the drain deadline are closed");
+            Ok(())
+        }
+    }
 }
 
 async fn drain(shared: &Arc<Shared>, workers: Vec<tokio::task::JoinHandle<()>>) {

@@ -1,6 +1,10 @@
 //! The Datasets service.
 
+use std::os::unix::fs::OpenOptionsExt as _;
+use std::path::PathBuf;
+
 use sha2::{Digest, Sha256};
+use std::io::Write as _;
 use tonic::{Request, Response, Status, Streaming};
 
 use super::{convert, error, page_size, token, Api};
@@ -13,13 +17,108 @@ use crate::worker::cpu;
 
 /// "ds_" + hex SHA-256 of the bytes.
 pub fn dataset_id(bytes: &[u8]) -> String {
-    let digest = Sha256::digest(bytes);
+    id_of(Sha256::digest(bytes).as_slice())
+}
+
+fn id_of(digest: &[u8]) -> String {
     let mut s = String::with_capacity(3 + 64);
     s.push_str("ds_");
     for b in digest {
         s.push_str(&format!("{b:02x}"));
     }
     s
+}
+
+/// The bytes of a dataset to store: a message's, or an upload's staged file.
+pub enum Bytes {
+    Memory(Vec<u8>),
+    Staged(Staged),
+}
+
+impl Bytes {
+    fn id(&self) -> String {
+        match self {
+            Bytes::Memory(b) => dataset_id(b),
+            Bytes::Staged(s) => id_of(s.hasher.clone().finalize().as_slice()),
+        }
+    }
+
+    fn len(&self) -> u64 {
+        match self {
+            Bytes::Memory(b) => b.len() as u64,
+            Bytes::Staged(s) => s.len,
+        }
+    }
+
+    /// A reader from the start (blocking; call on the CPU pool).
+    fn reader(&self) -> std::io::Result<Box<dyn std::io::Read + '_>> {
+        Ok(match self {
+            Bytes::Memory(b) => Box::new(&b[..]),
+            Bytes::Staged(s) => Box::new(std::io::BufReader::with_capacity(1 << 16, std::fs::File::open(&s.path)?)),
+        })
+    }
+}
+
+/// An upload arriving into a file of the store's staging directory (so it is never whole in
+/// memory), hashed as it arrives; the file is removed on drop.
+pub struct Staged {
+    path: PathBuf,
+    file: Option<std::fs::File>,
+    hasher: Sha256,
+    len: u64,
+}
+
+/// Runs blocking file work off the runtime's threads.
+async fn blocking<T: Send + 'static>(f: impl FnOnce() -> std::io::Result<T> + Send + 'static) -> std::io::Result<T> {
+    tokio::task::spawn_blocking(f).await.map_err(std::io::Error::other)?
+}
+
+impl Staged {
+    async fn create(dir: &std::path::Path) -> std::io::Result<Staged> {
+        let path = dir.join(format!("upload-{}.part", uuid::Uuid::now_v7().simple()));
+        let (dir, p) = (dir.to_path_buf(), path.clone());
+        let file = blocking(move || {
+            std::fs::create_dir_all(&dir)?;
+            std::fs::OpenOptions::new().write(true).create_new(true).mode(0o600).open(&p)
+        })
+        .await?;
+        Ok(Staged { path, file: Some(file), hasher: Sha256::new(), len: 0 })
+    }
+
+    async fn write(&mut self, data: Vec<u8>) -> std::io::Result<()> {
+        self.hasher.update(&data);
+        self.len += data.len() as u64;
+        let mut file = self.file.take().expect("written before finish");
+        self.file = Some(
+            blocking(move || {
+                file.write_all(&data)?;
+                Ok(file)
+            })
+            .await?,
+        );
+        Ok(())
+    }
+
+    async fn finish(&mut self) -> std::io::Result<()> {
+        if let Some(mut f) = self.file.take() {
+            blocking(move || f.flush()).await?;
+        }
+        Ok(())
+    }
+}
+
+impl Drop for Staged {
+    fn drop(&mut self) {
+        let _ = std::fs::remove_file(&self.path);
+    }
+}
+
+/// The next message of an upload, or UNAVAILABLE once the server is shutting down.
+async fn next_chunk(stream: &mut Streaming<pb::UploadChunk>, shutdown: &mut tokio::sync::watch::Receiver<bool>) -> Result<Option<pb::UploadChunk>, Status> {
+    tokio::select! {
+        m = stream.message() => m,
+        _ = shutdown.wait_for(|s| *s) => Err(error::shutting_down("upload again once it is back")),
+    }
 }
 
 fn summarize(frame: &Frame) -> Vec<ColumnMeta> {
@@ -40,7 +139,7 @@ fn summarize(frame: &Frame) -> Vec<ColumnMeta> {
 
 impl Api {
     /// Checks CSV bytes (row and column errors go back to the caller) and stores them once.
-    pub async fn store_dataset(&self, name: String, target: String, categorical: Vec<String>, bytes: Vec<u8>) -> Result<pb::DatasetInfo, Status> {
+    pub async fn store_dataset(&self, name: String, target: String, categorical: Vec<String>, bytes: Bytes) -> Result<pb::DatasetInfo, Status> {
         let shared = self.shared.clone();
         let cfg = shared.config.clone();
         let store = shared.store.clone();
@@ -50,15 +149,16 @@ impl Api {
             options.categorical = categorical.clone();
             options.max_rows = Some(cfg.max_rows);
             options.max_columns = Some(cfg.max_columns);
+            let reader = || bytes.reader().map_err(error::staging);
             let (frame, task) = if target.is_empty() {
-                (read_frame(&bytes[..], &options).map_err(|e| error::data(&e))?, String::new())
+                (read_frame(reader()?, &options).map_err(|e| error::data(&e))?, String::new())
             } else {
-                let d = read_dataset(&bytes[..], &options).map_err(|e| error::data(&e))?;
+                let d = read_dataset(reader()?, &options).map_err(|e| error::data(&e))?;
                 let task = d.task().as_str().to_string();
                 (d.frame, task)
             };
             let meta = DatasetMeta {
-                id: dataset_id(&bytes),
+                id: bytes.id(),
                 name,
                 version: 0,
                 rows: frame.rows as u64,
@@ -66,10 +166,12 @@ impl Api {
                 target,
                 task,
                 created_at: clock.now_ms(),
-                bytes: bytes.len() as u64,
+                bytes: bytes.len(),
                 categorical,
             };
-            match store.put_dataset(meta, &bytes).map_err(error::store)? {
+            // The frame is not needed to store the bytes.
+            drop(frame);
+            match store.put_dataset_from(meta, &mut reader()?).map_err(error::store)? {
                 PutDataset::Created(m) | PutDataset::Existing(m) => Ok(convert::dataset_info(&m)),
             }
         })
@@ -81,7 +183,8 @@ impl Api {
 impl pb::datasets_server::Datasets for Api {
     async fn upload(&self, request: Request<Streaming<pb::UploadChunk>>) -> Result<Response<pb::DatasetInfo>, Status> {
         let mut stream = request.into_inner();
-        let Some(first) = stream.message().await? else { return Err(Status::invalid_argument("the upload is empty; send the header first")) };
+        let mut shutdown = self.shared.shutdown.subscribe();
+        let Some(first) = next_chunk(&mut stream, &mut shutdown).await? else { return Err(Status::invalid_argument("the upload is empty; send the header first")) };
         let Some(pb::upload_chunk::Part::Header(header)) = first.part else {
             return Err(Status::invalid_argument("the first message of an upload must carry the header"));
         };
@@ -90,20 +193,21 @@ impl pb::datasets_server::Datasets for Api {
             _ => return Err(Status::invalid_argument(format!("header.format: {} is not a format pollard reads (CSV)", header.format))),
         }
         let max = self.shared.config.max_upload_bytes;
-        let mut bytes = Vec::new();
-        while let Some(chunk) = stream.message().await? {
+        let mut staged = Staged::create(self.shared.store.staging_dir()).await.map_err(error::staging)?;
+        while let Some(chunk) = next_chunk(&mut stream, &mut shutdown).await? {
             match chunk.part {
                 Some(pb::upload_chunk::Part::Data(b)) => {
-                    if (bytes.len() + b.len()) as u64 > max {
+                    if staged.len.saturating_add(b.len() as u64) > max {
                         return Err(Status::resource_exhausted(format!("the upload is larger than the limit of {max} bytes")));
                     }
-                    bytes.extend_from_slice(&b);
+                    staged.write(b).await.map_err(error::staging)?;
                 }
                 Some(pb::upload_chunk::Part::Header(_)) => return Err(Status::invalid_argument("an upload carries one header, in its first message")),
                 None => {}
             }
         }
-        Ok(Response::new(self.store_dataset(header.name, header.target, header.categorical, bytes).await?))
+        staged.finish().await.map_err(error::staging)?;
+        Ok(Response::new(self.store_dataset(header.name, header.target, header.categorical, Bytes::Staged(staged)).await?))
     }
 
     async fn put_table(&self, request: Request<pb::PutTableRequest>) -> Result<Response<pb::DatasetInfo>, Status> {
@@ -119,7 +223,7 @@ impl pb::datasets_server::Datasets for Api {
         if bytes.len() as u64 > self.shared.config.max_upload_bytes {
             return Err(Status::resource_exhausted(format!("the table is larger than the limit of {} bytes", self.shared.config.max_upload_bytes)));
         }
-        Ok(Response::new(self.store_dataset(r.name, r.target, categorical, bytes).await?))
+        Ok(Response::new(self.store_dataset(r.name, r.target, categorical, Bytes::Memory(bytes)).await?))
     }
 
     async fn get_dataset(&self, request: Request<pb::GetDatasetRequest>) -> Result<Response<pb::DatasetInfo>, Status> {

@@ -4,6 +4,7 @@
 pub mod convert;
 pub mod datasets;
 pub mod error;
+pub mod limits;
 pub mod models;
 pub mod runs;
 pub mod schedules;

@@ -145,7 +145,7 @@ impl pb::runs_server::Runs for Api {
                 tokio::select! {
                     _ = changed.changed() => {}
                     _ = shutdown.changed() => {
-                        let _ = tx.send(Err(Status::unavailable("the server is shutting down; follow again with after_sequence to resume"))).await;
+                        let _ = tx.send(Err(error::shutting_down("follow again with after_sequence to resume"))).await;
                         return;
                     }
                     _ = tx.closed() => return,

@@ -54,6 +54,9 @@ use crate::job::{DatasetMeta, Event, EventKind, Fire, Run, RunOutcome, RunState,
 use crate::sweep::UnitResult;
 use records::HoldsRecord;
 
+/// The directory inside the store directory where uploads are staged.
+pub const STAGING_DIR: &str = "uploads";
+
 /// Bytes per stored dataset chunk.
 pub const CHUNK_BYTES: usize = 1 << 20;
 
@@ -152,6 +155,8 @@ pub struct Store {
     db: sled::Db,
     /// Every tree, indexed by the constants below; transactions take them all.
     trees: Vec<sled::Tree>,
+    /// Where uploads are staged as files while they arrive (see [`Store::staging_dir`]).
+    staging: std::path::PathBuf,
 }
 
 const DATASETS: usize = 0;
@@ -346,6 +351,20 @@ impl Tx<'_> {
 }
 
 /// Runs `attempt` until it does not come back stale.
+/// Reads until `buf` is full or the input ends; how many bytes were read.
+fn read_full(r: &mut dyn std::io::Read, buf: &mut [u8]) -> std::io::Result<usize> {
+    let mut n = 0;
+    while n < buf.len() {
+        match r.read(&mut buf[n..]) {
+            Ok(0) => break,
+            Ok(k) => n += k,
+            Err(e) if e.kind() == std::io::ErrorKind::Interrupted => {}
+            Err(e) => return Err(e),
+        }
+    }
+    Ok(n)
+}
+
 fn retrying<A>(mut attempt: impl FnMut() -> Result<A, Abort>) -> Result<A, StoreError> {
     loop {
         match attempt() {
@@ -367,7 +386,12 @@ impl Store {
             // No background flusher: every change is flushed before it returns anyway, and the
             // flusher thread is what keeps a closed database's lock alive.
             match sled::Config::new().path(dir).flush_every_ms(None).open() {
-                Ok(db) => return Store::with(db),
+                Ok(db) => {
+                    // Staged uploads of an earlier process never finished: nothing names them.
+                    let staging = dir.join(STAGING_DIR);
+                    let _ = std::fs::remove_dir_all(&staging);
+                    return Store::with(db, staging);
+                }
                 // sled reports the taken lock as an I/O error whose text says so.
                 Err(sled::Error::Io(e)) if (e.kind() == std::io::ErrorKind::WouldBlock || e.to_string().contains("could not acquire lock")) && std::time::Instant::now() < deadline => {
                     std::thread::sleep(std::time::Duration::from_millis(20));
@@ -379,13 +403,14 @@ impl Store {
 
     /// A database that lives only as long as its last handle (for tests and the demo).
     pub fn open_temporary() -> Result<Store, StoreError> {
-        Store::with(sled::Config::new().temporary(true).open()?)
+        Store::with(sled::Config::new().temporary(true).open()?, std::env::temp_dir().join("pollard-uploads"))
     }
 
-    fn with(db: sled::Db) -> Result<Store, StoreError> {
+    fn with(db: sled::Db, staging: std::path::PathBuf) -> Result<Store, StoreError> {
         let trees = TREE_NAMES.iter().map(|n| db.open_tree(n)).collect::<Result<_, _>>()?;
-        let store = Store { db, trees };
+        let store = Store { db, trees, staging };
         store.count_refs_once()?;
+        store.discard_orphan_chunks()?;
         Ok(store)
     }
 
@@ -440,6 +465,13 @@ impl Store {
         })
     }
 
+    /// A directory for files of uploads still arriving (`uploads` in the store directory,
+    /// emptied at each open; the system temp dir for a temporary store). The files are not
+    /// part of the store: a dataset exists once [`Store::put_dataset_from`] returns.
+    pub fn staging_dir(&self) -> &Path {
+        &self.staging
+    }
+
     fn tree(&self, t: usize) -> &sled::Tree {
         &self.trees[t]
     }
@@ -452,11 +484,42 @@ impl Store {
     /// name gets version 1 and no name entry. The bytes are stored in chunks of
     /// [`CHUNK_BYTES`]; `meta.bytes` is kept as given.
     pub fn put_dataset(&self, meta: DatasetMeta, bytes: &[u8]) -> Result<PutDataset, StoreError> {
+        self.put_dataset_from(meta, &mut &bytes[..])
+    }
+
+    /// [`Store::put_dataset`] with the bytes read from `bytes`, one chunk in memory at a time:
+    /// the chunks are written first, each on its own, then the dataset record in one
+    /// transaction. Until the record exists the chunks belong to no dataset (a reader never
+    /// sees them); chunks left without a record by a crash are removed at the next open.
+    pub fn put_dataset_from(&self, meta: DatasetMeta, bytes: &mut dyn std::io::Read) -> Result<PutDataset, StoreError> {
+        if let Some(existing) = self.dataset(&meta.id)? {
+            return Ok(PutDataset::Existing(existing));
+        }
+        let mut buf = vec![0u8; CHUNK_BYTES];
+        let mut chunks = 0u32;
+        loop {
+            let n = read_full(bytes, &mut buf).map_err(|e| StoreError::Io(format!("reading the dataset bytes: {e}")))?;
+            if n == 0 {
+                break;
+            }
+            self.tree(CHUNKS).insert(keys::chunk(&meta.id, chunks), &buf[..n])?;
+            chunks += 1;
+            if n < CHUNK_BYTES {
+                break;
+            }
+        }
+        drop(buf);
         retrying(|| {
             let latest = if meta.name.is_empty() { 0 } else { self.latest_version(&meta.name).map_err(Abort::Store)? };
             self.transact(|tx| {
                 if let Some(v) = tx.get(DATASETS, &meta.id)? {
                     return Ok(PutDataset::Existing(read(records::decode_dataset(&v))?));
+                }
+                // A delete of an equal dataset stored meanwhile may have removed chunks just
+                // written: the first and last must be there.
+                let whole = chunks == 0 || (tx.get(CHUNKS, keys::chunk(&meta.id, 0))?.is_some() && tx.get(CHUNKS, keys::chunk(&meta.id, chunks - 1))?.is_some());
+                if !whole {
+                    return fail(StoreError::Io(format!("the chunks of dataset {} were removed while it was stored; upload it again", meta.id)));
                 }
                 let mut m = meta.clone();
                 m.version = latest + 1;
@@ -468,12 +531,30 @@ impl Store {
                     tx.insert(NAMES, key, m.id.as_bytes())?;
                 }
                 tx.insert(DATASETS, &m.id, records::encode_dataset(&m))?;
-                for (i, chunk) in bytes.chunks(CHUNK_BYTES).enumerate() {
-                    tx.insert(CHUNKS, keys::chunk(&m.id, i as u32), chunk)?;
-                }
                 Ok(PutDataset::Created(m))
             })
         })
+    }
+
+    /// Removes chunks that no dataset record names (left by a crash between the chunks and
+    /// the record of [`Store::put_dataset_from`]). Visits one key per stored dataset id.
+    fn discard_orphan_chunks(&self) -> Result<(), StoreError> {
+        let mut from: Vec<u8> = Vec::new();
+        while let Some(kv) = self.tree(CHUNKS).range(from.clone()..).next() {
+            let (key, _) = kv?;
+            let Some(id) = key.len().checked_sub(4).and_then(|n| std::str::from_utf8(&key[..n]).ok()).map(str::to_string) else { break };
+            if self.tree(DATASETS).get(&id)?.is_none() {
+                let mut i = 0u32;
+                while self.tree(CHUNKS).remove(keys::chunk(&id, i))?.is_some() {
+                    i += 1;
+                }
+                tracing::info!(dataset = %id, chunks = i, "removed the chunks of an upload that did not finish");
+            }
+            from = keys::chunk(&id, u32::MAX);
+            from.push(0);
+        }
+        self.db.flush()?;
+        Ok(())
     }
 
     /// The highest version under `name`, deleted ones included (0 when none).
