@@ -408,12 +408,15 @@ fn errors_exit_non_zero_with_one_line() {
     let iris = iris.to_str().unwrap();
 
     // Unknown run ids: NotFound, naming the id, for every command that takes one.
-    for args in [vec!["show", "run_nothing"], vec!["cancel", "run_nothing"], vec!["follow", "run_nothing"], vec!["model", "run_nothing", "--format", "json"], vec!["predict", "run_nothing", iris]] {
+    for args in [vec!["show", "run_00000000000000000000000000000000"], vec!["cancel", "run_00000000000000000000000000000000"], vec!["follow", "run_00000000000000000000000000000000"], vec!["model", "run_00000000000000000000000000000000", "--format", "json"], vec!["predict", "run_00000000000000000000000000000000", iris]] {
         let e = server.run(&args).fails();
-        assert!(e.contains("NotFound") && e.contains("run_nothing"), "{args:?}: {e}");
+        assert!(e.contains("NotFound") && e.contains("run_00000000000000000000000000000000"), "{args:?}: {e}");
     }
-    let e = server.run(&["show", "run_nothing", "--json"]).fails();
+    let e = server.run(&["show", "run_00000000000000000000000000000000", "--json"]).fails();
     assert!(e.contains("NotFound"), "{e}");
+    // An id that cannot be a run id: InvalidArgument, before any lookup.
+    let e = server.run(&["show", "run_nothing"]).fails();
+    assert!(e.contains("InvalidArgument") && e.contains("run_nothing") && e.contains("not a run id"), "{e}");
     let e = server.run(&["sweep", "--dataset", "no_such_name", "--max-depth", "2"]).fails();
     assert!(e.contains("NotFound") && e.contains("no_such_name"), "{e}");
 
@@ -443,7 +446,7 @@ fn errors_exit_non_zero_with_one_line() {
     assert!(e.contains("--state") && e.contains("sleeping"), "{e}");
     let e = server.run(&["sweep", "--dataset", "iris", "--label", "nokey"]).fails();
     assert!(e.contains("--label") && e.contains("nokey"), "{e}");
-    let e = server.run(&["model", "run_nothing", "--format", "xml"]).fails();
+    let e = server.run(&["model", "run_00000000000000000000000000000000", "--format", "xml"]).fails();
     assert!(e.contains("--format") && e.contains("xml"), "{e}");
 
     // An unreachable server: a clear message naming the address.
@@ -451,7 +454,7 @@ fn errors_exit_non_zero_with_one_line() {
     // be given at the same moment); checked closed first.
     assert!(TcpStream::connect_timeout(&"127.0.0.1:1".parse().unwrap(), Duration::from_secs(1)).is_err(), "something listens on 127.0.0.1:1");
     let closed = "http://127.0.0.1:1".to_string();
-    for args in [vec!["runs"], vec!["datasets", "--json"], vec!["show", "run_nothing"], vec!["put", iris, "--name", "iris"]] {
+    for args in [vec!["runs"], vec!["datasets", "--json"], vec!["show", "run_00000000000000000000000000000000"], vec!["put", iris, "--name", "iris"]] {
         let e = client(&closed, &args).fails();
         assert!(e.contains("cannot reach") && e.contains(&closed), "{args:?}: {e}");
     }
@@ -463,7 +466,7 @@ fn errors_exit_non_zero_with_one_line() {
     let missing = missing.to_str().unwrap();
     let e = server.run(&["put", missing, "--name", "x"]).fails();
     assert!(e.contains(missing), "{e}");
-    let e = server.run(&["predict", "run_nothing", missing]).fails();
+    let e = server.run(&["predict", "run_00000000000000000000000000000000", missing]).fails();
     assert!(e.contains(missing), "{e}");
     let e = pollard(&["local", missing, "--target", "target"]).fails();
     assert!(e.contains(missing), "{e}");
