@@ -585,7 +585,8 @@ fn long_spec() -> pb::SweepSpec {
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn queue_cancel_list_and_refuse() {
-    let config = Config { concurrent_runs: 1, max_settings: 500, ..test_config() };
+    // long_spec's 30 repeats are above the default cap of 20.
+    let config = Config { concurrent_runs: 1, max_settings: 500, max_repeats: 30, ..test_config() };
     let server = start(Store::open_temporary().unwrap(), config).await;
     let ch = server.channel().await;
     let mut datasets = DatasetsClient::new(ch.clone());
