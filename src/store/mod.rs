@@ -1043,7 +1043,8 @@ impl Store {
                             }
                             CreateRun::Existing(r) => fire.run_id = r.id,
                             CreateRun::DatasetMissing => fire.fail(format!("dataset {} was deleted before the run could be queued", run.dataset_id)),
-                            CreateRun::QueueFull => unreachable!("fires are checked against the queue cap before they are recorded"),
+                            // Not returned here: the scheduler checks the queue cap before it records a fire.
+                            CreateRun::QueueFull => fire.fail("the queue is full".into()),
                         }
                     }
                 }
