@@ -29,6 +29,25 @@ pub struct Config {
     pub max_columns: usize,
     /// Most settings in one sweep.
     pub max_settings: usize,
+    /// Most values one limit's range may give (counted before any is made).
+    pub max_values_per_range: usize,
+    /// Most folds in a fold plan (`k`, or the fold numbers of a `given` column).
+    pub max_folds: u32,
+    /// Most repeats of a fold plan.
+    pub max_repeats: u32,
+    /// Most work units (splits × shaping keys) in one run.
+    pub max_units_per_run: usize,
+    /// Memory budget of running runs, in bytes: a run whose estimate alone is above it is
+    /// refused; a queued run waits while the running runs and it would be above it.
+    pub run_memory_bytes: u64,
+    /// Most queued runs in total; StartRun beyond it is refused, a scheduled fire skipped.
+    pub max_queued_runs: usize,
+    /// Most labels on a run or schedule, and the longest key and value (bytes).
+    pub max_labels: usize,
+    pub max_label_key_bytes: usize,
+    pub max_label_value_bytes: usize,
+    /// Most bytes of runs in one ListRuns page (the page ends early with a page token).
+    pub list_page_bytes: usize,
     /// How late a schedule's fire may be handled and still count as on time (seconds); older
     /// fires count as missed (caught up once, or skipped, by the schedule's rule).
     pub fire_grace_secs: u64,
@@ -49,6 +68,40 @@ pub struct Config {
     pub log_format: LogFormat,
     /// A tracing filter such as `info` or `pollard=debug`.
     pub log_filter: String,
+    /// Failures on purpose, for tests only (see [`TestHooks`]).
+    pub test_hooks: TestHooks,
+}
+
+/// Failures a test can ask of the server on purpose, read only from `POLLARD_TEST_*`
+/// environment variables (never from the config file, never documented for users):
+/// - `POLLARD_TEST_PANIC_UNIT=N` (or `*`): handling finished work unit N panics;
+/// - `POLLARD_TEST_ABORT_UNIT=N` (or `*`): the process aborts there;
+/// - `POLLARD_TEST_UNIT_DELAY_MS=M`: each finished unit is held M ms before it is stored.
+#[derive(Clone, Copy, Debug, Default, PartialEq, Eq)]
+pub struct TestHooks {
+    pub panic_unit: Option<UnitHook>,
+    pub abort_unit: Option<UnitHook>,
+    pub unit_delay_ms: u64,
+}
+
+/// Which work units a test hook hits.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum UnitHook {
+    Every,
+    Unit(usize),
+}
+
+impl UnitHook {
+    fn parse(key: &str, v: &str) -> Result<UnitHook, String> {
+        if v == "*" {
+            return Ok(UnitHook::Every);
+        }
+        v.parse().map(UnitHook::Unit).map_err(|_| format!("{key}: '{v}' is not a unit index or *"))
+    }
+
+    pub fn matches(self, unit: usize) -> bool {
+        self == UnitHook::Every || self == UnitHook::Unit(unit)
+    }
 }
 
 impl Default for Config {
@@ -62,6 +115,16 @@ impl Default for Config {
             max_rows: 5_000_000,
             max_columns: 2_000,
             max_settings: 100_000,
+            max_values_per_range: 1_000,
+            max_folds: 100,
+            max_repeats: 20,
+            max_units_per_run: 10_000,
+            run_memory_bytes: 2 << 30,
+            max_queued_runs: 1_000,
+            max_labels: 32,
+            max_label_key_bytes: 64,
+            max_label_value_bytes: 256,
+            list_page_bytes: 1 << 20,
             fire_grace_secs: 300,
             messages: MessageLimits::default(),
             max_concurrent_uploads: 4,
@@ -71,6 +134,7 @@ impl Default for Config {
             drain_secs: 5,
             log_format: LogFormat::Plain,
             log_filter: "info".into(),
+            test_hooks: TestHooks::default(),
         }
     }
 }
@@ -133,6 +197,16 @@ struct FileConfig {
     max_rows: Option<usize>,
     max_columns: Option<usize>,
     max_settings: Option<usize>,
+    max_values_per_range: Option<usize>,
+    max_folds: Option<u64>,
+    max_repeats: Option<u64>,
+    max_units_per_run: Option<usize>,
+    run_memory_bytes: Option<u64>,
+    max_queued_runs: Option<usize>,
+    max_labels: Option<usize>,
+    max_label_key_bytes: Option<usize>,
+    max_label_value_bytes: Option<usize>,
+    list_page_bytes: Option<usize>,
     fire_grace_secs: Option<u64>,
     datasets_max_request_bytes: Option<usize>,
     datasets_max_reply_bytes: Option<usize>,
@@ -187,7 +261,7 @@ impl Config {
             };
             ($target:expr, $field:ident, $key:literal, $env:literal, $ty:ty) => {
                 if let Some((from, v)) = set($key, file.$field.map(|x| x.to_string()), $env, None) {
-                    $target = number(&from, &v)? as $ty;
+                    $target = <$ty>::try_from(number(&from, &v)?).map_err(|_| format!("{from}: '{v}' is too large"))?;
                 }
             };
         }
@@ -197,6 +271,16 @@ impl Config {
         num!(max_rows, "max_rows", "POLLARD_MAX_ROWS", usize);
         num!(max_columns, "max_columns", "POLLARD_MAX_COLUMNS", usize);
         num!(max_settings, "max_settings", "POLLARD_MAX_SETTINGS", usize);
+        num!(max_values_per_range, "max_values_per_range", "POLLARD_MAX_VALUES_PER_RANGE", usize);
+        num!(max_folds, "max_folds", "POLLARD_MAX_FOLDS", u32);
+        num!(max_repeats, "max_repeats", "POLLARD_MAX_REPEATS", u32);
+        num!(max_units_per_run, "max_units_per_run", "POLLARD_MAX_UNITS_PER_RUN", usize);
+        num!(run_memory_bytes, "run_memory_bytes", "POLLARD_RUN_MEMORY_BYTES", u64);
+        num!(max_queued_runs, "max_queued_runs", "POLLARD_MAX_QUEUED_RUNS", usize);
+        num!(max_labels, "max_labels", "POLLARD_MAX_LABELS", usize);
+        num!(max_label_key_bytes, "max_label_key_bytes", "POLLARD_MAX_LABEL_KEY_BYTES", usize);
+        num!(max_label_value_bytes, "max_label_value_bytes", "POLLARD_MAX_LABEL_VALUE_BYTES", usize);
+        num!(list_page_bytes, "list_page_bytes", "POLLARD_LIST_PAGE_BYTES", usize);
         num!(fire_grace_secs, "fire_grace_secs", "POLLARD_FIRE_GRACE_SECS", u64);
         num!(c.messages.datasets.request, datasets_max_request_bytes, "datasets_max_request_bytes", "POLLARD_DATASETS_MAX_REQUEST_BYTES", usize);
         num!(c.messages.datasets.reply, datasets_max_reply_bytes, "datasets_max_reply_bytes", "POLLARD_DATASETS_MAX_REPLY_BYTES", usize);
@@ -221,11 +305,39 @@ impl Config {
         if let Some((_, v)) = set("log_filter", file.log_filter, "POLLARD_LOG", None) {
             c.log_filter = v;
         }
+        for (key, hook) in [("POLLARD_TEST_PANIC_UNIT", &mut c.test_hooks.panic_unit), ("POLLARD_TEST_ABORT_UNIT", &mut c.test_hooks.abort_unit)] {
+            if let Some(v) = env(key) {
+                *hook = Some(UnitHook::parse(key, &v)?);
+            }
+        }
+        if let Some(v) = env("POLLARD_TEST_UNIT_DELAY_MS") {
+            c.test_hooks.unit_delay_ms = number("POLLARD_TEST_UNIT_DELAY_MS", &v)?;
+        }
         if c.concurrent_runs == 0 {
             return Err("concurrent_runs must be at least 1".into());
         }
-        if c.max_settings == 0 || c.max_rows == 0 || c.max_columns == 0 || c.max_upload_bytes == 0 {
-            return Err("the caps (max_upload_bytes, max_rows, max_columns, max_settings) must be at least 1".into());
+        let caps: [(&str, u64); 14] = [
+            ("max_upload_bytes", c.max_upload_bytes),
+            ("max_rows", c.max_rows as u64),
+            ("max_columns", c.max_columns as u64),
+            ("max_settings", c.max_settings as u64),
+            ("max_values_per_range", c.max_values_per_range as u64),
+            ("max_folds", c.max_folds as u64),
+            ("max_repeats", c.max_repeats as u64),
+            ("max_units_per_run", c.max_units_per_run as u64),
+            ("run_memory_bytes", c.run_memory_bytes),
+            ("max_queued_runs", c.max_queued_runs as u64),
+            ("max_labels", c.max_labels as u64),
+            ("max_label_key_bytes", c.max_label_key_bytes as u64),
+            ("max_label_value_bytes", c.max_label_value_bytes as u64),
+            ("list_page_bytes", c.list_page_bytes as u64),
+        ];
+        if let Some((name, _)) = caps.iter().find(|(_, v)| *v == 0) {
+            return Err(format!("{name} must be at least 1"));
+        }
+        // max_folds below 2 would refuse every plan.
+        if c.max_folds < 2 {
+            return Err("max_folds must be at least 2".into());
         }
         if c.max_concurrent_uploads == 0 || c.max_upload_bytes_in_flight == 0 || c.upload_idle_secs == 0 {
             return Err("max_concurrent_uploads, max_upload_bytes_in_flight and upload_idle_secs must be at least 1".into());
@@ -238,6 +350,17 @@ impl Config {
             }
         }
         Ok(c)
+    }
+
+    /// The caps a sweep spec is checked within.
+    pub fn spec_caps(&self) -> crate::sweep::SpecCaps {
+        crate::sweep::SpecCaps {
+            max_settings: self.max_settings,
+            max_values_per_range: self.max_values_per_range,
+            max_folds: self.max_folds,
+            max_repeats: self.max_repeats,
+            max_units: self.max_units_per_run,
+        }
     }
 }
 
@@ -263,6 +386,13 @@ mod tests {
         assert!(Config::load(&flags, &|_| None).unwrap_err().contains("unknown field"));
         let bad = |k: &str| (k == "POLLARD_LOG_FORMAT").then(|| "xml".to_string());
         assert!(Config::load(&Flags::default(), &bad).unwrap_err().contains("POLLARD_LOG_FORMAT"));
+        let zero = |k: &str| (k == "POLLARD_MAX_QUEUED_RUNS").then(|| "0".to_string());
+        assert!(Config::load(&Flags::default(), &zero).unwrap_err().contains("max_queued_runs"));
+        let wide = |k: &str| (k == "POLLARD_MAX_FOLDS").then(|| "5000000000".to_string());
+        assert!(Config::load(&Flags::default(), &wide).unwrap_err().contains("too large"));
+        std::fs::write(&path, "max_repeats = 7\nrun_memory_bytes = 1000\n").unwrap();
+        let c = Config::load(&flags, &|_| None).unwrap();
+        assert_eq!((c.max_repeats, c.run_memory_bytes), (7, 1000));
         std::fs::remove_dir_all(&dir).ok();
     }
 }

@@ -43,6 +43,45 @@ impl RunState {
     }
 }
 
+/// The kinds of ids the server makes, each a prefix and lowercase hex digits: runs and
+/// schedules `run_` / `sch_` + a version 7 UUID (32 digits), datasets `ds_` + a SHA-256 (64).
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum IdKind {
+    Run,
+    Dataset,
+    Schedule,
+}
+
+impl IdKind {
+    fn parts(self) -> (&'static str, usize) {
+        match self {
+            IdKind::Run => ("run_", 32),
+            IdKind::Dataset => ("ds_", 64),
+            IdKind::Schedule => ("sch_", 32),
+        }
+    }
+
+    pub fn noun(self) -> &'static str {
+        match self {
+            IdKind::Run => "run",
+            IdKind::Dataset => "dataset",
+            IdKind::Schedule => "schedule",
+        }
+    }
+
+    /// The shape in words, for messages.
+    pub fn shape(self) -> String {
+        let (prefix, digits) = self.parts();
+        format!("'{prefix}' and {digits} lowercase hex digits")
+    }
+
+    /// Whether `id` has this kind's shape (it may still name nothing).
+    pub fn is_well_formed(self, id: &str) -> bool {
+        let (prefix, digits) = self.parts();
+        id.strip_prefix(prefix).is_some_and(|hex| hex.len() == digits && hex.bytes().all(|b| b.is_ascii_digit() || (b'a'..=b'f').contains(&b)))
+    }
+}
+
 /// An uploaded table as stored: its bytes live apart, chunked.
 #[derive(Clone, Debug, PartialEq)]
 pub struct DatasetMeta {
@@ -100,6 +139,27 @@ pub struct Run {
     pub next_sequence: u64,
     /// A finished scheduled run's comparison with the previous finished run of its schedule.
     pub drift: Option<DriftReport>,
+    /// Bytes the run was estimated to need when it was queued (0: not estimated).
+    pub memory_estimate: u64,
+    /// `units_done` when the current execution started; `None` when the run has not started
+    /// or its last execution stopped cleanly (shutdown).
+    pub units_at_start: Option<u32>,
+    /// Executions in a row that ended with the process, not the run, stopping and with no
+    /// unit stored meanwhile (see [`Run::resume`]).
+    pub crash_strikes: u32,
+}
+
+/// How many executions in a row may end with the process dying and no unit stored before a
+/// run is failed instead of resumed again.
+pub const MAX_CRASH_STRIKES: u32 = 3;
+
+/// What resuming a run left running by an earlier process does.
+#[derive(Clone, Debug, PartialEq, Eq)]
+pub enum Resume {
+    /// Execute it again.
+    Again,
+    /// Fail it with this reason: it keeps taking the process down.
+    GiveUp(String),
 }
 
 impl Run {
@@ -126,6 +186,29 @@ impl Run {
             units_done: 0,
             next_sequence: 1,
             drift: None,
+            memory_estimate: 0,
+            units_at_start: None,
+            crash_strikes: 0,
+        }
+    }
+
+    /// A run found running at start-up is about to be executed again. An execution that
+    /// stopped cleanly (shutdown) leaves `units_at_start` empty; one that the process's
+    /// death ended leaves it set, and counts a strike when no unit was stored since it began.
+    /// After [`MAX_CRASH_STRIKES`] strikes in a row the run gives up.
+    pub fn resume(&mut self) -> Resume {
+        match self.units_at_start {
+            Some(u) if u >= self.units_done => self.crash_strikes += 1,
+            _ => self.crash_strikes = 0,
+        }
+        self.units_at_start = Some(self.units_done);
+        if self.crash_strikes >= MAX_CRASH_STRIKES {
+            Resume::GiveUp(format!(
+                "the server stopped unexpectedly {} times in a row while running this run, with no work unit finished in between; it is not resumed again",
+                self.crash_strikes
+            ))
+        } else {
+            Resume::Again
         }
     }
 
@@ -134,6 +217,7 @@ impl Run {
         debug_assert_eq!(self.state, RunState::Queued);
         self.state = RunState::Running;
         self.started_at = Some(now);
+        self.units_at_start = Some(self.units_done);
         self.settings = settings;
         self.units_total = units_total;
     }
@@ -279,10 +363,12 @@ pub enum FireOutcome {
     SkippedMissed,
     /// The run could not be queued (the dataset is gone, or the spec no longer fits it).
     Failed,
+    /// The queue held `max_queued_runs` runs.
+    SkippedQueueFull,
 }
 
 impl FireOutcome {
-    pub const ALL: [FireOutcome; 5] = [FireOutcome::Started, FireOutcome::SkippedBusy, FireOutcome::SkippedUnchanged, FireOutcome::SkippedMissed, FireOutcome::Failed];
+    pub const ALL: [FireOutcome; 6] = [FireOutcome::Started, FireOutcome::SkippedBusy, FireOutcome::SkippedUnchanged, FireOutcome::SkippedMissed, FireOutcome::Failed, FireOutcome::SkippedQueueFull];
 
     pub fn as_str(self) -> &'static str {
         match self {
@@ -291,6 +377,7 @@ impl FireOutcome {
             FireOutcome::SkippedUnchanged => "skipped_unchanged",
             FireOutcome::SkippedMissed => "skipped_missed",
             FireOutcome::Failed => "failed",
+            FireOutcome::SkippedQueueFull => "skipped_queue_full",
         }
     }
 
@@ -321,6 +408,12 @@ impl Fire {
         self.outcome = FireOutcome::SkippedBusy;
         self.detail = format!("the previous run {} is still {}", busy.id, busy.state.as_str());
         self.run_id = busy.id;
+    }
+
+    /// Turns the fire into a skip: the queue is full.
+    pub fn skip_queue_full(&mut self, queued: usize, cap: usize) {
+        self.outcome = FireOutcome::SkippedQueueFull;
+        self.detail = format!("{queued} runs are queued, the cap max_queued_runs = {cap}; this fire starts no run");
     }
 
     /// Turns the fire into a failure: no run could be queued.
@@ -361,5 +454,39 @@ mod tests {
         assert_eq!(ids(Retention { keep_last: Some(1), keep_days: Some(3) }, 6 * DAY + DAY / 2), vec!["r3", "r1"]);
         // The running run is never deleted, even when both rules would let it go.
         assert_eq!(ids(Retention { keep_last: Some(1), keep_days: Some(1) }, 100 * DAY), vec!["r4", "r3", "r1"]);
+    }
+
+    #[test]
+    fn a_run_that_keeps_taking_the_process_down_gives_up() {
+        let mut r = run("run_a", RunState::Queued, 0);
+        r.start(1, 0, 0);
+        // Died with no unit stored, three times in a row: the third resume gives up.
+        assert_eq!(r.resume(), Resume::Again);
+        assert_eq!(r.resume(), Resume::Again);
+        assert!(matches!(r.resume(), Resume::GiveUp(m) if m.contains("3 times")));
+        // A unit stored between deaths clears the strikes.
+        let mut r = run("run_b", RunState::Queued, 0);
+        r.start(1, 0, 0);
+        for _ in 0..10 {
+            r.units_done += 1;
+            assert_eq!(r.resume(), Resume::Again);
+        }
+        // A clean stop (shutdown) is no strike.
+        for _ in 0..10 {
+            r.units_at_start = None;
+            assert_eq!(r.resume(), Resume::Again);
+        }
+        assert_eq!(r.crash_strikes, 0);
+    }
+
+    #[test]
+    fn id_shapes() {
+        let run_id = format!("run_{}", "0123456789abcdef".repeat(2));
+        assert!(IdKind::Run.is_well_formed(&run_id));
+        assert!(IdKind::Dataset.is_well_formed(&format!("ds_{}", "ab".repeat(32))));
+        assert!(IdKind::Schedule.is_well_formed(&format!("sch_{}", "0".repeat(32))));
+        for bad in ["", "run_", "run_nothing", &run_id.to_uppercase(), &format!("{run_id}0"), &"x".repeat(10_000), &run_id.replace("run_", "sch_")] {
+            assert!(!IdKind::Run.is_well_formed(bad), "{bad}");
+        }
     }
 }

@@ -105,7 +105,19 @@ async fn handle(shared: &Arc<Shared>, s: &Schedule, due: &Due, now: i64) -> Resu
             run_for(shared, s, at, &mut fire).await?
         }
     };
-    match store.record_fire(&s.id, s.considered_until, due.considered_until, &fire, run.as_ref())? {
+    // Counted and recorded under the admission lock, so the queue cap holds exactly.
+    let recorded = {
+        let _admit = shared.admit.lock().unwrap();
+        let (queued, cap) = (store.queued_count(), shared.config.max_queued_runs);
+        let run = if run.is_some() && queued >= cap {
+            fire.skip_queue_full(queued, cap);
+            None
+        } else {
+            run
+        };
+        store.record_fire(&s.id, s.considered_until, due.considered_until, &fire, run.as_ref())?
+    };
+    match recorded {
         None => warn!(schedule_id = %s.id, "the schedule changed while its fire was handled; it is looked at again"),
         Some((_, fire, created)) => {
             if let Some(r) = created {

@@ -33,7 +33,7 @@ pub async fn run_with_clock(listener: TcpListener, config: Config, store: Store,
     let shared = Shared::with_clock(store, config, clock)?;
     let addr = listener.local_addr().map_err(|e| e.to_string())?;
     let mut workers = Vec::new();
-    worker::resume_running(shared.clone()).await;
+    worker::queue_resumes(&shared);
     for _ in 0..shared.config.concurrent_runs {
         workers.push(tokio::spawn(worker::worker_loop(shared.clone())));
     }
@@ -106,7 +106,7 @@ async fn drain(shared: &Arc<Shared>, workers: Vec<tokio::task::JoinHandle<()>>) 
     for w in workers {
         let _ = w.await;
     }
-    // Runs resumed at start-up run in their own tasks; wait until none is executing.
+    // Every run executes in a worker task, awaited above; this only makes sure of it.
     while !shared.cancels.lock().unwrap().is_empty() {
         tokio::time::sleep(std::time::Duration::from_millis(20)).await;
     }

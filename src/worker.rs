@@ -8,7 +8,8 @@
 //! job injected from outside, so a call sharing the sweep pool would wait for the whole
 //! sweep. A std `Mutex` guards the cancel flags, since no `.await` is held while it is locked.
 
-use std::collections::HashMap;
+use std::collections::{HashMap, VecDeque};
+use std::panic::AssertUnwindSafe;
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::{Arc, Mutex};
 use std::time::Duration;
@@ -22,8 +23,8 @@ use crate::drift::{self, DriftThresholds, RunSide};
 use crate::data::csv::{read_dataset, CsvOptions};
 use crate::data::{Dataset, Task};
 use crate::job::{DatasetMeta, EventKind, Run, RunOutcome, RunState};
-use crate::store::{RunFilter, Store};
-use crate::sweep::{self, Flow, SweepError, SweepSpec};
+use crate::store::{Claim, Resumed, RunFilter, Store};
+use crate::sweep::{self, Flow, SweepError};
 
 /// What every handler and worker shares.
 pub struct Shared {
@@ -48,6 +49,13 @@ pub struct Shared {
     pub clock: Arc<dyn Clock>,
     /// Signalled when a schedule is created, resumed or deleted, so the scheduler looks again.
     pub schedules_changed: Notify,
+    /// Runs left running by an earlier process, oldest first: workers take them before the
+    /// queue, so resumed runs hold worker slots like any other.
+    pub resumable: Mutex<VecDeque<String>>,
+    /// Bytes estimated for the runs being executed (see [`crate::sweep::memory`]).
+    pub memory_in_use: Mutex<u64>,
+    /// Held while the queue is counted and a run is added, so the queue cap holds exactly.
+    pub admit: Mutex<()>,
 }
 
 impl Shared {
@@ -74,6 +82,9 @@ impl Shared {
             shutdown: watch::channel(false).0,
             clock,
             schedules_changed: Notify::new(),
+            resumable: Mutex::new(VecDeque::new()),
+            memory_in_use: Mutex::new(0),
+            admit: Mutex::new(()),
         }))
     }
 
@@ -99,17 +110,24 @@ impl Shared {
     }
 }
 
-/// Runs `f` on the CPU pool for calls and awaits its result.
-pub async fn cpu<T: Send + 'static>(shared: &Arc<Shared>, f: impl FnOnce() -> T + Send + 'static) -> T {
-    on_pool(&shared.calls, f).await
+/// Runs `f` on the CPU pool for calls and awaits its result; a panic in `f` fails this call
+/// (INTERNAL), not the process.
+pub async fn cpu<T: Send + 'static>(shared: &Arc<Shared>, f: impl FnOnce() -> T + Send + 'static) -> Result<T, tonic::Status> {
+    on_pool(&shared.calls, f).await.map_err(|panic| crate::rpc::error::panicked(&panic))
 }
 
-async fn on_pool<T: Send + 'static>(pool: &rayon::ThreadPool, f: impl FnOnce() -> T + Send + 'static) -> T {
+/// Runs `f` on `pool`, catching a panic (whose message comes back as the error): a panic
+/// in a rayon job would otherwise abort the process.
+async fn on_pool<T: Send + 'static>(pool: &rayon::ThreadPool, f: impl FnOnce() -> T + Send + 'static) -> Result<T, String> {
     let (tx, rx) = tokio::sync::oneshot::channel();
     pool.spawn(move || {
-        let _ = tx.send(f());
+        let _ = tx.send(std::panic::catch_unwind(AssertUnwindSafe(f)).map_err(|p| panic_message(&*p)));
     });
-    rx.await.expect("the CPU pool dropped a job")
+    rx.await.unwrap_or_else(|_| Err("the CPU pool dropped a job".into()))
+}
+
+fn panic_message(p: &(dyn std::any::Any + Send)) -> String {
+    p.downcast_ref::<&str>().map(|s| s.to_string()).or_else(|| p.downcast_ref::<String>().cloned()).unwrap_or_else(|| "a panic without a message".into())
 }
 
 /// Parses a stored dataset for a run: its bytes, with the run's target and task.
@@ -123,24 +141,61 @@ pub fn load_dataset(store: &Store, meta: &DatasetMeta, target: &str, task: Optio
     read_dataset(&bytes[..], &options).map_err(|e| e.to_string())
 }
 
-/// A worker: waits for queued runs and executes them one at a time, until shutdown.
+/// A worker: executes runs one at a time until shutdown: first the runs an earlier process
+/// left running, then queued runs, oldest first, as the memory budget admits them.
 pub async fn worker_loop(shared: Arc<Shared>) {
     let mut shutdown = shared.shutdown.subscribe();
     loop {
         if *shutdown.borrow() {
             return;
         }
-        let claimed = shared.store.claim_next(shared.now());
+        let resumable = shared.resumable.lock().unwrap().pop_front();
+        if let Some(id) = resumable {
+            match shared.store.resume(&id, shared.now()) {
+                Ok(Resumed::Again(run)) => {
+                    info!(run_id = %run.id, units_done = run.units_done, "resuming run");
+                    *shared.memory_in_use.lock().unwrap() += run.memory_estimate;
+                    execute(&shared, run).await;
+                }
+                Ok(Resumed::GaveUp(reason)) => {
+                    warn!(run_id = %id, "run failed instead of resumed: {reason}");
+                    shared.announce();
+                }
+                Ok(Resumed::NotRunning) => {}
+                Err(e) => error!(run_id = %id, "cannot resume the run: {e}"),
+            }
+            continue;
+        }
+        let budget = shared.config.run_memory_bytes;
+        let claimed = {
+            let mut used = shared.memory_in_use.lock().unwrap();
+            let claim = shared.store.claim_next_within(shared.now(), |run| used.saturating_add(run.memory_estimate) <= budget);
+            if let Ok(Claim::Claimed(run)) = &claim {
+                *used += run.memory_estimate;
+            }
+            claim
+        };
         match claimed {
-            Ok(Some(run)) => {
+            Ok(Claim::Claimed(run)) => {
                 shared.announce();
                 execute(&shared, run).await;
                 continue;
             }
-            Ok(None) => {}
+            Ok(Claim::Waiting(run)) if run.memory_estimate > budget => {
+                // Queued under a larger budget: it can never run under this one.
+                let reason = format!("the run needs about {} bytes, more than the cap run_memory_bytes = {budget}", run.memory_estimate);
+                warn!(run_id = %run.id, "{reason}");
+                if let Err(e) = shared.store.end_run(&run.id, RunState::Failed, &reason, shared.now()) {
+                    error!(run_id = %run.id, "cannot fail the run: {e}");
+                }
+                shared.announce();
+                continue;
+            }
+            Ok(Claim::Waiting(run)) => info!(run_id = %run.id, needs = run.memory_estimate, "queued run waits for memory"),
+            Ok(Claim::Empty) => {}
             Err(e) => error!("cannot read the queue: {e}"),
         }
-        // Wake on a new run, on shutdown, or every few seconds as a safety net.
+        // Wake on a new run or freed memory, on shutdown, or every few seconds as a safety net.
         tokio::select! {
             _ = shared.queued.notified() => {}
             _ = shutdown.changed() => {}
@@ -149,16 +204,10 @@ pub async fn worker_loop(shared: Arc<Shared>) {
     }
 }
 
-/// Resumes runs a previous process left running, one task each.
-pub async fn resume_running(shared: Arc<Shared>) {
+/// Lines up the runs a previous process left running, for the workers to take first.
+pub fn queue_resumes(shared: &Shared) {
     match shared.store.running_runs() {
-        Ok(runs) => {
-            for run in runs {
-                info!(run_id = %run.id, units_done = run.units_done, "resuming run");
-                let s = shared.clone();
-                tokio::spawn(async move { execute(&s, run).await });
-            }
-        }
+        Ok(runs) => shared.resumable.lock().unwrap().extend(runs.into_iter().map(|r| r.id)),
         Err(e) => error!("cannot list running runs: {e}"),
     }
 }
@@ -173,12 +222,20 @@ pub async fn execute(shared: &Arc<Shared>, run: Run) {
     let s = shared.clone();
     let id = run.id.clone();
     let schedule_id = run.schedule_id.clone();
+    let memory = run.memory_estimate;
     let end = on_pool(&shared.pool, move || {
         let span = info_span!("run", run_id = %run.id);
         span.in_scope(|| execute_blocking(&s, &run, &flag))
     })
-    .await;
+    .await
+    .unwrap_or_else(|panic| Ending::Failed(format!("the run stopped on an internal error: {panic}")));
     shared.cancels.lock().unwrap().remove(&id);
+    {
+        let mut used = shared.memory_in_use.lock().unwrap();
+        *used = used.saturating_sub(memory);
+    }
+    // A queued run may have waited for this memory.
+    shared.queued.notify_one();
     let now = shared.now();
     let ended = match end {
         Ending::Finished(outcome) => {
@@ -192,7 +249,7 @@ pub async fn execute(shared: &Arc<Shared>, run: Run) {
         Ending::Cancelled => shared.store.end_run(&id, RunState::Cancelled, "cancelled by request", now).map(|_| ()),
         Ending::Checkpointed => {
             info!(run_id = %id, "stopped for shutdown; finished units are kept");
-            Ok(())
+            shared.store.stopped_cleanly(&id)
         }
     };
     if let Err(e) = ended {
@@ -220,8 +277,8 @@ fn execute_blocking(shared: &Shared, run: &Run, cancel: &AtomicBool) -> Ending {
         Ok(d) => d,
         Err(e) => return Ending::Failed(e),
     };
-    let spec = SweepSpec { max_settings: Some(cfg.max_settings), ..run.spec.clone() };
-    let plan = match sweep::plan(&data, &spec) {
+    let spec = run.spec.clone();
+    let plan = match sweep::plan_with(&data, &spec, &cfg.spec_caps()) {
         Ok(p) => p,
         Err(e) => return Ending::Failed(e.to_string()),
     };
@@ -236,7 +293,18 @@ fn execute_blocking(shared: &Shared, run: &Run, cancel: &AtomicBool) -> Ending {
     // Units so far, to score a shaping key's settings once all its splits are in.
     let so_far: Mutex<Vec<sweep::UnitResult>> = Mutex::new(done.clone());
     let store_failed: Mutex<Option<String>> = Mutex::new(None);
+    let hooks = &cfg.test_hooks;
     let sink = |unit: &sweep::UnitResult, progress: sweep::Progress| {
+        if hooks.unit_delay_ms > 0 {
+            std::thread::sleep(Duration::from_millis(hooks.unit_delay_ms));
+        }
+        if hooks.abort_unit.is_some_and(|h| h.matches(unit.unit)) {
+            error!(unit = unit.unit, "POLLARD_TEST_ABORT_UNIT: aborting the process on purpose");
+            std::process::abort();
+        }
+        if hooks.panic_unit.is_some_and(|h| h.matches(unit.unit)) {
+            panic!("POLLARD_TEST_PANIC_UNIT: work unit {} panics on purpose", unit.unit);
+        }
         let key = plan.units[unit.unit].1;
         let scored = {
             let mut all = so_far.lock().unwrap();

@@ -333,7 +333,7 @@ async fn datasets_upload_version_list_delete_and_refuse() {
     assert_eq!(left.datasets.iter().map(|d| d.version).collect::<BTreeSet<_>>(), BTreeSet::from([1, 3]));
     let v4 = upload(&mut datasets, "flowers", "target", join(&all_lines[..all_lines.len() - 2])).await.unwrap();
     assert_eq!(v4.version, 4, "a deleted version's number is not reused");
-    expect_status("unknown dataset", datasets.get_dataset(pb::GetDatasetRequest { id: "ds_unknown".into() }).await, Code::NotFound, &["ds_unknown"]);
+    expect_status("unknown dataset", datasets.get_dataset(pb::GetDatasetRequest { id: "ds_1111111111111111111111111111111111111111111111111111111111111111".into() }).await, Code::NotFound, &["ds_1111111111111111111111111111111111111111111111111111111111111111"]);
 
     // Bad uploads: each refused with the place of the fault, none leaves a dataset behind.
     let before = all_datasets(&mut datasets).await;
@@ -586,7 +586,8 @@ fn long_spec() -> pb::SweepSpec {
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn queue_cancel_list_and_refuse() {
-    let config = Config { concurrent_runs: 1, max_settings: 500, ..test_config() };
+    // long_spec's 30 repeats are above the default cap of 20.
+    let config = Config { concurrent_runs: 1, max_settings: 500, max_repeats: 30, ..test_config() };
     let server = start(Store::open_temporary().unwrap(), config).await;
     let ch = server.channel().await;
     let mut datasets = DatasetsClient::new(ch.clone());
@@ -725,15 +726,15 @@ async fn queue_cancel_list_and_refuse() {
     expect_status("metric of another task", start(pb::SweepSpec { metric: "rmse".into(), ..small.clone() }).await, Code::InvalidArgument, &["spec.metric", "rmse"]);
     expect_status(
         "unknown dataset id",
-        runs.start_run(pb::StartRunRequest { dataset_id: "ds_nothing".into(), spec: Some(small.clone()), ..Default::default() }).await,
+        runs.start_run(pb::StartRunRequest { dataset_id: "ds_0000000000000000000000000000000000000000000000000000000000000000".into(), spec: Some(small.clone()), ..Default::default() }).await,
         Code::NotFound,
-        &["ds_nothing"],
+        &["ds_0000000000000000000000000000000000000000000000000000000000000000"],
     );
     expect_status("deleted dataset", runs.start_run(pb::StartRunRequest { dataset_name: "wine".into(), spec: Some(small.clone()), ..Default::default() }).await, Code::NotFound, &["'wine'"]);
-    expect_status("unknown run", runs.get_run(pb::GetRunRequest { id: "run_nothing".into() }).await, Code::NotFound, &["run_nothing"]);
-    expect_status("follow unknown run", runs.follow_run(pb::FollowRunRequest { id: "run_nothing".into(), after_sequence: 0 }).await.map(|_| ()), Code::NotFound, &["run_nothing"]);
-    expect_status("cancel unknown run", runs.cancel_run(pb::CancelRunRequest { id: "run_nothing".into() }).await, Code::NotFound, &["run_nothing"]);
-    expect_status("model of unknown run", models.get_model(pb::GetModelRequest { run_id: "run_nothing".into(), format: 0 }).await, Code::NotFound, &["run_nothing"]);
+    expect_status("unknown run", runs.get_run(pb::GetRunRequest { id: "run_00000000000000000000000000000000".into() }).await, Code::NotFound, &["run_00000000000000000000000000000000"]);
+    expect_status("follow unknown run", runs.follow_run(pb::FollowRunRequest { id: "run_00000000000000000000000000000000".into(), after_sequence: 0 }).await.map(|_| ()), Code::NotFound, &["run_00000000000000000000000000000000"]);
+    expect_status("cancel unknown run", runs.cancel_run(pb::CancelRunRequest { id: "run_00000000000000000000000000000000".into() }).await, Code::NotFound, &["run_00000000000000000000000000000000"]);
+    expect_status("model of unknown run", models.get_model(pb::GetModelRequest { run_id: "run_00000000000000000000000000000000".into(), format: 0 }).await, Code::NotFound, &["run_00000000000000000000000000000000"]);
     assert_eq!(ids(list(pb::ListRunsRequest::default()).await.unwrap()), newest_first, "refused sweeps queue nothing");
     server.stop().await;
 }

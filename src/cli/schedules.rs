@@ -184,6 +184,7 @@ fn outcome_name(o: i32) -> &'static str {
         pb::FireOutcome::SkippedUnchanged => "skipped_unchanged",
         pb::FireOutcome::SkippedMissed => "skipped_missed",
         pb::FireOutcome::Failed => "failed",
+        pb::FireOutcome::SkippedQueueFull => "skipped_queue_full",
         pb::FireOutcome::Unspecified => "unknown",
     }
 }

@@ -494,6 +494,7 @@ fn fire_outcome_to(o: FireOutcome) -> pb::FireOutcome {
         FireOutcome::SkippedUnchanged => pb::FireOutcome::SkippedUnchanged,
         FireOutcome::SkippedMissed => pb::FireOutcome::SkippedMissed,
         FireOutcome::Failed => pb::FireOutcome::Failed,
+        FireOutcome::SkippedQueueFull => pb::FireOutcome::SkippedQueueFull,
     }
 }
 

@@ -10,7 +10,7 @@ use tonic::{Request, Response, Status, Streaming};
 use super::{convert, error, page_size, token, Api};
 use crate::data::csv::{read_dataset, read_frame, CsvOptions};
 use crate::data::{Column, Frame};
-use crate::job::{ColumnMeta, DatasetMeta};
+use crate::job::{ColumnMeta, DatasetMeta, IdKind};
 use crate::pb;
 use crate::store::{DeleteDataset, PutDataset};
 use crate::worker::cpu;
@@ -175,7 +175,7 @@ impl Api {
                 PutDataset::Created(m) | PutDataset::Existing(m) => Ok(convert::dataset_info(&m)),
             }
         })
-        .await
+        .await?
     }
 }
 
@@ -228,6 +228,7 @@ impl pb::datasets_server::Datasets for Api {
 
     async fn get_dataset(&self, request: Request<pb::GetDatasetRequest>) -> Result<Response<pb::DatasetInfo>, Status> {
         let id = request.into_inner().id;
+        error::check_id("id", IdKind::Dataset, &id)?;
         match self.shared.store.dataset(&id).map_err(error::store)? {
             Some(m) => Ok(Response::new(convert::dataset_info(&m))),
             None => Err(error::not_found("dataset", &id)),
@@ -243,6 +244,7 @@ impl pb::datasets_server::Datasets for Api {
 
     async fn delete_dataset(&self, request: Request<pb::DeleteDatasetRequest>) -> Result<Response<pb::DeleteDatasetReply>, Status> {
         let id = request.into_inner().id;
+        error::check_id("id", IdKind::Dataset, &id)?;
         match self.shared.store.delete_dataset(&id).map_err(error::store)? {
             DeleteDataset::Deleted => Ok(Response::new(pb::DeleteDatasetReply {})),
             DeleteDataset::NotFound => Err(error::not_found("dataset", &id)),

@@ -4,6 +4,7 @@ use tonic::{Request, Response, Status};
 
 use super::{convert, error, Api};
 use crate::export;
+use crate::job::IdKind;
 use crate::pb;
 use crate::tree::{Predictions, Tree};
 use crate::worker::cpu;
@@ -12,6 +13,7 @@ impl Api {
     /// The model of a finished run: NOT_FOUND for an unknown run, FAILED_PRECONDITION while
     /// it has none.
     fn model_of(&self, run_id: &str) -> Result<Tree, Status> {
+        error::check_id("run_id", IdKind::Run, run_id)?;
         let run = self.shared.store.run(run_id).map_err(error::store)?.ok_or_else(|| error::not_found("run", run_id))?;
         let outcome = self.shared.store.outcome(run_id).map_err(error::store)?;
         match outcome.and_then(|o| o.model) {
@@ -58,7 +60,7 @@ impl pb::models_server::Models for Api {
             },
             Predictions::Values(values) => pb::PredictReply { values, ..Default::default() },
         })
-        .await;
+        .await?;
         Ok(Response::new(reply))
     }
 }

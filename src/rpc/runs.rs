@@ -10,10 +10,11 @@ use tracing::info;
 use super::{convert, error, page_size, token, Api};
 use std::sync::Arc;
 
-use crate::job::{DatasetMeta, EventKind, Run, RunState};
+use crate::config::Config;
+use crate::job::{DatasetMeta, EventKind, IdKind, Run, RunState};
 use crate::pb;
 use crate::store::{CreateRun, RunFilter};
-use crate::sweep::SweepSpec;
+use crate::sweep::{RunSize, SweepSpec};
 use crate::worker::{cpu, load_dataset, Shared};
 
 /// A new run id: "run_" + a version 7 UUID, which sorts by creation time.
@@ -25,46 +26,77 @@ pub fn new_run_id() -> String {
 pub fn resolve_dataset(shared: &Shared, dataset_id: &str, dataset_name: &str) -> Result<DatasetMeta, Status> {
     let store = &shared.store;
     if !dataset_id.is_empty() {
+        error::check_id("dataset_id", IdKind::Dataset, dataset_id)?;
         store.dataset(dataset_id).map_err(error::store)?.ok_or_else(|| error::not_found("dataset", dataset_id))
     } else if !dataset_name.is_empty() {
-        store.latest_dataset(dataset_name).map_err(error::store)?.ok_or_else(|| Status::not_found(format!("no dataset named '{dataset_name}'")))
+        store.latest_dataset(dataset_name).map_err(error::store)?.ok_or_else(|| Status::not_found(format!("no dataset named '{}'", error::echo(dataset_name))))
     } else {
         Err(Status::invalid_argument("dataset_id or dataset_name: name the dataset to sweep"))
     }
 }
 
 /// Checks a wire spec against a stored dataset on the CPU pool for calls, so a bad spec fails
-/// now, not in the queue. Returns the spec with its defaults made explicit (task, metric,
-/// folds), so a run reads the same later, and the target column.
-pub async fn check_sweep(shared: &Arc<Shared>, meta: &DatasetMeta, wire: pb::SweepSpec) -> Result<(SweepSpec, String), Status> {
+/// now, not in the queue: every cap of the spec, and the run's memory estimate against the
+/// budget. Returns the spec with its defaults made explicit (task, metric, folds), so a run
+/// reads the same later, the target column, and the memory estimate in bytes.
+pub async fn check_sweep(shared: &Arc<Shared>, meta: &DatasetMeta, wire: pb::SweepSpec) -> Result<(SweepSpec, String, u64), Status> {
     let target = if wire.target.is_empty() { meta.target.clone() } else { wire.target.clone() };
     if target.is_empty() {
         return Err(Status::invalid_argument(format!("spec.target: dataset '{}' has no default target; name the column to predict", meta.id)));
     }
     let (store, cfg) = (shared.store.clone(), shared.config.clone());
     let (meta, target2) = (meta.clone(), target.clone());
-    let spec = cpu(shared, move || -> Result<SweepSpec, Status> {
+    let threads = shared.pool.current_num_threads();
+    let (spec, estimate) = cpu(shared, move || -> Result<(SweepSpec, u64), Status> {
         let task = match wire.task.as_str() {
             "" => None,
-            t => Some(crate::data::Task::parse(t).ok_or_else(|| Status::invalid_argument(format!("spec.task: '{t}' is not classify or regress")))?),
+            t => Some(crate::data::Task::parse(t).ok_or_else(|| Status::invalid_argument(format!("spec.task: '{}' is not classify or regress", error::echo(t))))?),
         };
         let data = load_dataset(&store, &meta, &target2, task, cfg.max_rows, cfg.max_columns).map_err(Status::invalid_argument)?;
         let spec = convert::spec_from(&wire, data.task())?;
-        let checked = SweepSpec { max_settings: Some(cfg.max_settings), ..spec.clone() }.check(&data).map_err(|e| error::spec(&e))?;
-        Ok(SweepSpec { task: Some(checked.task), metric: Some(checked.metric), folds: Some(checked.folds), ..spec })
+        let checked = spec.check_with(&data, &cfg.spec_caps()).map_err(|e| error::spec(&e))?;
+        let size = RunSize::of(&data, &checked, meta.bytes, threads, cfg.max_settings);
+        let estimate = size.bytes();
+        if estimate > cfg.run_memory_bytes {
+            let detail = format!(
+                "the run needs about {estimate} bytes ({} rows × {} features, {} units in flight, {} splits, {} settings)",
+                size.rows, size.features, size.units_in_flight, size.splits, size.settings
+            );
+            return Err(error::cap("memory", &detail, "run_memory_bytes", cfg.run_memory_bytes));
+        }
+        Ok((SweepSpec { task: Some(checked.task), metric: Some(checked.metric), folds: Some(checked.folds), ..spec }, estimate))
     })
-    .await?;
-    Ok((spec, target))
+    .await??;
+    Ok((spec, target, estimate))
+}
+
+/// Labels within the caps on their count and on the bytes of each key and value.
+pub fn check_labels<'a>(cfg: &Config, labels: impl IntoIterator<Item = (&'a String, &'a String)> + Clone) -> Result<(), Status> {
+    let n = labels.clone().into_iter().count();
+    if n > cfg.max_labels {
+        return Err(error::cap("labels", &format!("{n} labels"), "max_labels", cfg.max_labels as u64));
+    }
+    for (k, v) in labels {
+        if k.len() > cfg.max_label_key_bytes {
+            return Err(error::cap(&format!("labels['{}']", error::echo(k)), &format!("the key has {} bytes", k.len()), "max_label_key_bytes", cfg.max_label_key_bytes as u64));
+        }
+        if v.len() > cfg.max_label_value_bytes {
+            return Err(error::cap(&format!("labels['{}']", error::echo(k)), &format!("the value has {} bytes", v.len()), "max_label_value_bytes", cfg.max_label_value_bytes as u64));
+        }
+    }
+    Ok(())
 }
 
 /// A checked, queued run for a request, not yet stored (shared by StartRun and schedules).
 pub async fn prepare_run(shared: &Arc<Shared>, r: pb::StartRunRequest, schedule_id: String) -> Result<Run, Status> {
+    check_labels(&shared.config, &r.labels)?;
     let meta = resolve_dataset(shared, &r.dataset_id, &r.dataset_name)?;
-    let (spec, target) = check_sweep(shared, &meta, r.spec.unwrap_or_default()).await?;
+    let (spec, target, estimate) = check_sweep(shared, &meta, r.spec.unwrap_or_default()).await?;
     let mut run = Run::queued(new_run_id(), &meta, target, spec, shared.now());
     run.labels = r.labels.into_iter().collect();
     run.idempotency_key = r.idempotency_key;
     run.schedule_id = schedule_id;
+    run.memory_estimate = estimate;
     Ok(run)
 }
 
@@ -73,7 +105,13 @@ impl Api {
     pub async fn queue_run(&self, r: pb::StartRunRequest) -> Result<Run, Status> {
         let run = prepare_run(&self.shared, r, String::new()).await?;
         let dataset_id = run.dataset_id.clone();
-        let run = match self.shared.store.create_run(run).map_err(error::store)? {
+        let cap = self.shared.config.max_queued_runs;
+        let created = {
+            let _admit = self.shared.admit.lock().unwrap();
+            let queued = self.shared.store.queued_count();
+            self.shared.store.create_run_within(run, queued >= cap).map_err(error::store)?
+        };
+        let run = match created {
             CreateRun::Created(run) => {
                 info!(run_id = %run.id, dataset = %run.dataset_id, "run queued");
                 self.shared.queued.notify_one();
@@ -81,11 +119,13 @@ impl Api {
             }
             CreateRun::Existing(run) => run,
             CreateRun::DatasetMissing => return Err(error::not_found("dataset", &dataset_id)),
+            CreateRun::QueueFull => return Err(error::cap("queue", &format!("{} runs are queued", self.shared.store.queued_count()), "max_queued_runs", cap as u64)),
         };
         Ok(run)
     }
 
     fn run_or_not_found(&self, id: &str) -> Result<Run, Status> {
+        error::check_id("id", IdKind::Run, id)?;
         self.shared.store.run(id).map_err(error::store)?.ok_or_else(|| error::not_found("run", id))
     }
 }
@@ -167,7 +207,7 @@ impl pb::runs_server::Runs for Api {
         let label = match r.label.as_str() {
             "" => None,
             l => {
-                let (k, v) = l.split_once('=').ok_or_else(|| Status::invalid_argument(format!("label: '{l}' is not key=value")))?;
+                let (k, v) = l.split_once('=').ok_or_else(|| Status::invalid_argument(format!("label: '{}' is not key=value", error::echo(l))))?;
                 Some((k.to_string(), v.to_string()))
             }
         };
@@ -182,7 +222,21 @@ impl pb::runs_server::Runs for Api {
             drift_flagged: r.drift_flagged,
         };
         let (runs, next) = self.shared.store.list_runs(&filter, token(&r.page_token), page_size(r.page_size)).map_err(error::store)?;
-        Ok(Response::new(pb::ListRunsReply { runs: runs.iter().map(|run| convert::run_info(run, None)).collect(), next_page_token: next.unwrap_or_default() }))
+        // A page also ends before it passes list_page_bytes (it always holds one run), and
+        // then continues after its last run.
+        let budget = self.shared.config.list_page_bytes;
+        let (mut infos, mut bytes) = (Vec::with_capacity(runs.len()), 0usize);
+        let mut next = next;
+        for run in &runs {
+            let info = convert::run_info(run, None);
+            bytes = bytes.saturating_add(prost::Message::encoded_len(&info));
+            if !infos.is_empty() && bytes > budget {
+                next = infos.last().map(|i: &pb::RunInfo| i.id.clone());
+                break;
+            }
+            infos.push(info);
+        }
+        Ok(Response::new(pb::ListRunsReply { runs: infos, next_page_token: next.unwrap_or_default() }))
     }
 
     async fn cancel_run(&self, request: Request<pb::CancelRunRequest>) -> Result<Response<pb::RunInfo>, Status> {

@@ -4,9 +4,9 @@
 use tonic::{Request, Response, Status};
 use tracing::info;
 
-use super::runs::{check_sweep, resolve_dataset};
+use super::runs::{check_labels, check_sweep, resolve_dataset};
 use super::{convert, error, page_size, token, Api};
-use crate::job::Schedule;
+use crate::job::{IdKind, Schedule};
 use crate::pb;
 use crate::schedule::Cron;
 
@@ -17,6 +17,7 @@ pub fn new_schedule_id() -> String {
 
 impl Api {
     fn schedule_or_not_found(&self, id: &str) -> Result<Schedule, Status> {
+        error::check_id("id", IdKind::Schedule, id)?;
         self.shared.store.schedule(id).map_err(error::store)?.ok_or_else(|| error::not_found("schedule", id))
     }
 
@@ -42,7 +43,8 @@ impl pb::schedules_server::Schedules for Api {
         let drift = convert::thresholds_from(r.drift.as_ref())?;
         // The template must fit the data it will sweep: check it against the latest version.
         let latest = resolve_dataset(&self.shared, &r.dataset_id, &r.dataset_name)?;
-        let (spec, target) = check_sweep(&self.shared, &latest, r.spec.unwrap_or_default()).await?;
+        check_labels(&self.shared.config, &r.labels)?;
+        let (spec, target, _) = check_sweep(&self.shared, &latest, r.spec.unwrap_or_default()).await?;
         let now = self.shared.now();
         let schedule = Schedule {
             id: new_schedule_id(),
@@ -87,6 +89,7 @@ impl pb::schedules_server::Schedules for Api {
 
     async fn pause_schedule(&self, request: Request<pb::PauseScheduleRequest>) -> Result<Response<pb::ScheduleInfo>, Status> {
         let id = request.into_inner().id;
+        error::check_id("id", IdKind::Schedule, &id)?;
         let s = self.shared.store.update_schedule(&id, |s| s.paused = true).map_err(error::store)?.ok_or_else(|| error::not_found("schedule", &id))?;
         info!(schedule_id = %id, "schedule paused");
         Ok(Response::new(self.schedule_reply(&s)?))
@@ -94,6 +97,7 @@ impl pb::schedules_server::Schedules for Api {
 
     async fn resume_schedule(&self, request: Request<pb::ResumeScheduleRequest>) -> Result<Response<pb::ScheduleInfo>, Status> {
         let id = request.into_inner().id;
+        error::check_id("id", IdKind::Schedule, &id)?;
         let now = self.shared.now();
         // Fires that fell in the pause were paused on purpose: they are not caught up.
         let s = self
@@ -114,6 +118,7 @@ impl pb::schedules_server::Schedules for Api {
 
     async fn delete_schedule(&self, request: Request<pb::DeleteScheduleRequest>) -> Result<Response<pb::DeleteScheduleReply>, Status> {
         let id = request.into_inner().id;
+        error::check_id("id", IdKind::Schedule, &id)?;
         if !self.shared.store.delete_schedule(&id).map_err(error::store)? {
             return Err(error::not_found("schedule", &id));
         }
@@ -124,6 +129,7 @@ impl pb::schedules_server::Schedules for Api {
 
     async fn list_fires(&self, request: Request<pb::ListFiresRequest>) -> Result<Response<pb::ListFiresReply>, Status> {
         let r = request.into_inner();
+        error::check_id("schedule_id", IdKind::Schedule, &r.schedule_id)?;
         self.schedule_or_not_found(&r.schedule_id)?;
         let after = match token(&r.page_token) {
             None => None,

@@ -10,6 +10,7 @@
 //! | `dataset_names` | name ++ 0x00 ++ be u32 version | dataset id; empty once deleted |
 //! | `dataset_holds` | dataset id | ids of the queued and running runs that use it |
 //! | `runs` | run id | run record |
+//! | `run_progress` | run id | `units_done` and `next_sequence`, when they moved on since the run record was written |
 //! | `results` | run id | outcome record |
 //! | `events` | run id ++ be u64 sequence | event record |
 //! | `units` | run id ++ be u32 unit | unit record |
@@ -89,6 +90,28 @@ impl From<sled::Error> for StoreError {
     }
 }
 
+/// What [`Store::claim_next_within`] found.
+#[derive(Clone, Debug, PartialEq)]
+pub enum Claim {
+    /// The oldest queued run, now running.
+    Claimed(Run),
+    /// The oldest queued run does not fit now (it stays queued, first in line).
+    Waiting(Run),
+    /// The queue is empty.
+    Empty,
+}
+
+/// What [`Store::resume`] did with a run left running.
+#[derive(Clone, Debug, PartialEq)]
+pub enum Resumed {
+    /// Execute it again (the run as now stored).
+    Again(Run),
+    /// It was failed instead, with this reason.
+    GaveUp(String),
+    /// It is no longer running (or unknown).
+    NotRunning,
+}
+
 /// What [`Store::put_dataset`] did.
 #[derive(Clone, Debug, PartialEq)]
 pub enum PutDataset {
@@ -116,6 +139,8 @@ pub enum CreateRun {
     Existing(Run),
     /// The run's dataset is not stored.
     DatasetMissing,
+    /// The queue is full (the run is new: neither its idempotency key nor its id is stored).
+    QueueFull,
 }
 
 /// Which runs [`Store::list_runs`] returns; the default lets every run through.
@@ -172,7 +197,8 @@ const IDEMPOTENCY: usize = 9;
 const REFS: usize = 10;
 const SCHEDULES: usize = 11;
 const FIRES: usize = 12;
-const TREE_NAMES: [&str; 13] = [
+const PROGRESS: usize = 13;
+const TREE_NAMES: [&str; 14] = [
     "datasets",
     "dataset_chunks",
     "dataset_names",
@@ -186,6 +212,7 @@ const TREE_NAMES: [&str; 13] = [
     "dataset_refs",
     "schedules",
     "fires",
+    "run_progress",
 ];
 
 /// The marker key of `dataset_refs` saying the counts are complete (no dataset id starts with 0x00).
@@ -230,12 +257,40 @@ impl Tx<'_> {
     fn run(&self, id: &str) -> TxResult<Option<Run>> {
         match self.get(RUNS, id)? {
             None => Ok(None),
-            Some(v) => read(records::decode_run(&v)).map(Some),
+            Some(v) => {
+                let mut run = read(records::decode_run(&v))?;
+                if let Some(p) = self.get(PROGRESS, id)? {
+                    read(with_progress(&mut run, &p))?;
+                }
+                Ok(Some(run))
+            }
         }
     }
 
+    /// Writes the whole run record (its progress included, so a progress record is dropped).
     fn put_run(&self, run: &Run) -> TxResult<()> {
+        self.remove(PROGRESS, &run.id)?;
         Ok(self.insert(RUNS, &run.id, records::encode_run(run))?)
+    }
+
+    /// Writes only the fields that move with each unit and event.
+    fn put_progress(&self, run: &Run) -> TxResult<()> {
+        let p = records::ProgressRecord { units_done: run.units_done, next_sequence: run.next_sequence };
+        Ok(self.insert(PROGRESS, &run.id, records::encode_progress(&p))?)
+    }
+
+    /// A queued or running run → failed or cancelled: off the queue, the event appended, the
+    /// dataset released. Returns the event.
+    fn end(&self, run: &mut Run, state: RunState, reason: &str, now: i64) -> TxResult<Event> {
+        let kind = if state == RunState::Cancelled { EventKind::Cancelled(reason.to_string()) } else { EventKind::Failed(reason.to_string()) };
+        if run.state == RunState::Queued {
+            self.remove(QUEUE, &run.id)?;
+        }
+        let event = self.append(run, kind, now)?;
+        run.end(state, now, reason);
+        self.put_run(run)?;
+        self.release(&run.dataset_id, &run.id)?;
+        Ok(event)
     }
 
     fn holds(&self, dataset_id: &str) -> TxResult<HoldsRecord> {
@@ -282,7 +337,7 @@ impl Tx<'_> {
 
     /// Stores a queued run and enqueues it, unless its idempotency key or id names a stored
     /// run (that run is returned) or its dataset is not stored.
-    fn insert_run(&self, run: &Run) -> TxResult<CreateRun> {
+    fn insert_run(&self, run: &Run, queue_full: bool) -> TxResult<CreateRun> {
         if !run.idempotency_key.is_empty() {
             if let Some(id) = self.get(IDEMPOTENCY, &run.idempotency_key)? {
                 let id = read(String::from_utf8(id.to_vec()).map_err(|_| StoreError::Corrupt("idempotency entry is not UTF-8".into())))?;
@@ -293,6 +348,9 @@ impl Tx<'_> {
         }
         if let Some(existing) = self.run(&run.id)? {
             return Ok(CreateRun::Existing(existing));
+        }
+        if queue_full {
+            return Ok(CreateRun::QueueFull);
         }
         if self.get(DATASETS, &run.dataset_id)?.is_none() {
             return Ok(CreateRun::DatasetMissing);
@@ -656,12 +714,27 @@ impl Store {
     /// idempotency key that already names a run, or a run id already stored, returns that run
     /// instead. The dataset must exist (checked inside the transaction).
     pub fn create_run(&self, run: Run) -> Result<CreateRun, StoreError> {
+        self.create_run_within(run, false)
+    }
+
+    /// [`Store::create_run`], except that a new run is refused ([`CreateRun::QueueFull`])
+    /// when the caller found the queue full; an idempotent retry still gets its run.
+    pub fn create_run_within(&self, run: Run, queue_full: bool) -> Result<CreateRun, StoreError> {
         debug_assert_eq!(run.state, RunState::Queued, "create_run takes a queued run");
-        retrying(|| self.transact(|tx| tx.insert_run(&run)))
+        retrying(|| self.transact(|tx| tx.insert_run(&run, queue_full)))
     }
 
     pub fn run(&self, id: &str) -> Result<Option<Run>, StoreError> {
-        self.tree(RUNS).get(id)?.map(|v| records::decode_run(&v)).transpose()
+        self.tree(RUNS).get(id)?.map(|v| self.decode_run(&v)).transpose()
+    }
+
+    /// A stored run record with its progress record, if any, laid over it.
+    fn decode_run(&self, bytes: &[u8]) -> Result<Run, StoreError> {
+        let mut run = records::decode_run(bytes)?;
+        if let Some(p) = self.tree(PROGRESS).get(&run.id)? {
+            with_progress(&mut run, &p)?;
+        }
+        Ok(run)
     }
 
     /// Runs newest first (run ids are time-ordered), filtered. `limit` is at least 1. The page
@@ -675,7 +748,7 @@ impl Store {
         let mut found = Vec::new();
         for kv in iter.rev() {
             let (_, v) = kv?;
-            let run = records::decode_run(&v)?;
+            let run = self.decode_run(&v)?;
             if filter.admits(&run) {
                 found.push(run);
                 if found.len() > limit {
@@ -689,23 +762,36 @@ impl Store {
     /// Takes the oldest queued run off the queue and marks it running, with `started_at =
     /// now` and a plan size of 0 (see [`Store::set_plan_size`]); one transaction.
     pub fn claim_next(&self, now: i64) -> Result<Option<Run>, StoreError> {
+        match self.claim_next_within(now, |_| true)? {
+            Claim::Claimed(run) => Ok(Some(run)),
+            Claim::Waiting(_) | Claim::Empty => Ok(None),
+        }
+    }
+
+    /// [`Store::claim_next`] when `fits` admits the oldest queued run; otherwise that run
+    /// stays queued (first in line, so later runs do not overtake it).
+    pub fn claim_next_within(&self, now: i64, fits: impl Fn(&Run) -> bool) -> Result<Claim, StoreError> {
         retrying(|| {
             let head = match self.tree(QUEUE).iter().next() {
-                None => return Ok(None),
+                None => return Ok(Claim::Empty),
                 Some(kv) => kv.map_err(|e| Abort::Store(e.into()))?.0,
             };
             self.transact(|tx| {
-                if tx.remove(QUEUE, &head)?.is_none() {
+                let id = String::from_utf8_lossy(&head);
+                if tx.get(QUEUE, &head)?.is_none() {
                     return stale();
                 }
-                let id = String::from_utf8_lossy(&head);
                 let Some(mut run) = tx.run(&id)? else { return fail(StoreError::Corrupt(format!("queued run {id} has no run record"))) };
                 if run.state != RunState::Queued {
                     return fail(StoreError::Corrupt(format!("queued run {id} is {}", run.state.as_str())));
                 }
+                if !fits(&run) {
+                    return Ok(Claim::Waiting(run));
+                }
+                tx.remove(QUEUE, &head)?;
                 run.start(now, 0, 0);
                 tx.put_run(&run)?;
-                Ok(Some(run))
+                Ok(Claim::Claimed(run))
             })
         })
     }
@@ -729,7 +815,7 @@ impl Store {
     pub fn running_runs(&self) -> Result<Vec<Run>, StoreError> {
         let mut out = Vec::new();
         for kv in self.tree(RUNS).iter() {
-            let run = records::decode_run(&kv?.1)?;
+            let run = self.decode_run(&kv?.1)?;
             if run.state == RunState::Running {
                 out.push(run);
             }
@@ -757,7 +843,7 @@ impl Store {
                     out.push(tx.append(&mut run, kind.clone(), now)?);
                 }
                 run.units_done += 1;
-                tx.put_run(&run)?;
+                tx.put_progress(&run)?;
                 Ok(out)
             })
         })
@@ -799,27 +885,57 @@ impl Store {
     /// run is unknown or already terminal (so cancelling twice is harmless), or when `state`
     /// is neither failed nor cancelled.
     pub fn end_run(&self, run_id: &str, state: RunState, reason: &str, now: i64) -> Result<Option<(Run, Event)>, StoreError> {
-        let kind = match state {
-            RunState::Failed => EventKind::Failed(reason.to_string()),
-            RunState::Cancelled => EventKind::Cancelled(reason.to_string()),
-            _ => {
-                debug_assert!(false, "end_run ends a run as failed or cancelled, not {}", state.as_str());
-                return Ok(None);
-            }
-        };
+        if !matches!(state, RunState::Failed | RunState::Cancelled) {
+            debug_assert!(false, "end_run ends a run as failed or cancelled, not {}", state.as_str());
+            return Ok(None);
+        }
         retrying(|| {
             self.transact(|tx| {
                 let Some(mut run) = tx.run(run_id)?.filter(|r| !r.state.is_terminal()) else { return Ok(None) };
-                if run.state == RunState::Queued {
-                    tx.remove(QUEUE, run_id)?;
-                }
-                let event = tx.append(&mut run, kind.clone(), now)?;
-                run.end(state, now, reason);
-                tx.put_run(&run)?;
-                tx.release(&run.dataset_id, run_id)?;
+                let event = tx.end(&mut run, state, reason, now)?;
                 Ok(Some((run, event)))
             })
         })
+    }
+
+    /// A run left running by an earlier process, about to be executed again: counts a crash
+    /// strike or clears them ([`Run::resume`]), and fails the run when it gives up; one
+    /// transaction.
+    pub fn resume(&self, run_id: &str, now: i64) -> Result<Resumed, StoreError> {
+        retrying(|| {
+            self.transact(|tx| {
+                let Some(mut run) = tx.run(run_id)?.filter(|r| r.state == RunState::Running) else { return Ok(Resumed::NotRunning) };
+                match run.resume() {
+                    crate::job::Resume::Again => {
+                        tx.put_run(&run)?;
+                        Ok(Resumed::Again(run))
+                    }
+                    crate::job::Resume::GiveUp(reason) => {
+                        tx.end(&mut run, RunState::Failed, &reason, now)?;
+                        Ok(Resumed::GaveUp(reason))
+                    }
+                }
+            })
+        })
+    }
+
+    /// A running run stopped cleanly (shutdown): its next resume counts no crash strike.
+    pub fn stopped_cleanly(&self, run_id: &str) -> Result<(), StoreError> {
+        retrying(|| {
+            self.transact(|tx| {
+                if let Some(mut run) = tx.run(run_id)?.filter(|r| r.state == RunState::Running) {
+                    run.units_at_start = None;
+                    run.crash_strikes = 0;
+                    tx.put_run(&run)?;
+                }
+                Ok(())
+            })
+        })
+    }
+
+    /// How many runs are queued.
+    pub fn queued_count(&self) -> usize {
+        self.tree(QUEUE).len()
     }
 
     /// Appends a non-terminal event (progress) to a running run; one transaction. `None`
@@ -834,7 +950,7 @@ impl Store {
             self.transact(|tx| {
                 let Some(mut run) = tx.run(run_id)?.filter(|r| r.state == RunState::Running) else { return Ok(None) };
                 let event = tx.append(&mut run, kind.clone(), now)?;
-                tx.put_run(&run)?;
+                tx.put_progress(&run)?;
                 Ok(Some(event))
             })
         })
@@ -882,6 +998,7 @@ impl Store {
             self.transact(|tx| {
                 let Some(run) = tx.run(run_id)?.filter(|r| r.state.is_terminal()) else { return Ok(false) };
                 tx.remove(RUNS, run_id)?;
+                tx.remove(PROGRESS, run_id)?;
                 tx.remove(RESULTS, run_id)?;
                 for k in events.iter() {
                     tx.remove(EVENTS, k)?;
@@ -998,7 +1115,7 @@ impl Store {
                     if let Some(busy) = tx.run(&s.last_run_id)?.filter(|r| r.state.is_active()) {
                         fire.skip_busy(busy);
                     } else {
-                        match tx.insert_run(run)? {
+                        match tx.insert_run(run, false)? {
                             CreateRun::Created(r) => {
                                 s.last_run_id = r.id.clone();
                                 s.last_dataset_id = r.dataset_id.clone();
@@ -1007,6 +1124,8 @@ impl Store {
                             }
                             CreateRun::Existing(r) => fire.run_id = r.id,
                             CreateRun::DatasetMissing => fire.fail(format!("dataset {} was deleted before the run could be queued", run.dataset_id)),
+                            // Not returned here: the scheduler checks the queue cap before it records a fire.
+                            CreateRun::QueueFull => fire.fail("the queue is full".into()),
                         }
                     }
                 }
@@ -1052,6 +1171,14 @@ fn page<I, T>(items: Vec<I>, limit: usize, position: impl Fn(&I) -> String, valu
     kept.truncate(limit);
     let token = if more { kept.last().map(&position) } else { None };
     (kept.into_iter().map(value).collect(), token)
+}
+
+/// Lays a stored progress record over a run.
+fn with_progress(run: &mut Run, bytes: &[u8]) -> Result<(), StoreError> {
+    let p = records::decode_progress(bytes)?;
+    run.units_done = p.units_done;
+    run.next_sequence = p.next_sequence;
+    Ok(())
 }
 
 /// A stored big-endian u64 count.

@@ -314,6 +314,13 @@ pub struct RunRecord {
     next_sequence: u64,
     #[serde(default)]
     drift: Option<DriftRecord>,
+    /// Absent in records written before memory estimates and crash strikes existed.
+    #[serde(default)]
+    memory_estimate: u64,
+    #[serde(default)]
+    units_at_start: Option<u32>,
+    #[serde(default)]
+    crash_strikes: u32,
 }
 
 impl From<&Run> for RunRecord {
@@ -339,6 +346,9 @@ impl From<&Run> for RunRecord {
             units_done: r.units_done,
             next_sequence: r.next_sequence,
             drift: r.drift.as_ref().map(DriftRecord::from),
+            memory_estimate: r.memory_estimate,
+            units_at_start: r.units_at_start,
+            crash_strikes: r.crash_strikes,
         }
     }
 }
@@ -367,6 +377,9 @@ impl TryFrom<RunRecord> for Run {
             units_done: r.units_done,
             next_sequence: r.next_sequence,
             drift: r.drift.map(DriftReport::from),
+            memory_estimate: r.memory_estimate,
+            units_at_start: r.units_at_start,
+            crash_strikes: r.crash_strikes,
         })
     }
 }
@@ -803,6 +816,14 @@ impl TryFrom<OutcomeRecord> for RunOutcome {
 // ---------------------------------------------------------------------------------------
 // Store-internal records
 
+/// The fields of a run that change with every finished unit, stored apart from the run
+/// record so a unit does not rewrite the whole run (labels, spec and all).
+#[derive(Serialize, Deserialize, Clone, Copy, Debug, PartialEq, Eq)]
+pub struct ProgressRecord {
+    pub units_done: u32,
+    pub next_sequence: u64,
+}
+
 /// The active (queued or running) runs that hold a dataset, so deleting it can be refused.
 #[derive(Serialize, Deserialize, Default)]
 pub struct HoldsRecord {
@@ -841,6 +862,12 @@ pub fn encode_outcome(o: &RunOutcome) -> Vec<u8> {
 }
 pub fn decode_outcome(bytes: &[u8]) -> Result<RunOutcome, StoreError> {
     decode::<OutcomeRecord>("outcome", bytes).and_then(RunOutcome::try_from)
+}
+pub fn encode_progress(p: &ProgressRecord) -> Vec<u8> {
+    encode(p)
+}
+pub fn decode_progress(bytes: &[u8]) -> Result<ProgressRecord, StoreError> {
+    decode("run progress", bytes)
 }
 pub fn encode_holds(h: &HoldsRecord) -> Vec<u8> {
     encode(h)

@@ -334,6 +334,57 @@ fn concurrent_claims_take_each_run_once_in_order() {
     assert_eq!(store.running_runs().unwrap().len(), n as usize);
 }
 
+/// A finished unit stores its progress apart: the run record (labels, spec and all) is not
+/// written again, yet every read sees the progress; a full write folds it back in.
+#[test]
+fn a_unit_does_not_rewrite_the_run_record() {
+    let store = Store::open_temporary().unwrap();
+    store.put_dataset(meta("ds_1", "", 0, 0), b"x").unwrap();
+    let mut run = Run::queued("run_0001".into(), &meta("ds_1", "", 0, 0), "y".into(), full_spec(3), 1);
+    run.labels.insert("note".into(), "x".repeat(200));
+    store.create_run(run).unwrap();
+    store.claim_next(2).unwrap().unwrap();
+    let record = || store.tree(RUNS).get("run_0001").unwrap().unwrap();
+    let before = record();
+    for u in 0..5 {
+        assert_eq!(store.record_unit("run_0001", &unit_result(u, 10), unit_events(2, 10), 10).unwrap().len(), 2);
+    }
+    assert_eq!(record(), before, "the run record was rewritten");
+    let run = store.run("run_0001").unwrap().unwrap();
+    assert_eq!((run.units_done, run.next_sequence), (5, 11));
+    assert_eq!(store.list_runs(&RunFilter::default(), None, 10).unwrap().0[0].units_done, 5);
+    assert_eq!(store.running_runs().unwrap()[0].next_sequence, 11);
+    assert_eq!(store.events("run_0001", 0).unwrap().len(), 10);
+    // Ending the run writes it whole, progress included, and drops the progress record.
+    let (ended, event) = store.end_run("run_0001", RunState::Failed, "stop", 20).unwrap().unwrap();
+    assert_eq!((ended.units_done, event.sequence), (5, 11));
+    assert!(store.tree(PROGRESS).get("run_0001").unwrap().is_none());
+    assert_eq!(store.run("run_0001").unwrap().unwrap().units_done, 5);
+}
+
+/// A run that keeps dying without storing a unit is failed on its third resume; a clean
+/// stop clears the count.
+#[test]
+fn resume_counts_crash_strikes() {
+    let store = Store::open_temporary().unwrap();
+    store.put_dataset(meta("ds_1", "", 0, 0), b"x").unwrap();
+    for id in ["run_0001", "run_0002"] {
+        store.create_run(Run::queued(id.into(), &meta("ds_1", "", 0, 0), "y".into(), SweepSpec::default(), 1)).unwrap();
+        store.claim_next(2).unwrap().unwrap();
+    }
+    assert!(matches!(store.resume("run_0001", 3).unwrap(), Resumed::Again(_)));
+    assert!(matches!(store.resume("run_0001", 3).unwrap(), Resumed::Again(_)));
+    assert!(matches!(store.resume("run_0001", 3).unwrap(), Resumed::GaveUp(_)));
+    let failed = store.run("run_0001").unwrap().unwrap();
+    assert_eq!(failed.state, RunState::Failed);
+    assert!(failed.reason.contains("3 times"));
+    assert_eq!(store.resume("run_0001", 4).unwrap(), Resumed::NotRunning);
+    for _ in 0..5 {
+        assert!(matches!(store.resume("run_0002", 3).unwrap(), Resumed::Again(_)));
+        store.stopped_cleanly("run_0002").unwrap();
+    }
+}
+
 // ---------------------------------------------------------------------------------------
 // The store against a model
 

@@ -80,8 +80,8 @@ impl FoldPlan {
         }
     }
 
-    /// Checks that the plan can work on `data`.
-    pub fn check(&self, data: &Dataset) -> Result<(), SpecError> {
+    /// Checks that the plan can work on `data`; returns how many splits it makes.
+    pub fn check(&self, data: &Dataset) -> Result<usize, SpecError> {
         let n = data.rows();
         let given = matches!(self.scheme, FoldScheme::Given { .. });
         if !given && self.k < 2 {
@@ -97,8 +97,9 @@ impl FoldPlan {
         if !given && needed > n {
             return Err(spec_error("folds.k", format!("{} folds need at least {needed} rows, the dataset has {n}", self.k)));
         }
+        let k = self.k as usize;
         match &self.scheme {
-            FoldScheme::Shuffled => Ok(()),
+            FoldScheme::Shuffled => Ok(k * self.repeats as usize),
             FoldScheme::Stratified => {
                 let Target::Classes { codes, labels } = &data.target else {
                     return Err(spec_error("folds.scheme", "stratified folds need a classify target; use shuffled"));
@@ -114,7 +115,7 @@ impl FoldPlan {
                         format!("{} stratified folds need every class in each fold, but class '{}' has only {rarest} rows", self.k, labels[c]),
                     ));
                 }
-                Ok(())
+                Ok(k * self.repeats as usize)
             }
             FoldScheme::Grouped { column } => {
                 let groups = group_ids(data, column, "folds.column")?;
@@ -122,16 +123,16 @@ impl FoldPlan {
                 if distinct < self.k as usize {
                     return Err(spec_error("folds.k", format!("{} folds need at least {} groups, column '{column}' has {distinct}", self.k, self.k)));
                 }
-                Ok(())
+                Ok(k * self.repeats as usize)
             }
-            FoldScheme::Forward { column } => time_order(data, column).map(|_| ()),
+            FoldScheme::Forward { column } => time_order(data, column).map(|_| k),
             FoldScheme::Given { column } => {
                 let ids = group_ids(data, column, "folds.column")?;
                 let distinct = ids.iter().max().map_or(0, |m| m + 1);
                 if distinct < 2 {
                     return Err(spec_error("folds.column", format!("column '{column}' holds one fold number only; given folds need at least two")));
                 }
-                Ok(())
+                Ok(distinct as usize)
             }
         }
     }

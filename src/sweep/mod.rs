@@ -10,6 +10,7 @@
 
 pub mod envelope;
 pub mod folds;
+pub mod memory;
 pub mod metrics;
 pub mod spec;
 
@@ -19,8 +20,9 @@ use rayon::prelude::*;
 
 pub use envelope::{Envelope, FoldScore, Stopping};
 pub use folds::{FoldPlan, FoldScheme, FoldSplit, Folds};
+pub use memory::RunSize;
 pub use metrics::Metric;
-pub use spec::{CheckedSpec, PickRule, Range, Setting, ShapingKey, SpecError, SweepSpec};
+pub use spec::{CheckedSpec, PickRule, Range, Setting, ShapingKey, SpecCaps, SpecError, SpecErrorKind, SweepSpec};
 
 use crate::data::{Dataset, Frame};
 use crate::tree::{fit, pruning_path, FitError, FitOptions, TrainSet, Tree};
@@ -126,9 +128,14 @@ pub struct SweepResult {
     pub model: Option<Tree>,
 }
 
-/// Checks the spec, assigns folds and expands the grid.
+/// Checks the spec (with its default caps), assigns folds and expands the grid.
 pub fn plan(data: &Dataset, spec: &SweepSpec) -> Result<Plan, SweepError> {
-    let checked = spec.check(data)?;
+    plan_with(data, spec, &spec.default_caps())
+}
+
+/// Checks the spec within `caps`, assigns folds and expands the grid.
+pub fn plan_with(data: &Dataset, spec: &SweepSpec, caps: &SpecCaps) -> Result<Plan, SweepError> {
+    let checked = spec.check_with(data, caps)?;
     let folds = checked.folds.assign(data, spec.seed)?;
     let features: Vec<_> = data.frame.features.iter().filter(|f| !folds.plan_columns.contains(&f.name)).cloned().collect();
     let frame = Frame::new(features).expect("a subset of valid columns");
@@ -142,11 +149,13 @@ pub fn plan(data: &Dataset, spec: &SweepSpec) -> Result<Plan, SweepError> {
     } else {
         vec![checked.prune_alpha.clone(); checked.keys.len()]
     };
-    let settings = checked.settings(&alphas_per_key);
-    let cap = spec.max_settings.unwrap_or(spec::DEFAULT_MAX_SETTINGS);
-    if settings.len() > cap {
-        return Err(spec::spec_error("settings", format!("the grid has {} settings, more than the cap of {cap}", settings.len())).into());
+    // Counted before the settings are made (path mode knows its α counts only now).
+    let n = alphas_per_key.iter().try_fold(0u128, |acc, a| spec::checked_product(&[checked.stopping_count(), a.len()]).and_then(|k| acc.checked_add(k)));
+    if n.is_none_or(|n| n > caps.max_settings as u128) {
+        let shown = n.map_or_else(|| "too many".to_string(), |n| n.to_string());
+        return Err(spec::cap_error("settings", format!("the grid has {shown} settings"), "max_settings", caps.max_settings as u64).into());
     }
+    let settings = checked.settings(&alphas_per_key);
     let units = (0..folds.splits.len()).flat_map(|s| (0..checked.keys.len()).map(move |k| (s, k))).collect();
     Ok(Plan { spec: checked, folds, settings, units, data })
 }

@@ -110,18 +110,58 @@ pub struct SpecError {
     /// Field path of the value at fault, such as `max_depth.values[2]` or `folds.k`.
     pub field: String,
     pub message: String,
+    pub kind: SpecErrorKind,
+}
+
+/// Whether a spec is wrong, or asks for more than a cap allows.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum SpecErrorKind {
+    Invalid,
+    /// More than the cap named (by its configuration key) allows; `limit` is its value.
+    OverCap { cap: &'static str, limit: u64 },
 }
 
 impl fmt::Display for SpecError {
     fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
-        write!(f, "{}: {}", self.field, self.message)
+        match self.kind {
+            SpecErrorKind::Invalid => write!(f, "{}: {}", self.field, self.message),
+            SpecErrorKind::OverCap { cap, limit } => write!(f, "{}: {}, more than the cap {cap} = {limit}", self.field, self.message),
+        }
     }
 }
 
 impl std::error::Error for SpecError {}
 
 pub(crate) fn spec_error(field: impl Into<String>, message: impl Into<String>) -> SpecError {
-    SpecError { field: field.into(), message: message.into() }
+    SpecError { field: field.into(), message: message.into(), kind: SpecErrorKind::Invalid }
+}
+
+/// A cap exceeded: `message` says how much was asked (the cap is appended when shown).
+pub(crate) fn cap_error(field: impl Into<String>, message: impl Into<String>, cap: &'static str, limit: u64) -> SpecError {
+    SpecError { field: field.into(), message: message.into(), kind: SpecErrorKind::OverCap { cap, limit } }
+}
+
+/// What one sweep may ask for at most. Every size computed from a spec is counted (with
+/// checked arithmetic) against these before anything of that size is made. The names in
+/// messages are the server's configuration keys.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub struct SpecCaps {
+    /// Settings in the grid (`max_settings`).
+    pub max_settings: usize,
+    /// Values one limit's range may give before duplicates are removed (`max_values_per_range`).
+    pub max_values_per_range: usize,
+    /// Folds of a plan (`k`, or the fold numbers of a `given` column) (`max_folds`).
+    pub max_folds: u32,
+    /// Repeats of a fold plan (`max_repeats`).
+    pub max_repeats: u32,
+    /// Work units: splits × shaping keys (`max_units_per_run`).
+    pub max_units: usize,
+}
+
+impl Default for SpecCaps {
+    fn default() -> Self {
+        SpecCaps { max_settings: DEFAULT_MAX_SETTINGS, max_values_per_range: 1_000, max_folds: 100, max_repeats: 20, max_units: 10_000 }
+    }
 }
 
 /// The values of one shaping key: the options that change which split a node takes.
@@ -159,11 +199,25 @@ pub struct CheckedSpec {
     pub min_gain: Vec<f64>,
     /// Explicit α values (empty in path mode, where each key gets its own).
     pub prune_alpha: Vec<f64>,
+    /// Training/validation splits the fold plan makes on the dataset.
+    pub splits: usize,
 }
 
 impl SweepSpec {
-    /// Checks the spec against the dataset it will run on.
+    /// Checks the spec against the dataset it will run on, with the default caps (and the
+    /// spec's own `max_settings`).
     pub fn check(&self, data: &Dataset) -> Result<CheckedSpec, SpecError> {
+        self.check_with(data, &self.default_caps())
+    }
+
+    /// The default caps, with the spec's own `max_settings` when it has one.
+    pub fn default_caps(&self) -> SpecCaps {
+        SpecCaps { max_settings: self.max_settings.unwrap_or(DEFAULT_MAX_SETTINGS), ..SpecCaps::default() }
+    }
+
+    /// Checks the spec against the dataset it will run on, within `caps`: no size is
+    /// made before it is counted and found within its cap.
+    pub fn check_with(&self, data: &Dataset, caps: &SpecCaps) -> Result<CheckedSpec, SpecError> {
         let task = self.task.unwrap_or(data.task());
         if task != data.task() {
             return Err(spec_error("task", format!("the target '{}' is read as {}, not {task}", data.target_name, data.task())));
@@ -175,37 +229,66 @@ impl SweepSpec {
         if metric.task() != task {
             return Err(spec_error("metric", format!("{} scores {} targets, this target is {task}", metric.as_str(), metric.task())));
         }
-        let criteria = dedup(if self.criteria.is_empty() {
+        let criteria = dedup_by(if self.criteria.is_empty() {
             vec![match task {
                 Task::Classify => Criterion::Gini,
                 Task::Regress => Criterion::SquaredError,
             }]
         } else {
             self.criteria.clone()
-        });
+        }, |c| *c);
         for (i, c) in criteria.iter().enumerate() {
             if c.task() != task {
                 return Err(spec_error(format!("criteria[{i}]"), format!("{} is for {} targets, this target is {task}", c.as_str(), c.task())));
             }
         }
-        let class_weights = dedup(if self.class_weights.is_empty() { vec![ClassWeight::None] } else { self.class_weights.clone() });
+        let class_weights = dedup_by(if self.class_weights.is_empty() { vec![ClassWeight::None] } else { self.class_weights.clone() }, |w| *w);
         if task == Task::Regress && class_weights.iter().any(|w| *w != ClassWeight::None) {
             return Err(spec_error("class_weights", "class weighting needs a classify target"));
         }
-        let max_depth = optional_counts("max_depth", &self.max_depth, 0)?;
-        let min_split_rows = counts("min_split_rows", &self.min_split_rows, 2, 2)?;
-        let min_leaf_rows = counts("min_leaf_rows", &self.min_leaf_rows, 1, 1)?;
-        let max_leaves = optional_counts("max_leaves", &self.max_leaves, 1)?;
-        let min_gain = reals("min_gain", &self.min_gain)?;
+        let cap = caps.max_values_per_range;
+        let max_depth = optional_counts("max_depth", &self.max_depth, 0, cap)?;
+        let min_split_rows = counts("min_split_rows", &self.min_split_rows, 2, 2, cap)?;
+        let min_leaf_rows = counts("min_leaf_rows", &self.min_leaf_rows, 1, 1, cap)?;
+        let max_leaves = optional_counts("max_leaves", &self.max_leaves, 1, cap)?;
+        let min_gain = reals("min_gain", &self.min_gain, cap)?;
         let prune_alpha = if self.prune_path {
             if self.prune_alpha.is_some() {
                 return Err(spec_error("prune_alpha", "give either a prune_alpha range or prune_path, not both"));
             }
             Vec::new()
         } else {
-            reals("prune_alpha", &self.prune_alpha)?
+            reals("prune_alpha", &self.prune_alpha, cap)?
         };
-        let mut keys = Vec::new();
+        // The grid's size, counted before any setting is made. In path mode the α count is
+        // known only after growth; count one per key here (the plan counts again).
+        let factors = [criteria.len(), class_weights.len(), min_leaf_rows.len(), max_depth.len(), min_split_rows.len(), max_leaves.len(), min_gain.len(), prune_alpha.len().max(1)];
+        let n = checked_product(&factors);
+        if n.is_none_or(|n| n > caps.max_settings as u128) {
+            let shown = n.map_or_else(|| "more than 2^128".to_string(), |n| n.to_string());
+            return Err(cap_error("settings", format!("the grid has {shown} settings"), "max_settings", caps.max_settings as u64));
+        }
+        let folds = match &self.folds {
+            Some(f) => f.clone(),
+            None => FoldPlan::default_for(task),
+        };
+        if folds.k > caps.max_folds {
+            return Err(cap_error("folds.k", format!("asks for {} folds", folds.k), "max_folds", caps.max_folds as u64));
+        }
+        if folds.repeats > caps.max_repeats {
+            return Err(cap_error("folds.repeats", format!("asks for {} repeats", folds.repeats), "max_repeats", caps.max_repeats as u64));
+        }
+        let splits = folds.check(data)?;
+        if matches!(folds.scheme, super::folds::FoldScheme::Given { .. }) && splits > caps.max_folds as usize {
+            return Err(cap_error("folds.column", format!("holds {splits} fold numbers"), "max_folds", caps.max_folds as u64));
+        }
+        let n_keys = criteria.len() * class_weights.len() * min_leaf_rows.len();
+        let units = checked_product(&[splits, n_keys]);
+        if units.is_none_or(|u| u > caps.max_units as u128) {
+            let shown = units.map_or_else(|| "too many".to_string(), |u| u.to_string());
+            return Err(cap_error("folds", format!("{splits} splits × {n_keys} shaping keys make {shown} work units"), "max_units_per_run", caps.max_units as u64));
+        }
+        let mut keys = Vec::with_capacity(n_keys);
         for &criterion in &criteria {
             for &class_weight in &class_weights {
                 for &min_leaf_rows in &min_leaf_rows {
@@ -213,18 +296,7 @@ impl SweepSpec {
                 }
             }
         }
-        let folds = match &self.folds {
-            Some(f) => f.clone(),
-            None => FoldPlan::default_for(task),
-        };
-        folds.check(data)?;
-        let checked = CheckedSpec { spec: self.clone(), task, metric, folds, keys, criteria, class_weights, min_leaf_rows, max_depth, min_split_rows, max_leaves, min_gain, prune_alpha };
-        let cap = self.max_settings.unwrap_or(DEFAULT_MAX_SETTINGS);
-        // In path mode the α count is known only after growth; count one per key here.
-        let n = checked.stopping_count() * checked.keys.len() * checked.prune_alpha.len().max(1);
-        if n > cap {
-            return Err(spec_error("settings", format!("the grid has {n} settings, more than the cap of {cap}")));
-        }
+        let checked = CheckedSpec { spec: self.clone(), task, metric, folds, keys, criteria, class_weights, min_leaf_rows, max_depth, min_split_rows, max_leaves, min_gain, prune_alpha, splits };
         Ok(checked)
     }
 }
@@ -278,41 +350,75 @@ impl CheckedSpec {
     }
 }
 
-/// Expands a range into real values, checking each.
-fn expand(field: &str, range: &Range) -> Result<Vec<Option<f64>>, SpecError> {
+/// The product of `factors`, `None` when it does not fit in a u128.
+pub fn checked_product(factors: &[usize]) -> Option<u128> {
+    factors.iter().try_fold(1u128, |acc, &f| acc.checked_mul(f as u128))
+}
+
+impl Range {
+    /// How many values the range gives, counted without making any. A span whose count is
+    /// not a finite number below 2^53 (such as `lin(0, 1e300, 1e-300)`) counts as
+    /// `u64::MAX`. Checks that the range's numbers are usable first.
+    pub fn count(&self, field: &str) -> Result<u64, SpecError> {
+        match self {
+            Range::Values(v) => {
+                if v.is_empty() {
+                    return Err(spec_error(format!("{field}.values"), "is empty"));
+                }
+                Ok(v.len() as u64)
+            }
+            Range::Span { from, to, step } => {
+                if !(from.is_finite() && to.is_finite() && step.is_finite()) {
+                    return Err(spec_error(format!("{field}.span"), "from, to and step must be finite numbers"));
+                }
+                if *step <= 0.0 {
+                    return Err(spec_error(format!("{field}.span.step"), format!("must be > 0, got {step}")));
+                }
+                if to < from {
+                    return Err(spec_error(format!("{field}.span"), format!("is inverted: from {from} is above to {to}")));
+                }
+                // (to − from) / step may overflow to infinity; 2^53 is where f64 stops
+                // counting whole numbers exactly.
+                let q = (to - from) / step + 1e-6;
+                if !q.is_finite() || q >= 9_007_199_254_740_992.0 {
+                    return Ok(u64::MAX);
+                }
+                Ok(q.floor() as u64 + 1)
+            }
+            Range::LogSpan { from, to, count } => {
+                if !(from.is_finite() && to.is_finite()) || *from <= 0.0 || *to <= 0.0 {
+                    return Err(spec_error(format!("{field}.log_span"), "from and to must be finite numbers > 0"));
+                }
+                if to < from {
+                    return Err(spec_error(format!("{field}.log_span"), format!("is inverted: from {from} is above to {to}")));
+                }
+                if *count == 0 {
+                    return Err(spec_error(format!("{field}.log_span.count"), "must be at least 1"));
+                }
+                Ok(*count as u64)
+            }
+        }
+    }
+}
+
+/// Expands a range into real values, checking each; the values are counted first and
+/// refused above `cap` before any is made.
+fn expand(field: &str, range: &Range, cap: usize) -> Result<Vec<Option<f64>>, SpecError> {
+    let n = range.count(field)?;
+    if n > cap as u64 {
+        let what = match range {
+            Range::Values(_) => format!("{field}.values"),
+            Range::Span { .. } => format!("{field}.span"),
+            Range::LogSpan { .. } => format!("{field}.log_span.count"),
+        };
+        let shown = if n == u64::MAX { "more than 2^53".to_string() } else { n.to_string() };
+        return Err(cap_error(what, format!("gives {shown} values"), "max_values_per_range", cap as u64));
+    }
+    let n = n as usize;
     let out: Vec<Option<f64>> = match range {
-        Range::Values(v) => {
-            if v.is_empty() {
-                return Err(spec_error(format!("{field}.values"), "is empty"));
-            }
-            v.clone()
-        }
-        Range::Span { from, to, step } => {
-            if !(from.is_finite() && to.is_finite() && step.is_finite()) {
-                return Err(spec_error(format!("{field}.span"), "from, to and step must be finite numbers"));
-            }
-            if *step <= 0.0 {
-                return Err(spec_error(format!("{field}.span.step"), format!("must be > 0, got {step}")));
-            }
-            if to < from {
-                return Err(spec_error(format!("{field}.span"), format!("is inverted: from {from} is above to {to}")));
-            }
-            let n = ((to - from) / step + 1e-6).floor() as usize + 1;
-            if n > 1_000_000 {
-                return Err(spec_error(format!("{field}.span"), format!("gives {n} values")));
-            }
-            (0..n).map(|i| Some(from + i as f64 * step)).collect()
-        }
+        Range::Values(v) => v.clone(),
+        Range::Span { from, step, .. } => (0..n).map(|i| Some(from + i as f64 * step)).collect(),
         Range::LogSpan { from, to, count } => {
-            if !(from.is_finite() && to.is_finite()) || *from <= 0.0 || *to <= 0.0 {
-                return Err(spec_error(format!("{field}.log_span"), "from and to must be finite numbers > 0"));
-            }
-            if to < from {
-                return Err(spec_error(format!("{field}.log_span"), format!("is inverted: from {from} is above to {to}")));
-            }
-            if *count == 0 {
-                return Err(spec_error(format!("{field}.log_span.count"), "must be at least 1"));
-            }
             if *count == 1 {
                 vec![Some(*from)]
             } else {
@@ -336,14 +442,19 @@ fn expand(field: &str, range: &Range) -> Result<Vec<Option<f64>>, SpecError> {
     Ok(out)
 }
 
-fn dedup<T: PartialEq + Clone>(v: Vec<T>) -> Vec<T> {
-    let mut out: Vec<T> = Vec::with_capacity(v.len());
-    for x in v {
-        if !out.contains(&x) {
-            out.push(x);
-        }
+/// Keeps the first of each run of equal keys, in order; linear in the length.
+fn dedup_by<T, K: std::hash::Hash + Eq>(v: Vec<T>, key: impl Fn(&T) -> K) -> Vec<T> {
+    let mut seen = std::collections::HashSet::with_capacity(v.len());
+    v.into_iter().filter(|x| seen.insert(key(x))).collect()
+}
+
+/// A hashable stand-in for a finite f64 that equal values share (0.0 and −0.0 included).
+fn real_key(x: f64) -> u64 {
+    if x == 0.0 {
+        0
+    } else {
+        x.to_bits()
     }
-    out
 }
 
 /// Whole-number limit values (rounded to the nearest whole number from a span), each `>= min`.
@@ -358,39 +469,39 @@ fn to_count(field: &str, i: usize, x: f64, min: u32) -> Result<u32, SpecError> {
     Ok(r as u32)
 }
 
-fn counts(field: &str, range: &Option<Range>, min: u32, default: u32) -> Result<Vec<u32>, SpecError> {
+fn counts(field: &str, range: &Option<Range>, min: u32, default: u32, cap: usize) -> Result<Vec<u32>, SpecError> {
     let Some(range) = range else { return Ok(vec![default]) };
     let mut out = Vec::new();
-    for (i, v) in expand(field, range)?.into_iter().enumerate() {
+    for (i, v) in expand(field, range, cap)?.into_iter().enumerate() {
         let Some(x) = v else { return Err(spec_error(format!("{field}.values[{i}]"), "cannot be 'no limit'")) };
         out.push(to_count(field, i, x, min)?);
     }
-    Ok(dedup(out))
+    Ok(dedup_by(out, |c| *c))
 }
 
-fn optional_counts(field: &str, range: &Option<Range>, min: u32) -> Result<Vec<Option<u32>>, SpecError> {
+fn optional_counts(field: &str, range: &Option<Range>, min: u32, cap: usize) -> Result<Vec<Option<u32>>, SpecError> {
     let Some(range) = range else { return Ok(vec![None]) };
     let mut out = Vec::new();
-    for (i, v) in expand(field, range)?.into_iter().enumerate() {
+    for (i, v) in expand(field, range, cap)?.into_iter().enumerate() {
         out.push(match v {
             None => None,
             Some(x) => Some(to_count(field, i, x, min)?),
         });
     }
-    Ok(dedup(out))
+    Ok(dedup_by(out, |c| *c))
 }
 
-fn reals(field: &str, range: &Option<Range>) -> Result<Vec<f64>, SpecError> {
+fn reals(field: &str, range: &Option<Range>, cap: usize) -> Result<Vec<f64>, SpecError> {
     let Some(range) = range else { return Ok(vec![0.0]) };
     let mut out = Vec::new();
-    for (i, v) in expand(field, range)?.into_iter().enumerate() {
+    for (i, v) in expand(field, range, cap)?.into_iter().enumerate() {
         let Some(x) = v else { return Err(spec_error(format!("{field}.values[{i}]"), "cannot be 'no limit'; use 0")) };
         if x < 0.0 {
             return Err(spec_error(format!("{field}.values[{i}]"), format!("must be >= 0, got {x}")));
         }
         out.push(x);
     }
-    Ok(dedup(out))
+    Ok(dedup_by(out, |x| real_key(*x)))
 }
 
 #[cfg(test)]
@@ -455,5 +566,87 @@ mod tests {
         assert_eq!(field_of(SweepSpec { folds: folds(FoldScheme::Given { column: "same".into() }, 0), ..Default::default() }, t), "folds.column");
         assert_eq!(field_of(SweepSpec { folds: folds(FoldScheme::Grouped { column: "same".into() }, 2), ..Default::default() }, t), "folds.k");
         assert_eq!(field_of(SweepSpec { folds: folds(FoldScheme::Grouped { column: "nope".into() }, 2), ..Default::default() }, t), "folds.column");
+    }
+
+    fn over_cap(spec: SweepSpec, caps: &SpecCaps) -> (String, &'static str, String) {
+        let e = spec.check_with(&data(Task::Classify), caps).unwrap_err();
+        match e.kind {
+            SpecErrorKind::OverCap { cap, .. } => (e.field.clone(), cap, e.to_string()),
+            SpecErrorKind::Invalid => panic!("not a cap error: {e}"),
+        }
+    }
+
+    #[test]
+    fn a_grid_whose_size_overflows_u64_is_refused() {
+        // 2048 × 2048 × 2048 × 2048 × 1024 × 1024 = 2^64 settings: a u64 product wraps to 0.
+        let span = |from: f64, n: f64| Some(Range::Span { from, to: from + n - 1.0, step: 1.0 });
+        let spec = SweepSpec {
+            max_depth: span(0.0, 2048.0),
+            min_split_rows: span(2.0, 2048.0),
+            max_leaves: span(1.0, 2048.0),
+            min_gain: span(0.0, 2048.0),
+            min_leaf_rows: span(1.0, 1024.0),
+            prune_alpha: span(0.0, 1024.0),
+            ..SweepSpec::default()
+        };
+        assert_eq!(2048u64.wrapping_mul(2048).wrapping_mul(2048).wrapping_mul(2048).wrapping_mul(1024).wrapping_mul(1024), 0);
+        let caps = SpecCaps { max_values_per_range: 4096, ..SpecCaps::default() };
+        let (field, cap, text) = over_cap(spec.clone(), &caps);
+        assert_eq!((field.as_str(), cap), ("settings", "max_settings"));
+        assert!(text.contains("18446744073709551616 settings"), "{text}");
+        // With the default caps each range is already over the cap on values.
+        let (field, cap, _) = over_cap(spec, &SpecCaps::default());
+        assert_eq!((field.as_str(), cap), ("max_depth.span", "max_values_per_range"));
+        assert_eq!(checked_product(&[usize::MAX, usize::MAX, 2]), None);
+        assert_eq!(checked_product(&[3, 4]), Some(12));
+    }
+
+    #[test]
+    fn spans_are_counted_before_they_are_made() {
+        let cases = [
+            Range::Span { from: 0.0, to: 10.0, step: 1.0 },
+            Range::Span { from: 0.0, to: 1.0, step: 0.1 },
+            Range::Span { from: 2.0, to: 20.0, step: 6.0 },
+            Range::Span { from: 0.5, to: 0.5, step: 3.0 },
+            Range::Span { from: 1.0, to: 2.0, step: 0.3 },
+            Range::LogSpan { from: 0.001, to: 10.0, count: 9 },
+            Range::Values(vec![Some(1.0), None, Some(1.0)]),
+        ];
+        for r in cases {
+            let counted = r.count("f").unwrap();
+            assert_eq!(counted as usize, expand("f", &r, 1_000).unwrap().len(), "{r:?}");
+        }
+        // lin(0, 1e300, 1e-300): (to − from) / step overflows; counted, never made.
+        let absurd = Range::Span { from: 0.0, to: 1e300, step: 1e-300 };
+        assert_eq!(absurd.count("min_gain").unwrap(), u64::MAX);
+        let (field, cap, text) = over_cap(SweepSpec { min_gain: Some(absurd), ..SweepSpec::default() }, &SpecCaps::default());
+        assert_eq!((field.as_str(), cap), ("min_gain.span", "max_values_per_range"));
+        assert!(text.contains("more than 2^53 values") && text.contains("= 1000"), "{text}");
+        // 300,000 values of max_depth: refused by their count.
+        let (field, _, text) = over_cap(SweepSpec { max_depth: Some(Range::Span { from: 1.0, to: 300_000.0, step: 1.0 }), ..SweepSpec::default() }, &SpecCaps::default());
+        assert_eq!(field, "max_depth.span");
+        assert!(text.contains("gives 300000 values"), "{text}");
+        let (field, _, _) = over_cap(SweepSpec { min_gain: Some(Range::LogSpan { from: 1e-9, to: 1.0, count: 4_000_000_000 }), ..SweepSpec::default() }, &SpecCaps::default());
+        assert_eq!(field, "min_gain.log_span.count");
+        // At the cap passes; duplicates count toward it (they are counted before removal).
+        let caps = SpecCaps { max_values_per_range: 5, ..SpecCaps::default() };
+        let at = SweepSpec { max_depth: Some(Range::Span { from: 1.0, to: 5.0, step: 1.0 }), ..SweepSpec::default() };
+        assert_eq!(at.check_with(&data(Task::Classify), &caps).unwrap().max_depth.len(), 5);
+        let above = SweepSpec { max_depth: Some(Range::Values(vec![Some(1.0); 6])), ..SweepSpec::default() };
+        assert_eq!(over_cap(above, &caps).0, "max_depth.values");
+    }
+
+    #[test]
+    fn folds_repeats_and_units_are_capped() {
+        let caps = SpecCaps { max_folds: 4, max_repeats: 3, max_units: 20, ..SpecCaps::default() };
+        let plan = |k, repeats| Some(FoldPlan { scheme: FoldScheme::Shuffled, k, repeats });
+        assert_eq!(over_cap(SweepSpec { folds: plan(5, 1), ..Default::default() }, &caps).1, "max_folds");
+        assert_eq!(over_cap(SweepSpec { folds: plan(2, 4_000_000_000), ..Default::default() }, &caps).1, "max_repeats");
+        // 4 folds × 3 repeats = 12 splits; × 2 shaping keys = 24 units > 20.
+        let keys = Some(Range::Values(vec![Some(1.0), Some(2.0)]));
+        let (field, cap, _) = over_cap(SweepSpec { folds: plan(4, 3), min_leaf_rows: keys.clone(), ..Default::default() }, &caps);
+        assert_eq!((field.as_str(), cap), ("folds", "max_units_per_run"));
+        let ok = SweepSpec { folds: plan(4, 2), min_leaf_rows: keys, ..Default::default() }.check_with(&data(Task::Classify), &caps).unwrap();
+        assert_eq!((ok.splits, ok.keys.len()), (8, 2));
     }
 }

@@ -156,6 +156,35 @@ async fn a_busy_previous_run_skips_the_fire_and_an_outage_is_caught_up_once() {
     assert!(f[0].run_id.is_empty());
 }
 
+/// A fire when the queue holds max_queued_runs runs is recorded as skipped, with the cap
+/// named, and starts no run; once there is room the next fire starts one.
+#[tokio::test]
+async fn a_fire_over_the_queue_cap_is_skipped() {
+    let clock = TestClock::new(ms("2027-05-01T00:00:00Z"));
+    let shared = Shared::with_clock(Store::open_temporary().unwrap(), Config { max_queued_runs: 1, ..config() }, clock.clone()).unwrap();
+    let api = Api { shared };
+    let iris = put(&api, iris_head(150)).await;
+    let s = api.create_schedule(Request::new(request("0 3 * * *", "UTC"))).await.unwrap().into_inner();
+    // One run fills the queue (there is no worker to take it).
+    let other = api.queue_run(pb::StartRunRequest { dataset_id: iris.id.clone(), spec: Some(template()), ..Default::default() }).await.unwrap();
+    let e = api.queue_run(pb::StartRunRequest { dataset_id: iris.id.clone(), spec: Some(template()), ..Default::default() }).await.unwrap_err();
+    assert_eq!(e.code(), Code::ResourceExhausted, "{e:?}");
+    assert!(e.message().contains("max_queued_runs = 1"), "{e:?}");
+    clock.set(ms("2027-05-01T03:00:00Z"));
+    pollard::scheduler::tick(&api.shared).await;
+    let f = fires(&api, &s.id).await;
+    assert_eq!(f.len(), 1, "{f:?}");
+    assert_eq!(outcome(&f[0]), pb::FireOutcome::SkippedQueueFull);
+    assert!(f[0].run_id.is_empty() && f[0].detail.contains("max_queued_runs = 1"), "{:?}", f[0]);
+    assert_eq!(api.shared.store.queued_count(), 1);
+    // Room again: the next day's fire starts its run.
+    cancel(&api, &other.id);
+    clock.set(ms("2027-05-02T03:00:00Z"));
+    pollard::scheduler::tick(&api.shared).await;
+    let f = fires(&api, &s.id).await;
+    assert_eq!(outcome(&f[1]), pb::FireOutcome::Started);
+}
+
 #[tokio::test]
 async fn skip_unchanged_waits_for_a_new_version() {
     let (api, clock) = quiet("2027-05-01T00:00:00Z");
@@ -252,13 +281,17 @@ async fn schedule_calls_check_their_arguments() {
         assert!(e.message().contains(needle), "{needle}: {}", e.message());
     }
     for e in [
-        api.get_schedule(Request::new(pb::GetScheduleRequest { id: "sch_nope".into() })).await.unwrap_err(),
-        api.pause_schedule(Request::new(pb::PauseScheduleRequest { id: "sch_nope".into() })).await.unwrap_err(),
-        api.delete_schedule(Request::new(pb::DeleteScheduleRequest { id: "sch_nope".into() })).await.unwrap_err(),
-        api.list_fires(Request::new(pb::ListFiresRequest { schedule_id: "sch_nope".into(), ..Default::default() })).await.unwrap_err(),
+        api.get_schedule(Request::new(pb::GetScheduleRequest { id: "sch_00000000000000000000000000000000".into() })).await.unwrap_err(),
+        api.pause_schedule(Request::new(pb::PauseScheduleRequest { id: "sch_00000000000000000000000000000000".into() })).await.unwrap_err(),
+        api.delete_schedule(Request::new(pb::DeleteScheduleRequest { id: "sch_00000000000000000000000000000000".into() })).await.unwrap_err(),
+        api.list_fires(Request::new(pb::ListFiresRequest { schedule_id: "sch_00000000000000000000000000000000".into(), ..Default::default() })).await.unwrap_err(),
     ] {
         assert_eq!(e.code(), Code::NotFound, "{e:?}");
     }
+    // An id that cannot be a schedule id is refused by its shape.
+    let e = api.get_schedule(Request::new(pb::GetScheduleRequest { id: "sch_nope".into() })).await.unwrap_err();
+    assert_eq!(e.code(), Code::InvalidArgument, "{e:?}");
+    assert!(e.message().contains("not a schedule id"), "{e:?}");
 }
 
 // ------------------------------------------------------------------ with a server

@@ -1,0 +1,107 @@
+//! How much memory a run needs, estimated before it starts from the sizes the checked spec
+//! and the dataset fix. The terms follow the data structures a run holds (n rows, f
+//! features, w = classes, or 1 for regression; s splits; r repeats; S settings; u units in
+//! flight, at most the CPU pool's threads):
+//!
+//! | held | bytes | where |
+//! | --- | --- | --- |
+//! | the CSV text while it is parsed | `csv` | `worker::load_dataset` |
+//! | the dataset, and the plan's copy without the fold column | 2 · (4·n·f + 8·n) | `data::Frame` (f32 or u32 codes per cell), `Target` |
+//! | fold assignments and the splits' row lists | 4·n·r + 4·n·s | [`super::Folds`] |
+//! | per unit in flight: fit-local rows, weights, targets | 28·n | `tree::grow::Prepared` |
+//! | … the presorted columns (value, row) | 8·n·f | `Grower::sorted` |
+//! | … partition buffers | 21·n | `go_left`, `scratch`, `left_buf`, `right_buf` |
+//! | … the envelope tree, at most 2n nodes, each with stats and value | 2n · (176 + 16·w) | `Tree`, `NodeStats` |
+//! | … rows aggregated per leaf, both sides | 4·n + 16·n + 8·n·w | `envelope::LeafRows` |
+//! | unit results kept for scoring, twice (the run's copy and the collected one) | 2 · 40·S·s | [`super::UnitResult`] |
+//! | the summary: per setting and split, then per setting | 40·S·s + 8·S·s + 256·S | [`super::summarize`] |
+//!
+//! It is an estimate of the largest sizes (a tree with a node per row, all units in flight
+//! at once), not a measurement; allocator overhead is not counted.
+
+use super::spec::CheckedSpec;
+use crate::data::{Dataset, Target};
+
+/// What the estimate is made from.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub struct RunSize {
+    pub csv_bytes: u64,
+    pub rows: u64,
+    pub features: u64,
+    /// Classes, or 1 for regression.
+    pub width: u64,
+    pub repeats: u64,
+    pub splits: u64,
+    pub settings: u64,
+    /// Units scored at the same time.
+    pub units_in_flight: u64,
+}
+
+impl RunSize {
+    /// The sizes of a checked sweep on `data` run by `threads` threads. In path mode the α
+    /// count is known only after growth: the settings count is then its upper bound (one α
+    /// per row, at most `max_settings`).
+    pub fn of(data: &Dataset, spec: &CheckedSpec, csv_bytes: u64, threads: usize, max_settings: usize) -> RunSize {
+        let rows = data.rows() as u64;
+        let keys = spec.keys.len() as u64;
+        let stopping = spec.stopping_count() as u64;
+        let alphas = if spec.spec.prune_path { rows.max(1) } else { spec.prune_alpha.len().max(1) as u64 };
+        let settings = stopping.saturating_mul(keys).saturating_mul(alphas).min(max_settings as u64);
+        let units = (spec.splits as u64).saturating_mul(keys);
+        RunSize {
+            csv_bytes,
+            rows,
+            features: data.frame.features.len() as u64,
+            width: match &data.target {
+                Target::Classes { labels, .. } => labels.len().max(1) as u64,
+                Target::Values(_) => 1,
+            },
+            repeats: spec.folds.repeats as u64,
+            splits: spec.splits as u64,
+            settings,
+            units_in_flight: units.min(threads.max(1) as u64),
+        }
+    }
+
+    /// The estimate in bytes (saturating: an absurd size reads as `u64::MAX`).
+    pub fn bytes(&self) -> u64 {
+        let RunSize { csv_bytes, rows: n, features: f, width: w, repeats: r, splits: s, settings, units_in_flight: u } = *self;
+        let sum = |terms: &[u64]| terms.iter().fold(0u64, |a, &t| a.saturating_add(t));
+        let mul = |factors: &[u64]| factors.iter().fold(1u64, |a, &t| a.saturating_mul(t));
+        let dataset = mul(&[2, sum(&[mul(&[4, n, f]), mul(&[8, n])])]);
+        let folds = sum(&[mul(&[4, n, r]), mul(&[4, n, s])]);
+        let per_unit = sum(&[mul(&[28, n]), mul(&[8, n, f]), mul(&[21, n]), mul(&[2, n, sum(&[176, mul(&[16, w])])]), mul(&[20, n]), mul(&[8, n, w])]);
+        let results = sum(&[mul(&[2, 40, settings, s]), mul(&[48, settings, s]), mul(&[256, settings])]);
+        sum(&[csv_bytes, dataset, folds, mul(&[u, per_unit]), results])
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn size() -> RunSize {
+        RunSize { csv_bytes: 1000, rows: 150, features: 4, width: 3, repeats: 1, splits: 5, settings: 10, units_in_flight: 1 }
+    }
+
+    #[test]
+    fn grows_with_every_size_and_saturates() {
+        let base = size().bytes();
+        assert!(base > 0);
+        for bigger in [
+            RunSize { rows: 300, ..size() },
+            RunSize { features: 8, ..size() },
+            RunSize { width: 6, ..size() },
+            RunSize { splits: 10, ..size() },
+            RunSize { settings: 20, ..size() },
+            RunSize { units_in_flight: 2, ..size() },
+            RunSize { csv_bytes: 2000, ..size() },
+        ] {
+            assert!(bigger.bytes() > base, "{bigger:?}");
+        }
+        // Units in flight each hold their own buffers: two hold more than one, less than twice the whole.
+        let two = RunSize { units_in_flight: 2, ..size() }.bytes();
+        assert!(two < 2 * base);
+        assert_eq!(RunSize { rows: u64::MAX, ..size() }.bytes(), u64::MAX);
+    }
+}
