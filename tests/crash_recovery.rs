@@ -412,7 +412,6 @@ fn a_run_whose_resume_fails_ends_failed_and_the_server_stays_up() {
 /// run whose `max_depth` is a log span of 4,294,967,295 values. The resume must end the run
 /// `failed` with the reason and keep serving, not take the process down at every start.
 #[test]
-#[ignore = "crash loop at resume (issue 10 items 1, 3, 5): worker::execute_blocking calls sweep::plan, whose spec check expands a log_span with no cap on its count (a Vec of 4.3e9 values), and the allocation aborts the process at every start; waits on the caps in sweep/spec.rs and the resume guard in worker.rs"]
 fn a_run_that_cannot_be_planned_at_resume_ends_failed_and_the_server_stays_up() {
     let mut server = Serve::start_with(serve_options());
     let rt = runtime();

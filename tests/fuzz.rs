@@ -359,8 +359,8 @@ proptest! {
     }
 }
 
-/// Whether every range of a decoded spec is of a size today's check handles (see the
-/// ignored tests below): spans of at most 10,000 values, log spans of at most 10,000.
+/// Whether every range of a decoded spec is small enough for the many-case targets (the
+/// wild-size target below takes any size): spans of at most 10,000 values, log spans of at most 10,000.
 fn spec_sizes_are_small(s: &pb::SweepSpec) -> bool {
     [&s.max_depth, &s.min_split_rows, &s.min_leaf_rows, &s.max_leaves, &s.min_gain, &s.prune_alpha].iter().all(|r| match r.as_ref().and_then(|r| r.kind.as_ref()) {
         Some(pb::limit_range::Kind::Span(p)) => !(p.step > 0.0 && (p.to - p.from) / p.step > 1e4),
@@ -375,7 +375,6 @@ proptest! {
     /// Any sizes: returns Ok or Err, never panics, never aborts, finishes, and never accepts a
     /// grid past the cap.
     #[test]
-    #[ignore = "waits on the caps in sweep/spec.rs (issue 10 items 1, 4, 5): a log_span count near u32::MAX aborts the process on a 68 GB allocation, spans are expanded and deduplicated in quadratic time before their count is capped (the issue measured 25 s for 300,000 values), and grid sizes that overflow usize pass the cap; see the plain tests below"]
     fn spec_conversion_takes_wild_specs_of_any_size(wire in wild_spec(wild_range())) {
         check_spec(&wire, iris());
     }
@@ -510,7 +509,6 @@ fn spec_with(max_depth: Option<pb::LimitRange>) -> pb::SweepSpec {
 }
 
 #[test]
-#[ignore = "aborts the process today (issue 10 item 5): sweep/spec.rs expands a log_span into a Vec before counting it, and 4,294,967,295 values need 68 GB; waits on the caps in sweep/spec.rs"]
 fn a_log_span_of_u32_max_values_is_refused_not_allocated() {
     let wire = spec_with(Some(pb::LimitRange { kind: Some(pb::limit_range::Kind::LogSpan(pb::LogSpan { from: 1.0, to: 1e9, count: u32::MAX })) }));
     let spec = convert::spec_from(&wire, Task::Classify).unwrap();
@@ -519,7 +517,6 @@ fn a_log_span_of_u32_max_values_is_refused_not_allocated() {
 }
 
 #[test]
-#[ignore = "accepted today (issue 10 item 1): the grid size is multiplied without checked arithmetic and 2^64 settings wrap to 0, under the cap; waits on the caps in sweep/spec.rs"]
 fn a_grid_of_two_to_the_64_settings_is_refused() {
     let span = |from: f64, to: f64| Some(pb::LimitRange { kind: Some(pb::limit_range::Kind::Span(pb::Span { from, to, step: 1.0 })) });
     let wire = pb::SweepSpec {
@@ -534,7 +531,8 @@ fn a_grid_of_two_to_the_64_settings_is_refused() {
     let spec = convert::spec_from(&wire, Task::Classify).unwrap();
     match (SweepSpec { max_settings: Some(CAP), ..spec }).check(iris()) {
         Ok(c) => panic!("accepted a grid of {} settings", grid_size(&c)),
-        Err(e) => assert_eq!(e.field, "settings", "{e}"),
+        // Refused by the grid's checked size, or earlier by the cap on values per range.
+        Err(e) => assert!(e.field == "settings" || e.field.ends_with(".span"), "{e}"),
     }
 }
 

@@ -297,7 +297,10 @@ fn bad_sweep_requests_are_refused_by_field() {
     let r = start(&f, pb::SweepSpec { folds: Some(pb::FoldPlan { scheme: "grouped".into(), k: 3, ..Default::default() }), ..Default::default() });
     f.refused("a grouped plan without a column", r, Code::InvalidArgument, &["spec.folds.column"]);
     let r = start(&f, pb::SweepSpec { folds: Some(pb::FoldPlan { k: 1000, ..Default::default() }), ..Default::default() });
-    f.refused("more folds than rows", r, Code::InvalidArgument, &["folds.k", "1000"]);
+    f.refused("more folds than the cap", r, Code::ResourceExhausted, &["folds.k", "1000", "max_folds"]);
+    // Within the cap (100) but more folds than a class has rows (iris: 50 per class).
+    let r = start(&f, pb::SweepSpec { folds: Some(pb::FoldPlan { k: 60, ..Default::default() }), ..Default::default() });
+    f.refused("more folds than a class has rows", r, Code::InvalidArgument, &["folds.k", "60"]);
     let span = pb::LimitRange { kind: Some(pb::limit_range::Kind::Span(pb::Span { from: 5.0, to: 1.0, step: 1.0 })) };
     let r = start(&f, pb::SweepSpec { max_depth: Some(span), ..Default::default() });
     f.refused("an inverted span", r, Code::InvalidArgument, &["spec.max_depth.span"]);

@@ -85,7 +85,7 @@ fn quiet(start: &str) -> (Api, Arc<TestClock>) {
 }
 
 async fn put(api: &Api, bytes: Vec<u8>) -> pb::DatasetInfo {
-    api.store_dataset("iris".into(), "target".into(), vec![], bytes).await.unwrap()
+    api.store_dataset("iris".into(), "target".into(), vec![], pollard::rpc::datasets::Bytes::Memory(bytes)).await.unwrap()
 }
 
 async fn fires(api: &Api, id: &str) -> Vec<pb::Fire> {
