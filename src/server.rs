@@ -8,6 +8,7 @@ use tokio::net::TcpListener;
 use tokio_stream::wrappers::TcpListenerStream;
 use tracing::info;
 
+use crate::access::{self, layer::AuthLayer, Access};
 use crate::clock::{Clock, SystemClock};
 use crate::config::Config;
 use crate::scheduler;
@@ -28,8 +29,10 @@ pub async fn run(listener: TcpListener, config: Config, store: Store, shutdown: 
 
 /// [`run`] with a given clock (tests move a [`crate::clock::TestClock`] by hand).
 pub async fn run_with_clock(listener: TcpListener, config: Config, store: Store, clock: Arc<dyn Clock>, shutdown: impl Future<Output = ()> + Send + 'static) -> Result<(), String> {
-    let shared = Shared::with_clock(store, config, clock)?;
     let addr = listener.local_addr().map_err(|e| e.to_string())?;
+    let mut access = Access::load(&config.access, addr)?;
+    let shared = Shared::with_clock(store, config, clock)?;
+    access.spawn_watcher(shared.shutdown.subscribe());
     let mut workers = Vec::new();
     worker::resume_running(shared.clone()).await;
     for _ in 0..shared.config.concurrent_runs {
@@ -41,11 +44,11 @@ pub async fn run_with_clock(listener: TcpListener, config: Config, store: Store,
     for name in SERVICES {
         health_reporter.set_service_status(name, tonic_health::ServingStatus::Serving).await;
     }
-    let reflection = tonic_reflection::server::Builder::configure()
-        .register_encoded_file_descriptor_set(pb::DESCRIPTOR)
-        .build_v1()
-        .map_err(|e| format!("reflection: {e}"))?;
-    info!(%addr, data = %shared.config.data_dir.display(), "pollard serving");
+    let reflection = match shared.config.access.reflection {
+        true => Some(tonic_reflection::server::Builder::configure().register_encoded_file_descriptor_set(pb::DESCRIPTOR).build_v1().map_err(|e| format!("reflection: {e}"))?),
+        false => None,
+    };
+    info!(%addr, data = %shared.config.data_dir.display(), tls = access.tls.is_some(), tokens = access.gate.needs_tokens(), "pollard serving");
     let stop = {
         let shared = shared.clone();
         async move {
@@ -58,16 +61,22 @@ pub async fn run_with_clock(listener: TcpListener, config: Config, store: Store,
             let _ = shared.shutdown.send(true);
         }
     };
-    let served = tonic::transport::Server::builder()
+    let router = tonic::transport::Server::builder()
+        .layer(AuthLayer::new(access.gate.clone()))
         .add_service(health)
-        .add_service(reflection)
+        .add_optional_service(reflection)
         .add_service(pb::datasets_server::DatasetsServer::new(api.clone()).max_decoding_message_size(message_limit(&shared)))
         .add_service(pb::runs_server::RunsServer::new(api.clone()))
         .add_service(pb::schedules_server::SchedulesServer::new(api.clone()))
         .add_service(pb::models_server::ModelsServer::new(api.clone()).max_decoding_message_size(message_limit(&shared)))
-        .serve_with_incoming_shutdown(TcpListenerStream::new(listener), stop)
-        .await
-        .map_err(|e| format!("server: {e}"));
+        ;
+    // With TLS, connections come through our accept loop (which swaps certificates on
+    // reload); a connection that is not TLS never reaches the router.
+    let served = match access.tls.clone() {
+        Some(tls) => router.serve_with_incoming_shutdown(access::tls::incoming(listener, tls), stop).await,
+        None => router.serve_with_incoming_shutdown(TcpListenerStream::new(listener), stop).await,
+    }
+    .map_err(|e| format!("server: {e}"));
     drain(&shared, workers).await;
     served
 }

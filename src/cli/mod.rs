@@ -109,6 +109,9 @@ pub struct ServeArgs {
     /// TOML configuration file.
     #[arg(long)]
     pub config: Option<PathBuf>,
+    /// Serve without tokens on a non-loopback address: every caller is an admin.
+    #[arg(long)]
+    pub allow_unauthenticated: bool,
 }
 
 #[derive(Args, Debug)]
@@ -268,9 +271,16 @@ fn folds(a: FoldsArgs) -> Result<(), String> {
 }
 
 fn serve(a: ServeArgs) -> Result<(), String> {
-    let flags = crate::config::Flags { config_file: a.config, listen: a.listen, data_dir: a.data };
+    let flags = crate::config::Flags { config_file: a.config, listen: a.listen, data_dir: a.data, allow_unauthenticated: a.allow_unauthenticated };
     let config = crate::config::Config::load(&flags, &|k| std::env::var(k).ok())?;
     init_logging(&config);
+    // The store is owner-only whatever the umask: new files 0600, directories 0700.
+    #[cfg(unix)]
+    // SAFETY: umask only sets the process's file-creation mask; no thread has started yet.
+    unsafe {
+        libc::umask(0o077);
+    }
+    crate::access::secure_dir(&config.data_dir)?;
     let runtime = tokio::runtime::Builder::new_multi_thread().enable_all().build().map_err(|e| e.to_string())?;
     runtime.block_on(async move {
         let store = crate::store::Store::open(&config.data_dir).map_err(|e| format!("{}: {e}", config.data_dir.display()))?;
