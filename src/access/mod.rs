@@ -223,15 +223,9 @@ impl Access {
                 gate
             }
         };
-        if !gate.needs_tokens() {
-            if !addr.ip().is_loopback() && !config.allow_unauthenticated {
-                return Err(format!(
-                    "refusing to serve on {addr} without tokens: anyone who reaches the port could read, cancel and delete everything. Set tokens_file, or listen on a loopback address, or set allow_unauthenticated = true (--allow-unauthenticated) to serve every caller as admin"
-                ));
-            }
-            if !addr.ip().is_loopback() {
-                tracing::warn!(%addr, "serving without tokens on a non-loopback address (allow_unauthenticated): every caller is an admin");
-            }
+        check_open(config, addr)?;
+        if !gate.needs_tokens() && !addr.ip().is_loopback() {
+            tracing::warn!(%addr, "serving without tokens on a non-loopback address (allow_unauthenticated): every caller is an admin");
         }
         let tls = match (&config.tls_cert_file, &config.tls_key_file) {
             (Some(cert), Some(key)) => {
@@ -249,6 +243,16 @@ impl Access {
         let sources = std::mem::take(&mut self.sources);
         tokio::spawn(watch::watch(sources, shutdown));
     }
+}
+
+/// The startup guard: no tokens on a non-loopback address only with `allow_unauthenticated`.
+pub fn check_open(config: &AccessConfig, addr: SocketAddr) -> Result<(), String> {
+    if config.tokens_file.is_none() && !addr.ip().is_loopback() && !config.allow_unauthenticated {
+        return Err(format!(
+            "refusing to serve on {addr} without tokens: anyone who reaches the port could read, cancel and delete everything. Set tokens_file, or listen on a loopback address, or set allow_unauthenticated = true (--allow-unauthenticated) to serve every caller as admin"
+        ));
+    }
+    Ok(())
 }
 
 /// Makes the data directory and everything in it owner-only (0700 directories, 0600
