@@ -95,12 +95,28 @@ pub async fn connect(remote: &Remote) -> Result<Conn, String> {
         None => None,
         Some(t) => Some(format!("Bearer {t}").parse().map_err(|_| "--token: a token is printable ASCII without spaces".to_string())?),
     };
-    let channel = endpoint.connect().await.map_err(|e| format!("cannot reach the pollard server at {server} ({}); start one with `pollard serve` or set --server", with_causes(&e)))?;
+    // On a runtime thread (see [`block_sigpipe`]): the TLS handshake writes to the socket.
+    let connecting = tokio::spawn(async move { endpoint.connect().await });
+    let channel = connecting.await.map_err(|e| e.to_string())?.map_err(|e| format!("cannot reach the pollard server at {server} ({}); start one with `pollard serve` or set --server", with_causes(&e)))?;
     Ok(InterceptedService::new(channel, Bearer(bearer)))
 }
 
 fn runtime() -> Result<tokio::runtime::Runtime, String> {
-    tokio::runtime::Builder::new_multi_thread().worker_threads(2).enable_all().build().map_err(|e| e.to_string())
+    tokio::runtime::Builder::new_multi_thread().worker_threads(2).on_thread_start(block_sigpipe).enable_all().build().map_err(|e| e.to_string())
+}
+
+/// Client commands die quietly of SIGPIPE when their standard output closes (see main.rs);
+/// a socket the server closed must be an error instead. The runtime's threads, which do all
+/// the network I/O ([`connect`] included), block SIGPIPE, so a write there gets EPIPE.
+fn block_sigpipe() {
+    #[cfg(unix)]
+    // SAFETY: changes only the calling thread's signal mask, with a set built right here.
+    unsafe {
+        let mut set: libc::sigset_t = std::mem::zeroed();
+        libc::sigemptyset(&mut set);
+        libc::sigaddset(&mut set, libc::SIGPIPE);
+        libc::pthread_sigmask(libc::SIG_BLOCK, &set, std::ptr::null_mut());
+    }
 }
 
 pub fn run(command: Command, remote: &Remote, json_out: bool) -> Result<(), String> {
