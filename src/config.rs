@@ -56,11 +56,14 @@ pub struct AccessConfig {
     pub tls_client_ca_file: Option<PathBuf>,
     /// Most queued runs one token may have.
     pub max_queued_per_token: usize,
+    /// A second, plain-text address that serves only gRPC health checks (for probes that
+    /// cannot speak TLS, such as the kubelet's).
+    pub health_listen: Option<SocketAddr>,
 }
 
 impl Default for AccessConfig {
     fn default() -> Self {
-        AccessConfig { tokens_file: None, allow_unauthenticated: false, reflection: true, tls_cert_file: None, tls_key_file: None, tls_client_ca_file: None, max_queued_per_token: 100 }
+        AccessConfig { tokens_file: None, allow_unauthenticated: false, reflection: true, tls_cert_file: None, tls_key_file: None, tls_client_ca_file: None, max_queued_per_token: 100, health_listen: None }
     }
 }
 
@@ -105,6 +108,7 @@ struct FileConfig {
     tls_key_file: Option<String>,
     tls_client_ca_file: Option<String>,
     max_queued_per_token: Option<usize>,
+    health_listen: Option<String>,
 }
 
 /// Values given on the command line.
@@ -201,6 +205,9 @@ fn load_access(a: &mut AccessConfig, file: &FileConfig, flags: &Flags, env: &dyn
     match env("POLLARD_MAX_QUEUED_PER_TOKEN") {
         Some(v) => a.max_queued_per_token = v.parse().map_err(|_| format!("POLLARD_MAX_QUEUED_PER_TOKEN: '{v}' is not a whole number"))?,
         None => a.max_queued_per_token = file.max_queued_per_token.unwrap_or(a.max_queued_per_token),
+    }
+    if let Some(v) = env("POLLARD_HEALTH_LISTEN").or_else(|| file.health_listen.clone()).filter(|s| !s.is_empty()) {
+        a.health_listen = Some(v.parse().map_err(|e| format!("health_listen: '{v}' is not an address such as 0.0.0.0:7312 ({e})"))?);
     }
     if a.max_queued_per_token == 0 {
         return Err("max_queued_per_token must be at least 1".into());

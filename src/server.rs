@@ -61,6 +61,15 @@ pub async fn run_with_clock(listener: TcpListener, config: Config, store: Store,
             let _ = shared.shutdown.send(true);
         }
     };
+    if let Some(at) = shared.config.access.health_listen {
+        let health_only = tonic::transport::Server::builder().add_service(health.clone());
+        let listener = TcpListener::bind(at).await.map_err(|e| format!("cannot listen on {at} (health_listen): {e}"))?;
+        let mut stop = shared.shutdown.subscribe();
+        info!(addr = %at, "health checks served in plain text");
+        tokio::spawn(health_only.serve_with_incoming_shutdown(TcpListenerStream::new(listener), async move {
+            let _ = stop.changed().await;
+        }));
+    }
     let router = tonic::transport::Server::builder()
         .layer(AuthLayer::new(access.gate.clone()))
         .add_service(health)

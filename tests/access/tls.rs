@@ -41,7 +41,7 @@ fn s(p: &std::path::Path) -> &str {
 
 /// A TLS server with tokens; its certificate from `ca`; client certificates checked
 /// against `client_ca` when given.
-fn tls_server(dir: &TempDir, ca: &Ca, client_ca: Option<&Ca>, tokens: &Tokens) -> Serve {
+fn tls_server(dir: &TempDir, ca: &Ca, client_ca: Option<&Ca>, tokens: &Tokens, more: &str) -> Serve {
     let (cert, key) = ca.leaf(false);
     put(&dir.join("server.pem"), &cert);
     put(&dir.join("server.key"), &key);
@@ -51,6 +51,7 @@ fn tls_server(dir: &TempDir, ca: &Ca, client_ca: Option<&Ca>, tokens: &Tokens) -
         put(&dir.join("client-ca.pem"), &c.pem);
         config.push_str(&format!("tls_client_ca_file = {:?}\n", s(&dir.join("client-ca.pem"))));
     }
+    config.push_str(more);
     Serve::start_with(ServeOptions { config: Some(config), scheme: Some("https".into()), ..ServeOptions::default() })
 }
 
@@ -59,7 +60,8 @@ fn tls_with_the_right_ca_plain_text_refused_certificates_reloaded() {
     let dir = TempDir::new("access-tls");
     let tokens = Tokens::new();
     let ca = Ca::new("test CA one");
-    let mut server = tls_server(&dir, &ca, None, &tokens);
+    let health_port = super::process::free_port();
+    let mut server = tls_server(&dir, &ca, None, &tokens, &format!("health_listen = \"127.0.0.1:{health_port}\"\n"));
     put(&dir.join("ca1.pem"), &ca.pem);
     let ca1 = dir.join("ca1.pem");
     let url = server.url.clone();
@@ -89,6 +91,16 @@ fn tls_with_the_right_ca_plain_text_refused_certificates_reloaded() {
     super::process::client(&plain, &["--token", &tokens.admin, "datasets"]).fails();
     assert!(server.alive());
 
+    // health_listen: health checks alone, in plain text (for probes that cannot speak TLS).
+    tokio::runtime::Runtime::new().unwrap().block_on(async {
+        use tonic_health::pb::{health_check_response::ServingStatus, health_client::HealthClient, HealthCheckRequest};
+        let ch = super::channel(&format!("http://127.0.0.1:{health_port}")).await;
+        let r = HealthClient::new(ch.clone()).check(HealthCheckRequest { service: "pollard.v1.Runs".into() }).await.unwrap().into_inner();
+        assert_eq!(r.status, ServingStatus::Serving as i32);
+        let e = pollard::pb::runs_client::RunsClient::new(ch).list_runs(pollard::pb::ListRunsRequest::default()).await.unwrap_err();
+        assert_eq!(e.code(), tonic::Code::Unimplemented, "only health on the health address: {e:?}");
+    });
+
     // New certificate files from another CA: picked up without a restart; the old CA no
     // longer verifies new connections.
     let ca2 = Ca::new("test CA two");
@@ -116,7 +128,7 @@ fn mtls_refuses_missing_and_wrong_client_certificates() {
     let tokens = Tokens::new();
     let server_ca = Ca::new("server CA");
     let client_ca = Ca::new("client CA");
-    let mut server = tls_server(&dir, &server_ca, Some(&client_ca), &tokens);
+    let mut server = tls_server(&dir, &server_ca, Some(&client_ca), &tokens, "");
     put(&dir.join("ca.pem"), &server_ca.pem);
     let (good_cert, good_key) = client_ca.leaf(true);
     put(&dir.join("good.pem"), &good_cert);
