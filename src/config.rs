@@ -43,10 +43,10 @@ pub struct Config {
 #[derive(Clone, Debug, PartialEq)]
 pub struct AccessConfig {
     /// The tokens file (`NAME ROLE SHA256-HEX` lines); `None`: every caller is an anonymous
-    /// admin, which only a loopback address or `allow_unauthenticated` permits.
+    /// admin, which only a loopback address or `allow_tokenless` permits.
     pub tokens_file: Option<PathBuf>,
     /// Serve without tokens on a non-loopback address.
-    pub allow_unauthenticated: bool,
+    pub allow_tokenless: bool,
     /// Serve gRPC reflection (to callers with a token, when tokens are on).
     pub reflection: bool,
     /// TLS certificate chain and private key (PEM); both or neither.
@@ -63,7 +63,7 @@ pub struct AccessConfig {
 
 impl Default for AccessConfig {
     fn default() -> Self {
-        AccessConfig { tokens_file: None, allow_unauthenticated: false, reflection: true, tls_cert_file: None, tls_key_file: None, tls_client_ca_file: None, max_queued_per_token: 100, health_listen: None }
+        AccessConfig { tokens_file: None, allow_tokenless: false, reflection: true, tls_cert_file: None, tls_key_file: None, tls_client_ca_file: None, max_queued_per_token: 100, health_listen: None }
     }
 }
 
@@ -102,7 +102,7 @@ struct FileConfig {
     log_format: Option<String>,
     log_filter: Option<String>,
     tokens_file: Option<String>,
-    allow_unauthenticated: Option<bool>,
+    allow_tokenless: Option<bool>,
     reflection: Option<bool>,
     tls_cert_file: Option<String>,
     tls_key_file: Option<String>,
@@ -117,8 +117,8 @@ pub struct Flags {
     pub config_file: Option<PathBuf>,
     pub listen: Option<String>,
     pub data_dir: Option<String>,
-    /// `--allow-unauthenticated`.
-    pub allow_unauthenticated: bool,
+    /// `--allow-tokenless`.
+    pub allow_tokenless: bool,
 }
 
 impl Config {
@@ -195,10 +195,10 @@ fn load_access(a: &mut AccessConfig, file: &FileConfig, flags: &Flags, env: &dyn
     a.tls_cert_file = path("POLLARD_TLS_CERT_FILE", &file.tls_cert_file).or(a.tls_cert_file.take());
     a.tls_key_file = path("POLLARD_TLS_KEY_FILE", &file.tls_key_file).or(a.tls_key_file.take());
     a.tls_client_ca_file = path("POLLARD_TLS_CLIENT_CA_FILE", &file.tls_client_ca_file).or(a.tls_client_ca_file.take());
-    if let Some(v) = flag("allow_unauthenticated", "POLLARD_ALLOW_UNAUTHENTICATED", file.allow_unauthenticated)? {
-        a.allow_unauthenticated = v;
+    if let Some(v) = flag("allow_tokenless", "POLLARD_ALLOW_TOKENLESS", file.allow_tokenless)? {
+        a.allow_tokenless = v;
     }
-    a.allow_unauthenticated |= flags.allow_unauthenticated;
+    a.allow_tokenless |= flags.allow_tokenless;
     if let Some(v) = flag("reflection", "POLLARD_REFLECTION", file.reflection)? {
         a.reflection = v;
     }

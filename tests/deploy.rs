@@ -551,7 +551,7 @@ fn kubernetes_serves_tls_and_tokens_from_secrets() {
     let local = scratch("secrets-pollard.toml");
     std::fs::write(&local, cm["data"]["pollard.toml"].as_str().unwrap()).unwrap();
     let config = load(&local, None, None).unwrap();
-    assert!(!config.access.allow_unauthenticated, "the cluster config does not open the port to everyone");
+    assert!(!config.access.allow_tokenless, "the cluster config does not open the port to everyone");
     let mounts = container["volumeMounts"].as_sequence().expect("volumeMounts");
     let volumes = set["spec"]["template"]["spec"]["volumes"].as_sequence().expect("volumes");
     let a = &config.access;

@@ -68,7 +68,7 @@ impl Caller {
     /// request without one reaches a handler only through a server built without the layer:
     /// such a request gets the least power.
     pub fn of<T>(request: &tonic::Request<T>) -> Caller {
-        request.extensions().get::<Caller>().cloned().unwrap_or(Caller { name: Some(String::new()), role: Role::Reader })
+        request.extensions().get::<Caller>().cloned().unwrap_or(Caller { name: None, role: Role::Reader })
     }
 
     /// Whether this caller may act on a run (or anything else) whose owner is `owner`: an
@@ -208,7 +208,7 @@ pub struct Access {
 
 impl Access {
     /// Loads the tokens file and the TLS files, and refuses to serve on a non-loopback
-    /// address without tokens unless `allow_unauthenticated` says so.
+    /// address without tokens unless `allow_tokenless` says so.
     pub fn load(config: &AccessConfig, addr: SocketAddr) -> Result<Access, String> {
         let mut sources = Vec::new();
         let gate = match &config.tokens_file {
@@ -225,7 +225,7 @@ impl Access {
         };
         check_open(config, addr)?;
         if !gate.needs_tokens() && !addr.ip().is_loopback() {
-            tracing::warn!(%addr, "serving without tokens on a non-loopback address (allow_unauthenticated): every caller is an admin");
+            tracing::warn!(%addr, "serving without tokens on a non-loopback address (allow_tokenless): every caller is an admin");
         }
         let tls = match (&config.tls_cert_file, &config.tls_key_file) {
             (Some(cert), Some(key)) => {
@@ -245,11 +245,11 @@ impl Access {
     }
 }
 
-/// The startup guard: no tokens on a non-loopback address only with `allow_unauthenticated`.
+/// The startup guard: no tokens on a non-loopback address only with `allow_tokenless`.
 pub fn check_open(config: &AccessConfig, addr: SocketAddr) -> Result<(), String> {
-    if config.tokens_file.is_none() && !addr.ip().is_loopback() && !config.allow_unauthenticated {
+    if config.tokens_file.is_none() && !addr.ip().is_loopback() && !config.allow_tokenless {
         return Err(format!(
-            "refusing to serve on {addr} without tokens: anyone who reaches the port could read, cancel and delete everything. Set tokens_file, or listen on a loopback address, or set allow_unauthenticated = true (--allow-unauthenticated) to serve every caller as admin"
+            "refusing to serve on {addr} without tokens: anyone who reaches the port could read, cancel and delete everything. Set tokens_file, or listen on a loopback address, or set allow_tokenless = true (--allow-tokenless) to serve every caller as admin"
         ));
     }
     Ok(())

@@ -146,7 +146,7 @@ pub struct ServeArgs {
     pub config: Option<PathBuf>,
     /// Serve without tokens on a non-loopback address: every caller is an admin.
     #[arg(long)]
-    pub allow_unauthenticated: bool,
+    pub allow_tokenless: bool,
 }
 
 #[derive(Args, Debug)]
@@ -344,7 +344,7 @@ fn folds(a: FoldsArgs) -> Result<(), String> {
 }
 
 fn serve(a: ServeArgs) -> Result<(), String> {
-    let flags = crate::config::Flags { config_file: a.config, listen: a.listen, data_dir: a.data, allow_unauthenticated: a.allow_unauthenticated };
+    let flags = crate::config::Flags { config_file: a.config, listen: a.listen, data_dir: a.data, allow_tokenless: a.allow_tokenless };
     let config = crate::config::Config::load(&flags, &|k| std::env::var(k).ok())?;
     init_logging(&config);
     crate::access::check_open(&config.access, config.listen)?;

@@ -53,7 +53,10 @@ fn the_tokens_file_reloads_without_a_restart() {
     put(&tokens, "second writer not-a-digest\n");
     eventually("the broken file is reported", || server.log().contains("keeping what was loaded before"));
     assert!(server.log().contains("line 1"), "the log names the line:\n{}", server.log());
-    as_(&writer, &["datasets", "--json"]).json();
+    // The CLI sends the token end to end: the run records its owner.
+    as_(&writer, &["put", super::process::data("iris.csv").to_str().unwrap(), "--name", "iris", "--target", "target", "--json"]).json();
+    let run = as_(&writer, &["sweep", "--dataset", "iris", "--max-depth", "1,2", "--json"]).json();
+    assert_eq!(run["owner"], "second", "{run}");
     // SIGHUP rereads at once; the server stays up.
     let before = server.log().matches("keeping what was loaded before").count();
     server.signal(libc::SIGHUP);
@@ -68,13 +71,13 @@ fn no_tokens_on_a_public_address_needs_an_explicit_yes() {
     let store = dir.join("store");
     let out = finish(command(&["serve", "--listen", "0.0.0.0:0", "--data", store.to_str().unwrap()]), "serve on 0.0.0.0");
     let e = out.fails();
-    assert!(e.contains("refusing") && e.contains("0.0.0.0") && e.contains("allow_unauthenticated") && e.contains("tokens_file"), "{e}");
+    assert!(e.contains("refusing") && e.contains("0.0.0.0") && e.contains("allow_tokenless") && e.contains("tokens_file"), "{e}");
     assert!(!store.exists(), "a refused start touches no store");
 
     // With the explicit flag, or the config key, it serves, and warns.
     let config = dir.join("open.toml");
-    std::fs::write(&config, "allow_unauthenticated = true\n").unwrap();
-    for (i, extra) in [vec!["--allow-unauthenticated"], vec!["--config", config.to_str().unwrap()]].into_iter().enumerate() {
+    std::fs::write(&config, "allow_tokenless = true\n").unwrap();
+    for (i, extra) in [vec!["--allow-tokenless"], vec!["--config", config.to_str().unwrap()]].into_iter().enumerate() {
         let log = dir.join(&format!("serve{i}.log"));
         let store = dir.join(&format!("store{i}"));
         let mut args = vec!["serve", "--listen", "0.0.0.0:0", "--data", store.to_str().unwrap()];
