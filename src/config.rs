@@ -70,6 +70,36 @@ pub struct Config {
     pub log_filter: String,
     /// Failures on purpose, for tests only (see [`TestHooks`]).
     pub test_hooks: TestHooks,
+    /// Access: tokens, TLS, reflection (see [`AccessConfig`]).
+    pub access: AccessConfig,
+}
+
+/// Who may call, and over what (see `crate::access`).
+#[derive(Clone, Debug, PartialEq)]
+pub struct AccessConfig {
+    /// The tokens file (`NAME ROLE SHA256-HEX` lines); `None`: every caller is an anonymous
+    /// admin, which only a loopback address or `allow_tokenless` permits.
+    pub tokens_file: Option<PathBuf>,
+    /// Serve without tokens on a non-loopback address.
+    pub allow_tokenless: bool,
+    /// Serve gRPC reflection (to callers with a token, when tokens are on).
+    pub reflection: bool,
+    /// TLS certificate chain and private key (PEM); both or neither.
+    pub tls_cert_file: Option<PathBuf>,
+    pub tls_key_file: Option<PathBuf>,
+    /// Require client certificates signed by this CA (PEM): mTLS.
+    pub tls_client_ca_file: Option<PathBuf>,
+    /// Most queued runs one token may have.
+    pub max_queued_per_token: usize,
+    /// A second, plain-text address that serves only gRPC health checks (for probes that
+    /// cannot speak TLS, such as the kubelet's).
+    pub health_listen: Option<SocketAddr>,
+}
+
+impl Default for AccessConfig {
+    fn default() -> Self {
+        AccessConfig { tokens_file: None, allow_tokenless: false, reflection: true, tls_cert_file: None, tls_key_file: None, tls_client_ca_file: None, max_queued_per_token: 100, health_listen: None }
+    }
 }
 
 /// Failures a test can ask of the server on purpose, read only from `POLLARD_TEST_*`
@@ -135,6 +165,7 @@ impl Default for Config {
             log_format: LogFormat::Plain,
             log_filter: "info".into(),
             test_hooks: TestHooks::default(),
+            access: AccessConfig::default(),
         }
     }
 }
@@ -223,6 +254,14 @@ struct FileConfig {
     drain_secs: Option<u64>,
     log_format: Option<String>,
     log_filter: Option<String>,
+    tokens_file: Option<String>,
+    allow_tokenless: Option<bool>,
+    reflection: Option<bool>,
+    tls_cert_file: Option<String>,
+    tls_key_file: Option<String>,
+    tls_client_ca_file: Option<String>,
+    max_queued_per_token: Option<usize>,
+    health_listen: Option<String>,
 }
 
 /// Values given on the command line.
@@ -231,6 +270,8 @@ pub struct Flags {
     pub config_file: Option<PathBuf>,
     pub listen: Option<String>,
     pub data_dir: Option<String>,
+    /// `--allow-tokenless`.
+    pub allow_tokenless: bool,
 }
 
 impl Config {
@@ -244,6 +285,7 @@ impl Config {
             }
         };
         let mut c = Config::default();
+        load_access(&mut c.access, &file, flags, env)?;
         // Where a value comes from, for messages: a flag beats the environment beats the file.
         let set = |key: &str, file_value: Option<String>, env_key: &str, flag: Option<&String>| -> Option<(String, String)> {
             flag.cloned().map(|v| (format!("--{key}"), v)).or_else(|| env(env_key).map(|v| (env_key.to_string(), v))).or(file_value.map(|v| (format!("{key} in the config file"), v)))
@@ -364,6 +406,49 @@ impl Config {
     }
 }
 
+/// The access keys: file, then environment, then flags.
+fn load_access(a: &mut AccessConfig, file: &FileConfig, flags: &Flags, env: &dyn Fn(&str) -> Option<String>) -> Result<(), String> {
+    let path = |env_key: &str, v: &Option<String>| env(env_key).or_else(|| v.clone()).filter(|s| !s.is_empty()).map(PathBuf::from);
+    let flag = |key: &str, env_key: &str, v: Option<bool>| -> Result<Option<bool>, String> {
+        match env(env_key) {
+            None => Ok(v),
+            Some(s) => match s.as_str() {
+                "true" | "1" => Ok(Some(true)),
+                "false" | "0" => Ok(Some(false)),
+                _ => Err(format!("{env_key}: '{s}' is not true or false (for {key})")),
+            },
+        }
+    };
+    a.tokens_file = path("POLLARD_TOKENS_FILE", &file.tokens_file).or(a.tokens_file.take());
+    a.tls_cert_file = path("POLLARD_TLS_CERT_FILE", &file.tls_cert_file).or(a.tls_cert_file.take());
+    a.tls_key_file = path("POLLARD_TLS_KEY_FILE", &file.tls_key_file).or(a.tls_key_file.take());
+    a.tls_client_ca_file = path("POLLARD_TLS_CLIENT_CA_FILE", &file.tls_client_ca_file).or(a.tls_client_ca_file.take());
+    if let Some(v) = flag("allow_tokenless", "POLLARD_ALLOW_TOKENLESS", file.allow_tokenless)? {
+        a.allow_tokenless = v;
+    }
+    a.allow_tokenless |= flags.allow_tokenless;
+    if let Some(v) = flag("reflection", "POLLARD_REFLECTION", file.reflection)? {
+        a.reflection = v;
+    }
+    match env("POLLARD_MAX_QUEUED_PER_TOKEN") {
+        Some(v) => a.max_queued_per_token = v.parse().map_err(|_| format!("POLLARD_MAX_QUEUED_PER_TOKEN: '{v}' is not a whole number"))?,
+        None => a.max_queued_per_token = file.max_queued_per_token.unwrap_or(a.max_queued_per_token),
+    }
+    if let Some(v) = env("POLLARD_HEALTH_LISTEN").or_else(|| file.health_listen.clone()).filter(|s| !s.is_empty()) {
+        a.health_listen = Some(v.parse().map_err(|e| format!("health_listen: '{v}' is not an address such as 0.0.0.0:7312 ({e})"))?);
+    }
+    if a.max_queued_per_token == 0 {
+        return Err("max_queued_per_token must be at least 1".into());
+    }
+    if a.tls_cert_file.is_some() != a.tls_key_file.is_some() {
+        return Err("tls_cert_file and tls_key_file go together: give both for TLS, or neither".into());
+    }
+    if a.tls_client_ca_file.is_some() && a.tls_cert_file.is_none() {
+        return Err("tls_client_ca_file (client certificates) needs TLS: give tls_cert_file and tls_key_file too".into());
+    }
+    Ok(())
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -375,7 +460,7 @@ mod tests {
         let path = dir.join("pollard.toml");
         std::fs::write(&path, "listen = \"127.0.0.1:9000\"\nmax_rows = 10\nconcurrent_runs = 3\n").unwrap();
         let env = |k: &str| (k == "POLLARD_MAX_ROWS").then(|| "20".to_string());
-        let flags = Flags { config_file: Some(path.clone()), listen: Some("127.0.0.1:9100".into()), data_dir: None };
+        let flags = Flags { config_file: Some(path.clone()), listen: Some("127.0.0.1:9100".into()), ..Flags::default() };
         let c = Config::load(&flags, &env).unwrap();
         assert_eq!(c.listen.port(), 9100);
         assert_eq!(c.max_rows, 20);

@@ -126,6 +126,12 @@ pub struct Run {
     pub spec: SweepSpec,
     pub labels: BTreeMap<String, String>,
     pub idempotency_key: String,
+    /// The name of the token that started the run; `None` for a run started without
+    /// tokens, by a schedule, or stored before owners were recorded.
+    pub owner: Option<String>,
+    /// A digest of the request that started the run (for idempotency key reuse); empty when
+    /// not recorded.
+    pub request_digest: String,
     pub schedule_id: String,
     pub created_at: i64,
     pub started_at: Option<i64>,
@@ -176,6 +182,8 @@ impl Run {
             spec,
             labels: BTreeMap::new(),
             idempotency_key: String::new(),
+            owner: None,
+            request_digest: String::new(),
             schedule_id: String::new(),
             created_at,
             started_at: None,

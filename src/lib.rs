@@ -12,12 +12,14 @@
 //!
 //! The shell:
 //! - [`store`]  the only module that names sled: datasets, runs, events, the queue, schedules
+//! - [`access`] tokens and roles, the role each RPC needs, TLS, reloads, owner-only data
 //! - [`clock`]  the system clock, or a test clock moved by hand
 //! - [`scheduler`] the task that starts schedules' runs at their fire times
 //! - [`cli`]    command-line entry point
 //! - [`pb`]     generated protobuf types (only the shell sees them)
 //! - [`onnx_pb`] generated messages of the vendored ONNX schema (decoding and checks only)
 
+pub mod access;
 pub mod cli;
 pub mod clock;
 pub mod config;

@@ -9,6 +9,7 @@ use tokio_stream::wrappers::TcpListenerStream;
 use tokio_stream::StreamExt as _;
 use tracing::info;
 
+use crate::access::{self, layer::AuthLayer, Access};
 use crate::clock::{Clock, SystemClock};
 use crate::config::Config;
 use crate::scheduler;
@@ -30,8 +31,10 @@ pub async fn run(listener: TcpListener, config: Config, store: Store, shutdown: 
 
 /// [`run`] with a given clock (tests move a [`crate::clock::TestClock`] by hand).
 pub async fn run_with_clock(listener: TcpListener, config: Config, store: Store, clock: Arc<dyn Clock>, shutdown: impl Future<Output = ()> + Send + 'static) -> Result<(), String> {
-    let shared = Shared::with_clock(store, config, clock)?;
     let addr = listener.local_addr().map_err(|e| e.to_string())?;
+    let mut access = Access::load(&config.access, addr)?;
+    let shared = Shared::with_clock(store, config, clock)?;
+    access.spawn_watcher(shared.shutdown.subscribe());
     let mut workers = Vec::new();
     worker::queue_resumes(&shared);
     for _ in 0..shared.config.concurrent_runs {
@@ -43,11 +46,11 @@ pub async fn run_with_clock(listener: TcpListener, config: Config, store: Store,
     for name in SERVICES {
         health_reporter.set_service_status(name, tonic_health::ServingStatus::Serving).await;
     }
-    let reflection = tonic_reflection::server::Builder::configure()
-        .register_encoded_file_descriptor_set(pb::DESCRIPTOR)
-        .build_v1()
-        .map_err(|e| format!("reflection: {e}"))?;
-    info!(%addr, data = %shared.config.data_dir.display(), "pollard serving");
+    let reflection = match shared.config.access.reflection {
+        true => Some(tonic_reflection::server::Builder::configure().register_encoded_file_descriptor_set(pb::DESCRIPTOR).build_v1().map_err(|e| format!("reflection: {e}"))?),
+        false => None,
+    };
+    info!(%addr, data = %shared.config.data_dir.display(), tls = access.tls.is_some(), tokens = access.gate.needs_tokens(), "pollard serving");
     let stop = {
         let shared = shared.clone();
         async move {
@@ -60,17 +63,34 @@ pub async fn run_with_clock(listener: TcpListener, config: Config, store: Store,
             let _ = shared.shutdown.send(true);
         }
     };
+    if let Some(at) = shared.config.access.health_listen {
+        let health_only = tonic::transport::Server::builder().add_service(health.clone());
+        let listener = TcpListener::bind(at).await.map_err(|e| format!("cannot listen on {at} (health_listen): {e}"))?;
+        let mut stop = shared.shutdown.subscribe();
+        info!(addr = %at, "health checks served in plain text");
+        tokio::spawn(health_only.serve_with_incoming_shutdown(TcpListenerStream::new(listener), async move {
+            let _ = stop.changed().await;
+        }));
+    }
     let m = shared.config.messages;
-    let served = tonic::transport::Server::builder()
+    // The caller is checked first (a refused caller takes no upload slot), then the transport
+    // guard counts the bytes.
+    let router = tonic::transport::Server::builder()
+        .layer(AuthLayer::new(access.gate.clone()))
         .layer(GuardLayer::new(&shared.config))
         .add_service(health)
-        .add_service(reflection)
+        .add_optional_service(reflection)
         .add_service(pb::datasets_server::DatasetsServer::new(api.clone()).max_decoding_message_size(m.datasets.request).max_encoding_message_size(m.datasets.reply))
         .add_service(pb::runs_server::RunsServer::new(api.clone()).max_decoding_message_size(m.runs.request).max_encoding_message_size(m.runs.reply))
         .add_service(pb::schedules_server::SchedulesServer::new(api.clone()).max_decoding_message_size(m.schedules.request).max_encoding_message_size(m.schedules.reply))
-        .add_service(pb::models_server::ModelsServer::new(api.clone()).max_decoding_message_size(m.models.request).max_encoding_message_size(m.models.reply))
-        .serve_with_incoming_shutdown(TcpListenerStream::new(listener).map(no_delay), stop);
-    let served = until_drained(&shared, served).await.map_err(|e| format!("server: {e}"));
+        .add_service(pb::models_server::ModelsServer::new(api.clone()).max_decoding_message_size(m.models.request).max_encoding_message_size(m.models.reply));
+    // With TLS, connections come through our accept loop (which swaps certificates on
+    // reload); a connection that is not TLS never reaches the router.
+    let served = match access.tls.clone() {
+        Some(tls) => until_drained(&shared, router.serve_with_incoming_shutdown(access::tls::incoming(listener, tls), stop)).await,
+        None => until_drained(&shared, router.serve_with_incoming_shutdown(TcpListenerStream::new(listener).map(no_delay), stop)).await,
+    }
+    .map_err(|e| format!("server: {e}"));
     drain(&shared, workers).await;
     served
 }

@@ -68,7 +68,7 @@ fn scratch(name: &str) -> PathBuf {
 
 /// Loads a config file the way `pollard serve --config FILE` does, with no environment.
 fn load(config_file: &Path, listen: Option<&String>, data: Option<&String>) -> Result<Config, String> {
-    let flags = Flags { config_file: Some(config_file.to_path_buf()), listen: listen.cloned(), data_dir: data.cloned() };
+    let flags = Flags { config_file: Some(config_file.to_path_buf()), listen: listen.cloned(), data_dir: data.cloned(), ..Flags::default() };
     Config::load(&flags, &|_| None)
 }
 
@@ -283,7 +283,15 @@ fn grpc_probes_name_services_the_server_registers() {
     for probe in ["livenessProbe", "readinessProbe"] {
         assert!(container[probe]["grpc"].is_mapping(), "the pollard container has a grpc {probe}");
     }
-    let port = container["ports"].as_sequence().unwrap().iter().find(|p| p["name"].as_str() == Some("grpc")).expect("a port named grpc")["containerPort"].as_u64().unwrap();
+    // The kubelet's gRPC probes speak plain text only: with TLS on the main port they go to
+    // the health-only port (health_listen), which the pod declares as "health".
+    let port = container["ports"].as_sequence().unwrap().iter().find(|p| p["name"].as_str() == Some("health")).expect("a port named health")["containerPort"].as_u64().unwrap();
+    let cm = of_kind("ConfigMap").into_iter().next().expect("a ConfigMap");
+    let local = scratch("probe-pollard.toml");
+    std::fs::write(&local, cm["data"]["pollard.toml"].as_str().unwrap()).unwrap();
+    let health = load(&local, None, None).unwrap().access.health_listen.expect("the ConfigMap sets health_listen");
+    assert_eq!(u64::from(health.port()), port, "health_listen vs the health containerPort");
+    assert!(health.ip().is_unspecified(), "the kubelet probes the pod's address: health_listen on all addresses");
     let mut probes = Vec::new();
     for (_, d) in manifests() {
         grpc_probes(&d, &mut probes);
@@ -521,6 +529,40 @@ fn systemd_unit_uses_known_options_and_serve_flags() {
     assert_eq!(flags.get("config").map(String::as_str), Some("/etc/pollard/pollard.toml"));
     let config = load(&deploy_dir().join("pollard.toml"), flags.get("listen"), flags.get("data")).unwrap();
     assert_eq!(config.data_dir, Path::new("/var/lib").join(one("StateDirectory")), "the store lives in the StateDirectory");
+
+    // Tokens and TLS are on, their files systemd credentials: each path the config names
+    // under the credentials directory has its LoadCredential= line.
+    let a = &config.access;
+    let (tokens, cert, key) = (a.tokens_file.clone().expect("tokens_file"), a.tls_cert_file.clone().expect("tls_cert_file"), a.tls_key_file.clone().expect("tls_key_file"));
+    let creds = Path::new("/run/credentials/pollard.service");
+    let loaded: Vec<&str> = get("LoadCredential").iter().map(|v| v.split(':').next().unwrap()).collect();
+    for p in [tokens, cert, key] {
+        let id = p.strip_prefix(creds).unwrap_or_else(|_| panic!("{} is not under {}", p.display(), creds.display()));
+        assert!(loaded.contains(&id.to_str().unwrap()), "no LoadCredential= for {}", id.display());
+    }
+    assert!(!get("ExecReload").is_empty(), "ExecReload (SIGHUP) rereads tokens and certificates");
+}
+
+#[test]
+fn kubernetes_serves_tls_and_tokens_from_secrets() {
+    let set = statefulset();
+    let container = pollard_container(&set);
+    let cm = of_kind("ConfigMap").into_iter().next().expect("a ConfigMap");
+    let local = scratch("secrets-pollard.toml");
+    std::fs::write(&local, cm["data"]["pollard.toml"].as_str().unwrap()).unwrap();
+    let config = load(&local, None, None).unwrap();
+    assert!(!config.access.allow_tokenless, "the cluster config does not open the port to everyone");
+    let mounts = container["volumeMounts"].as_sequence().expect("volumeMounts");
+    let volumes = set["spec"]["template"]["spec"]["volumes"].as_sequence().expect("volumes");
+    let a = &config.access;
+    for (what, p) in [("tokens_file", &a.tokens_file), ("tls_cert_file", &a.tls_cert_file), ("tls_key_file", &a.tls_key_file)] {
+        let p = p.as_ref().unwrap_or_else(|| panic!("the ConfigMap sets {what}"));
+        let mount = mounts.iter().find(|m| Some(Path::new(m["mountPath"].as_str().unwrap())) == p.parent()).unwrap_or_else(|| panic!("{what}: nothing mounted at {}", p.parent().unwrap().display()));
+        assert_eq!(mount["readOnly"].as_bool(), Some(true), "{what}: mounted read-only");
+        let volume = volumes.iter().find(|v| v["name"] == mount["name"]).unwrap();
+        assert!(volume["secret"]["secretName"].as_str().is_some(), "{what}: {} comes from a Secret", p.display());
+        assert!(volume["secret"]["items"].is_null(), "{what}: the whole Secret is mounted (no subPath or items), so updates reach the pod");
+    }
 }
 
 /// When systemd-analyze is installed, it must accept the unit too (its own option tables,

@@ -1,11 +1,13 @@
 //! Client commands against a pollard server, and the local (in-process) sweep.
 
+use std::path::{Path, PathBuf};
 use std::sync::atomic::AtomicBool;
 use std::time::Duration;
 
 use indicatif::{ProgressBar, ProgressStyle};
 use serde_json::json;
-use tonic::transport::Channel;
+use tonic::service::interceptor::InterceptedService;
+use tonic::transport::{Certificate, Channel, ClientTlsConfig, Identity};
 
 use super::output::{self, higher_is_better};
 use super::{labels, Command, LocalArgs, PutArgs, RunsArgs, SweepArgs};
@@ -21,18 +23,105 @@ pub fn status_line(s: tonic::Status) -> String {
     format!("{:?}: {}", s.code(), s.message())
 }
 
-pub async fn connect(server: &str) -> Result<Channel, String> {
-    let endpoint = Channel::from_shared(server.to_string()).map_err(|e| format!("--server '{server}': {e}"))?.connect_timeout(Duration::from_secs(5));
-    endpoint.connect().await.map_err(|e| format!("cannot reach the pollard server at {server} ({e}); start one with `pollard serve` or set --server"))
+/// How client commands reach the server: its address, the token, and for an `https://`
+/// address the CA and an optional client certificate.
+#[derive(Clone, Debug, Default)]
+pub struct Remote {
+    pub server: String,
+    pub token: Option<String>,
+    pub ca: Option<PathBuf>,
+    pub cert: Option<PathBuf>,
+    pub key: Option<PathBuf>,
+}
+
+impl Remote {
+    /// A server without TLS or tokens (the demo's own).
+    pub fn plain(server: String) -> Remote {
+        Remote { server, ..Remote::default() }
+    }
+}
+
+/// Adds `authorization: Bearer <token>` to every call (nothing without a token).
+#[derive(Clone)]
+pub struct Bearer(Option<tonic::metadata::MetadataValue<tonic::metadata::Ascii>>);
+
+impl tonic::service::Interceptor for Bearer {
+    fn call(&mut self, mut request: tonic::Request<()>) -> Result<tonic::Request<()>, tonic::Status> {
+        if let Some(v) = &self.0 {
+            request.metadata_mut().insert("authorization", v.clone());
+        }
+        Ok(request)
+    }
+}
+
+/// A connection to the server that sends the token with every call.
+pub type Conn = InterceptedService<Channel, Bearer>;
+
+/// An error with its causes, on one line (a transport error alone says only "transport error").
+fn with_causes(e: &dyn std::error::Error) -> String {
+    let mut text = e.to_string();
+    let mut source = e.source();
+    while let Some(s) = source {
+        let s_text = s.to_string();
+        if !text.contains(&s_text) {
+            text = format!("{text}: {s_text}");
+        }
+        source = s.source();
+    }
+    text
+}
+
+fn read_pem(flag: &str, path: &Path) -> Result<Vec<u8>, String> {
+    std::fs::read(path).map_err(|e| format!("{flag} {}: {e}", path.display()))
+}
+
+pub async fn connect(remote: &Remote) -> Result<Conn, String> {
+    let server = remote.server.as_str();
+    let mut endpoint = Channel::from_shared(server.to_string()).map_err(|e| format!("--server '{server}': {e}"))?.connect_timeout(Duration::from_secs(5));
+    if server.starts_with("https://") {
+        // An https:// address is TLS or nothing: never plain text.
+        let ca = remote.ca.as_deref().ok_or_else(|| format!("--server {server} uses TLS: give --ca FILE, the CA certificate (PEM) that signed the server's certificate"))?;
+        let mut tls = ClientTlsConfig::new().ca_certificate(Certificate::from_pem(read_pem("--ca", ca)?));
+        match (&remote.cert, &remote.key) {
+            (Some(c), Some(k)) => tls = tls.identity(Identity::from_pem(read_pem("--cert", c)?, read_pem("--key", k)?)),
+            (None, None) => {}
+            _ => return Err("--cert and --key go together: the client certificate and its private key (PEM)".into()),
+        }
+        endpoint = endpoint.tls_config(tls).map_err(|e| format!("--server {server}: {}", with_causes(&e)))?;
+    } else if remote.ca.is_some() || remote.cert.is_some() || remote.key.is_some() {
+        return Err(format!("--ca, --cert and --key are for https:// addresses; --server {server} is plain text"));
+    }
+    let bearer = match remote.token.as_deref().filter(|t| !t.is_empty()) {
+        None => None,
+        Some(t) => Some(format!("Bearer {t}").parse().map_err(|_| "--token: a token is printable ASCII without spaces".to_string())?),
+    };
+    // On a runtime thread (see [`block_sigpipe`]): the TLS handshake writes to the socket.
+    let connecting = tokio::spawn(async move { endpoint.connect().await });
+    let channel = connecting.await.map_err(|e| e.to_string())?.map_err(|e| format!("cannot reach the pollard server at {server} ({}); start one with `pollard serve` or set --server", with_causes(&e)))?;
+    Ok(InterceptedService::new(channel, Bearer(bearer)))
 }
 
 fn runtime() -> Result<tokio::runtime::Runtime, String> {
-    tokio::runtime::Builder::new_multi_thread().worker_threads(2).enable_all().build().map_err(|e| e.to_string())
+    tokio::runtime::Builder::new_multi_thread().worker_threads(2).on_thread_start(block_sigpipe).enable_all().build().map_err(|e| e.to_string())
 }
 
-pub fn run(command: Command, server: &str, json_out: bool) -> Result<(), String> {
+/// Client commands die quietly of SIGPIPE when their standard output closes (see main.rs);
+/// a socket the server closed must be an error instead. The runtime's threads, which do all
+/// the network I/O ([`connect`] included), block SIGPIPE, so a write there gets EPIPE.
+fn block_sigpipe() {
+    #[cfg(unix)]
+    // SAFETY: changes only the calling thread's signal mask, with a set built right here.
+    unsafe {
+        let mut set: libc::sigset_t = std::mem::zeroed();
+        libc::sigemptyset(&mut set);
+        libc::sigaddset(&mut set, libc::SIGPIPE);
+        libc::pthread_sigmask(libc::SIG_BLOCK, &set, std::ptr::null_mut());
+    }
+}
+
+pub fn run(command: Command, remote: &Remote, json_out: bool) -> Result<(), String> {
     runtime()?.block_on(async move {
-        let ch = connect(server).await?;
+        let ch = connect(remote).await?;
         match command {
             Command::Put(a) => put(ch, a, json_out).await,
             Command::Datasets { name } => datasets(ch, name, json_out).await,
@@ -62,7 +151,7 @@ fn print_run(r: &pb::RunInfo, json_out: bool) {
 }
 
 /// Uploads a file in chunks with a progress bar.
-pub async fn upload_bytes(ch: Channel, name: &str, target: &str, categorical: Vec<String>, bytes: Vec<u8>, show: bool) -> Result<pb::DatasetInfo, String> {
+pub async fn upload_bytes(ch: Conn, name: &str, target: &str, categorical: Vec<String>, bytes: Vec<u8>, show: bool) -> Result<pb::DatasetInfo, String> {
     let bar = if show { ProgressBar::new(bytes.len() as u64) } else { ProgressBar::hidden() };
     bar.set_style(ProgressStyle::with_template("uploading {bar:30} {bytes}/{total_bytes}").unwrap());
     let header = pb::UploadChunk { part: Some(pb::upload_chunk::Part::Header(pb::UploadHeader { name: name.into(), format: pb::DataFormat::Csv as i32, target: target.into(), categorical })) };
@@ -78,7 +167,7 @@ pub async fn upload_bytes(ch: Channel, name: &str, target: &str, categorical: Ve
     Ok(info)
 }
 
-async fn put(ch: Channel, a: PutArgs, json_out: bool) -> Result<(), String> {
+async fn put(ch: Conn, a: PutArgs, json_out: bool) -> Result<(), String> {
     let bytes = std::fs::read(&a.file).map_err(|e| format!("{}: {e}", a.file.display()))?;
     let info = upload_bytes(ch, &a.name, &a.target, a.categorical, bytes, !json_out).await?;
     if json_out {
@@ -89,7 +178,7 @@ async fn put(ch: Channel, a: PutArgs, json_out: bool) -> Result<(), String> {
     Ok(())
 }
 
-async fn datasets(ch: Channel, name: Option<String>, json_out: bool) -> Result<(), String> {
+async fn datasets(ch: Conn, name: Option<String>, json_out: bool) -> Result<(), String> {
     let mut client = DatasetsClient::new(ch);
     let mut token = String::new();
     let mut all = Vec::new();
@@ -111,7 +200,7 @@ async fn datasets(ch: Channel, name: Option<String>, json_out: bool) -> Result<(
     Ok(())
 }
 
-async fn sweep(ch: Channel, a: SweepArgs, json_out: bool) -> Result<(), String> {
+async fn sweep(ch: Conn, a: SweepArgs, json_out: bool) -> Result<(), String> {
     let spec = a.grid.to_spec()?;
     let (dataset_id, dataset_name) = if a.dataset.starts_with("ds_") { (a.dataset.clone(), String::new()) } else { (String::new(), a.dataset.clone()) };
     let req = pb::StartRunRequest { dataset_id, dataset_name, spec: Some(spec), idempotency_key: a.idempotency_key, labels: labels(&a.labels)? };
@@ -142,7 +231,7 @@ pub enum Follow {
 }
 
 /// Streams a run's events; returns how it ended ("finished", "failed: …", "cancelled: …").
-pub async fn follow(ch: Channel, id: &str, after: u64, mode: Follow) -> Result<String, String> {
+pub async fn follow(ch: Conn, id: &str, after: u64, mode: Follow) -> Result<String, String> {
     let json_out = mode == Follow::JsonLines;
     let mut stream = RunsClient::new(ch).follow_run(pb::FollowRunRequest { id: id.into(), after_sequence: after }).await.map_err(status_line)?.into_inner();
     let bar = if mode == Follow::Bar { ProgressBar::new(0) } else { ProgressBar::hidden() };
@@ -188,7 +277,7 @@ fn event_json(e: &pb::RunEvent) -> serde_json::Value {
     json!({"sequence": e.sequence, "run_id": e.run_id, "at": e.at, "kind": kind, "event": body})
 }
 
-pub async fn show(ch: Channel, id: &str, top: usize, json_out: bool) -> Result<(), String> {
+pub async fn show(ch: Conn, id: &str, top: usize, json_out: bool) -> Result<(), String> {
     let r = RunsClient::new(ch).get_run(pb::GetRunRequest { id: id.into() }).await.map_err(status_line)?.into_inner();
     if json_out {
         println!("{}", output::run_json(&r));
@@ -212,7 +301,7 @@ pub async fn show(ch: Channel, id: &str, top: usize, json_out: bool) -> Result<(
     Ok(())
 }
 
-async fn runs(ch: Channel, a: RunsArgs, json_out: bool) -> Result<(), String> {
+async fn runs(ch: Conn, a: RunsArgs, json_out: bool) -> Result<(), String> {
     let state = match a.state.as_deref() {
         None => 0,
         Some(s) => convert::state_to(crate::job::RunState::parse(s).ok_or_else(|| format!("--state: '{s}' is not queued, running, finished, failed or cancelled"))?) as i32,
@@ -251,7 +340,7 @@ fn model_format(f: &str) -> Result<pb::ModelFormat, String> {
     })
 }
 
-async fn model(ch: Channel, id: &str, format: &str, out: Option<std::path::PathBuf>, json_out: bool) -> Result<(), String> {
+async fn model(ch: Conn, id: &str, format: &str, out: Option<std::path::PathBuf>, json_out: bool) -> Result<(), String> {
     let f = model_format(format)?;
     let file = ModelsClient::new(ch).get_model(pb::GetModelRequest { run_id: id.into(), format: f as i32 }).await.map_err(status_line)?.into_inner();
     let bytes = match f {
@@ -274,7 +363,7 @@ async fn model(ch: Channel, id: &str, format: &str, out: Option<std::path::PathB
     Ok(())
 }
 
-async fn predict(ch: Channel, id: &str, file: &std::path::Path, json_out: bool) -> Result<(), String> {
+async fn predict(ch: Conn, id: &str, file: &std::path::Path, json_out: bool) -> Result<(), String> {
     let bytes = std::fs::read(file).map_err(|e| format!("{}: {e}", file.display()))?;
     let table = csv_table(&bytes).map_err(|e| format!("{}: {e}", file.display()))?;
     let r = ModelsClient::new(ch).predict(pb::PredictRequest { run_id: id.into(), rows: Some(table) }).await.map_err(status_line)?.into_inner();

@@ -9,7 +9,7 @@ use std::path::Path;
 
 use tokio::sync::oneshot;
 
-use super::client::{connect, follow, status_line, upload_bytes, Follow};
+use super::client::{connect, follow, status_line, upload_bytes, Follow, Remote};
 use super::output::{higher_is_better, scores_table};
 use super::DemoArgs;
 use crate::pb;
@@ -44,11 +44,11 @@ pub fn demo_spec(seed: u64) -> pb::SweepSpec {
     }
 }
 
-pub fn run(a: DemoArgs, server: &str, json_out: bool) -> Result<(), String> {
+pub fn run(a: DemoArgs, remote: &Remote, json_out: bool) -> Result<(), String> {
     let runtime = tokio::runtime::Builder::new_multi_thread().worker_threads(2).enable_all().build().map_err(|e| e.to_string())?;
     runtime.block_on(async move {
         let (address, stop, served) = if a.remote {
-            (server.to_string(), None, None)
+            (remote.clone(), None, None)
         } else {
             let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await.map_err(|e| e.to_string())?;
             let addr = listener.local_addr().map_err(|e| e.to_string())?;
@@ -58,7 +58,7 @@ pub fn run(a: DemoArgs, server: &str, json_out: bool) -> Result<(), String> {
             let handle = tokio::spawn(crate::server::run(listener, config, store, async move {
                 let _ = rx.await;
             }));
-            (format!("http://{addr}"), Some(tx), Some(handle))
+            (Remote::plain(format!("http://{addr}")), Some(tx), Some(handle))
         };
         let result = demo(&a, &address, json_out).await;
         if let Some(tx) = stop {
@@ -71,7 +71,7 @@ pub fn run(a: DemoArgs, server: &str, json_out: bool) -> Result<(), String> {
     })
 }
 
-async fn demo(a: &DemoArgs, address: &str, json_out: bool) -> Result<(), String> {
+async fn demo(a: &DemoArgs, address: &Remote, json_out: bool) -> Result<(), String> {
     let say = |s: &str| {
         if !json_out {
             println!("{s}");

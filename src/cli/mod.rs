@@ -34,6 +34,18 @@ pub struct Cli {
     /// Print machine-readable JSON instead of tables.
     #[arg(long, global = true)]
     pub json: bool,
+    /// Token for a server that needs one (sent as `authorization: Bearer`).
+    #[arg(long, global = true, env = "POLLARD_TOKEN", hide_env_values = true)]
+    pub token: Option<String>,
+    /// CA certificate (PEM) that signed the server's certificate; needed for an https:// --server.
+    #[arg(long, global = true, env = "POLLARD_CA")]
+    pub ca: Option<PathBuf>,
+    /// Client certificate (PEM) for a server that asks for one (with --key).
+    #[arg(long, global = true, env = "POLLARD_CERT")]
+    pub cert: Option<PathBuf>,
+    /// Private key (PEM) of the client certificate.
+    #[arg(long, global = true, env = "POLLARD_KEY")]
+    pub key: Option<PathBuf>,
     #[command(subcommand)]
     pub command: Command,
 }
@@ -96,6 +108,29 @@ pub enum Command {
         #[command(subcommand)]
         action: schedules::ScheduleCommand,
     },
+    /// Make tokens and their tokens-file lines (no server needed).
+    Token {
+        #[command(subcommand)]
+        action: TokenCommand,
+    },
+}
+
+#[derive(Subcommand, Debug)]
+pub enum TokenCommand {
+    /// Print a fresh random token and its line for the tokens file.
+    New(TokenArgs),
+    /// Read a token from standard input and print its line for the tokens file.
+    Hash(TokenArgs),
+}
+
+#[derive(Args, Debug)]
+pub struct TokenArgs {
+    /// Name of the token (1 to 64 of letters, digits, '.', '_', '-'); runs record it as their owner.
+    #[arg(long)]
+    pub name: String,
+    /// reader, writer or admin.
+    #[arg(long)]
+    pub role: String,
 }
 
 #[derive(Args, Debug)]
@@ -109,6 +144,9 @@ pub struct ServeArgs {
     /// TOML configuration file.
     #[arg(long)]
     pub config: Option<PathBuf>,
+    /// Serve without tokens on a non-loopback address: every caller is an admin.
+    #[arg(long)]
+    pub allow_tokenless: bool,
 }
 
 #[derive(Args, Debug)]
@@ -230,13 +268,51 @@ pub fn run(args: &[String]) -> Result<(), String> {
         }
         Err(e) => return Err(one_line_usage_error(&e.to_string())),
     };
+    let remote = client::Remote { server: cli.server, token: cli.token, ca: cli.ca, cert: cli.cert, key: cli.key };
     match cli.command {
         Command::Serve(a) => serve(a),
         Command::Folds(a) => folds(a),
         Command::Local(a) => client::local(a, cli.json),
-        Command::Demo(a) => demo::run(a, &cli.server, cli.json),
-        other => client::run(other, &cli.server, cli.json),
+        Command::Token { action } => token(action, cli.json),
+        Command::Demo(a) => demo::run(a, &remote, cli.json),
+        other => client::run(other, &remote, cli.json),
     }
+}
+
+/// `pollard token new|hash`: a token's line for the tokens file (only its digest).
+fn token(action: TokenCommand, json_out: bool) -> Result<(), String> {
+    use crate::access::{tokens, Role};
+    let (args, fresh) = match action {
+        TokenCommand::New(a) => (a, true),
+        TokenCommand::Hash(a) => (a, false),
+    };
+    tokens::check_name(&args.name).map_err(|e| format!("--name: {e}"))?;
+    let role = Role::parse(&args.role).ok_or_else(|| format!("--role: '{}' is not reader, writer or admin", args.role))?;
+    let token = if fresh {
+        tokens::new_token()?
+    } else {
+        let mut text = String::new();
+        std::io::Read::read_to_string(&mut std::io::stdin().lock(), &mut text).map_err(|e| format!("reading the token from standard input: {e}"))?;
+        let t = text.trim().to_string();
+        if t.is_empty() || t.chars().any(|c| c.is_whitespace() || c.is_control()) {
+            return Err("standard input: give one token (printable, no spaces)".into());
+        }
+        t
+    };
+    let line = tokens::file_line(&args.name, role, &token);
+    if json_out {
+        let mut v = serde_json::json!({"name": args.name, "role": role.as_str(), "line": line});
+        if fresh {
+            v["token"] = serde_json::Value::String(token);
+        }
+        println!("{v}");
+    } else {
+        if fresh {
+            println!("token: {token}");
+        }
+        println!("tokens file line: {line}");
+    }
+    Ok(())
 }
 
 fn folds(a: FoldsArgs) -> Result<(), String> {
@@ -268,9 +344,17 @@ fn folds(a: FoldsArgs) -> Result<(), String> {
 }
 
 fn serve(a: ServeArgs) -> Result<(), String> {
-    let flags = crate::config::Flags { config_file: a.config, listen: a.listen, data_dir: a.data };
+    let flags = crate::config::Flags { config_file: a.config, listen: a.listen, data_dir: a.data, allow_tokenless: a.allow_tokenless };
     let config = crate::config::Config::load(&flags, &|k| std::env::var(k).ok())?;
     init_logging(&config);
+    crate::access::check_open(&config.access, config.listen)?;
+    // The store is owner-only whatever the umask: new files 0600, directories 0700.
+    #[cfg(unix)]
+    // SAFETY: umask only sets the process's file-creation mask; no thread has started yet.
+    unsafe {
+        libc::umask(0o077);
+    }
+    crate::access::secure_dir(&config.data_dir)?;
     let runtime = tokio::runtime::Builder::new_multi_thread().enable_all().build().map_err(|e| e.to_string())?;
     runtime.block_on(async move {
         let store = crate::store::Store::open(&config.data_dir).map_err(|e| format!("{}: {e}", config.data_dir.display()))?;

@@ -65,7 +65,7 @@ pub fn run_json(r: &pb::RunInfo) -> Value {
         "dataset_version": r.dataset_version, "labels": r.labels, "created_at": r.created_at,
         "started_at": r.started_at, "finished_at": r.finished_at, "reason": r.reason, "metric": r.metric,
         "settings": r.settings, "units_done": r.units_done, "units_total": r.units_total,
-        "picked": r.picked, "best": r.best, "schedule_id": r.schedule_id,
+        "picked": r.picked, "best": r.best, "schedule_id": r.schedule_id, "owner": r.owner,
         "scores": r.scores.iter().map(score_json).collect::<Vec<_>>(),
         "model": r.model.as_ref().map(|m| json!({"nodes": m.nodes, "leaves": m.leaves, "depth": m.depth, "classes": m.classes})),
         "dataset_rows": r.dataset_rows,

@@ -3,7 +3,7 @@
 
 use clap::{Args, Subcommand};
 use serde_json::{json, Value};
-use tonic::transport::Channel;
+use super::client::Conn;
 
 use super::client::status_line;
 use super::output;
@@ -77,7 +77,7 @@ pub struct CreateArgs {
     pub size_factor: Option<f64>,
 }
 
-pub async fn run(ch: Channel, command: ScheduleCommand, json_out: bool) -> Result<(), String> {
+pub async fn run(ch: Conn, command: ScheduleCommand, json_out: bool) -> Result<(), String> {
     let mut client = SchedulesClient::new(ch);
     match command {
         ScheduleCommand::Create(a) => {

@@ -389,6 +389,7 @@ pub fn run_info(r: &Run, outcome: Option<&RunOutcome>) -> pb::RunInfo {
         schedule_id: r.schedule_id.clone(),
         drift: r.drift.as_ref().map(drift_to),
         dataset_rows: r.dataset_rows,
+        owner: r.owner.clone().unwrap_or_default(),
         ..Default::default()
     };
     if let Some(o) = outcome {

@@ -10,6 +10,7 @@ use tracing::info;
 use super::{convert, error, page_size, token, Api};
 use std::sync::Arc;
 
+use crate::access::Caller;
 use crate::config::Config;
 use crate::job::{DatasetMeta, EventKind, IdKind, Run, RunState};
 use crate::pb;
@@ -100,28 +101,73 @@ pub async fn prepare_run(shared: &Arc<Shared>, r: pb::StartRunRequest, schedule_
     Ok(run)
 }
 
+/// A digest of what a StartRun request asks for (all but its idempotency key), so a key
+/// reused for another request is told apart from a retry. The spec has no map fields, so
+/// its encoding is deterministic; labels go in key order.
+pub fn request_digest(r: &pb::StartRunRequest) -> String {
+    use sha2::{Digest, Sha256};
+    let mut h = Sha256::new();
+    let mut field = |b: &[u8]| {
+        h.update((b.len() as u64).to_be_bytes());
+        h.update(b);
+    };
+    field(r.dataset_id.as_bytes());
+    field(r.dataset_name.as_bytes());
+    field(&prost::Message::encode_to_vec(&r.spec.clone().unwrap_or_default()));
+    let labels: std::collections::BTreeMap<_, _> = r.labels.iter().collect();
+    for (k, v) in labels {
+        field(k.as_bytes());
+        field(v.as_bytes());
+    }
+    crate::access::tokens::hex(&h.finalize())
+}
+
 impl Api {
-    /// Checks a sweep against its dataset and queues it.
-    pub async fn queue_run(&self, r: pb::StartRunRequest) -> Result<Run, Status> {
-        let run = prepare_run(&self.shared, r, String::new()).await?;
+    /// Checks a sweep against its dataset and queues it for `caller`: a retry with the same
+    /// idempotency key (scoped to the caller's token) returns the first run; the same key
+    /// with another request is ALREADY_EXISTS. The queue's total cap and the caller's own cap
+    /// are checked under one lock with the insert, so they hold under concurrent calls.
+    pub async fn queue_run(&self, caller: &Caller, r: pb::StartRunRequest) -> Result<Run, Status> {
+        let digest = request_digest(&r);
+        let key = r.idempotency_key.clone();
+        let same = |run: Run| -> Result<Run, Status> {
+            if run.request_digest.is_empty() || run.request_digest == digest {
+                Ok(run)
+            } else {
+                Err(Status::already_exists(format!("idempotency_key '{}' was used for a different request (run {}); use a new key", key.chars().take(100).collect::<String>(), run.id)))
+            }
+        };
+        if !key.is_empty() {
+            if let Some(run) = self.shared.store.run_by_idempotency(caller.name.as_deref(), &key).map_err(error::store)? {
+                return same(run);
+            }
+        }
+        let mut run = prepare_run(&self.shared, r, String::new()).await?;
+        run.owner = caller.name.clone();
+        run.request_digest = digest.clone();
         let dataset_id = run.dataset_id.clone();
         let cap = self.shared.config.max_queued_runs;
         let created = {
-            let _admit = self.shared.admit.lock().unwrap();
+            let _admit = self.shared.admit.lock().unwrap_or_else(|e| e.into_inner());
+            if let Some(owner) = &run.owner {
+                let own_cap = self.shared.config.access.max_queued_per_token;
+                if self.shared.store.queued_by(owner).map_err(error::store)? >= own_cap {
+                    return Err(error::cap("queue", &format!("token '{owner}' has {own_cap} queued runs; wait for some to start or cancel them"), "max_queued_per_token", own_cap as u64));
+                }
+            }
             let queued = self.shared.store.queued_count();
             self.shared.store.create_run_within(run, queued >= cap).map_err(error::store)?
         };
-        let run = match created {
+        match created {
             CreateRun::Created(run) => {
-                info!(run_id = %run.id, dataset = %run.dataset_id, "run queued");
+                info!(run_id = %run.id, dataset = %run.dataset_id, owner = caller.label(), "run queued");
                 self.shared.queued.notify_one();
-                run
+                Ok(run)
             }
-            CreateRun::Existing(run) => run,
-            CreateRun::DatasetMissing => return Err(error::not_found("dataset", &dataset_id)),
-            CreateRun::QueueFull => return Err(error::cap("queue", &format!("{} runs are queued", self.shared.store.queued_count()), "max_queued_runs", cap as u64)),
-        };
-        Ok(run)
+            CreateRun::Existing(run) => same(run),
+            CreateRun::DatasetMissing => Err(error::not_found("dataset", &dataset_id)),
+            CreateRun::QueueFull => Err(error::cap("queue", &format!("{} runs are queued", self.shared.store.queued_count()), "max_queued_runs", cap as u64)),
+        }
     }
 
     fn run_or_not_found(&self, id: &str) -> Result<Run, Status> {
@@ -135,7 +181,8 @@ type EventStream = Pin<Box<dyn Stream<Item = Result<pb::RunEvent, Status>> + Sen
 #[tonic::async_trait]
 impl pb::runs_server::Runs for Api {
     async fn start_run(&self, request: Request<pb::StartRunRequest>) -> Result<Response<pb::RunInfo>, Status> {
-        let run = self.queue_run(request.into_inner()).await?;
+        let caller = Caller::of(&request);
+        let run = self.queue_run(&caller, request.into_inner()).await?;
         Ok(Response::new(convert::run_info(&run, None)))
     }
 
@@ -240,8 +287,14 @@ impl pb::runs_server::Runs for Api {
     }
 
     async fn cancel_run(&self, request: Request<pb::CancelRunRequest>) -> Result<Response<pb::RunInfo>, Status> {
+        let caller = Caller::of(&request);
         let id = request.into_inner().id;
         let run = self.run_or_not_found(&id)?;
+        if !caller.owns(run.owner.as_deref()) {
+            let by = run.owner.as_deref().map_or("without a token or by a schedule".to_string(), |o| format!("by token '{o}'"));
+            return Err(Status::permission_denied(format!("run '{id}' was started {by}; cancelling another token's run needs the admin role")));
+        }
+        info!(run_id = %id, caller = caller.label(), "cancel requested");
         match run.state {
             RunState::Queued => {
                 self.shared.store.end_run(&id, RunState::Cancelled, "cancelled by request", self.shared.now()).map_err(error::store)?;

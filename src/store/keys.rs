@@ -28,6 +28,22 @@ pub fn version_of(name: &str, key: &[u8]) -> Option<u32> {
     Some(u32::from_be_bytes(key[prefix..].try_into().unwrap()))
 }
 
+/// The `idempotency` key of a run's idempotency key: the key itself for a run without an
+/// owner (no tokens, or a schedule's fire), `0x01 ++ owner ++ 0x00 ++ key` for a token's
+/// run, so two tokens using the same key never meet.
+pub fn idempotency(owner: Option<&str>, key: &str) -> Vec<u8> {
+    match owner {
+        None => key.as_bytes().to_vec(),
+        Some(o) => {
+            let mut k = vec![1u8];
+            k.extend_from_slice(o.as_bytes());
+            k.push(0);
+            k.extend_from_slice(key.as_bytes());
+            k
+        }
+    }
+}
+
 /// `run id ++ be u64 sequence`.
 pub fn event(run_id: &str, sequence: u64) -> Vec<u8> {
     join(run_id.as_bytes(), &sequence.to_be_bytes())

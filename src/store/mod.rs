@@ -338,8 +338,9 @@ impl Tx<'_> {
     /// Stores a queued run and enqueues it, unless its idempotency key or id names a stored
     /// run (that run is returned) or its dataset is not stored.
     fn insert_run(&self, run: &Run, queue_full: bool) -> TxResult<CreateRun> {
+        let idempotency = keys::idempotency(run.owner.as_deref(), &run.idempotency_key);
         if !run.idempotency_key.is_empty() {
-            if let Some(id) = self.get(IDEMPOTENCY, &run.idempotency_key)? {
+            if let Some(id) = self.get(IDEMPOTENCY, &idempotency)? {
                 let id = read(String::from_utf8(id.to_vec()).map_err(|_| StoreError::Corrupt("idempotency entry is not UTF-8".into())))?;
                 if let Some(existing) = self.run(&id)? {
                     return Ok(CreateRun::Existing(existing));
@@ -358,7 +359,7 @@ impl Tx<'_> {
         self.put_run(run)?;
         self.insert(QUEUE, &run.id, IVec::default())?;
         if !run.idempotency_key.is_empty() {
-            self.insert(IDEMPOTENCY, &run.idempotency_key, run.id.as_bytes())?;
+            self.insert(IDEMPOTENCY, idempotency, run.id.as_bytes())?;
         }
         self.hold(&run.dataset_id, &run.id)?;
         self.add_ref(&run.dataset_id, 1)?;
@@ -724,6 +725,26 @@ impl Store {
         retrying(|| self.transact(|tx| tx.insert_run(&run, queue_full)))
     }
 
+    /// The run an owner's idempotency key names, if any.
+    pub fn run_by_idempotency(&self, owner: Option<&str>, key: &str) -> Result<Option<Run>, StoreError> {
+        match self.tree(IDEMPOTENCY).get(keys::idempotency(owner, key))? {
+            None => Ok(None),
+            Some(id) => self.run(&String::from_utf8_lossy(&id)),
+        }
+    }
+
+    /// How many queued runs `owner` started.
+    pub fn queued_by(&self, owner: &str) -> Result<usize, StoreError> {
+        let mut n = 0;
+        for kv in self.tree(QUEUE).iter() {
+            let (id, _) = kv?;
+            if self.run(&String::from_utf8_lossy(&id))?.is_some_and(|r| r.state == RunState::Queued && r.owner.as_deref() == Some(owner)) {
+                n += 1;
+            }
+        }
+        Ok(n)
+    }
+
     pub fn run(&self, id: &str) -> Result<Option<Run>, StoreError> {
         self.tree(RUNS).get(id)?.map(|v| self.decode_run(&v)).transpose()
     }
@@ -1006,8 +1027,9 @@ impl Store {
                 for k in units.iter() {
                     tx.remove(UNITS, k)?;
                 }
-                if !run.idempotency_key.is_empty() && tx.get(IDEMPOTENCY, &run.idempotency_key)?.is_some_and(|v| v == run_id.as_bytes()) {
-                    tx.remove(IDEMPOTENCY, &run.idempotency_key)?;
+                let idempotency = keys::idempotency(run.owner.as_deref(), &run.idempotency_key);
+                if !run.idempotency_key.is_empty() && tx.get(IDEMPOTENCY, &idempotency)?.is_some_and(|v| v == run_id.as_bytes()) {
+                    tx.remove(IDEMPOTENCY, idempotency)?;
                 }
                 tx.add_ref(&run.dataset_id, -1)?;
                 Ok(true)

@@ -303,6 +303,11 @@ pub struct RunRecord {
     spec: SpecRecord,
     labels: BTreeMap<String, String>,
     idempotency_key: String,
+    /// Absent in records written before owners were recorded.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    owner: Option<String>,
+    #[serde(default, skip_serializing_if = "String::is_empty")]
+    request_digest: String,
     schedule_id: String,
     created_at: i64,
     started_at: Option<i64>,
@@ -336,6 +341,8 @@ impl From<&Run> for RunRecord {
             spec: SpecRecord::from(&r.spec),
             labels: r.labels.clone(),
             idempotency_key: r.idempotency_key.clone(),
+            owner: r.owner.clone(),
+            request_digest: r.request_digest.clone(),
             schedule_id: r.schedule_id.clone(),
             created_at: r.created_at,
             started_at: r.started_at,
@@ -367,6 +374,8 @@ impl TryFrom<RunRecord> for Run {
             target: r.target,
             labels: r.labels,
             idempotency_key: r.idempotency_key,
+            owner: r.owner,
+            request_digest: r.request_digest,
             schedule_id: r.schedule_id,
             created_at: r.created_at,
             started_at: r.started_at,
