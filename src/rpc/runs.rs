@@ -193,11 +193,17 @@ impl pb::runs_server::Runs for Api {
         self.run_or_not_found(&r.id)?;
         let shared = self.shared.clone();
         let (tx, rx) = tokio::sync::mpsc::channel(64);
+        // Subscribed before the task starts, and the flag read on every turn: a shutdown that
+        // begins before the task first runs still ends the stream with its status.
+        let mut changed = shared.changed.subscribe();
+        let mut shutdown = shared.shutdown.subscribe();
         tokio::spawn(async move {
-            let mut changed = shared.changed.subscribe();
-            let mut shutdown = shared.shutdown.subscribe();
             let mut after = r.after_sequence;
             loop {
+                if *shutdown.borrow_and_update() {
+                    let _ = tx.send(Err(error::shutting_down("follow again with after_sequence to resume"))).await;
+                    return;
+                }
                 // Mark the version seen before reading, so no event slips between read and wait.
                 changed.borrow_and_update();
                 // Read the state before the events: a run already terminal has stored all its

@@ -106,15 +106,7 @@ pub fn small_spec(depths: &[f64]) -> pb::SweepSpec {
 
 /// Asserts an error status with its code and words of its message.
 pub fn expect<T: std::fmt::Debug>(what: &str, r: Result<T, Status>, code: Code, needles: &[&str]) -> Status {
-    let s = match r {
-        Ok(v) => panic!("{what}: expected {code:?}, got Ok({v:?})"),
-        Err(s) => s,
-    };
-    assert_eq!(s.code(), code, "{what}: {s:?}");
-    for n in needles {
-        assert!(s.message().contains(n), "{what}: {:?} does not mention {n:?}", s.message());
-    }
-    s
+    process::expect_status(what, r, code, needles)
 }
 
 /// Polls `ready` until it holds (fails the test after PATIENCE).

@@ -59,14 +59,7 @@ impl Fixture {
     /// Checks one refused request: its code, that its message holds every needle, that the
     /// server is alive and that the store is unchanged.
     fn refused<T: std::fmt::Debug>(&mut self, what: &str, r: Result<T, Status>, code: Code, needles: &[&str]) {
-        let s = match r {
-            Ok(v) => panic!("{what}: expected {code:?}, got Ok({v:?})"),
-            Err(s) => s,
-        };
-        assert_eq!(s.code(), code, "{what}: {s:?}");
-        for n in needles {
-            assert!(s.message().contains(n), "{what}: the message {:?} does not name {n:?}", s.message());
-        }
+        process::expect_status(what, r, code, needles);
         assert_alive(&mut self.server);
         assert_eq!(snapshot(&self.server), self.before, "{what}: the store changed");
     }

@@ -54,15 +54,7 @@ fn models(ch: &Channel) -> ModelsClient<Channel> {
 
 /// Asserts a call failed with `code` and a message holding every needle; returns the status.
 fn expect<T: std::fmt::Debug>(what: &str, r: Result<T, Status>, code: Code, needles: &[&str]) -> Status {
-    let s = match r {
-        Ok(v) => panic!("{what}: expected {code:?}, got Ok({v:?})"),
-        Err(s) => s,
-    };
-    assert_eq!(s.code(), code, "{what}: {s:?}");
-    for n in needles {
-        assert!(s.message().contains(n), "{what}: the message {:?} does not say {n:?}", s.message());
-    }
-    s
+    super::process::expect_status(what, r, code, needles)
 }
 
 fn header(name: &str, target: &str) -> pb::UploadChunk {
@@ -338,13 +330,16 @@ fn a_stalled_upload_does_not_stop_other_calls_and_ends_when_idle() {
 fn an_upload_the_caller_abandons_stores_nothing() {
     let mut server = Serve::start();
     let before = snapshot(&server);
+    // The upload gets a runtime and connection of its own: shutting that runtime down drops
+    // the connection with the stream still open, as a client that dies would. (Dropping the
+    // sender first would end the stream cleanly: a complete upload of what was sent.)
     let rt = runtime();
     let ch = rt.block_on(channel(&server));
     let up = open_upload(&rt, &ch, "gone");
     up.send(&rt, &iris()[..2000]);
     until("the upload is staged", || (staged(&server) == 1).then_some(()));
-    up.call.abort();
-    drop(up.tx);
+    rt.shutdown_background();
+    drop(up);
     until("the staged file is removed", || (staged(&server) == 0).then_some(()));
     assert_alive(&mut server);
     assert_eq!(snapshot(&server), before);
@@ -373,17 +368,21 @@ fn sigterm_with_an_open_upload_ends_it_unavailable_and_stores_nothing() {
 
 #[test]
 fn sigterm_with_an_open_follow_ends_it_unavailable_and_exits() {
-    let mut server = serve("cpu_threads = 1\ndrain_secs = 5\n");
+    // Each unit is held 50 ms (a test hook), so the long sweep cannot end before SIGTERM
+    // however loaded the machine is.
+    let mut server = Serve::start_with(ServeOptions {
+        config: Some("cpu_threads = 1\ndrain_secs = 5\n".into()),
+        env: vec![("POLLARD_TEST_UNIT_DELAY_MS".into(), "50".into())],
+        ..Default::default()
+    });
     let rt = runtime();
     let ch = rt.block_on(channel(&server));
     server.run(&["put", data("wine.csv").to_str().unwrap(), "--name", "wine", "--target", "target"]).ok();
-    // A long sweep holds the one worker; the run behind it stays queued while followed.
+    // A long sweep, followed while it runs (a queued run has no events yet).
     let long = ["sweep", "--dataset", "wine", "--max-depth", "lin(1,40,1)", "--min-leaf-rows", "lin(1,60,1)", "--k", "10", "--repeats", "10", "--json"];
-    server.run(&long).json();
-    let queued = server.run(&["sweep", "--dataset", "wine", "--max-depth", "2", "--json"]).json();
-    let id = queued["id"].as_str().unwrap().to_string();
+    let id = server.run(&long).json()["id"].as_str().unwrap().to_string();
     let mut stream = rt.block_on(runs(&ch).follow_run(pb::FollowRunRequest { id, after_sequence: 0 })).unwrap().into_inner();
-    // The stream is open once its first event (queued) arrived.
+    // The stream is open once its first event (started) arrived.
     rt.block_on(stream.message()).unwrap().expect("a first event");
     server.signal(libc::SIGTERM);
     let end = rt.block_on(async {

@@ -22,6 +22,20 @@ pub const POLL: Duration = Duration::from_millis(25);
 /// How long any one command or condition may take before the test fails.
 pub const PATIENCE: Duration = Duration::from_secs(45);
 
+/// Asserts a gRPC call failed with `code` and a message holding every needle; returns the
+/// status.
+pub fn expect_status<T: std::fmt::Debug>(what: &str, r: Result<T, tonic::Status>, code: tonic::Code, needles: &[&str]) -> tonic::Status {
+    let s = match r {
+        Ok(v) => panic!("{what}: expected {code:?}, got Ok({v:?})"),
+        Err(s) => s,
+    };
+    assert_eq!(s.code(), code, "{what}: {s:?}");
+    for n in needles {
+        assert!(s.message().contains(n), "{what}: the message {:?} does not name {n:?}", s.message());
+    }
+    s
+}
+
 /// A file of tests/data (open datasets; sources and licences in tests/data/SOURCES.md).
 pub fn data(name: &str) -> PathBuf {
     Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/data").join(name)
