@@ -70,6 +70,10 @@ impl Files {
         Ok(Files { dir, lock: Mutex::new(()), remove_on_drop: temporary.then(|| root.to_path_buf()) })
     }
 
+    pub fn dir(&self) -> &Path {
+        &self.dir
+    }
+
     /// Where the bytes of dataset `id` are kept.
     pub fn path(&self, id: &str) -> Result<PathBuf, StoreError> {
         if !plain(id) {

@@ -524,6 +524,11 @@ impl Store {
         &self.staging
     }
 
+    /// The folder of the dataset files (`datasets` in the store directory).
+    pub fn datasets_dir(&self) -> &Path {
+        self.files.dir()
+    }
+
     fn tree(&self, t: usize) -> &sled::Tree {
         &self.trees[t]
     }

@@ -166,8 +166,8 @@ async fn a_fire_over_the_queue_cap_is_skipped() {
     let iris = put(&api, iris_head(150)).await;
     let s = api.create_schedule(Request::new(request("0 3 * * *", "UTC"))).await.unwrap().into_inner();
     // One run fills the queue (there is no worker to take it).
-    let other = api.queue_run(pb::StartRunRequest { dataset_id: iris.id.clone(), spec: Some(template()), ..Default::default() }).await.unwrap();
-    let e = api.queue_run(pb::StartRunRequest { dataset_id: iris.id.clone(), spec: Some(template()), ..Default::default() }).await.unwrap_err();
+    let other = api.queue_run(&pollard::access::Caller::anonymous(), pb::StartRunRequest { dataset_id: iris.id.clone(), spec: Some(template()), ..Default::default() }).await.unwrap();
+    let e = api.queue_run(&pollard::access::Caller::anonymous(), pb::StartRunRequest { dataset_id: iris.id.clone(), spec: Some(template()), ..Default::default() }).await.unwrap_err();
     assert_eq!(e.code(), Code::ResourceExhausted, "{e:?}");
     assert!(e.message().contains("max_queued_runs = 1"), "{e:?}");
     clock.set(ms("2027-05-01T03:00:00Z"));
@@ -260,6 +260,10 @@ async fn retention_deletes_exactly_the_expired_runs_and_no_dataset_in_use() {
     // used only by the deleted day-2 run: deleted. Versions 3 and 4 are in use.
     let stored: BTreeSet<u32> = api.shared.store.list_datasets(Some("iris"), None, 100).unwrap().0.into_iter().map(|d| d.version).collect();
     assert_eq!(stored, [1, 3, 4].into_iter().collect());
+    // The deleted version's file went with it.
+    let files: BTreeSet<String> = std::fs::read_dir(api.shared.store.datasets_dir()).unwrap().map(|e| e.unwrap().file_name().into_string().unwrap()).collect();
+    let want: BTreeSet<String> = [0, 2, 3].iter().map(|&i| format!("{}.csv", versions[i].id)).collect();
+    assert_eq!(files, want);
 }
 
 #[tokio::test]
