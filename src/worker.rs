@@ -132,13 +132,13 @@ fn panic_message(p: &(dyn std::any::Any + Send)) -> String {
 
 /// Parses a stored dataset for a run: its bytes, with the run's target and task.
 pub fn load_dataset(store: &Store, meta: &DatasetMeta, target: &str, task: Option<Task>, max_rows: usize, max_columns: usize) -> Result<Dataset, String> {
-    let bytes = store.dataset_bytes(&meta.id).map_err(|e| e.to_string())?.ok_or_else(|| format!("dataset {} has no stored bytes", meta.id))?;
+    let file = store.dataset_reader(&meta.id).map_err(|e| e.to_string())?.ok_or_else(|| format!("dataset {} has no stored bytes", meta.id))?;
     let mut options = CsvOptions::new(target);
     options.task = task;
     options.categorical = meta.categorical.clone();
     options.max_rows = Some(max_rows);
     options.max_columns = Some(max_columns);
-    read_dataset(&bytes[..], &options).map_err(|e| e.to_string())
+    read_dataset(std::io::BufReader::with_capacity(1 << 16, file), &options).map_err(|e| e.to_string())
 }
 
 /// A worker: executes runs one at a time until shutdown: first the runs an earlier process

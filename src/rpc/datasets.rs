@@ -171,7 +171,12 @@ impl Api {
             };
             // The frame is not needed to store the bytes.
             drop(frame);
-            match store.put_dataset_from(meta, &mut reader()?).map_err(error::store)? {
+            // A staged upload's file is moved into the store, not copied.
+            let stored = match &bytes {
+                Bytes::Memory(b) => store.put_dataset(meta, b),
+                Bytes::Staged(s) => store.put_dataset_staged(meta, &s.path),
+            };
+            match stored.map_err(error::store)? {
                 PutDataset::Created(m) | PutDataset::Existing(m) => Ok(convert::dataset_info(&m)),
             }
         })

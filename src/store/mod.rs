@@ -1,12 +1,13 @@
 //! The store: datasets, runs, their events, work units and outcomes, and the run queue, in
-//! one sled database. This is the only module that names sled.
+//! one sled database, with each dataset's bytes in a file of its own beside it ([`files`]:
+//! `datasets/<id>.csv`, so a delete erases them). This is the only module that names sled.
 //!
 //! Trees (keys → values; values are [`records`], one format byte then JSON):
 //!
 //! | tree | key | value |
 //! | --- | --- | --- |
 //! | `datasets` | dataset id | dataset record |
-//! | `dataset_chunks` | dataset id ++ be u32 index | raw bytes, 1 MiB per chunk |
+//! | `dataset_chunks` | dataset id ++ be u32 index | empty: where stores written before dataset files kept the bytes, 1 MiB per chunk; [`Store::open`] moves them to files |
 //! | `dataset_names` | name ++ 0x00 ++ be u32 version | dataset id; empty once deleted |
 //! | `dataset_holds` | dataset id | ids of the queued and running runs that use it |
 //! | `runs` | run id | run record |
@@ -34,10 +35,16 @@
 //! it does not. sled serialises transactions behind one lock, and a plain `get` waits for
 //! it, so single-key reads see whole changes; scans (listings) may see a change half done.
 //!
+//! A dataset's file is written and synced before its record's transaction, and removed after
+//! its delete transaction commits, both under [`files::Files::lock`]: a stored record always
+//! has its file. Files without a record (a crash between the two) are removed at open; a
+//! record whose file is missing anyway is a [`StoreError::Corrupt`] when its bytes are read.
+//!
 //! Expected outcomes are values ([`PutDataset`], [`DeleteDataset`], [`CreateRun`], `None`
 //! for a run that is unknown or no longer in the state a change needs); `Err` is for I/O and
 //! corruption only.
 
+pub mod files;
 pub mod keys;
 pub mod records;
 
@@ -45,7 +52,9 @@ pub mod records;
 mod tests;
 
 use std::fmt;
+use std::io::Write as _;
 use std::path::Path;
+use std::sync::Arc;
 
 use sled::transaction::{ConflictableTransactionError, TransactionError, TransactionalTree, UnabortableTransactionError};
 use sled::{IVec, Transactional};
@@ -58,7 +67,7 @@ use records::HoldsRecord;
 /// The directory inside the store directory where uploads are staged.
 pub const STAGING_DIR: &str = "uploads";
 
-/// Bytes per stored dataset chunk.
+/// Bytes per dataset chunk, in stores written before dataset files.
 pub const CHUNK_BYTES: usize = 1 << 20;
 
 /// Why the store could not do what it was asked.
@@ -182,6 +191,8 @@ pub struct Store {
     trees: Vec<sled::Tree>,
     /// Where uploads are staged as files while they arrive (see [`Store::staging_dir`]).
     staging: std::path::PathBuf,
+    /// The dataset files.
+    files: Arc<files::Files>,
 }
 
 const DATASETS: usize = 0;
@@ -375,12 +386,8 @@ impl Tx<'_> {
         if only_unused && self.refs(id)? > 0 {
             return Ok(DeleteDataset::InUse { run_id: String::new() });
         }
+        // (Its file is removed once this commits; no chunks are left after open.)
         self.remove(DATASETS, id)?;
-        // Chunks are numbered from 0 without gaps.
-        let mut i = 0u32;
-        while self.remove(CHUNKS, keys::chunk(id, i))?.is_some() {
-            i += 1;
-        }
         if !meta.name.is_empty() {
             let key = keys::name_version(&meta.name, meta.version);
             if self.get(NAMES, &key)?.is_some_and(|v| v == id.as_bytes()) {
@@ -410,20 +417,6 @@ impl Tx<'_> {
 }
 
 /// Runs `attempt` until it does not come back stale.
-/// Reads until `buf` is full or the input ends; how many bytes were read.
-fn read_full(r: &mut dyn std::io::Read, buf: &mut [u8]) -> std::io::Result<usize> {
-    let mut n = 0;
-    while n < buf.len() {
-        match r.read(&mut buf[n..]) {
-            Ok(0) => break,
-            Ok(k) => n += k,
-            Err(e) if e.kind() == std::io::ErrorKind::Interrupted => {}
-            Err(e) => return Err(e),
-        }
-    }
-    Ok(n)
-}
-
 fn retrying<A>(mut attempt: impl FnMut() -> Result<A, Abort>) -> Result<A, StoreError> {
     loop {
         match attempt() {
@@ -449,7 +442,7 @@ impl Store {
                     // Staged uploads of an earlier process never finished: nothing names them.
                     let staging = dir.join(STAGING_DIR);
                     let _ = std::fs::remove_dir_all(&staging);
-                    return Store::with(db, staging);
+                    return Store::with(db, staging, files::Files::open(dir, false)?);
                 }
                 // sled reports the taken lock as an I/O error whose text says so.
                 Err(sled::Error::Io(e)) if (e.kind() == std::io::ErrorKind::WouldBlock || e.to_string().contains("could not acquire lock")) && std::time::Instant::now() < deadline => {
@@ -460,16 +453,25 @@ impl Store {
         }
     }
 
-    /// A database that lives only as long as its last handle (for tests and the demo).
+    /// A database that lives only as long as its last handle (for tests and the demo), with
+    /// its dataset files and staged uploads in a directory of its own under the system
+    /// temporary directory, removed with the last handle.
     pub fn open_temporary() -> Result<Store, StoreError> {
-        Store::with(sled::Config::new().temporary(true).open()?, std::env::temp_dir().join("pollard-uploads"))
+        let root = std::env::temp_dir().join(format!("pollard-store-{}", uuid::Uuid::now_v7().simple()));
+        let files = files::Files::open(&root, true)?;
+        Store::with(sled::Config::new().temporary(true).open()?, root.join(STAGING_DIR), files)
     }
 
-    fn with(db: sled::Db, staging: std::path::PathBuf) -> Result<Store, StoreError> {
+    fn with(db: sled::Db, staging: std::path::PathBuf, files: files::Files) -> Result<Store, StoreError> {
         let trees = TREE_NAMES.iter().map(|n| db.open_tree(n)).collect::<Result<_, _>>()?;
-        let store = Store { db, trees, staging };
+        let store = Store { db, trees, staging, files: Arc::new(files) };
         store.count_refs_once()?;
-        store.discard_orphan_chunks()?;
+        store.move_chunks_to_files()?;
+        let datasets = store.tree(DATASETS);
+        let removed = store.files.tidy(|id| Ok(datasets.contains_key(id)?))?;
+        if removed > 0 {
+            tracing::info!(files = removed, "removed dataset files that no dataset record names (an upload or delete a crash cut short)");
+        }
         Ok(store)
     }
 
@@ -515,20 +517,16 @@ impl Store {
             })
     }
 
-    /// One transaction that only reads (a consistent view across keys), not flushed.
-    fn read_only<A>(&self, f: impl Fn(&Tx) -> TxResult<A>) -> Result<A, StoreError> {
-        self.trees.as_slice().transaction(|view: &Vec<TransactionalTree>| f(&Tx(view))).map_err(|e| match e {
-            TransactionError::Abort(Abort::Store(e)) => e,
-            TransactionError::Abort(Abort::Stale) => StoreError::Io("a read-only transaction went stale".into()),
-            TransactionError::Storage(e) => e.into(),
-        })
-    }
-
     /// A directory for files of uploads still arriving (`uploads` in the store directory,
     /// emptied at each open; the system temp dir for a temporary store). The files are not
     /// part of the store: a dataset exists once [`Store::put_dataset_from`] returns.
     pub fn staging_dir(&self) -> &Path {
         &self.staging
+    }
+
+    /// The folder of the dataset files (`datasets` in the store directory).
+    pub fn datasets_dir(&self) -> &Path {
+        self.files.dir()
     }
 
     fn tree(&self, t: usize) -> &sled::Tree {
@@ -540,45 +538,47 @@ impl Store {
 
     /// Stores a dataset unless one with this id exists. `meta.version` is ignored and
     /// assigned: 1 + the latest version under `meta.name` (deleted versions count); an empty
-    /// name gets version 1 and no name entry. The bytes are stored in chunks of
-    /// [`CHUNK_BYTES`]; `meta.bytes` is kept as given.
+    /// name gets version 1 and no name entry. The bytes go to the dataset's file; `meta.bytes`
+    /// is kept as given.
     pub fn put_dataset(&self, meta: DatasetMeta, bytes: &[u8]) -> Result<PutDataset, StoreError> {
         self.put_dataset_from(meta, &mut &bytes[..])
     }
 
-    /// [`Store::put_dataset`] with the bytes read from `bytes`, one chunk in memory at a time:
-    /// the chunks are written first, each on its own, then the dataset record in one
-    /// transaction. Until the record exists the chunks belong to no dataset (a reader never
-    /// sees them); chunks left without a record by a crash are removed at the next open.
+    /// [`Store::put_dataset`] with the bytes read from `bytes` (streamed to a temporary file,
+    /// never whole in memory), then placed and recorded (see the module notes).
     pub fn put_dataset_from(&self, meta: DatasetMeta, bytes: &mut dyn std::io::Read) -> Result<PutDataset, StoreError> {
         if let Some(existing) = self.dataset(&meta.id)? {
             return Ok(PutDataset::Existing(existing));
         }
-        let mut buf = vec![0u8; CHUNK_BYTES];
-        let mut chunks = 0u32;
-        loop {
-            let n = read_full(bytes, &mut buf).map_err(|e| StoreError::Io(format!("reading the dataset bytes: {e}")))?;
-            if n == 0 {
-                break;
-            }
-            self.tree(CHUNKS).insert(keys::chunk(&meta.id, chunks), &buf[..n])?;
-            chunks += 1;
-            if n < CHUNK_BYTES {
-                break;
-            }
+        let ready = self.files.write(&meta.id, |f| std::io::copy(bytes, f).map(|_| ()))?;
+        self.record_dataset(meta, ready)
+    }
+
+    /// [`Store::put_dataset`] with the bytes of a finished file in [`Store::staging_dir`],
+    /// which is moved into place (not copied) when the dataset is new, and left alone when it
+    /// is already stored.
+    pub fn put_dataset_staged(&self, meta: DatasetMeta, staged: &Path) -> Result<PutDataset, StoreError> {
+        if let Some(existing) = self.dataset(&meta.id)? {
+            return Ok(PutDataset::Existing(existing));
         }
-        drop(buf);
-        retrying(|| {
+        let ready = self.files.adopt(&meta.id, staged)?;
+        self.record_dataset(meta, ready)
+    }
+
+    /// Places a dataset's synced file and stores its record, under the files lock. A file
+    /// placed for a record that then fails to be stored is removed again.
+    fn record_dataset(&self, meta: DatasetMeta, ready: files::Ready) -> Result<PutDataset, StoreError> {
+        let _files = self.files.lock.lock().unwrap_or_else(|p| p.into_inner());
+        // Records of datasets are created and removed only under this lock: this check holds.
+        if let Some(existing) = self.dataset(&meta.id)? {
+            return Ok(PutDataset::Existing(existing));
+        }
+        self.files.place(&meta.id, ready)?;
+        let stored = retrying(|| {
             let latest = if meta.name.is_empty() { 0 } else { self.latest_version(&meta.name).map_err(Abort::Store)? };
             self.transact(|tx| {
                 if let Some(v) = tx.get(DATASETS, &meta.id)? {
                     return Ok(PutDataset::Existing(read(records::decode_dataset(&v))?));
-                }
-                // A delete of an equal dataset stored meanwhile may have removed chunks just
-                // written: the first and last must be there.
-                let whole = chunks == 0 || (tx.get(CHUNKS, keys::chunk(&meta.id, 0))?.is_some() && tx.get(CHUNKS, keys::chunk(&meta.id, chunks - 1))?.is_some());
-                if !whole {
-                    return fail(StoreError::Io(format!("the chunks of dataset {} were removed while it was stored; upload it again", meta.id)));
                 }
                 let mut m = meta.clone();
                 m.version = latest + 1;
@@ -592,27 +592,51 @@ impl Store {
                 tx.insert(DATASETS, &m.id, records::encode_dataset(&m))?;
                 Ok(PutDataset::Created(m))
             })
-        })
+        });
+        if stored.is_err() {
+            let _ = self.files.remove(&meta.id);
+        }
+        stored
     }
 
-    /// Removes chunks that no dataset record names (left by a crash between the chunks and
-    /// the record of [`Store::put_dataset_from`]). Visits one key per stored dataset id.
-    fn discard_orphan_chunks(&self) -> Result<(), StoreError> {
-        let mut from: Vec<u8> = Vec::new();
-        while let Some(kv) = self.tree(CHUNKS).range(from.clone()..).next() {
+    /// Moves dataset bytes kept as chunks (stores written before dataset files) to files, and
+    /// removes chunks that no dataset record names (left by a crash during an upload). Each
+    /// dataset's file is placed before its chunks are removed, so a crash in between only
+    /// moves it again at the next open. For open, before any other handle exists.
+    fn move_chunks_to_files(&self) -> Result<(), StoreError> {
+        let chunks = self.tree(CHUNKS);
+        while let Some(kv) = chunks.iter().next() {
             let (key, _) = kv?;
-            let Some(id) = key.len().checked_sub(4).and_then(|n| std::str::from_utf8(&key[..n]).ok()).map(str::to_string) else { break };
-            if self.tree(DATASETS).get(&id)?.is_none() {
-                let mut i = 0u32;
-                while self.tree(CHUNKS).remove(keys::chunk(&id, i))?.is_some() {
-                    i += 1;
+            let Some(id) = key.len().checked_sub(4).and_then(|n| std::str::from_utf8(&key[..n]).ok()).map(str::to_string) else {
+                return Err(StoreError::Corrupt(format!("a dataset chunk key of {} bytes names no dataset", key.len())));
+            };
+            let mut n = 0u32;
+            if self.tree(DATASETS).contains_key(&id)? {
+                let ready = self.files.write(&id, |f| {
+                    // Chunks are numbered from 0 without gaps.
+                    while let Some(chunk) = chunks.get(keys::chunk(&id, n)).map_err(std::io::Error::other)? {
+                        f.write_all(&chunk)?;
+                        n += 1;
+                    }
+                    Ok(())
+                })?;
+                self.files.place(&id, ready)?;
+                tracing::info!(dataset = %id, chunks = n, "moved a dataset's bytes from the database to its file");
+            } else {
+                while chunks.contains_key(keys::chunk(&id, n))? {
+                    n += 1;
                 }
-                tracing::info!(dataset = %id, chunks = i, "removed the chunks of an upload that did not finish");
+                tracing::info!(dataset = %id, chunks = n, "removed the chunks of an upload that did not finish");
             }
-            from = keys::chunk(&id, u32::MAX);
-            from.push(0);
+            let mut batch = sled::Batch::default();
+            for i in 0..n {
+                batch.remove(keys::chunk(&id, i));
+            }
+            // A key past a gap would be found again forever: remove the one that was seen.
+            batch.remove(key);
+            chunks.apply_batch(batch)?;
+            self.db.flush()?;
         }
-        self.db.flush()?;
         Ok(())
     }
 
@@ -631,21 +655,23 @@ impl Store {
         self.tree(DATASETS).get(id)?.map(|v| records::decode_dataset(&v)).transpose()
     }
 
-    /// The stored bytes of a dataset, read in one transaction so a concurrent delete is
-    /// seen whole or not at all.
+    /// The stored bytes of a dataset (see [`Store::dataset_reader`]).
     pub fn dataset_bytes(&self, id: &str) -> Result<Option<Vec<u8>>, StoreError> {
-        self.read_only(|tx| {
-            if tx.get(DATASETS, id)?.is_none() {
-                return Ok(None);
-            }
-            let mut out = Vec::new();
-            let mut i = 0u32;
-            while let Some(chunk) = tx.get(CHUNKS, keys::chunk(id, i))? {
-                out.extend_from_slice(&chunk);
-                i += 1;
-            }
-            Ok(Some(out))
-        })
+        let Some(mut file) = self.dataset_reader(id)? else { return Ok(None) };
+        let mut out = Vec::new();
+        std::io::Read::read_to_end(&mut file, &mut out).map_err(|e| StoreError::Io(format!("reading the bytes of dataset {id}: {e}")))?;
+        Ok(Some(out))
+    }
+
+    /// The file of a stored dataset, open for reading; `None` when the dataset is not stored.
+    /// A delete after this returns does not cut the reading short. A record whose file is
+    /// missing is [`StoreError::Corrupt`].
+    pub fn dataset_reader(&self, id: &str) -> Result<Option<std::fs::File>, StoreError> {
+        let _files = self.files.lock.lock().unwrap_or_else(|p| p.into_inner());
+        if !self.tree(DATASETS).contains_key(id)? {
+            return Ok(None);
+        }
+        self.files.open_file(id).map(Some)
     }
 
     /// The highest stored (not deleted) version under `name`.
@@ -699,13 +725,27 @@ impl Store {
     /// Deletes a dataset unless a queued or running run uses it; checked and deleted in one
     /// transaction, so no run can be created for it in between.
     pub fn delete_dataset(&self, id: &str) -> Result<DeleteDataset, StoreError> {
-        retrying(|| self.transact(|tx| tx.delete_dataset(id, false)))
+        self.delete_dataset_and_file(id, false)
     }
 
     /// Deletes a dataset only when no stored run (of any state) used it, checked in the same
     /// transaction; `InUse` names no run then. For retention.
     pub fn delete_dataset_if_unused(&self, id: &str) -> Result<DeleteDataset, StoreError> {
-        retrying(|| self.transact(|tx| tx.delete_dataset(id, true)))
+        self.delete_dataset_and_file(id, true)
+    }
+
+    /// The delete transaction, then (once it committed) the dataset's file, under the files
+    /// lock. A file that cannot be removed is logged and left to the next open, which removes
+    /// files no record names: the dataset is deleted either way.
+    fn delete_dataset_and_file(&self, id: &str, only_unused: bool) -> Result<DeleteDataset, StoreError> {
+        let _files = self.files.lock.lock().unwrap_or_else(|p| p.into_inner());
+        let done = retrying(|| self.transact(|tx| tx.delete_dataset(id, only_unused)))?;
+        if done == DeleteDataset::Deleted {
+            if let Err(e) = self.files.remove(id) {
+                tracing::warn!(dataset = %id, error = %e, "the deleted dataset's file stays until the next start");
+            }
+        }
+        Ok(done)
     }
 
     // -------------------------------------------------------------------------------------

@@ -276,28 +276,131 @@ fn the_store_reports_a_corrupt_record_it_holds() {
 // ---------------------------------------------------------------------------------------
 // Datasets
 
+/// The names in a store's dataset folder, sorted.
+fn dataset_files(dir: &Path) -> Vec<String> {
+    let mut names: Vec<String> = std::fs::read_dir(dir.join(files::DATASETS_DIR)).unwrap().map(|e| e.unwrap().file_name().into_string().unwrap()).collect();
+    names.sort();
+    names
+}
+
 #[test]
-fn dataset_bytes_are_chunked_and_deleted_whole() {
-    let store = Store::open_temporary().unwrap();
+fn dataset_bytes_live_in_files_and_are_deleted_whole() {
+    use std::os::unix::fs::PermissionsExt;
+    let dir = TempDir::new("files");
+    let store = Store::open(dir.path()).unwrap();
     let bytes: Vec<u8> = (0..(2 * CHUNK_BYTES + 12_345)).map(|i| (i * 7 % 251) as u8).collect();
     let PutDataset::Created(m) = store.put_dataset(meta("ds_big", "reefer", 5, bytes.len() as u64), &bytes).unwrap() else { panic!("not created") };
     assert_eq!(m.version, 1);
-    assert_eq!(store.tree(CHUNKS).len(), 3);
+    assert_eq!(store.tree(CHUNKS).len(), 0);
+    let file = dir.path().join("datasets/ds_big.csv");
+    assert_eq!(std::fs::read(&file).unwrap(), bytes);
+    assert_eq!(std::fs::metadata(&file).unwrap().permissions().mode() & 0o777, 0o600);
+    assert_eq!(std::fs::metadata(dir.path().join("datasets")).unwrap().permissions().mode() & 0o777, 0o700);
     assert_eq!(store.dataset_bytes("ds_big").unwrap().unwrap(), bytes);
+    // An existing id keeps its bytes.
     assert!(matches!(store.put_dataset(meta("ds_big", "other", 6, 0), &[]).unwrap(), PutDataset::Existing(e) if e == m));
+    assert_eq!(store.dataset_bytes("ds_big").unwrap().unwrap(), bytes);
     let PutDataset::Created(m2) = store.put_dataset(meta("ds_empty", "reefer", 6, 0), &[]).unwrap() else { panic!("not created") };
     assert_eq!(m2.version, 2);
     assert_eq!(store.dataset_bytes("ds_empty").unwrap(), Some(Vec::new()));
+    // A reader opened before a delete reads to the end.
+    let mut early = store.dataset_reader("ds_big").unwrap().unwrap();
     assert_eq!(store.delete_dataset("ds_big").unwrap(), DeleteDataset::Deleted);
-    assert_eq!(store.tree(CHUNKS).len(), 0);
+    assert!(!file.exists(), "the deleted dataset's file is removed");
+    let mut read_late = Vec::new();
+    std::io::Read::read_to_end(&mut early, &mut read_late).unwrap();
+    assert_eq!(read_late, bytes);
     assert_eq!(store.dataset_bytes("ds_big").unwrap(), None);
     assert_eq!(store.delete_dataset("ds_big").unwrap(), DeleteDataset::NotFound);
     // Versions keep growing past deleted ones; the latest is the newest still stored.
     assert_eq!(store.delete_dataset("ds_empty").unwrap(), DeleteDataset::Deleted);
+    assert_eq!(dataset_files(dir.path()), Vec::<String>::new());
     assert_eq!(store.latest_dataset("reefer").unwrap(), None);
     let PutDataset::Created(m3) = store.put_dataset(meta("ds_big", "reefer", 7, 0), &bytes).unwrap() else { panic!("not created") };
     assert_eq!(m3.version, 3);
     assert_eq!(store.latest_dataset("reefer").unwrap(), Some(m3));
+    assert_eq!(store.dataset_bytes("ds_big").unwrap().unwrap(), bytes);
+}
+
+#[test]
+fn a_staged_upload_is_moved_into_place() {
+    let dir = TempDir::new("staged");
+    let store = Store::open(dir.path()).unwrap();
+    std::fs::create_dir_all(store.staging_dir()).unwrap();
+    let staged = store.staging_dir().join("upload-1.part");
+    std::fs::write(&staged, b"a,b\n1,2\n").unwrap();
+    let PutDataset::Created(_) = store.put_dataset_staged(meta("ds_up", "", 1, 8), &staged).unwrap() else { panic!("not created") };
+    assert!(!staged.exists(), "moved, not copied");
+    assert_eq!(store.dataset_bytes("ds_up").unwrap().unwrap(), b"a,b\n1,2\n");
+    // Already stored: the staged file is left to its owner, the stored bytes unchanged.
+    std::fs::write(&staged, b"other").unwrap();
+    assert!(matches!(store.put_dataset_staged(meta("ds_up", "", 2, 5), &staged).unwrap(), PutDataset::Existing(_)));
+    assert!(staged.exists());
+    assert_eq!(store.dataset_bytes("ds_up").unwrap().unwrap(), b"a,b\n1,2\n");
+}
+
+#[test]
+fn open_removes_dataset_files_no_record_names() {
+    let dir = TempDir::new("orphans");
+    {
+        let store = Store::open(dir.path()).unwrap();
+        store.put_dataset(meta("ds_kept", "", 1, 4), b"kept").unwrap();
+    }
+    let folder = dir.path().join(files::DATASETS_DIR);
+    // What a crash can leave: a placed file whose record was never stored, a temporary file.
+    std::fs::write(folder.join("ds_orphan.csv"), b"orphan").unwrap();
+    std::fs::write(folder.join("ds_kept.0190aa.tmp"), b"half").unwrap();
+    std::fs::write(folder.join("notes.txt"), b"not ours").unwrap();
+    let store = Store::open(dir.path()).unwrap();
+    assert_eq!(dataset_files(dir.path()), ["ds_kept.csv", "notes.txt"]);
+    assert_eq!(store.dataset_bytes("ds_kept").unwrap().unwrap(), b"kept");
+    assert_eq!(store.dataset_bytes("ds_orphan").unwrap(), None);
+}
+
+#[test]
+fn a_record_whose_file_is_missing_is_a_named_error() {
+    let dir = TempDir::new("missing");
+    let store = Store::open(dir.path()).unwrap();
+    store.put_dataset(meta("ds_gone", "", 1, 4), b"gone").unwrap();
+    std::fs::remove_file(dir.path().join("datasets/ds_gone.csv")).unwrap();
+    let e = store.dataset_bytes("ds_gone").unwrap_err();
+    assert!(matches!(&e, StoreError::Corrupt(m) if m.contains("the bytes of dataset ds_gone are missing") && m.contains("ds_gone.csv")), "{e}");
+    assert!(store.dataset_reader("ds_gone").is_err());
+    // The record can still be deleted.
+    assert_eq!(store.delete_dataset("ds_gone").unwrap(), DeleteDataset::Deleted);
+    assert_eq!(store.dataset_bytes("ds_gone").unwrap(), None);
+}
+
+#[test]
+fn open_moves_chunked_bytes_of_an_older_store_to_files() {
+    let dir = TempDir::new("old-layout");
+    let big: Vec<u8> = (0..(CHUNK_BYTES + 99)).map(|i| (i * 5 % 241) as u8).collect();
+    {
+        // The layout written before dataset files: the record, and its bytes in 1 MiB chunks;
+        // plus the chunks of an upload a crash cut short (no record).
+        let store = Store::open(dir.path()).unwrap();
+        let mut m = meta("ds_old", "reefer", 1, big.len() as u64);
+        m.version = 1;
+        store.tree(DATASETS).insert("ds_old", records::encode_dataset(&m)).unwrap();
+        store.tree(NAMES).insert(keys::name_version("reefer", 1), "ds_old").unwrap();
+        for (i, chunk) in big.chunks(CHUNK_BYTES).enumerate() {
+            store.tree(CHUNKS).insert(keys::chunk("ds_old", i as u32), chunk).unwrap();
+        }
+        store.tree(CHUNKS).insert(keys::chunk("ds_cut", 0), &b"partial"[..]).unwrap();
+        store.flush().unwrap();
+    }
+    let store = Store::open(dir.path()).unwrap();
+    assert_eq!(store.tree(CHUNKS).len(), 0, "no chunks are left");
+    assert_eq!(dataset_files(dir.path()), ["ds_old.csv"]);
+    assert_eq!(store.dataset_bytes("ds_old").unwrap().unwrap(), big);
+    assert_eq!(store.dataset_bytes("ds_cut").unwrap(), None);
+    // And it behaves like any other dataset.
+    assert_eq!(store.latest_dataset("reefer").unwrap().unwrap().id, "ds_old");
+    assert_eq!(store.delete_dataset("ds_old").unwrap(), DeleteDataset::Deleted);
+    assert_eq!(dataset_files(dir.path()), Vec::<String>::new());
+    drop(store);
+    let store = Store::open(dir.path()).unwrap();
+    assert_eq!(store.dataset_bytes("ds_old").unwrap(), None);
 }
 
 #[test]

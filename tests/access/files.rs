@@ -121,11 +121,9 @@ fn the_store_is_owner_only() {
     assert!(!id.is_empty());
 }
 
-/// Known gap: the store removes a deleted dataset's chunks from its trees (no call can read
-/// them), but sled's log keeps the bytes on disk until it reuses the segment. Erasing them
-/// needs dataset bytes kept outside sled (a file per dataset, removed on delete).
+/// A dataset's bytes live in a file of their own, removed on delete: no file under the data
+/// dir (the database's log included) holds them afterwards.
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
-#[ignore = "sled's log keeps a deleted dataset's bytes until it reuses the segment"]
 async fn deleting_a_dataset_removes_its_bytes() {
     use pollard::pb;
     let mut server = Serve::start();
@@ -136,23 +134,33 @@ async fn deleting_a_dataset_removes_its_bytes() {
         csv.push_str(&format!("{i},{marker}{},{}\n", i % 3, i % 2));
     }
     let info = super::upload(super::authed(&ch, None), "secret", csv.into_bytes()).await.unwrap();
+    // The scan finds the bytes while the dataset is stored (in its file, and nowhere else).
+    let held = files_holding(&server.store, marker.as_bytes());
+    assert_eq!(held, [server.store.join("datasets").join(format!("{}.csv", info.id))], "the stored dataset's bytes");
     let mut d = pb::datasets_client::DatasetsClient::new(ch.clone());
     d.delete_dataset(pb::DeleteDatasetRequest { id: info.id.clone() }).await.unwrap();
     super::expect("the deleted dataset", d.get_dataset(pb::GetDatasetRequest { id: info.id.clone() }).await, tonic::Code::NotFound, &[]);
+    assert_eq!(files_holding(&server.store, marker.as_bytes()), Vec::<std::path::PathBuf>::new(), "right after the delete");
     drop(d);
     drop(ch);
     server.signal(libc::SIGTERM);
     assert!(server.wait_exit(super::process::PATIENCE).is_some());
-    let mut stack = vec![server.store.clone()];
+    assert_eq!(files_holding(&server.store, marker.as_bytes()), Vec::<std::path::PathBuf>::new(), "after shutdown");
+}
+
+/// Every file under `dir` whose bytes contain `needle`.
+fn files_holding(dir: &std::path::Path, needle: &[u8]) -> Vec<std::path::PathBuf> {
+    let mut out = Vec::new();
+    let mut stack = vec![dir.to_path_buf()];
     while let Some(dir) = stack.pop() {
         for e in std::fs::read_dir(&dir).unwrap() {
             let p = e.unwrap().path();
             if p.is_dir() {
                 stack.push(p);
-            } else {
-                let bytes = std::fs::read(&p).unwrap();
-                assert!(!bytes.windows(marker.len()).any(|w| w == marker.as_bytes()), "{} still holds the deleted dataset's bytes", p.display());
+            } else if std::fs::read(&p).is_ok_and(|bytes| bytes.windows(needle.len()).any(|w| w == needle)) {
+                out.push(p);
             }
         }
     }
+    out
 }

@@ -339,8 +339,8 @@ fn an_upload_the_caller_abandons_stores_nothing() {
     up.send(&rt, &iris()[..2000]);
     until("the upload is staged", || (staged(&server) == 1).then_some(()));
     rt.shutdown_background();
-    drop(up);
     until("the staged file is removed", || (staged(&server) == 0).then_some(()));
+    drop(up);
     assert_alive(&mut server);
     assert_eq!(snapshot(&server), before);
 }

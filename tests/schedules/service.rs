@@ -260,6 +260,10 @@ async fn retention_deletes_exactly_the_expired_runs_and_no_dataset_in_use() {
     // used only by the deleted day-2 run: deleted. Versions 3 and 4 are in use.
     let stored: BTreeSet<u32> = api.shared.store.list_datasets(Some("iris"), None, 100).unwrap().0.into_iter().map(|d| d.version).collect();
     assert_eq!(stored, [1, 3, 4].into_iter().collect());
+    // The deleted version's file went with it.
+    let files: BTreeSet<String> = std::fs::read_dir(api.shared.store.datasets_dir()).unwrap().map(|e| e.unwrap().file_name().into_string().unwrap()).collect();
+    let want: BTreeSet<String> = [0, 2, 3].iter().map(|&i| format!("{}.csv", versions[i].id)).collect();
+    assert_eq!(files, want);
 }
 
 #[tokio::test]
