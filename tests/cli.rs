@@ -433,6 +433,11 @@ fn errors_exit_non_zero_with_one_line() {
         let e = pollard(&["local", iris, "--target", "target", flag, range]).fails();
         assert!(e.contains(flag) && e.contains(needle), "local {flag} {range:?}: {e}");
     }
+    // Fractional counts are refused by the server, naming the field; not rounded.
+    for (flag, range, field) in [("--max-depth", "2.5", "max_depth.values[0]"), ("--min-leaf-rows", "0.5", "min_leaf_rows.values[0]"), ("--min-split-rows", "lin(2,5,1.5)", "min_split_rows.span.step")] {
+        let e = server.run(&["sweep", "--dataset", "iris", flag, range]).fails();
+        assert!(e.contains("InvalidArgument") && e.contains(field), "{flag} {range}: {e}");
+    }
     assert_eq!(ids(&server.run(&["runs", "--json"]).json()), Vec::<String>::new(), "no run was started by a bad command");
 
     // Usage errors from the argument parser are one line too, naming the problem.
