@@ -732,6 +732,10 @@ fn schedule_commands() {
     // Errors: one line, the field named.
     let e = server.run(&["schedule", "create", "--dataset", "iris", "--cron", "30 2 * *"]).fails();
     assert!(e.contains("InvalidArgument") && e.contains("cron"), "{e}");
+    for never in ["0 0 30 2 *", "0 0 31 4 *"] {
+        let e = server.run(&["schedule", "create", "--dataset", "iris", "--cron", never]).fails();
+        assert!(e.contains("InvalidArgument") && e.contains("cron") && e.contains("never fires"), "{never}: {e}");
+    }
     let e = server.run(&["schedule", "create", "--dataset", "iris", "--cron", "30 2 * * *", "--zone", "Europe/Atlantis"]).fails();
     assert!(e.contains("time_zone") && e.contains("Europe/Atlantis"), "{e}");
     let e = server.run(&["schedule", "create", "--dataset", "no_such_name", "--cron", "30 2 * * *"]).fails();
