@@ -750,3 +750,13 @@ fn schedule_commands() {
         assert!(e.contains("NotFound") && e.contains(&id), "{action}: {e}");
     }
 }
+
+#[test]
+fn a_second_serve_on_a_store_in_use_says_so_and_exits() {
+    let server = Serve::start();
+    let store = server.store.to_str().unwrap().to_string();
+    let e = pollard(&["serve", "--listen", "127.0.0.1:0", "--data", &store]).fails();
+    assert!(e.contains("in use") && e.contains(&store), "{e}");
+    // The first server is unharmed.
+    server.run(&["runs", "--json"]).json();
+}

@@ -436,23 +436,37 @@ fn retrying<A>(mut attempt: impl FnMut() -> Result<A, Abort>) -> Result<A, Store
 
 impl Store {
     /// Opens (or creates) the database in `dir`.
+    ///
+    /// A store that another process holds is refused at once ([`store_in_use`]). sled releases
+    /// its file lock only when the last thread of a closed database lets go, which can lag the
+    /// close by a moment: when this process opened `dir` before (a restart in the same
+    /// process), the lock may still be its own, so it waits a little while for it.
     pub fn open(dir: &Path) -> Result<Store, StoreError> {
-        // sled releases its file lock only when the last thread of a closed database lets go,
-        // which can lag the close by a moment (a restart in the same process): wait for it a
-        // little while before calling the store taken.
+        static OPENED: std::sync::Mutex<Vec<std::path::PathBuf>> = std::sync::Mutex::new(Vec::new());
+        let canonical = || std::fs::canonicalize(dir).unwrap_or_else(|_| dir.to_path_buf());
         let deadline = std::time::Instant::now() + std::time::Duration::from_secs(30);
         loop {
             // No background flusher: every change is flushed before it returns anyway, and the
             // flusher thread is what keeps a closed database's lock alive.
             match sled::Config::new().path(dir).flush_every_ms(None).open() {
                 Ok(db) => {
+                    let mut opened = OPENED.lock().unwrap_or_else(|e| e.into_inner());
+                    let here = canonical();
+                    if !opened.contains(&here) {
+                        opened.push(here);
+                    }
+                    drop(opened);
                     // Staged uploads of an earlier process never finished: nothing names them.
                     let staging = dir.join(STAGING_DIR);
                     let _ = std::fs::remove_dir_all(&staging);
                     return Store::with(db, staging);
                 }
                 // sled reports the taken lock as an I/O error whose text says so.
-                Err(sled::Error::Io(e)) if (e.kind() == std::io::ErrorKind::WouldBlock || e.to_string().contains("could not acquire lock")) && std::time::Instant::now() < deadline => {
+                Err(sled::Error::Io(e)) if e.kind() == std::io::ErrorKind::WouldBlock || e.to_string().contains("could not acquire lock") => {
+                    let ours = OPENED.lock().unwrap_or_else(|e| e.into_inner()).contains(&canonical());
+                    if !ours || std::time::Instant::now() >= deadline {
+                        return Err(store_in_use(dir));
+                    }
                     std::thread::sleep(std::time::Duration::from_millis(20));
                 }
                 Err(e) => return Err(StoreError::Io(format!("cannot open the store at {}: {e}", dir.display()))),
@@ -1193,6 +1207,11 @@ fn page<I, T>(items: Vec<I>, limit: usize, position: impl Fn(&I) -> String, valu
     kept.truncate(limit);
     let token = if more { kept.last().map(&position) } else { None };
     (kept.into_iter().map(value).collect(), token)
+}
+
+/// The error of a store whose lock another process (or a database still open) holds.
+pub fn store_in_use(dir: &Path) -> StoreError {
+    StoreError::Io(format!("the store at {} is in use by another process (is another `pollard serve` running on it?); stop that one or give another data directory", dir.display()))
 }
 
 /// Lays a stored progress record over a run.
