@@ -401,9 +401,17 @@ impl Tx<'_> {
         Ok(self.insert(SCHEDULES, &s.id, records::encode_schedule(s))?)
     }
 
-    /// Numbers and stores an event of `run` (which the caller saves afterwards).
+    /// Numbers and stores an event of `run` (which the caller saves afterwards). Its time is
+    /// `now`, or the previous event's time if that is later (a clock stepped back): times
+    /// never go backwards within a run.
     fn append(&self, run: &mut Run, kind: EventKind, now: i64) -> TxResult<Event> {
-        let event = Event { sequence: run.take_sequence(), at: now, kind };
+        let sequence = run.take_sequence();
+        let previous = match sequence.checked_sub(1).filter(|&s| s > 0) {
+            Some(s) => self.get(EVENTS, keys::event(&run.id, s))?.map(|v| records::decode_event(&v)).transpose(),
+            None => Ok(None),
+        };
+        let at = read(previous)?.map_or(now, |p| p.at.max(now));
+        let event = Event { sequence, at, kind };
         self.insert(EVENTS, keys::event(&run.id, event.sequence), records::encode_event(&event))?;
         Ok(event)
     }
@@ -859,8 +867,8 @@ impl Store {
     }
 
     /// Records a finished work unit of a running run and the (non-terminal) events it
-    /// announces, in one transaction: stores the unit, numbers and stores each event, bumps
-    /// `units_done`, saves the run. Returns the stored events; none when the unit was already
+    /// announces, in one transaction: stores the unit, bumps `units_done` (which a progress
+    /// event then carries), numbers and stores each event, saves the run. Returns the stored events; none when the unit was already
     /// stored or the run is not running (nothing is stored then).
     pub fn record_unit(&self, run_id: &str, unit: &UnitResult, events: Vec<EventKind>, now: i64) -> Result<Vec<Event>, StoreError> {
         let index = u32::try_from(unit.unit).map_err(|_| StoreError::Corrupt(format!("unit index {} does not fit a key", unit.unit)))?;
@@ -873,11 +881,16 @@ impl Store {
                     return Ok(Vec::new());
                 }
                 tx.insert(UNITS, &key, bytes.clone())?;
+                run.units_done += 1;
                 let mut out = Vec::with_capacity(events.len());
                 for kind in &events {
-                    out.push(tx.append(&mut run, kind.clone(), now)?);
+                    let mut kind = kind.clone();
+                    // The store's count of stored units is the one announced.
+                    if let EventKind::Progress(p) = &mut kind {
+                        p.units_done = run.units_done as usize;
+                    }
+                    out.push(tx.append(&mut run, kind, now)?);
                 }
-                run.units_done += 1;
                 tx.put_progress(&run)?;
                 Ok(out)
             })

@@ -362,6 +362,28 @@ fn a_unit_does_not_rewrite_the_run_record() {
     assert_eq!(store.run("run_0001").unwrap().unwrap().units_done, 5);
 }
 
+/// A unit's progress event carries the store's count of stored units, whatever the caller
+/// numbered it, and an event never takes a time before the run's previous event.
+#[test]
+fn progress_counts_stored_units_and_times_never_fall() {
+    let store = Store::open_temporary().unwrap();
+    store.put_dataset(meta("ds_1", "", 0, 0), b"x").unwrap();
+    store.create_run(Run::queued("run_0001".into(), &meta("ds_1", "", 0, 0), "y".into(), full_spec(3), 1)).unwrap();
+    store.claim_next(2).unwrap().unwrap();
+    let progress = |n| vec![EventKind::Progress(Progress { units_done: n, units_total: 4, scores_done: n, scores_total: 4 })];
+    // Numbered 2 and 1 by a caller that lost the race, and stamped 50 then 40.
+    let first = store.record_unit("run_0001", &unit_result(0, 10), progress(2), 50).unwrap();
+    let second = store.record_unit("run_0001", &unit_result(1, 10), progress(1), 40).unwrap();
+    let done = |e: &Event| match &e.kind {
+        EventKind::Progress(p) => p.units_done,
+        other => panic!("not progress: {other:?}"),
+    };
+    assert_eq!((done(&first[0]), first[0].at), (1, 50));
+    assert_eq!((done(&second[0]), second[0].at), (2, 50));
+    let (_, ended) = store.end_run("run_0001", RunState::Cancelled, "stop", 30).unwrap().unwrap();
+    assert_eq!(ended.at, 50);
+}
+
 /// A run that keeps dying without storing a unit is failed on its third resume; a clean
 /// stop clears the count.
 #[test]
@@ -586,9 +608,13 @@ fn step(store: &Store, model: &mut Model, op: &Op, now: i64) {
             let fresh = model.runs.get(&id).is_some_and(|r| r.state == RunState::Running) && !model.units.get(&id).is_some_and(|m| m.contains_key(&u.unit));
             let want: Vec<Event> = if fresh {
                 model.units.entry(id.clone()).or_default().insert(u.unit, u.clone());
-                let out = kinds.iter().map(|k| model.append(&id, k.clone(), now)).collect();
                 model.runs.get_mut(&id).unwrap().units_done += 1;
-                out
+                let done = model.runs[&id].units_done as usize;
+                let announced = |k: &EventKind| match k {
+                    EventKind::Progress(p) => EventKind::Progress(Progress { units_done: done, ..*p }),
+                    other => other.clone(),
+                };
+                kinds.iter().map(|k| model.append(&id, announced(k), now)).collect()
             } else {
                 Vec::new()
             };
