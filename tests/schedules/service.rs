@@ -166,8 +166,8 @@ async fn a_fire_over_the_queue_cap_is_skipped() {
     let iris = put(&api, iris_head(150)).await;
     let s = api.create_schedule(Request::new(request("0 3 * * *", "UTC"))).await.unwrap().into_inner();
     // One run fills the queue (there is no worker to take it).
-    let other = api.queue_run(pb::StartRunRequest { dataset_id: iris.id.clone(), spec: Some(template()), ..Default::default() }).await.unwrap();
-    let e = api.queue_run(pb::StartRunRequest { dataset_id: iris.id.clone(), spec: Some(template()), ..Default::default() }).await.unwrap_err();
+    let other = api.queue_run(&pollard::access::Caller::anonymous(), pb::StartRunRequest { dataset_id: iris.id.clone(), spec: Some(template()), ..Default::default() }).await.unwrap();
+    let e = api.queue_run(&pollard::access::Caller::anonymous(), pb::StartRunRequest { dataset_id: iris.id.clone(), spec: Some(template()), ..Default::default() }).await.unwrap_err();
     assert_eq!(e.code(), Code::ResourceExhausted, "{e:?}");
     assert!(e.message().contains("max_queued_runs = 1"), "{e:?}");
     clock.set(ms("2027-05-01T03:00:00Z"));
