@@ -760,3 +760,28 @@ fn a_second_serve_on_a_store_in_use_says_so_and_exits() {
     // The first server is unharmed.
     server.run(&["runs", "--json"]).json();
 }
+
+/// A version belongs to its name: bytes uploaded before under another name are that name's
+/// version 1; the same bytes and target again change nothing ("unchanged, still v1"); a
+/// second target is version 2.
+#[test]
+fn dataset_versions_follow_the_name() {
+    let server = Serve::start();
+    let iris = data("iris.csv");
+    let iris = iris.to_str().unwrap();
+    let first = server.run(&["put", iris, "--name", "voyages", "--target", "target", "--json"]).json();
+    let bad = server.run(&["put", iris, "--name", "bad", "--target", "target", "--json"]).json();
+    assert_eq!((s(&bad, "name"), u(&bad, "version"), bad["unchanged"].as_bool()), ("bad", 1, Some(false)), "{bad}");
+    assert_ne!(s(&bad, "id"), s(&first, "id"));
+    assert_eq!(s(&bad, "sha256"), s(&first, "sha256"), "equal bytes, equal content hash");
+    assert_eq!(ids(&server.run(&["datasets", "--name", "bad", "--json"]).json()), vec![s(&bad, "id").to_string()]);
+    let again = server.run(&["put", iris, "--name", "bad", "--target", "target", "--json"]).json();
+    assert_eq!((s(&again, "id"), u(&again, "version"), again["unchanged"].as_bool()), (s(&bad, "id"), 1, Some(true)), "{again}");
+    let text = server.run(&["put", iris, "--name", "bad", "--target", "target"]).ok();
+    assert!(text.contains("v1") && text.contains("unchanged"), "{text}");
+    let other = server.run(&["put", iris, "--name", "bad", "--target", "sepal_length_cm", "--json"]).json();
+    assert_eq!((u(&other, "version"), other["unchanged"].as_bool(), s(&other, "target")), (2, Some(false), "sepal_length_cm"), "{other}");
+    assert_eq!(server.run(&["datasets", "--name", "bad", "--json"]).json().as_array().map(Vec::len), Some(2));
+    // The first name's history is untouched.
+    assert_eq!(ids(&server.run(&["datasets", "--name", "voyages", "--json"]).json()), vec![s(&first, "id").to_string()]);
+}

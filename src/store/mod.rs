@@ -117,8 +117,14 @@ pub enum Resumed {
 pub enum PutDataset {
     /// Stored, with its assigned version.
     Created(DatasetMeta),
-    /// A dataset with this id was already stored; nothing changed.
-    Existing(DatasetMeta),
+    /// Nothing changed: a dataset with this id is stored, or the newest version of the name
+    /// has the same content, target and categorical columns (that version is returned).
+    Unchanged(DatasetMeta),
+}
+
+/// Whether two datasets are one version: same bytes, read the same way.
+fn same_version(a: &DatasetMeta, b: &DatasetMeta) -> bool {
+    a.content == b.content && a.target == b.target && a.categorical == b.categorical
 }
 
 /// What [`Store::delete_dataset`] did.
@@ -560,9 +566,12 @@ impl Store {
     // -------------------------------------------------------------------------------------
     // Datasets
 
-    /// Stores a dataset unless one with this id exists. `meta.version` is ignored and
-    /// assigned: 1 + the latest version under `meta.name` (deleted versions count); an empty
-    /// name gets version 1 and no name entry. The bytes are stored in chunks of
+    /// Stores a dataset as the next version of its name, unless nothing changed
+    /// ([`PutDataset::Unchanged`]: a dataset with this id exists, or the newest version of the
+    /// name is the same version, by [`same_version`]). `meta.version` is ignored and assigned:
+    /// 1 + the latest version under `meta.name` (deleted versions count); an empty name gets
+    /// version 1 and no name entry. A version belongs to its name: the same bytes under
+    /// another name, or with another target, are another version (stored again). The bytes are stored in chunks of
     /// [`CHUNK_BYTES`]; `meta.bytes` is kept as given.
     pub fn put_dataset(&self, meta: DatasetMeta, bytes: &[u8]) -> Result<PutDataset, StoreError> {
         self.put_dataset_from(meta, &mut &bytes[..])
@@ -574,7 +583,10 @@ impl Store {
     /// sees them); chunks left without a record by a crash are removed at the next open.
     pub fn put_dataset_from(&self, meta: DatasetMeta, bytes: &mut dyn std::io::Read) -> Result<PutDataset, StoreError> {
         if let Some(existing) = self.dataset(&meta.id)? {
-            return Ok(PutDataset::Existing(existing));
+            return Ok(PutDataset::Unchanged(existing));
+        }
+        if let Some(newest) = self.newest_version(&meta.name)?.filter(|n| same_version(n, &meta)) {
+            return Ok(PutDataset::Unchanged(newest));
         }
         let mut buf = vec![0u8; CHUNK_BYTES];
         let mut chunks = 0u32;
@@ -590,11 +602,21 @@ impl Store {
             }
         }
         drop(buf);
-        retrying(|| {
+        let put = retrying(|| {
             let latest = if meta.name.is_empty() { 0 } else { self.latest_version(&meta.name).map_err(Abort::Store)? };
             self.transact(|tx| {
                 if let Some(v) = tx.get(DATASETS, &meta.id)? {
-                    return Ok(PutDataset::Existing(read(records::decode_dataset(&v))?));
+                    return Ok(PutDataset::Unchanged(read(records::decode_dataset(&v))?));
+                }
+                // An equal upload to the same name may have won meanwhile.
+                if latest > 0 {
+                    let id = tx.get(NAMES, keys::name_version(&meta.name, latest))?.unwrap_or_default();
+                    if let Some(v) = tx.get(DATASETS, &id)? {
+                        let newest = read(records::decode_dataset(&v))?;
+                        if same_version(&newest, &meta) {
+                            return Ok(PutDataset::Unchanged(newest));
+                        }
+                    }
                 }
                 // A delete of an equal dataset stored meanwhile may have removed chunks just
                 // written: the first and last must be there.
@@ -614,7 +636,25 @@ impl Store {
                 tx.insert(DATASETS, &m.id, records::encode_dataset(&m))?;
                 Ok(PutDataset::Created(m))
             })
-        })
+        })?;
+        // The chunks just written belong to no record when another version was returned.
+        if matches!(&put, PutDataset::Unchanged(m) if m.id != meta.id) {
+            for i in 0..chunks {
+                self.tree(CHUNKS).remove(keys::chunk(&meta.id, i))?;
+            }
+        }
+        Ok(put)
+    }
+
+    /// The record at the highest version of `name`, unless that version was deleted.
+    fn newest_version(&self, name: &str) -> Result<Option<DatasetMeta>, StoreError> {
+        if name.is_empty() {
+            return Ok(None);
+        }
+        match self.tree(NAMES).get(keys::name_version(name, self.latest_version(name)?))? {
+            Some(id) if !id.is_empty() => self.dataset(&String::from_utf8_lossy(&id)),
+            _ => Ok(None),
+        }
     }
 
     /// Removes chunks that no dataset record names (left by a crash between the chunks and

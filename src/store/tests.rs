@@ -59,6 +59,7 @@ macro_rules! assert_same {
 fn meta(id: &str, name: &str, created_at: i64, bytes: u64) -> DatasetMeta {
     DatasetMeta {
         id: id.to_string(),
+        content: format!("content of {id}"),
         name: name.to_string(),
         version: 0,
         rows: 150,
@@ -146,6 +147,12 @@ fn dataset_record_round_trips() {
     m.version = 7;
     m.rows = u64::MAX;
     assert_eq!(records::decode_dataset(&records::encode_dataset(&m)).unwrap(), m);
+    // A record written before versions followed names has no content: its id is `ds_` +
+    // the content hash.
+    let old = DatasetMeta { content: String::new(), ..m.clone() };
+    let bytes = records::encode_dataset(&old);
+    assert!(!String::from_utf8_lossy(&bytes).contains("content"));
+    assert_eq!(records::decode_dataset(&bytes).unwrap(), DatasetMeta { content: "ab".into(), ..m });
 }
 
 #[test]
@@ -284,7 +291,7 @@ fn dataset_bytes_are_chunked_and_deleted_whole() {
     assert_eq!(m.version, 1);
     assert_eq!(store.tree(CHUNKS).len(), 3);
     assert_eq!(store.dataset_bytes("ds_big").unwrap().unwrap(), bytes);
-    assert!(matches!(store.put_dataset(meta("ds_big", "other", 6, 0), &[]).unwrap(), PutDataset::Existing(e) if e == m));
+    assert!(matches!(store.put_dataset(meta("ds_big", "other", 6, 0), &[]).unwrap(), PutDataset::Unchanged(e) if e == m));
     let PutDataset::Created(m2) = store.put_dataset(meta("ds_empty", "reefer", 6, 0), &[]).unwrap() else { panic!("not created") };
     assert_eq!(m2.version, 2);
     assert_eq!(store.dataset_bytes("ds_empty").unwrap(), Some(Vec::new()));
@@ -332,6 +339,35 @@ fn concurrent_claims_take_each_run_once_in_order() {
     all.sort();
     assert_eq!(all, (0..n).map(|i| format!("run_{i:04}")).collect::<Vec<_>>());
     assert_eq!(store.running_runs().unwrap().len(), n as usize);
+}
+
+/// A version belongs to its name: equal bytes under a second name, or with a second target,
+/// are a new version; the same bytes and target as the newest version of the name change
+/// nothing and return that version.
+#[test]
+fn versions_follow_the_name() {
+    let store = Store::open_temporary().unwrap();
+    let put = |id: &str, name: &str, content: &str, target: &str| {
+        let m = DatasetMeta { content: content.into(), target: target.into(), ..meta(id, name, 1, 4) };
+        store.put_dataset(m, content.as_bytes()).unwrap()
+    };
+    let PutDataset::Created(first) = put("ds_1", "voyages", "abcd", "spoiled") else { panic!("not created") };
+    // Same bytes, another name: that name's version 1, with its own id and bytes.
+    let PutDataset::Created(other) = put("ds_2", "bad", "abcd", "spoiled") else { panic!("not created") };
+    assert_eq!((other.name.as_str(), other.version, other.content.as_str()), ("bad", 1, "abcd"));
+    assert_eq!(store.latest_dataset("bad").unwrap(), Some(other.clone()));
+    assert_eq!(store.dataset_bytes("ds_2").unwrap().unwrap(), b"abcd");
+    // Same bytes and target as the newest version: unchanged, still v1; nothing stored.
+    let chunks = store.tree(CHUNKS).len();
+    assert_eq!(put("ds_3", "voyages", "abcd", "spoiled"), PutDataset::Unchanged(first.clone()));
+    assert_eq!((store.dataset("ds_3").unwrap(), store.tree(CHUNKS).len()), (None, chunks));
+    // Another target for the same bytes: a new version.
+    let PutDataset::Created(v2) = put("ds_4", "voyages", "abcd", "box_temp") else { panic!("not created") };
+    assert_eq!((v2.version, v2.target.as_str()), (2, "box_temp"));
+    // Back to the first target: the newest version differs, so version 3.
+    let PutDataset::Created(v3) = put("ds_5", "voyages", "abcd", "spoiled") else { panic!("not created") };
+    assert_eq!(v3.version, 3);
+    assert_eq!(store.list_datasets(Some("voyages"), None, 10).unwrap().0.len(), 3);
 }
 
 /// A finished unit stores its progress apart: the run record (labels, spec and all) is not
@@ -540,7 +576,7 @@ fn step(store: &Store, model: &mut Model, op: &Op, now: i64) {
             let m = meta(&content_id(*c), NAMES_USED[*name], now, bytes.len() as u64);
             let got = store.put_dataset(m.clone(), &bytes).unwrap();
             let want = match model.datasets.get(&m.id) {
-                Some((stored, _)) => PutDataset::Existing(stored.clone()),
+                Some((stored, _)) => PutDataset::Unchanged(stored.clone()),
                 None => {
                     let mut m = m;
                     m.version = if m.name.is_empty() {
