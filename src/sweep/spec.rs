@@ -463,7 +463,7 @@ fn real_key(x: f64) -> u64 {
 /// log span's inner points are not whole by construction: they are rounded to the nearest
 /// whole number (equal ones then count once).
 fn whole_given(field: &str, range: &Range) -> Result<(), SpecError> {
-    let check = |path: String, x: f64| if x.is_finite() && x.fract() != 0.0 { Err(spec_error(path, format!("counts rows, levels or leaves: {x} is not a whole number"))) } else { Ok(()) };
+    let check = |path: String, x: f64| if x.is_finite() && x.fract() != 0.0 { Err(spec_error(path, format!("counts rows, levels or leaves: {x:?} is not a whole number"))) } else { Ok(()) };
     match range {
         Range::Values(v) => v.iter().enumerate().try_for_each(|(i, x)| x.map_or(Ok(()), |x| check(format!("{field}.values[{i}]"), x))),
         Range::Span { from, to, step } => {
@@ -492,9 +492,10 @@ fn to_count(field: &str, i: usize, x: f64, min: u32) -> Result<u32, SpecError> {
 
 fn counts(field: &str, range: &Option<Range>, min: u32, default: u32, cap: usize) -> Result<Vec<u32>, SpecError> {
     let Some(range) = range else { return Ok(vec![default]) };
+    let values = expand(field, range, cap)?;
     whole_given(field, range)?;
     let mut out = Vec::new();
-    for (i, v) in expand(field, range, cap)?.into_iter().enumerate() {
+    for (i, v) in values.into_iter().enumerate() {
         let Some(x) = v else { return Err(spec_error(format!("{field}.values[{i}]"), "cannot be 'no limit'")) };
         out.push(to_count(field, i, x, min)?);
     }
@@ -503,9 +504,10 @@ fn counts(field: &str, range: &Option<Range>, min: u32, default: u32, cap: usize
 
 fn optional_counts(field: &str, range: &Option<Range>, min: u32, cap: usize) -> Result<Vec<Option<u32>>, SpecError> {
     let Some(range) = range else { return Ok(vec![None]) };
+    let values = expand(field, range, cap)?;
     whole_given(field, range)?;
     let mut out = Vec::new();
-    for (i, v) in expand(field, range, cap)?.into_iter().enumerate() {
+    for (i, v) in values.into_iter().enumerate() {
         out.push(match v {
             None => None,
             Some(x) => Some(to_count(field, i, x, min)?),
