@@ -85,8 +85,11 @@ impl IdKind {
 /// An uploaded table as stored: its bytes live apart, chunked.
 #[derive(Clone, Debug, PartialEq)]
 pub struct DatasetMeta {
-    /// `ds_` + hex SHA-256 of the bytes.
+    /// `ds_` + 64 hex digits, naming this version (see `rpc::datasets::new_dataset_id`);
+    /// stores written before versions followed names used the content hash.
     pub id: String,
+    /// Hex SHA-256 of the bytes: equal bytes have equal content, whatever their name.
+    pub content: String,
     pub name: String,
     pub version: u32,
     pub rows: u64,
@@ -436,7 +439,7 @@ mod tests {
     use super::*;
 
     fn run(id: &str, state: RunState, created_at: i64) -> Run {
-        let meta = DatasetMeta { id: "ds_a".into(), name: "a".into(), version: 1, rows: 3, columns: vec![], target: "y".into(), task: "classify".into(), created_at: 0, bytes: 0, categorical: vec![] };
+        let meta = DatasetMeta { id: "ds_a".into(), content: "a".into(), name: "a".into(), version: 1, rows: 3, columns: vec![], target: "y".into(), task: "classify".into(), created_at: 0, bytes: 0, categorical: vec![] };
         Run { state, ..Run::queued(id.into(), &meta, "y".into(), SweepSpec::default(), created_at) }
     }
 

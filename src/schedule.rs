@@ -190,6 +190,21 @@ impl Cron {
         Ok(Cron { expr: expr.to_string(), tz, parsed })
     }
 
+    /// Refuses an expression that never fires, such as `0 0 30 2 *` (February 30) or
+    /// `0 0 31 4 *` (April 31). Whether a local minute matches depends only on the calendar:
+    /// the 30 years from 2024 hold every month-day pair that exists (February 29 in 2024)
+    /// and every weekday (a weekday field matches on its own: either day field matches).
+    /// Every matching local minute fires (one skipped by a clock change fires at the end of
+    /// the jump), so the zone does not matter.
+    pub fn check_fires(&self) -> Result<(), ScheduleError> {
+        const FROM_MS: i64 = 1_704_067_200_000; // 2024-01-01T00:00:00Z
+        const YEARS: i64 = 30;
+        if self.next_within(FROM_MS, FROM_MS + YEARS * 366 * 24 * 3_600_000).is_some() {
+            return Ok(());
+        }
+        Err(ScheduleError::cron(format!("{:?} never fires: no calendar day matches its day-of-month and month fields", self.expr)))
+    }
+
     /// The expression as given to [`Cron::parse`].
     pub fn expr(&self) -> &str {
         &self.expr
@@ -475,6 +490,20 @@ mod tests {
         assert_eq!(fires("0,20,40 9,10 * 2 *", "UTC", from, 4), want);
         // 10-50/20 is 10, 30, 50.
         assert_eq!(fires("10-50/20 0 * * *", "UTC", from, 3), vec![utc(2027, 1, 1, 0, 10), utc(2027, 1, 1, 0, 30), utc(2027, 1, 1, 0, 50)]);
+    }
+
+    #[test]
+    fn expressions_that_never_fire_are_refused() {
+        for expr in ["0 0 30 2 *", "0 0 31 4 *", "0 0 31 2,4,6,9,11 *", "15 3 30,31 FEB *"] {
+            let e = Cron::parse(expr, "UTC").unwrap().check_fires().unwrap_err();
+            assert_eq!(e.field, "cron", "{expr}");
+            assert!(e.message.contains("never fires"), "{expr}: {e}");
+        }
+        // February 29 fires once in four years (eight around 2100); a weekday field fires
+        // on its weekdays even when the day of the month never exists (either field matches).
+        for expr in ["0 0 29 2 *", "0 0 31 * *", "0 0 30 2 MON", "0 0 31 1-4 *", "*/5 * * * *"] {
+            assert_eq!(Cron::parse(expr, "Europe/Berlin").unwrap().check_fires(), Ok(()), "{expr}");
+        }
     }
 
     #[test]

@@ -433,6 +433,11 @@ fn errors_exit_non_zero_with_one_line() {
         let e = pollard(&["local", iris, "--target", "target", flag, range]).fails();
         assert!(e.contains(flag) && e.contains(needle), "local {flag} {range:?}: {e}");
     }
+    // Fractional counts are refused by the server, naming the field; not rounded.
+    for (flag, range, field) in [("--max-depth", "2.5", "max_depth.values[0]"), ("--min-leaf-rows", "0.5", "min_leaf_rows.values[0]"), ("--min-split-rows", "lin(2,5,1.5)", "min_split_rows.span.step")] {
+        let e = server.run(&["sweep", "--dataset", "iris", flag, range]).fails();
+        assert!(e.contains("InvalidArgument") && e.contains(field), "{flag} {range}: {e}");
+    }
     assert_eq!(ids(&server.run(&["runs", "--json"]).json()), Vec::<String>::new(), "no run was started by a bad command");
 
     // Usage errors from the argument parser are one line too, naming the problem.
@@ -727,6 +732,10 @@ fn schedule_commands() {
     // Errors: one line, the field named.
     let e = server.run(&["schedule", "create", "--dataset", "iris", "--cron", "30 2 * *"]).fails();
     assert!(e.contains("InvalidArgument") && e.contains("cron"), "{e}");
+    for never in ["0 0 30 2 *", "0 0 31 4 *"] {
+        let e = server.run(&["schedule", "create", "--dataset", "iris", "--cron", never]).fails();
+        assert!(e.contains("InvalidArgument") && e.contains("cron") && e.contains("never fires"), "{never}: {e}");
+    }
     let e = server.run(&["schedule", "create", "--dataset", "iris", "--cron", "30 2 * * *", "--zone", "Europe/Atlantis"]).fails();
     assert!(e.contains("time_zone") && e.contains("Europe/Atlantis"), "{e}");
     let e = server.run(&["schedule", "create", "--dataset", "no_such_name", "--cron", "30 2 * * *"]).fails();
@@ -740,4 +749,39 @@ fn schedule_commands() {
         let e = server.run(&["schedule", action, &id]).fails();
         assert!(e.contains("NotFound") && e.contains(&id), "{action}: {e}");
     }
+}
+
+#[test]
+fn a_second_serve_on_a_store_in_use_says_so_and_exits() {
+    let server = Serve::start();
+    let store = server.store.to_str().unwrap().to_string();
+    let e = pollard(&["serve", "--listen", "127.0.0.1:0", "--data", &store]).fails();
+    assert!(e.contains("in use") && e.contains(&store), "{e}");
+    // The first server is unharmed.
+    server.run(&["runs", "--json"]).json();
+}
+
+/// A version belongs to its name: bytes uploaded before under another name are that name's
+/// version 1; the same bytes and target again change nothing ("unchanged, still v1"); a
+/// second target is version 2.
+#[test]
+fn dataset_versions_follow_the_name() {
+    let server = Serve::start();
+    let iris = data("iris.csv");
+    let iris = iris.to_str().unwrap();
+    let first = server.run(&["put", iris, "--name", "voyages", "--target", "target", "--json"]).json();
+    let bad = server.run(&["put", iris, "--name", "bad", "--target", "target", "--json"]).json();
+    assert_eq!((s(&bad, "name"), u(&bad, "version"), bad["unchanged"].as_bool()), ("bad", 1, Some(false)), "{bad}");
+    assert_ne!(s(&bad, "id"), s(&first, "id"));
+    assert_eq!(s(&bad, "sha256"), s(&first, "sha256"), "equal bytes, equal content hash");
+    assert_eq!(ids(&server.run(&["datasets", "--name", "bad", "--json"]).json()), vec![s(&bad, "id").to_string()]);
+    let again = server.run(&["put", iris, "--name", "bad", "--target", "target", "--json"]).json();
+    assert_eq!((s(&again, "id"), u(&again, "version"), again["unchanged"].as_bool()), (s(&bad, "id"), 1, Some(true)), "{again}");
+    let text = server.run(&["put", iris, "--name", "bad", "--target", "target"]).ok();
+    assert!(text.contains("v1") && text.contains("unchanged"), "{text}");
+    let other = server.run(&["put", iris, "--name", "bad", "--target", "sepal_length_cm", "--json"]).json();
+    assert_eq!((u(&other, "version"), other["unchanged"].as_bool(), s(&other, "target")), (2, Some(false), "sepal_length_cm"), "{other}");
+    assert_eq!(server.run(&["datasets", "--name", "bad", "--json"]).json().as_array().map(Vec::len), Some(2));
+    // The first name's history is untouched.
+    assert_eq!(ids(&server.run(&["datasets", "--name", "voyages", "--json"]).json()), vec![s(&first, "id").to_string()]);
 }

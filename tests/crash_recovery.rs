@@ -295,7 +295,7 @@ fn stored_datasets_are_whole(server: &Serve, rows: u64) -> Vec<String> {
     for m in list {
         let bytes = store.dataset_bytes(&m.id).unwrap().unwrap_or_else(|| panic!("dataset {} is listed without its bytes", m.id));
         assert_eq!(bytes.len() as u64, m.bytes, "dataset {}: {} of {} bytes stored", m.id, bytes.len(), m.bytes);
-        assert_eq!(pollard::rpc::datasets::dataset_id(&bytes), m.id, "dataset {}: the stored bytes are not the uploaded ones", m.id);
+        assert_eq!(pollard::rpc::datasets::content_digest(&bytes), m.content, "dataset {}: the stored bytes are not the uploaded ones", m.id);
         assert_eq!(m.rows, rows, "dataset {}", m.id);
         ids.push(m.id);
     }
@@ -340,7 +340,7 @@ fn upload_killed(close: bool) {
         }
         let again = upload(ch, "large", &bytes).await;
         assert_eq!((again.rows, again.bytes), (rows, bytes.len() as u64));
-        assert_eq!(again.id, pollard::rpc::datasets::dataset_id(&bytes));
+        assert_eq!(again.sha256, pollard::rpc::datasets::content_digest(&bytes));
     });
 }
 

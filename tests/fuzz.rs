@@ -176,7 +176,8 @@ fn fitted() -> &'static Fitted {
         };
         let (_, result) = sweep::sweep(&data, &spec, &sink, &Default::default()).unwrap();
         let meta = DatasetMeta {
-            id: pollard::rpc::datasets::dataset_id(&bytes),
+            id: format!("ds_{}", pollard::rpc::datasets::content_digest(&bytes)),
+            content: pollard::rpc::datasets::content_digest(&bytes),
             name: "iris".into(),
             version: 1,
             rows: 150,

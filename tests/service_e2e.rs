@@ -280,7 +280,7 @@ async fn datasets_upload_version_list_delete_and_refuse() {
     assert!(v1.columns.iter().all(|c| c.kind() == pb::ColumnKind::Numeric && c.missing == 0));
     rfc3339(&v1.created_at);
     let again = upload(&mut datasets, "flowers", "target", iris.clone()).await.unwrap();
-    assert_eq!(again, v1, "the same bytes get the same id and stay version 1");
+    assert_eq!(again, pb::DatasetInfo { unchanged: true, ..v1.clone() }, "the same bytes and target are unchanged, still version 1");
     let all_lines = lines(&iris);
     let v2 = upload(&mut datasets, "flowers", "target", join(&all_lines[..all_lines.len() - 1])).await.unwrap();
     assert_eq!((v2.version, v2.rows), (2, 149));
@@ -913,5 +913,38 @@ async fn health_and_reflection() {
     assert!(!files.file_descriptor_proto.is_empty());
     assert!(files.file_descriptor_proto.iter().any(|f| f.windows(b"StartRun".len()).any(|w| w == b"StartRun")), "the descriptor declares StartRun");
     drop((health, reflection, answers));
+    server.stop().await;
+}
+
+/// Two CPU threads finish units side by side: the stored progress events still count the
+/// stored units in order (`units_done` is 1, 2, 3, … by sequence, and `scores_done` never
+/// falls), and event times never go backwards within the run.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn progress_rises_with_the_sequence_on_two_threads() {
+    let server = start(Store::open_temporary().unwrap(), test_config()).await;
+    let ch = server.channel().await;
+    let mut datasets = DatasetsClient::new(ch.clone());
+    let mut runs = RunsClient::new(ch.clone());
+    upload(&mut datasets, "diabetes", "target", data_file("diabetes.csv")).await.unwrap();
+    // 6 shaping keys × 5 folds × 8 repeats = 240 units, each small.
+    let spec = pb::SweepSpec { min_leaf_rows: values(&[1.0, 2.0, 3.0, 5.0, 8.0, 13.0]), max_depth: span(1.0, 3.0, 1.0), folds: folds("shuffled", 5, 8), seed: 5, ..Default::default() };
+    let run = runs.start_run(pb::StartRunRequest { dataset_name: "diabetes".into(), spec: Some(spec), ..Default::default() }).await.unwrap().into_inner();
+    let events = follow(&mut runs, &run.id, 0).await;
+    let mut units = 0u32;
+    let mut scores = 0u32;
+    let mut last_at = chrono::DateTime::<chrono::FixedOffset>::MIN_UTC.fixed_offset();
+    for (i, ev) in events.iter().enumerate() {
+        assert_eq!(ev.sequence, i as u64 + 1, "events come in sequence order");
+        let at = chrono::DateTime::parse_from_rfc3339(&ev.at).unwrap();
+        assert!(at >= last_at, "event {} at {} is earlier than the event before it ({last_at})", ev.sequence, ev.at);
+        last_at = at;
+        if let Some(pb::run_event::Kind::Progress(p)) = &ev.kind {
+            assert_eq!(p.units_done, units + 1, "event {}: units_done {} after {units}", ev.sequence, p.units_done);
+            assert!(p.scores_done > scores, "event {}: scores_done {} after {scores}", ev.sequence, p.scores_done);
+            (units, scores) = (p.units_done, p.scores_done);
+        }
+    }
+    assert_eq!(units, 240, "every unit announced its progress once");
+    assert!(matches!(events.last().and_then(|e| e.kind.as_ref()), Some(pb::run_event::Kind::Finished(_))), "the run finished");
     server.stop().await;
 }

@@ -76,7 +76,7 @@ pub fn run_json(r: &pb::RunInfo) -> Value {
 pub fn dataset_json(d: &pb::DatasetInfo) -> Value {
     json!({
         "id": d.id, "name": d.name, "version": d.version, "rows": d.rows, "target": d.target, "task": d.task,
-        "created_at": d.created_at, "bytes": d.bytes,
+        "created_at": d.created_at, "bytes": d.bytes, "sha256": d.sha256, "unchanged": d.unchanged,
         "columns": d.columns.iter().map(|c| json!({"name": c.name, "kind": if c.kind == pb::ColumnKind::Categorical as i32 { "categorical" } else { "numeric" }, "missing": c.missing, "levels": c.levels})).collect::<Vec<_>>(),
     })
 }
@@ -161,7 +161,8 @@ pub fn run_line(r: &pb::RunInfo) -> String {
 }
 
 pub fn dataset_line(d: &pb::DatasetInfo) -> String {
-    format!("{}  {}  v{}  {} rows  {} columns  target '{}' ({})  {}", d.id, d.name, d.version, d.rows, d.columns.len(), d.target, if d.task.is_empty() { "none" } else { &d.task }, d.created_at)
+    let unchanged = if d.unchanged { "  (unchanged: the newest version already has these bytes and target)" } else { "" };
+    format!("{}  {}  v{}{unchanged}  {} rows  {} columns  target '{}' ({})  {}", d.id, d.name, d.version, d.rows, d.columns.len(), d.target, if d.task.is_empty() { "none" } else { &d.task }, d.created_at)
 }
 
 /// Whether a metric's larger values are better (by name, as the wire carries it).

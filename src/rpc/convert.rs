@@ -39,6 +39,8 @@ pub fn dataset_info(m: &DatasetMeta) -> pb::DatasetInfo {
         id: m.id.clone(),
         name: m.name.clone(),
         version: m.version,
+        sha256: m.content.clone(),
+        unchanged: false,
         rows: m.rows,
         columns: m
             .columns

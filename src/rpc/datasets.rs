@@ -15,18 +15,36 @@ use crate::pb;
 use crate::store::{DeleteDataset, PutDataset};
 use crate::worker::cpu;
 
-/// "ds_" + hex SHA-256 of the bytes.
-pub fn dataset_id(bytes: &[u8]) -> String {
-    id_of(Sha256::digest(bytes).as_slice())
+/// Hex SHA-256 of the bytes: a dataset's `content`.
+pub fn content_digest(bytes: &[u8]) -> String {
+    hex(Sha256::digest(bytes).as_slice())
 }
 
-fn id_of(digest: &[u8]) -> String {
-    let mut s = String::with_capacity(3 + 64);
-    s.push_str("ds_");
-    for b in digest {
-        s.push_str(&format!("{b:02x}"));
+fn hex(digest: &[u8]) -> String {
+    digest.iter().map(|b| format!("{b:02x}")).collect()
+}
+
+/// The id of a new dataset version: "ds_" + hex SHA-256 over its content and name and a
+/// fresh time-ordered UUID, so every version of every name has its own id (and its own
+/// stored bytes) even when the bytes are equal. Without a name, over the content, target
+/// and categorical columns instead: equal unnamed uploads meet at one id.
+pub fn new_dataset_id(content: &str, name: &str, target: &str, categorical: &[String]) -> String {
+    let mut h = Sha256::new();
+    h.update(content.as_bytes());
+    if name.is_empty() {
+        h.update(b"\0unnamed\0");
+        h.update(target.as_bytes());
+        for c in categorical {
+            h.update(b"\0");
+            h.update(c.as_bytes());
+        }
+    } else {
+        h.update(b"\0named\0");
+        h.update(name.as_bytes());
+        h.update(b"\0");
+        h.update(uuid::Uuid::now_v7().as_bytes());
     }
-    s
+    format!("ds_{}", hex(h.finalize().as_slice()))
 }
 
 /// The bytes of a dataset to store: a message's, or an upload's staged file.
@@ -36,10 +54,10 @@ pub enum Bytes {
 }
 
 impl Bytes {
-    fn id(&self) -> String {
+    fn content(&self) -> String {
         match self {
-            Bytes::Memory(b) => dataset_id(b),
-            Bytes::Staged(s) => id_of(s.hasher.clone().finalize().as_slice()),
+            Bytes::Memory(b) => content_digest(b),
+            Bytes::Staged(s) => hex(s.hasher.clone().finalize().as_slice()),
         }
     }
 
@@ -138,7 +156,8 @@ fn summarize(frame: &Frame) -> Vec<ColumnMeta> {
 }
 
 impl Api {
-    /// Checks CSV bytes (row and column errors go back to the caller) and stores them once.
+    /// Checks CSV bytes (row and column errors go back to the caller) and stores them as the
+    /// next version of the name, unless the newest version is the same (`unchanged`).
     pub async fn store_dataset(&self, name: String, target: String, categorical: Vec<String>, bytes: Bytes) -> Result<pb::DatasetInfo, Status> {
         let shared = self.shared.clone();
         let cfg = shared.config.clone();
@@ -157,8 +176,10 @@ impl Api {
                 let task = d.task().as_str().to_string();
                 (d.frame, task)
             };
+            let content = bytes.content();
             let meta = DatasetMeta {
-                id: bytes.id(),
+                id: new_dataset_id(&content, &name, &target, &categorical),
+                content,
                 name,
                 version: 0,
                 rows: frame.rows as u64,
@@ -177,7 +198,8 @@ impl Api {
                 Bytes::Staged(s) => store.put_dataset_staged(meta, &s.path),
             };
             match stored.map_err(error::store)? {
-                PutDataset::Created(m) | PutDataset::Existing(m) => Ok(convert::dataset_info(&m)),
+                PutDataset::Created(m) => Ok(convert::dataset_info(&m)),
+                PutDataset::Unchanged(m) => Ok(pb::DatasetInfo { unchanged: true, ..convert::dataset_info(&m) }),
             }
         })
         .await?

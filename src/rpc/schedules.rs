@@ -35,7 +35,7 @@ impl pb::schedules_server::Schedules for Api {
     async fn create_schedule(&self, request: Request<pb::CreateScheduleRequest>) -> Result<Response<pb::ScheduleInfo>, Status> {
         let r = request.into_inner();
         let time_zone = if r.time_zone.is_empty() { "UTC".to_string() } else { r.time_zone.clone() };
-        let cron = Cron::parse(&r.cron, &time_zone).map_err(|e| Status::invalid_argument(e.to_string()))?;
+        let cron = Cron::parse(&r.cron, &time_zone).and_then(|c| c.check_fires().map(|_| c)).map_err(|e| Status::invalid_argument(e.to_string()))?;
         if r.dataset_name.is_empty() && r.dataset_id.is_empty() {
             return Err(Status::invalid_argument("dataset_name: a schedule sweeps the latest version of a dataset name (or one dataset_id); name it"));
         }

@@ -126,8 +126,14 @@ pub enum Resumed {
 pub enum PutDataset {
     /// Stored, with its assigned version.
     Created(DatasetMeta),
-    /// A dataset with this id was already stored; nothing changed.
-    Existing(DatasetMeta),
+    /// Nothing changed: a dataset with this id is stored, or the newest version of the name
+    /// has the same content, target and categorical columns (that version is returned).
+    Unchanged(DatasetMeta),
+}
+
+/// Whether two datasets are one version: same bytes, read the same way.
+fn same_version(a: &DatasetMeta, b: &DatasetMeta) -> bool {
+    a.content == b.content && a.target == b.target && a.categorical == b.categorical
 }
 
 /// What [`Store::delete_dataset`] did.
@@ -408,9 +414,17 @@ impl Tx<'_> {
         Ok(self.insert(SCHEDULES, &s.id, records::encode_schedule(s))?)
     }
 
-    /// Numbers and stores an event of `run` (which the caller saves afterwards).
+    /// Numbers and stores an event of `run` (which the caller saves afterwards). Its time is
+    /// `now`, or the previous event's time if that is later (a clock stepped back): times
+    /// never go backwards within a run.
     fn append(&self, run: &mut Run, kind: EventKind, now: i64) -> TxResult<Event> {
-        let event = Event { sequence: run.take_sequence(), at: now, kind };
+        let sequence = run.take_sequence();
+        let previous = match sequence.checked_sub(1).filter(|&s| s > 0) {
+            Some(s) => self.get(EVENTS, keys::event(&run.id, s))?.map(|v| records::decode_event(&v)).transpose(),
+            None => Ok(None),
+        };
+        let at = read(previous)?.map_or(now, |p| p.at.max(now));
+        let event = Event { sequence, at, kind };
         self.insert(EVENTS, keys::event(&run.id, event.sequence), records::encode_event(&event))?;
         Ok(event)
     }
@@ -429,23 +443,37 @@ fn retrying<A>(mut attempt: impl FnMut() -> Result<A, Abort>) -> Result<A, Store
 
 impl Store {
     /// Opens (or creates) the database in `dir`.
+    ///
+    /// A store that another process holds is refused at once ([`store_in_use`]). sled releases
+    /// its file lock only when the last thread of a closed database lets go, which can lag the
+    /// close by a moment: when this process opened `dir` before (a restart in the same
+    /// process), the lock may still be its own, so it waits a little while for it.
     pub fn open(dir: &Path) -> Result<Store, StoreError> {
-        // sled releases its file lock only when the last thread of a closed database lets go,
-        // which can lag the close by a moment (a restart in the same process): wait for it a
-        // little while before calling the store taken.
+        static OPENED: std::sync::Mutex<Vec<std::path::PathBuf>> = std::sync::Mutex::new(Vec::new());
+        let canonical = || std::fs::canonicalize(dir).unwrap_or_else(|_| dir.to_path_buf());
         let deadline = std::time::Instant::now() + std::time::Duration::from_secs(30);
         loop {
             // No background flusher: every change is flushed before it returns anyway, and the
             // flusher thread is what keeps a closed database's lock alive.
             match sled::Config::new().path(dir).flush_every_ms(None).open() {
                 Ok(db) => {
+                    let mut opened = OPENED.lock().unwrap_or_else(|e| e.into_inner());
+                    let here = canonical();
+                    if !opened.contains(&here) {
+                        opened.push(here);
+                    }
+                    drop(opened);
                     // Staged uploads of an earlier process never finished: nothing names them.
                     let staging = dir.join(STAGING_DIR);
                     let _ = std::fs::remove_dir_all(&staging);
                     return Store::with(db, staging, files::Files::open(dir, false)?);
                 }
                 // sled reports the taken lock as an I/O error whose text says so.
-                Err(sled::Error::Io(e)) if (e.kind() == std::io::ErrorKind::WouldBlock || e.to_string().contains("could not acquire lock")) && std::time::Instant::now() < deadline => {
+                Err(sled::Error::Io(e)) if e.kind() == std::io::ErrorKind::WouldBlock || e.to_string().contains("could not acquire lock") => {
+                    let ours = OPENED.lock().unwrap_or_else(|e| e.into_inner()).contains(&canonical());
+                    if !ours || std::time::Instant::now() >= deadline {
+                        return Err(store_in_use(dir));
+                    }
                     std::thread::sleep(std::time::Duration::from_millis(20));
                 }
                 Err(e) => return Err(StoreError::Io(format!("cannot open the store at {}: {e}", dir.display()))),
@@ -536,10 +564,13 @@ impl Store {
     // -------------------------------------------------------------------------------------
     // Datasets
 
-    /// Stores a dataset unless one with this id exists. `meta.version` is ignored and
-    /// assigned: 1 + the latest version under `meta.name` (deleted versions count); an empty
-    /// name gets version 1 and no name entry. The bytes go to the dataset's file; `meta.bytes`
-    /// is kept as given.
+    /// Stores a dataset as the next version of its name, unless nothing changed
+    /// ([`PutDataset::Unchanged`]: a dataset with this id exists, or the newest version of the
+    /// name is the same version, by [`same_version`]). `meta.version` is ignored and assigned:
+    /// 1 + the latest version under `meta.name` (deleted versions count); an empty name gets
+    /// version 1 and no name entry. A version belongs to its name: the same bytes under
+    /// another name, or with another target, are another version (stored again). The bytes go
+    /// to the dataset's file; `meta.bytes` is kept as given.
     pub fn put_dataset(&self, meta: DatasetMeta, bytes: &[u8]) -> Result<PutDataset, StoreError> {
         self.put_dataset_from(meta, &mut &bytes[..])
     }
@@ -547,38 +578,55 @@ impl Store {
     /// [`Store::put_dataset`] with the bytes read from `bytes` (streamed to a temporary file,
     /// never whole in memory), then placed and recorded (see the module notes).
     pub fn put_dataset_from(&self, meta: DatasetMeta, bytes: &mut dyn std::io::Read) -> Result<PutDataset, StoreError> {
-        if let Some(existing) = self.dataset(&meta.id)? {
-            return Ok(PutDataset::Existing(existing));
+        if let Some(same) = self.unchanged(&meta)? {
+            return Ok(PutDataset::Unchanged(same));
         }
         let ready = self.files.write(&meta.id, |f| std::io::copy(bytes, f).map(|_| ()))?;
         self.record_dataset(meta, ready)
     }
 
     /// [`Store::put_dataset`] with the bytes of a finished file in [`Store::staging_dir`],
-    /// which is moved into place (not copied) when the dataset is new, and left alone when it
-    /// is already stored.
+    /// which is moved into place (not copied) when the dataset is new, and left alone when
+    /// nothing changed.
     pub fn put_dataset_staged(&self, meta: DatasetMeta, staged: &Path) -> Result<PutDataset, StoreError> {
-        if let Some(existing) = self.dataset(&meta.id)? {
-            return Ok(PutDataset::Existing(existing));
+        if let Some(same) = self.unchanged(&meta)? {
+            return Ok(PutDataset::Unchanged(same));
         }
         let ready = self.files.adopt(&meta.id, staged)?;
         self.record_dataset(meta, ready)
     }
 
+    /// The stored dataset an upload of `meta` would not change: the one with its id, or the
+    /// newest version of its name when that is the same version.
+    fn unchanged(&self, meta: &DatasetMeta) -> Result<Option<DatasetMeta>, StoreError> {
+        if let Some(existing) = self.dataset(&meta.id)? {
+            return Ok(Some(existing));
+        }
+        Ok(self.newest_version(&meta.name)?.filter(|n| same_version(n, meta)))
+    }
+
     /// Places a dataset's synced file and stores its record, under the files lock. A file
-    /// placed for a record that then fails to be stored is removed again.
+    /// placed for a record that then is not stored (a failure, or an equal version stored
+    /// meanwhile) is removed again.
     fn record_dataset(&self, meta: DatasetMeta, ready: files::Ready) -> Result<PutDataset, StoreError> {
         let _files = self.files.lock.lock().unwrap_or_else(|p| p.into_inner());
         // Records of datasets are created and removed only under this lock: this check holds.
         if let Some(existing) = self.dataset(&meta.id)? {
-            return Ok(PutDataset::Existing(existing));
+            return Ok(PutDataset::Unchanged(existing));
         }
         self.files.place(&meta.id, ready)?;
         let stored = retrying(|| {
             let latest = if meta.name.is_empty() { 0 } else { self.latest_version(&meta.name).map_err(Abort::Store)? };
             self.transact(|tx| {
-                if let Some(v) = tx.get(DATASETS, &meta.id)? {
-                    return Ok(PutDataset::Existing(read(records::decode_dataset(&v))?));
+                // An equal upload to the same name may have won meanwhile.
+                if latest > 0 {
+                    let id = tx.get(NAMES, keys::name_version(&meta.name, latest))?.unwrap_or_default();
+                    if let Some(v) = tx.get(DATASETS, &id)? {
+                        let newest = read(records::decode_dataset(&v))?;
+                        if same_version(&newest, &meta) {
+                            return Ok(PutDataset::Unchanged(newest));
+                        }
+                    }
                 }
                 let mut m = meta.clone();
                 m.version = latest + 1;
@@ -593,10 +641,21 @@ impl Store {
                 Ok(PutDataset::Created(m))
             })
         });
-        if stored.is_err() {
+        if !matches!(&stored, Ok(PutDataset::Created(_))) {
             let _ = self.files.remove(&meta.id);
         }
         stored
+    }
+
+    /// The record at the highest version of `name`, unless that version was deleted.
+    fn newest_version(&self, name: &str) -> Result<Option<DatasetMeta>, StoreError> {
+        if name.is_empty() {
+            return Ok(None);
+        }
+        match self.tree(NAMES).get(keys::name_version(name, self.latest_version(name)?))? {
+            Some(id) if !id.is_empty() => self.dataset(&String::from_utf8_lossy(&id)),
+            _ => Ok(None),
+        }
     }
 
     /// Moves dataset bytes kept as chunks (stores written before dataset files) to files, and
@@ -885,8 +944,8 @@ impl Store {
     }
 
     /// Records a finished work unit of a running run and the (non-terminal) events it
-    /// announces, in one transaction: stores the unit, numbers and stores each event, bumps
-    /// `units_done`, saves the run. Returns the stored events; none when the unit was already
+    /// announces, in one transaction: stores the unit, bumps `units_done` (which a progress
+    /// event then carries), numbers and stores each event, saves the run. Returns the stored events; none when the unit was already
     /// stored or the run is not running (nothing is stored then).
     pub fn record_unit(&self, run_id: &str, unit: &UnitResult, events: Vec<EventKind>, now: i64) -> Result<Vec<Event>, StoreError> {
         let index = u32::try_from(unit.unit).map_err(|_| StoreError::Corrupt(format!("unit index {} does not fit a key", unit.unit)))?;
@@ -899,11 +958,16 @@ impl Store {
                     return Ok(Vec::new());
                 }
                 tx.insert(UNITS, &key, bytes.clone())?;
+                run.units_done += 1;
                 let mut out = Vec::with_capacity(events.len());
                 for kind in &events {
-                    out.push(tx.append(&mut run, kind.clone(), now)?);
+                    let mut kind = kind.clone();
+                    // The store's count of stored units is the one announced.
+                    if let EventKind::Progress(p) = &mut kind {
+                        p.units_done = run.units_done as usize;
+                    }
+                    out.push(tx.append(&mut run, kind, now)?);
                 }
-                run.units_done += 1;
                 tx.put_progress(&run)?;
                 Ok(out)
             })
@@ -1233,6 +1297,11 @@ fn page<I, T>(items: Vec<I>, limit: usize, position: impl Fn(&I) -> String, valu
     kept.truncate(limit);
     let token = if more { kept.last().map(&position) } else { None };
     (kept.into_iter().map(value).collect(), token)
+}
+
+/// The error of a store whose lock another process (or a database still open) holds.
+pub fn store_in_use(dir: &Path) -> StoreError {
+    StoreError::Io(format!("the store at {} is in use by another process (is another `pollard serve` running on it?); stop that one or give another data directory", dir.display()))
 }
 
 /// Lays a stored progress record over a run.

@@ -99,6 +99,10 @@ fn to_usize(what: &str, field: &str, x: u64) -> Result<usize, StoreError> {
 #[derive(Serialize, Deserialize)]
 pub struct DatasetRecord {
     id: String,
+    /// Absent in records written before versions followed names: their id is `ds_` + the
+    /// content hash then.
+    #[serde(default, skip_serializing_if = "String::is_empty")]
+    content: String,
     name: String,
     version: u32,
     rows: u64,
@@ -122,6 +126,7 @@ impl From<&DatasetMeta> for DatasetRecord {
     fn from(m: &DatasetMeta) -> Self {
         DatasetRecord {
             id: m.id.clone(),
+            content: m.content.clone(),
             name: m.name.clone(),
             version: m.version,
             rows: m.rows,
@@ -138,6 +143,7 @@ impl From<&DatasetMeta> for DatasetRecord {
 impl From<DatasetRecord> for DatasetMeta {
     fn from(r: DatasetRecord) -> Self {
         DatasetMeta {
+            content: if r.content.is_empty() { r.id.strip_prefix("ds_").unwrap_or(&r.id).to_string() } else { r.content },
             id: r.id,
             name: r.name,
             version: r.version,

@@ -59,6 +59,7 @@ macro_rules! assert_same {
 fn meta(id: &str, name: &str, created_at: i64, bytes: u64) -> DatasetMeta {
     DatasetMeta {
         id: id.to_string(),
+        content: format!("content of {id}"),
         name: name.to_string(),
         version: 0,
         rows: 150,
@@ -146,6 +147,12 @@ fn dataset_record_round_trips() {
     m.version = 7;
     m.rows = u64::MAX;
     assert_eq!(records::decode_dataset(&records::encode_dataset(&m)).unwrap(), m);
+    // A record written before versions followed names has no content: its id is `ds_` +
+    // the content hash.
+    let old = DatasetMeta { content: String::new(), ..m.clone() };
+    let bytes = records::encode_dataset(&old);
+    assert!(!String::from_utf8_lossy(&bytes).contains("content"));
+    assert_eq!(records::decode_dataset(&bytes).unwrap(), DatasetMeta { content: "ab".into(), ..m });
 }
 
 #[test]
@@ -298,7 +305,7 @@ fn dataset_bytes_live_in_files_and_are_deleted_whole() {
     assert_eq!(std::fs::metadata(dir.path().join("datasets")).unwrap().permissions().mode() & 0o777, 0o700);
     assert_eq!(store.dataset_bytes("ds_big").unwrap().unwrap(), bytes);
     // An existing id keeps its bytes.
-    assert!(matches!(store.put_dataset(meta("ds_big", "other", 6, 0), &[]).unwrap(), PutDataset::Existing(e) if e == m));
+    assert!(matches!(store.put_dataset(meta("ds_big", "other", 6, 0), &[]).unwrap(), PutDataset::Unchanged(e) if e == m));
     assert_eq!(store.dataset_bytes("ds_big").unwrap().unwrap(), bytes);
     let PutDataset::Created(m2) = store.put_dataset(meta("ds_empty", "reefer", 6, 0), &[]).unwrap() else { panic!("not created") };
     assert_eq!(m2.version, 2);
@@ -334,7 +341,7 @@ fn a_staged_upload_is_moved_into_place() {
     assert_eq!(store.dataset_bytes("ds_up").unwrap().unwrap(), b"a,b\n1,2\n");
     // Already stored: the staged file is left to its owner, the stored bytes unchanged.
     std::fs::write(&staged, b"other").unwrap();
-    assert!(matches!(store.put_dataset_staged(meta("ds_up", "", 2, 5), &staged).unwrap(), PutDataset::Existing(_)));
+    assert!(matches!(store.put_dataset_staged(meta("ds_up", "", 2, 5), &staged).unwrap(), PutDataset::Unchanged(_)));
     assert!(staged.exists());
     assert_eq!(store.dataset_bytes("ds_up").unwrap().unwrap(), b"a,b\n1,2\n");
 }
@@ -437,6 +444,35 @@ fn concurrent_claims_take_each_run_once_in_order() {
     assert_eq!(store.running_runs().unwrap().len(), n as usize);
 }
 
+/// A version belongs to its name: equal bytes under a second name, or with a second target,
+/// are a new version; the same bytes and target as the newest version of the name change
+/// nothing and return that version.
+#[test]
+fn versions_follow_the_name() {
+    let store = Store::open_temporary().unwrap();
+    let put = |id: &str, name: &str, content: &str, target: &str| {
+        let m = DatasetMeta { content: content.into(), target: target.into(), ..meta(id, name, 1, 4) };
+        store.put_dataset(m, content.as_bytes()).unwrap()
+    };
+    let PutDataset::Created(first) = put("ds_1", "voyages", "abcd", "spoiled") else { panic!("not created") };
+    // Same bytes, another name: that name's version 1, with its own id and bytes.
+    let PutDataset::Created(other) = put("ds_2", "bad", "abcd", "spoiled") else { panic!("not created") };
+    assert_eq!((other.name.as_str(), other.version, other.content.as_str()), ("bad", 1, "abcd"));
+    assert_eq!(store.latest_dataset("bad").unwrap(), Some(other.clone()));
+    assert_eq!(store.dataset_bytes("ds_2").unwrap().unwrap(), b"abcd");
+    // Same bytes and target as the newest version: unchanged, still v1; nothing stored.
+    let chunks = store.tree(CHUNKS).len();
+    assert_eq!(put("ds_3", "voyages", "abcd", "spoiled"), PutDataset::Unchanged(first.clone()));
+    assert_eq!((store.dataset("ds_3").unwrap(), store.tree(CHUNKS).len()), (None, chunks));
+    // Another target for the same bytes: a new version.
+    let PutDataset::Created(v2) = put("ds_4", "voyages", "abcd", "box_temp") else { panic!("not created") };
+    assert_eq!((v2.version, v2.target.as_str()), (2, "box_temp"));
+    // Back to the first target: the newest version differs, so version 3.
+    let PutDataset::Created(v3) = put("ds_5", "voyages", "abcd", "spoiled") else { panic!("not created") };
+    assert_eq!(v3.version, 3);
+    assert_eq!(store.list_datasets(Some("voyages"), None, 10).unwrap().0.len(), 3);
+}
+
 /// A finished unit stores its progress apart: the run record (labels, spec and all) is not
 /// written again, yet every read sees the progress; a full write folds it back in.
 #[test]
@@ -463,6 +499,28 @@ fn a_unit_does_not_rewrite_the_run_record() {
     assert_eq!((ended.units_done, event.sequence), (5, 11));
     assert!(store.tree(PROGRESS).get("run_0001").unwrap().is_none());
     assert_eq!(store.run("run_0001").unwrap().unwrap().units_done, 5);
+}
+
+/// A unit's progress event carries the store's count of stored units, whatever the caller
+/// numbered it, and an event never takes a time before the run's previous event.
+#[test]
+fn progress_counts_stored_units_and_times_never_fall() {
+    let store = Store::open_temporary().unwrap();
+    store.put_dataset(meta("ds_1", "", 0, 0), b"x").unwrap();
+    store.create_run(Run::queued("run_0001".into(), &meta("ds_1", "", 0, 0), "y".into(), full_spec(3), 1)).unwrap();
+    store.claim_next(2).unwrap().unwrap();
+    let progress = |n| vec![EventKind::Progress(Progress { units_done: n, units_total: 4, scores_done: n, scores_total: 4 })];
+    // Numbered 2 and 1 by a caller that lost the race, and stamped 50 then 40.
+    let first = store.record_unit("run_0001", &unit_result(0, 10), progress(2), 50).unwrap();
+    let second = store.record_unit("run_0001", &unit_result(1, 10), progress(1), 40).unwrap();
+    let done = |e: &Event| match &e.kind {
+        EventKind::Progress(p) => p.units_done,
+        other => panic!("not progress: {other:?}"),
+    };
+    assert_eq!((done(&first[0]), first[0].at), (1, 50));
+    assert_eq!((done(&second[0]), second[0].at), (2, 50));
+    let (_, ended) = store.end_run("run_0001", RunState::Cancelled, "stop", 30).unwrap().unwrap();
+    assert_eq!(ended.at, 50);
 }
 
 /// A run that keeps dying without storing a unit is failed on its third resume; a clean
@@ -621,7 +679,7 @@ fn step(store: &Store, model: &mut Model, op: &Op, now: i64) {
             let m = meta(&content_id(*c), NAMES_USED[*name], now, bytes.len() as u64);
             let got = store.put_dataset(m.clone(), &bytes).unwrap();
             let want = match model.datasets.get(&m.id) {
-                Some((stored, _)) => PutDataset::Existing(stored.clone()),
+                Some((stored, _)) => PutDataset::Unchanged(stored.clone()),
                 None => {
                     let mut m = m;
                     m.version = if m.name.is_empty() {
@@ -689,9 +747,13 @@ fn step(store: &Store, model: &mut Model, op: &Op, now: i64) {
             let fresh = model.runs.get(&id).is_some_and(|r| r.state == RunState::Running) && !model.units.get(&id).is_some_and(|m| m.contains_key(&u.unit));
             let want: Vec<Event> = if fresh {
                 model.units.entry(id.clone()).or_default().insert(u.unit, u.clone());
-                let out = kinds.iter().map(|k| model.append(&id, k.clone(), now)).collect();
                 model.runs.get_mut(&id).unwrap().units_done += 1;
-                out
+                let done = model.runs[&id].units_done as usize;
+                let announced = |k: &EventKind| match k {
+                    EventKind::Progress(p) => EventKind::Progress(Progress { units_done: done, ..*p }),
+                    other => other.clone(),
+                };
+                kinds.iter().map(|k| model.append(&id, announced(k), now)).collect()
             } else {
                 Vec::new()
             };

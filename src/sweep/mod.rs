@@ -215,7 +215,7 @@ fn same_stopping(a: &crate::tree::Limits, b: &crate::tree::Limits) -> bool {
 }
 
 /// Scores every unit not in `done`, in parallel, calling `sink` after each (from the worker
-/// thread that finished it). The cancel flag is checked before each unit starts; a raised
+/// thread that finished it, one call at a time, with progress numbers in call order). The cancel flag is checked before each unit starts; a raised
 /// flag or a `Stop` from the sink ends the run with [`SweepError::Cancelled`].
 pub fn run(
     plan: &Plan,
@@ -240,15 +240,17 @@ pub fn run(
                 return Ok(None);
             }
             let r = plan.run_unit(u)?;
-            let p = {
-                let mut g = progress.lock().unwrap();
-                g.0 += 1;
-                g.1 += sizes[u];
-                Progress { units_done: g.0, units_total: plan.units.len(), scores_done: g.1, scores_total: total_scores }
-            };
+            // The sink runs under the lock that numbers the progress, so units reach it one
+            // at a time in the order of their numbers (a sink that stores them stores them in
+            // that order). A panicking sink fails the run; it does not poison the others.
+            let mut g = progress.lock().unwrap_or_else(|e| e.into_inner());
+            g.0 += 1;
+            g.1 += sizes[u];
+            let p = Progress { units_done: g.0, units_total: plan.units.len(), scores_done: g.1, scores_total: total_scores };
             if sink(&r, p) == Flow::Stop {
                 cancel.store(true, Ordering::Relaxed);
             }
+            drop(g);
             Ok(Some(r))
         })
         .collect();

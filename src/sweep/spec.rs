@@ -458,7 +458,28 @@ fn real_key(x: f64) -> u64 {
 }
 
 /// Whole-number limit values (rounded to the nearest whole number from a span), each `>= min`.
+/// The numbers a count limit's range was given must be whole: explicit values, a linear
+/// span's `from`, `to` and `step` (so every value is whole), a log span's `from` and `to`. A
+/// log span's inner points are not whole by construction: they are rounded to the nearest
+/// whole number (equal ones then count once).
+fn whole_given(field: &str, range: &Range) -> Result<(), SpecError> {
+    let check = |path: String, x: f64| if x.is_finite() && x.fract() != 0.0 { Err(spec_error(path, format!("counts rows, levels or leaves: {x:?} is not a whole number"))) } else { Ok(()) };
+    match range {
+        Range::Values(v) => v.iter().enumerate().try_for_each(|(i, x)| x.map_or(Ok(()), |x| check(format!("{field}.values[{i}]"), x))),
+        Range::Span { from, to, step } => {
+            check(format!("{field}.span.from"), *from)?;
+            check(format!("{field}.span.to"), *to)?;
+            check(format!("{field}.span.step"), *step)
+        }
+        Range::LogSpan { from, to, .. } => {
+            check(format!("{field}.log_span.from"), *from)?;
+            check(format!("{field}.log_span.to"), *to)
+        }
+    }
+}
+
 fn to_count(field: &str, i: usize, x: f64, min: u32) -> Result<u32, SpecError> {
+    // Whole already (see `whole_given`), but for a log span's inner points.
     let r = x.round();
     if r < min as f64 {
         return Err(spec_error(format!("{field}.values[{i}]"), format!("must be at least {min}, got {x}")));
@@ -471,8 +492,10 @@ fn to_count(field: &str, i: usize, x: f64, min: u32) -> Result<u32, SpecError> {
 
 fn counts(field: &str, range: &Option<Range>, min: u32, default: u32, cap: usize) -> Result<Vec<u32>, SpecError> {
     let Some(range) = range else { return Ok(vec![default]) };
+    let values = expand(field, range, cap)?;
+    whole_given(field, range)?;
     let mut out = Vec::new();
-    for (i, v) in expand(field, range, cap)?.into_iter().enumerate() {
+    for (i, v) in values.into_iter().enumerate() {
         let Some(x) = v else { return Err(spec_error(format!("{field}.values[{i}]"), "cannot be 'no limit'")) };
         out.push(to_count(field, i, x, min)?);
     }
@@ -481,8 +504,10 @@ fn counts(field: &str, range: &Option<Range>, min: u32, default: u32, cap: usize
 
 fn optional_counts(field: &str, range: &Option<Range>, min: u32, cap: usize) -> Result<Vec<Option<u32>>, SpecError> {
     let Some(range) = range else { return Ok(vec![None]) };
+    let values = expand(field, range, cap)?;
+    whole_given(field, range)?;
     let mut out = Vec::new();
-    for (i, v) in expand(field, range, cap)?.into_iter().enumerate() {
+    for (i, v) in values.into_iter().enumerate() {
         out.push(match v {
             None => None,
             Some(x) => Some(to_count(field, i, x, min)?),
@@ -566,6 +591,26 @@ mod tests {
         assert_eq!(field_of(SweepSpec { folds: folds(FoldScheme::Given { column: "same".into() }, 0), ..Default::default() }, t), "folds.column");
         assert_eq!(field_of(SweepSpec { folds: folds(FoldScheme::Grouped { column: "same".into() }, 2), ..Default::default() }, t), "folds.k");
         assert_eq!(field_of(SweepSpec { folds: folds(FoldScheme::Grouped { column: "nope".into() }, 2), ..Default::default() }, t), "folds.column");
+    }
+
+    #[test]
+    fn fractional_counts_are_refused_with_their_field() {
+        let t = Task::Classify;
+        let v = |x: f64| Some(Range::Values(vec![Some(3.0), Some(x)]));
+        assert_eq!(field_of(SweepSpec { max_depth: v(2.5), ..Default::default() }, t), "max_depth.values[1]");
+        assert_eq!(field_of(SweepSpec { min_split_rows: v(4.2), ..Default::default() }, t), "min_split_rows.values[1]");
+        assert_eq!(field_of(SweepSpec { min_leaf_rows: v(0.5), ..Default::default() }, t), "min_leaf_rows.values[1]");
+        assert_eq!(field_of(SweepSpec { max_leaves: v(7.999), ..Default::default() }, t), "max_leaves.values[1]");
+        // A linear span whose values are not whole: 1, 1.5, 2, ...
+        assert_eq!(field_of(SweepSpec { max_depth: Some(Range::Span { from: 1.0, to: 4.0, step: 0.5 }), ..Default::default() }, t), "max_depth.span.step");
+        assert_eq!(field_of(SweepSpec { max_leaves: Some(Range::Span { from: 2.5, to: 8.0, step: 1.0 }), ..Default::default() }, t), "max_leaves.span.from");
+        // A log span of a count needs whole ends; its inner points are rounded.
+        assert_eq!(field_of(SweepSpec { max_leaves: Some(Range::LogSpan { from: 2.0, to: 100.5, count: 4 }), ..Default::default() }, t), "max_leaves.log_span.to");
+        let c = SweepSpec { max_leaves: Some(Range::LogSpan { from: 2.0, to: 128.0, count: 4 }), max_depth: Some(Range::Span { from: 1.0, to: 4.0, step: 1.0 }), ..Default::default() }.check(&data(t)).unwrap();
+        assert_eq!(c.max_leaves, vec![Some(2), Some(8), Some(32), Some(128)]);
+        assert_eq!(c.max_depth, vec![Some(1), Some(2), Some(3), Some(4)]);
+        // Reals stay reals.
+        assert!(SweepSpec { min_gain: Some(Range::Values(vec![Some(0.25)])), ..Default::default() }.check(&data(t)).is_ok());
     }
 
     fn over_cap(spec: SweepSpec, caps: &SpecCaps) -> (String, &'static str, String) {
