@@ -14,9 +14,10 @@ fn main() -> std::process::ExitCode {
     }
     match pollard::cli::run(&args) {
         Ok(()) => std::process::ExitCode::SUCCESS,
-        Err(message) => {
-            eprintln!("pollard: {message}");
-            std::process::ExitCode::FAILURE
+        Err(e) => {
+            // One line on stderr (JSON with --json); the exit code says what kind of failure.
+            eprintln!("{}", e.line(pollard::cli::wants_json(&args)));
+            std::process::ExitCode::from(e.exit as u8)
         }
     }
 }

@@ -69,6 +69,42 @@ fn table_rows(text: &str) -> Vec<String> {
     lines[head + 1..].iter().take_while(|l| !l.starts_with("pick rule") && !l.starts_with("model:")).map(|l| l.to_string()).collect()
 }
 
+/// The cells of one column of a `show`/`local` table, found by its header name: every column
+/// is right-aligned under its name, so a cell is the word that ends where the name ends.
+fn column(text: &str, name: &str) -> Vec<String> {
+    let head = text.lines().find(|l| l.trim_start().starts_with("grid#")).unwrap_or_else(|| panic!("no table header in:\n{text}"));
+    let start = head.split(' ').scan(0, |at, w| {
+        let here = *at;
+        *at += w.len() + 1;
+        Some((here, w))
+    });
+    let end = start.filter(|(_, w)| *w == name).map(|(at, w)| at + w.len()).next().unwrap_or_else(|| panic!("no column '{name}' in {head:?}"));
+    table_rows(text)
+        .iter()
+        .map(|row| {
+            let before = &row[..end.min(row.len())];
+            before.rsplit(' ').next().unwrap_or_default().to_string()
+        })
+        .collect()
+}
+
+/// The header names of a `show`/`local` table.
+fn header_names(text: &str) -> Vec<String> {
+    text.lines().find(|l| l.trim_start().starts_with("grid#")).unwrap().split_whitespace().map(String::from).collect()
+}
+
+/// Asserts a failure printed as one JSON line on stderr (`--json`), nothing on stdout, and the
+/// exit code; returns the error object.
+fn json_error(out: Out, exit: i32) -> Value {
+    let what = out.describe();
+    assert_eq!(out.code, Some(exit), "{what}");
+    assert!(out.stdout.is_empty(), "{what}");
+    assert_eq!(out.stderr.lines().count(), 1, "{what}");
+    let v: Value = serde_json::from_str(&out.stderr).unwrap_or_else(|e| panic!("not JSON ({e}): {what}"));
+    assert!(v["error"]["code"].is_string() && v["error"]["message"].is_string(), "{what}");
+    v["error"].clone()
+}
+
 /// The set of values one limit takes over a run's scores (null = no limit), as text.
 fn limit_values(scores: &[Value], limit: &str) -> BTreeSet<String> {
     scores.iter().map(|sc| sc["limits"][limit].to_string()).collect()
@@ -181,7 +217,15 @@ fn put_sweep_follow_show_runs_model_predict() {
     assert!(text.lines().next().unwrap().starts_with(&format!("{r1}  finished")), "{text}");
     let rows = table_rows(&text);
     assert!((3..=5).contains(&rows.len()), "three best, plus the pick and the best if not among them:\n{text}");
-    assert!(rows.iter().any(|r| r.starts_with("picked") && r.split_whitespace().nth(1) == Some(picked.to_string().as_str())), "{text}");
+    let grid_col = column(&text, "grid#");
+    assert!(rows[0].starts_with("picked") && grid_col[0] == picked.to_string(), "{text}");
+    // Every limit the grid varies has a column; the constant ones are listed once above.
+    assert_eq!(header_names(&text)[1..4], ["max_depth", "min_leaf_rows", "min_gain"], "{text}");
+    assert!(!header_names(&text).contains(&"criterion".to_string()), "{text}");
+    let fixed = text.lines().find(|l| l.starts_with("fixed: ")).unwrap_or_else(|| panic!("{text}"));
+    assert!(fixed.contains("criterion = gini") && fixed.contains("max_leaves = none") && fixed.contains("min_split_rows = 2") && fixed.contains("prune_alpha = 0"), "{fixed}");
+    assert!(text.contains("(+N alike) = N more settings"), "{text}");
+    assert!(text.lines().all(|l| l.chars().count() <= 120), "{text}");
     assert!(text.contains(&format!("pick rule highest: grid# {picked}")), "{text}");
     assert!(text.contains(&format!("model: {model_nodes} nodes")), "{text}");
 
@@ -218,6 +262,11 @@ fn put_sweep_follow_show_runs_model_predict() {
     assert!(scores2.iter().all(|sc| arr(sc, "fold_scores").len() == 4), "--k 4 wins over the file's k = 3");
     let table2 = server.run(&["show", &r2]).ok();
     assert!(table2.contains("pick rule one_se: grid#"), "{table2}");
+    // Two settings with the same max_depth differ by criterion: the criterion has a column.
+    assert_eq!(header_names(&table2)[1..3], ["criterion", "max_depth"], "{table2}");
+    let crits: BTreeSet<String> = column(&table2, "criterion").into_iter().collect();
+    assert!(crits.iter().all(|c| c == "gini" || c == "entropy"), "{table2}");
+    assert!(table2.lines().any(|l| l.starts_with("fixed: ") && l.contains("min_leaf_rows = 2") && l.contains("class_weight = none")), "{table2}");
     assert!(table2.contains("balanced_accuracy"), "{table2}");
 
     // sweep --follow as a table: started, the end, then the run shown.
@@ -288,12 +337,21 @@ fn put_sweep_follow_show_runs_model_predict() {
         pollard::tree::Predictions::Classes { classes, probabilities } => (classes, probabilities),
         other => panic!("{other:?}"),
     };
-    let got = server.run(&["predict", &r1, iris_path, "--json"]).json();
+    // --json: one object per row, the class and each class's probability.
+    let got = server.run(&["predict", &r1, iris_path, "--json"]).json_lines();
     let want_labels: Vec<&str> = classes.iter().map(|&c| tree.labels[c as usize].as_str()).collect();
-    assert_eq!(arr(&got, "predicted").iter().map(|v| v.as_str().unwrap()).collect::<Vec<_>>(), want_labels);
-    assert_eq!(arr(&got, "probabilities").iter().map(|v| v.as_f64().unwrap()).collect::<Vec<_>>(), probabilities);
-    assert_eq!(got["classes"], serde_json::json!(["setosa", "versicolor", "virginica"]));
-    assert_eq!(arr(&got, "values").len(), 0);
+    assert_eq!(got.len(), 150);
+    for (i, row) in got.iter().enumerate() {
+        assert_eq!((u(row, "row"), s(row, "predicted")), (i as u64 + 1, want_labels[i]), "{row}");
+        let p: Vec<f64> = ["setosa", "versicolor", "virginica"].iter().map(|c| row["probabilities"][c].as_f64().unwrap()).collect();
+        assert_eq!(p, probabilities[i * 3..i * 3 + 3], "{row}");
+    }
+    // model --json: the model file as one object.
+    let m = server.run(&["model", &r1, "--format", "json", "--json"]).json();
+    assert_eq!((s(&m, "run_id"), s(&m, "format")), (r1.as_str(), "json"));
+    assert_eq!(m["model"], serde_json::from_str::<Value>(&json_text).unwrap());
+    let m = server.run(&["model", &r1, "--json"]).json();
+    assert_eq!(s(&m, "text"), text, "the text drawing as a string");
     // As CSV, on the first 20 rows of iris without the target column.
     let few = tmp.join("few.csv");
     let source = std::fs::read_to_string(&iris_csv).unwrap();
@@ -356,22 +414,20 @@ fn cancel_a_running_and_a_queued_run() {
     // Cancelling the queued run ends it at once.
     let c = server.run(&["cancel", &queued_id, "--json"]).json();
     assert_eq!((s(&c, "id"), s(&c, "state")), (queued_id.as_str(), "cancelled"));
-    let events = follow_to_end(&server, &queued_id);
+    let followed = server.run(&["follow", &queued_id, "--json"]);
+    assert_eq!(followed.code, Some(4), "{}", followed.describe());
+    let err: Value = serde_json::from_str(&followed.stderr).unwrap_or_else(|e| panic!("{e}: {}", followed.describe()));
+    assert_eq!(err["error"]["code"], "run_cancelled", "{}", followed.describe());
+    let events: Vec<Value> = followed.stdout.lines().map(|l| serde_json::from_str(l).unwrap()).collect();
+    check_events(&queued_id, &events);
     assert_eq!(events.len(), 1, "{events:?}");
     assert_eq!(s(&events[0], "kind"), "cancelled");
 
     // Cancelling the running run: it stops within a few units and the follower hears so.
     let line = server.run(&["cancel", &long_id]).ok();
     assert!(line.starts_with(&long_id), "{line}");
-    let deadline = Instant::now() + PATIENCE;
-    let status = loop {
-        if let Some(st) = follower.0.try_wait().unwrap() {
-            break st;
-        }
-        assert!(Instant::now() < deadline, "the follower did not end after the cancel");
-        std::thread::sleep(POLL);
-    };
-    assert!(status.success(), "follow exits 0 once the run has ended, however it ended: {status}");
+    let status = wait_end(&mut follower, "the follower did not end after the cancel");
+    assert_eq!(status.code(), Some(4), "follow exits 4 when the run was cancelled");
     let text = reader.join().unwrap().unwrap();
     let events: Vec<Value> = text.lines().map(|l| serde_json::from_str(l).unwrap()).collect();
     check_events(&long_id, &events);
@@ -385,9 +441,14 @@ fn cancel_a_running_and_a_queued_run() {
     assert!(u(&ended, "units_done") < 4000);
     let text = server.run(&["show", &long_id]).ok();
     assert!(text.lines().next().unwrap().starts_with(&format!("{long_id}  cancelled")), "{text}");
-    assert_eq!(server.run(&["follow", &long_id]).ok(), format!("run {long_id}: cancelled: {}\n", s(&last["event"], "reason")));
-    // Cancelling twice is harmless.
-    assert_eq!(s(&server.run(&["cancel", &long_id, "--json"]).json(), "state"), "cancelled");
+    let again = server.run(&["follow", &long_id]);
+    assert_eq!((again.code, again.stdout.as_str()), (Some(4), format!("run {long_id}: cancelled: {}\n", s(&last["event"], "reason")).as_str()), "{}", again.describe());
+    assert_eq!(again.stderr, format!("pollard: run {long_id} cancelled: {}\n", s(&last["event"], "reason")));
+    // Cancelling again says the run already ended, and changes nothing.
+    let e = server.run(&["cancel", &long_id]).fails();
+    assert!(e.contains(&format!("run {long_id} already cancelled")), "{e}");
+    let e = json_error(server.run(&["cancel", &long_id, "--json"]), 1);
+    assert_eq!(e["code"], "already_ended", "{e}");
     let mut both = ids(&server.run(&["runs", "--state", "cancelled", "--json"]).json());
     both.sort();
     let mut want = vec![long_id.clone(), queued_id.clone()];
@@ -412,8 +473,20 @@ fn errors_exit_non_zero_with_one_line() {
         let e = server.run(&args).fails();
         assert!(e.contains("NotFound") && e.contains("run_00000000000000000000000000000000"), "{args:?}: {e}");
     }
-    let e = server.run(&["show", "run_00000000000000000000000000000000", "--json"]).fails();
-    assert!(e.contains("NotFound"), "{e}");
+    // Not found exits 5; with --json the error is one JSON object on stderr.
+    assert_eq!(server.run(&["show", "run_00000000000000000000000000000000"]).code, Some(5));
+    let e = json_error(server.run(&["show", "run_00000000000000000000000000000000", "--json"]), 5);
+    assert!(e["code"] == "not_found" && e["message"].as_str().unwrap().contains("run_00000000000000000000000000000000"), "{e}");
+    let e = json_error(server.run(&["follow", "run_00000000000000000000000000000000", "--json"]), 5);
+    assert_eq!(e["code"], "not_found", "{e}");
+    // Usage errors exit 2, as JSON too.
+    assert_eq!(pollard(&["runs", "--bogus"]).code, Some(2));
+    let e = json_error(pollard(&["runs", "--bogus", "--json"]), 2);
+    assert!(e["code"] == "usage" && e["message"].as_str().unwrap().contains("--bogus"), "{e}");
+    let e = json_error(server.run(&["sweep", "--dataset", "iris", "--max-depth", "2,x", "--json"]), 2);
+    assert!(e["message"].as_str().unwrap().contains("--max-depth"), "{e}");
+    let e = json_error(pollard(&["folds", "--file", iris, "--target", "nope", "--json"]), 1);
+    assert!(e["message"].as_str().unwrap().contains("nope"), "{e}");
     // An id that cannot be a run id: InvalidArgument, before any lookup.
     let e = server.run(&["show", "run_nothing"]).fails();
     assert!(e.contains("InvalidArgument") && e.contains("run_nothing") && e.contains("not a run id"), "{e}");
@@ -459,12 +532,25 @@ fn errors_exit_non_zero_with_one_line() {
     // be given at the same moment); checked closed first.
     assert!(TcpStream::connect_timeout(&"127.0.0.1:1".parse().unwrap(), Duration::from_secs(1)).is_err(), "something listens on 127.0.0.1:1");
     let closed = "http://127.0.0.1:1".to_string();
-    for args in [vec!["runs"], vec!["datasets", "--json"], vec!["show", "run_00000000000000000000000000000000"], vec!["put", iris, "--name", "iris"]] {
-        let e = client(&closed, &args).fails();
+    for args in [vec!["runs"], vec!["show", "run_00000000000000000000000000000000"], vec!["put", iris, "--name", "iris"]] {
+        let out = client(&closed, &args);
+        assert_eq!(out.code, Some(6), "unreachable exits 6: {}", out.describe());
+        let e = out.fails();
         assert!(e.contains("cannot reach") && e.contains(&closed), "{args:?}: {e}");
     }
-    let e = client("not a url", &["runs"]).fails();
-    assert!(e.contains("--server") && e.contains("not a url"), "{e}");
+    let e = json_error(client(&closed, &["datasets", "--json"]), 6);
+    assert_eq!(e["code"], "unreachable", "{e}");
+    // --server takes host:port, the form --listen takes, as http://host:port.
+    let bare = server.url.strip_prefix("http://").unwrap();
+    assert_eq!(ids(&client(bare, &["datasets", "--json"]).json()).len(), 1);
+    let e = client("127.0.0.1:1", &["runs"]).fails();
+    assert!(e.contains("cannot reach") && e.contains("http://127.0.0.1:1"), "{e}");
+    for bad in ["not a url", "127.0.0.1", "localhost:port", "127.0.0.1:99999", "ftp://127.0.0.1:7311", ":7311"] {
+        let out = client(bad, &["runs"]);
+        assert_eq!(out.code, Some(2), "a malformed address is a usage error: {}", out.describe());
+        let e = out.fails();
+        assert!(e.contains("--server") && e.contains(bad) && e.contains("host:port"), "{bad}: {e}");
+    }
 
     // Missing files name the path.
     let missing = tmp.join("absent.csv");
@@ -475,7 +561,7 @@ fn errors_exit_non_zero_with_one_line() {
     assert!(e.contains(missing), "{e}");
     let e = pollard(&["local", missing, "--target", "target"]).fails();
     assert!(e.contains(missing), "{e}");
-    let e = pollard(&["folds", "--data", missing, "--target", "target"]).fails();
+    let e = pollard(&["folds", "--file", missing, "--target", "target"]).fails();
     assert!(e.contains(missing), "{e}");
     let toml = tmp.join("absent.toml");
     let e = server.run(&["sweep", "--dataset", "iris", "--spec", toml.to_str().unwrap()]).fails();
@@ -515,10 +601,11 @@ fn errors_exit_non_zero_with_one_line() {
     // Local and folds without a target.
     let e = pollard(&["local", iris, "--max-depth", "2"]).fails();
     assert!(e.contains("--target"), "{e}");
-    let e = pollard(&["folds", "--data", iris, "--target", "target", "--scheme", "grouped"]).fails();
-    assert!(e.contains("--column"), "{e}");
+    let e = pollard(&["folds", "--file", iris, "--target", "target", "--fold-scheme", "grouped"]).fails();
+    assert!(e.contains("--fold-column"), "{e}");
+    // The old names stay as hidden aliases.
     let e = pollard(&["folds", "--data", iris, "--target", "target", "--scheme", "lucky"]).fails();
-    assert!(e.contains("--scheme") && e.contains("lucky"), "{e}");
+    assert!(e.contains("--fold-scheme") && e.contains("lucky"), "{e}");
 }
 
 // ------------------------------------------------------------------ no server
@@ -574,6 +661,10 @@ fn local_and_folds() {
     assert_eq!(two.lines().count(), 1 + 300);
     assert_eq!(two.lines().filter(|l| l.contains(",1,")).count(), 150);
     assert_ne!(pollard(&["folds", "--data", iris, "--target", "target", "--k", "3", "--seed", "12"]).ok(), text);
+    // --json: the same assignment as one object; --fold-scheme and --folds name the same plan.
+    let j = pollard(&["folds", "--file", iris, "--target", "target", "--k", "3", "--seed", "11", "--fold-scheme", "stratified", "--json"]).json();
+    assert_eq!((u(&j, "rows"), u(&j, "k"), u(&j, "repeats")), (150, 3, 1));
+    assert_eq!(&j["assignment"][0], &folds[0]);
 
     // As a table.
     let text = pollard(&["local", iris, "--target", "target", "--max-depth", "1,3,none", "--top", "2"]).ok();
@@ -674,10 +765,15 @@ fn show_names_the_default_metric_of_a_regress_run() {
     assert!(text.contains("rmse: training and validation means"), "{text}");
     let rows = table_rows(&text);
     // Under `highest` the pick is the best: the first ranked row (lowest RMSE) shows it.
-    let grid = |r: &str| r.split_whitespace().nth(1).map(str::to_string);
-    assert!(rows[0].starts_with("picked") && rows[1].starts_with("#1") && grid(&rows[0]) == grid(&rows[1]), "best first:\n{text}");
-    let rmse = |r: &str| r.split_whitespace().nth(9).and_then(|v| v.parse::<f64>().ok()).unwrap();
-    assert!(rmse(&rows[1]) <= rmse(&rows[2]), "lower RMSE ranks first:\n{text}");
+    let grid = column(&text, "grid#");
+    assert!(rows[0].starts_with("picked") && rows[1].starts_with("#1") && grid[0] == grid[1], "best first:\n{text}");
+    let rmse: Vec<f64> = column(&text, "validation").iter().map(|v| v.parse().unwrap()).collect();
+    assert!(rmse[1] <= rmse[2], "lower RMSE ranks first:\n{text}");
+    assert!(text.contains("lower is better") && text.contains("fixed: criterion = squared_error"), "{text}");
+    // predict --json on a regress run: one object per row with its value.
+    let rows = server.run(&["predict", &id, data("diabetes.csv").to_str().unwrap(), "--json"]).json_lines();
+    assert_eq!(rows.len(), 442);
+    assert!(rows.iter().enumerate().all(|(i, r)| u(r, "row") == i as u64 + 1 && r["value"].is_f64() && r.get("predicted").is_none()), "{:?}", &rows[..2]);
     // The gap grows with overfitting whichever way the metric points: an unlimited tree
     // fits its training rows almost exactly (RMSE near 0) and validates worse, so its gap
     // (validation RMSE minus training RMSE) is positive and the largest of the three.
@@ -784,4 +880,182 @@ fn dataset_versions_follow_the_name() {
     assert_eq!(server.run(&["datasets", "--name", "bad", "--json"]).json().as_array().map(Vec::len), Some(2));
     // The first name's history is untouched.
     assert_eq!(ids(&server.run(&["datasets", "--name", "voyages", "--json"]).json()), vec![s(&first, "id").to_string()]);
+}
+
+// ------------------------------------------------------------------ exit codes, report, logs
+
+/// A sweep far longer than any test lets it run on breast_cancer (4,000 work units).
+const LONG: [&str; 16] = ["--criteria", "gini,entropy", "--class-weights", "none,balanced", "--min-leaf-rows", "1,2,4,8,16", "--max-depth", "lin(1,12,1)", "--fold-scheme", "stratified", "--k", "10", "--repeats", "20", "--seed", "5"];
+
+/// Waits until a background command ends; its exit status.
+fn wait_end(child: &mut KillOnDrop, what: &str) -> std::process::ExitStatus {
+    let deadline = Instant::now() + PATIENCE;
+    loop {
+        if let Some(st) = child.0.try_wait().unwrap() {
+            return st;
+        }
+        assert!(Instant::now() < deadline, "{what}");
+        std::thread::sleep(POLL);
+    }
+}
+
+/// Waits until `run` is running with at least one unit done.
+fn wait_running(server: &Serve, run: &str) {
+    let deadline = Instant::now() + PATIENCE;
+    loop {
+        let r = server.run(&["show", run, "--json"]).json();
+        if s(&r, "state") == "running" && u(&r, "units_done") >= 1 {
+            return;
+        }
+        assert!(["queued", "running"].contains(&s(&r, "state")), "{r}");
+        assert!(Instant::now() < deadline, "the run did not start: {r}");
+        std::thread::sleep(POLL);
+    }
+}
+
+/// `sweep --follow` exits 4 when its run is cancelled; `follow` exits 3 on a failed run.
+#[test]
+fn follow_exits_with_the_way_the_run_ended() {
+    let server = Serve::start();
+    server.run(&["put", data("breast_cancer.csv").to_str().unwrap(), "--name", "breast_cancer", "--target", "target", "--json"]).json();
+    let mut args = vec!["--server", &server.url, "sweep", "--dataset", "breast_cancer", "--follow", "--json"];
+    args.extend_from_slice(&LONG);
+    let child = command(&args).stdin(Stdio::null()).stdout(Stdio::piped()).stderr(Stdio::piped()).spawn().unwrap();
+    let mut sweeper = KillOnDrop(child);
+    let deadline = Instant::now() + PATIENCE;
+    let id = loop {
+        if let Some(id) = ids(&server.run(&["runs", "--state", "running", "--json"]).json()).pop() {
+            break id;
+        }
+        assert!(Instant::now() < deadline, "the sweep did not start");
+        std::thread::sleep(POLL);
+    };
+    wait_running(&server, &id);
+    server.run(&["cancel", &id, "--json"]).json();
+    let status = wait_end(&mut sweeper, "sweep --follow did not end after the cancel");
+    assert_eq!(status.code(), Some(4), "sweep --follow of a cancelled run exits 4");
+    let mut stdout = String::new();
+    sweeper.0.stdout.take().unwrap().read_to_string(&mut stdout).unwrap();
+    let mut stderr = String::new();
+    sweeper.0.stderr.take().unwrap().read_to_string(&mut stderr).unwrap();
+    let events: Vec<Value> = stdout.lines().map(|l| serde_json::from_str(l).unwrap()).collect();
+    check_events(&id, &events);
+    assert_eq!(s(events.last().unwrap(), "kind"), "cancelled");
+    let err: Value = serde_json::from_str(&stderr).unwrap_or_else(|e| panic!("{e}: {stderr}"));
+    assert_eq!(err["error"]["code"], "run_cancelled", "{stderr}");
+
+    // A run that fails: left running by a killed server whose successor refuses its dataset
+    // (breast_cancer has 569 rows; the new row cap is 200), so its resume fails.
+    let mut args = vec!["sweep", "--dataset", "breast_cancer", "--json"];
+    args.extend_from_slice(&LONG);
+    let long = s(&server.run(&args).json(), "id").to_string();
+    wait_running(&server, &long);
+    let mut server = server;
+    server.kill9();
+    server.options.env.push(("POLLARD_MAX_ROWS".into(), "200".into()));
+    let server = server.restart();
+    let out = server.run(&["follow", &long]);
+    assert_eq!(out.code, Some(3), "follow of a failed run exits 3: {}", out.describe());
+    assert!(out.stdout.starts_with(&format!("run {long}: failed: ")), "{}", out.describe());
+    assert!(out.stderr.starts_with(&format!("pollard: run {long} failed: ")) && out.stderr.lines().count() == 1, "{}", out.describe());
+    assert_eq!(s(&server.run(&["show", &long, "--json"]).json(), "state"), "failed");
+    // A finished run cannot be cancelled either.
+    server.run(&["put", data("iris.csv").to_str().unwrap(), "--name", "iris", "--target", "target", "--json"]).json();
+    let lines = server.run(&["sweep", "--dataset", "iris", "--max-depth", "1,2", "--follow", "--json"]).json_lines();
+    let done = s(&lines[0], "run_id").to_string();
+    let e = server.run(&["cancel", &done]).fails();
+    assert!(e.contains(&format!("run {done} already finished")), "{e}");
+    let e = server.run(&["cancel", &long]).fails();
+    assert!(e.contains(&format!("run {long} already failed")), "{e}");
+}
+
+/// `report` writes what the demo writes, for any stored run; a run without a final model
+/// says why.
+#[test]
+fn report_writes_the_results_of_a_stored_run() {
+    let server = Serve::start();
+    let tmp = TempDir::new("report");
+    server.run(&["put", data("iris.csv").to_str().unwrap(), "--name", "iris", "--target", "target", "--json"]).json();
+    let lines = server.run(&["sweep", "--dataset", "iris", "--max-depth", "1,3,none", "--criteria", "gini,entropy", "--pick", "one_se", "--follow", "--json"]).json_lines();
+    let id = s(&lines[0], "run_id").to_string();
+    let shown = server.run(&["show", &id, "--json"]).json();
+    let out = tmp.join("r1");
+    let r = server.run(&["report", &id, "--out", out.to_str().unwrap(), "--json"]).json();
+    assert_eq!(s(&r, "run_id"), id);
+    let files: BTreeSet<String> = arr(&r, "files").iter().map(|f| Path::new(f.as_str().unwrap()).file_name().unwrap().to_string_lossy().into_owned()).collect();
+    let on_disk: BTreeSet<String> = std::fs::read_dir(&out).unwrap().map(|e| e.unwrap().file_name().to_string_lossy().into_owned()).collect();
+    assert_eq!(files, on_disk, "every file written is listed");
+    let want: BTreeSet<String> = ["scores.csv", "max_depth.svg", "model.json", "model.dot", "model.txt", "model.onnx", "summary.txt"].map(String::from).into();
+    assert_eq!(files, want);
+    let tree = read_tree(&out.join("model.json"));
+    assert_eq!(tree.nodes.len() as u64, u(&shown["model"], "nodes"));
+    assert_eq!(std::fs::read(out.join("model.onnx")).unwrap(), pollard::export::onnx::to_onnx(&tree).unwrap());
+    assert_eq!(csv::Reader::from_path(out.join("scores.csv")).unwrap().records().count(), 6);
+    let svg = std::fs::read_to_string(out.join("max_depth.svg")).unwrap();
+    roxmltree::Document::parse(&svg).unwrap();
+    assert!(svg.contains("picked"), "the plot marks the picked setting");
+    let summary = std::fs::read_to_string(out.join("summary.txt")).unwrap();
+    assert!(summary.starts_with(&format!("run {id}: finished\n")), "{summary}");
+    for want in [format!("one_se: grid# {}", u(&shown, "picked")), format!("best: grid# {}", u(&shown, "best")), "higher is better".into(), "fixed: class_weight = none".into()] {
+        assert!(summary.contains(&want), "{want} missing:\n{summary}");
+    }
+    // For people: the files, one a line.
+    let text = server.run(&["report", &id, "--out", tmp.join("r2").to_str().unwrap()]).ok();
+    assert!(text.starts_with(&format!("wrote 7 files to {}", tmp.join("r2").display())), "{text}");
+
+    // Without a final model: show and the summary say so; no model files.
+    let lines = server.run(&["sweep", "--dataset", "iris", "--max-depth", "1,2", "--skip-final", "--follow", "--json"]).json_lines();
+    let bare = s(&lines[0], "run_id").to_string();
+    let text = server.run(&["show", &bare]).ok();
+    assert!(text.contains("finished (no model: skip_final was set)"), "{text}");
+    let r = server.run(&["report", &bare, "--out", tmp.join("r3").to_str().unwrap(), "--json"]).json();
+    assert_eq!(arr(&r, "files").len(), 3, "scores, one plot, summary: {r}");
+    assert!(std::fs::read_to_string(tmp.join("r3/summary.txt")).unwrap().contains("finished (no model: skip_final was set)"));
+    // Errors: an unknown run, and a folder that cannot be made.
+    assert_eq!(server.run(&["report", "run_00000000000000000000000000000000", "--out", tmp.join("r4").to_str().unwrap()]).code, Some(5));
+    let file = tmp.join("plain-file");
+    std::fs::write(&file, "x").unwrap();
+    let under = file.join("out");
+    let e = server.run(&["report", &id, "--out", under.to_str().unwrap()]).fails();
+    assert!(e.contains(under.to_str().unwrap()), "{e}");
+}
+
+/// `demo --out` to a path that cannot be made fails at once, naming it (tests run as root, so
+/// a read-only folder would not stop them: the path is under a regular file).
+#[test]
+fn demo_out_that_cannot_be_made_fails_at_once() {
+    let tmp = TempDir::new("demo-out");
+    let file = tmp.join("plain-file");
+    std::fs::write(&file, "x").unwrap();
+    let under = file.join("results");
+    let out = pollard(&["demo", "--out", under.to_str().unwrap(), "--rows", "200"]);
+    assert_eq!(out.code, Some(1), "{}", out.describe());
+    let e = out.fails();
+    assert!(e.contains(under.to_str().unwrap()), "{e}");
+    let e = json_error(pollard(&["demo", "--out", under.to_str().unwrap(), "--rows", "200", "--json"]), 1);
+    assert!(e["message"].as_str().unwrap().contains(under.to_str().unwrap()), "{e}");
+}
+
+/// `serve` logging to a file (not a terminal) writes no colour codes, with or without NO_COLOR.
+#[test]
+fn serve_log_to_a_file_has_no_colour_codes() {
+    let tmp = TempDir::new("ansi");
+    let log = tmp.join("serve.log");
+    let listen = format!("127.0.0.1:{}", free_port());
+    let mut cmd = command(&["serve", "--listen", &listen, "--data", tmp.join("store").to_str().unwrap()]);
+    cmd.env_remove("NO_COLOR");
+    let child = cmd.stdin(Stdio::null()).stdout(Stdio::null()).stderr(std::fs::File::create(&log).unwrap()).spawn().unwrap();
+    let mut child = KillOnDrop(child);
+    let deadline = Instant::now() + PATIENCE;
+    let text = loop {
+        let text = std::fs::read_to_string(&log).unwrap_or_default();
+        if text.contains("pollard serving") && text.contains('\n') {
+            break text;
+        }
+        assert!(child.0.try_wait().unwrap().is_none(), "serve exited:\n{text}");
+        assert!(Instant::now() < deadline, "serve did not log its start:\n{text}");
+        std::thread::sleep(POLL);
+    };
+    assert!(!text.contains('\u{1b}'), "colour codes in a log file: {text:?}");
+    assert!(text.contains(&format!("addr={listen}")), "{text}");
 }

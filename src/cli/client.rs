@@ -1,5 +1,6 @@
 //! Client commands against a pollard server, and the local (in-process) sweep.
 
+use std::io::Write;
 use std::path::{Path, PathBuf};
 use std::sync::atomic::AtomicBool;
 use std::time::Duration;
@@ -9,6 +10,7 @@ use serde_json::json;
 use tonic::service::interceptor::InterceptedService;
 use tonic::transport::{Certificate, Channel, ClientTlsConfig, Identity};
 
+use super::error::{CliError, Exit, Res};
 use super::output::{self, higher_is_better};
 use super::{labels, Command, LocalArgs, PutArgs, RunsArgs, SweepArgs};
 use crate::data::csv::{read_dataset, CsvOptions};
@@ -18,10 +20,6 @@ use crate::pb::models_client::ModelsClient;
 use crate::pb::runs_client::RunsClient;
 use crate::rpc::convert;
 
-/// A status as one line: its code and message.
-pub fn status_line(s: tonic::Status) -> String {
-    format!("{:?}: {}", s.code(), s.message())
-}
 
 /// How client commands reach the server: its address, the token, and for an `https://`
 /// address the CA and an optional client certificate.
@@ -71,13 +69,40 @@ fn with_causes(e: &dyn std::error::Error) -> String {
     text
 }
 
+/// The `--server` value as a URL: `host:port` (the form `--listen` takes) means
+/// `http://host:port`; `http://` and `https://` addresses pass as they are. Anything else is a
+/// usage error naming the flag.
+pub fn server_url(server: &str) -> Res<String> {
+    let bad = |why: &str| CliError::usage(format!("--server '{server}': {why}; give host:port (as --listen takes), http://host:port or https://host:port"));
+    let (url, authority) = match server.split_once("://") {
+        Some((scheme, rest)) => {
+            if scheme != "http" && scheme != "https" {
+                return Err(bad(&format!("the scheme '{scheme}' is not http or https")));
+            }
+            (server.to_string(), rest.trim_end_matches('/'))
+        }
+        None => (format!("http://{server}"), server),
+    };
+    let host_port = match authority.rsplit_once(':') {
+        Some((host, port)) => !host.is_empty() && port.parse::<u16>().is_ok_and(|p| p > 0),
+        None => false,
+    };
+    let clean = !authority.is_empty() && authority.chars().all(|c| c.is_ascii_alphanumeric() || ".-_:[]".contains(c));
+    if !clean || (!host_port && !server.contains("://")) {
+        return Err(bad("not an address"));
+    }
+    url.parse::<http::Uri>().map_err(|e| bad(&e.to_string()))?;
+    Ok(url)
+}
+
 fn read_pem(flag: &str, path: &Path) -> Result<Vec<u8>, String> {
     std::fs::read(path).map_err(|e| format!("{flag} {}: {e}", path.display()))
 }
 
-pub async fn connect(remote: &Remote) -> Result<Conn, String> {
-    let server = remote.server.as_str();
-    let mut endpoint = Channel::from_shared(server.to_string()).map_err(|e| format!("--server '{server}': {e}"))?.connect_timeout(Duration::from_secs(5));
+pub async fn connect(remote: &Remote) -> Res<Conn> {
+    let url = server_url(&remote.server)?;
+    let server = url.as_str();
+    let mut endpoint = Channel::from_shared(url.clone()).map_err(|e| CliError::usage(format!("--server '{server}': {e}")))?.connect_timeout(Duration::from_secs(5));
     if server.starts_with("https://") {
         // An https:// address is TLS or nothing: never plain text.
         let ca = remote.ca.as_deref().ok_or_else(|| format!("--server {server} uses TLS: give --ca FILE, the CA certificate (PEM) that signed the server's certificate"))?;
@@ -85,11 +110,11 @@ pub async fn connect(remote: &Remote) -> Result<Conn, String> {
         match (&remote.cert, &remote.key) {
             (Some(c), Some(k)) => tls = tls.identity(Identity::from_pem(read_pem("--cert", c)?, read_pem("--key", k)?)),
             (None, None) => {}
-            _ => return Err("--cert and --key go together: the client certificate and its private key (PEM)".into()),
+            _ => return Err(CliError::usage("--cert and --key go together: the client certificate and its private key (PEM)")),
         }
         endpoint = endpoint.tls_config(tls).map_err(|e| format!("--server {server}: {}", with_causes(&e)))?;
     } else if remote.ca.is_some() || remote.cert.is_some() || remote.key.is_some() {
-        return Err(format!("--ca, --cert and --key are for https:// addresses; --server {server} is plain text"));
+        return Err(CliError::usage(format!("--ca, --cert and --key are for https:// addresses; --server {server} is plain text")));
     }
     let bearer = match remote.token.as_deref().filter(|t| !t.is_empty()) {
         None => None,
@@ -97,7 +122,10 @@ pub async fn connect(remote: &Remote) -> Result<Conn, String> {
     };
     // On a runtime thread (see [`block_sigpipe`]): the TLS handshake writes to the socket.
     let connecting = tokio::spawn(async move { endpoint.connect().await });
-    let channel = connecting.await.map_err(|e| e.to_string())?.map_err(|e| format!("cannot reach the pollard server at {server} ({}); start one with `pollard serve` or set --server", with_causes(&e)))?;
+    let channel = connecting
+        .await
+        .map_err(|e| e.to_string())?
+        .map_err(|e| CliError::new(Exit::Unreachable, "unreachable", format!("cannot reach the pollard server at {server} ({}); start one with `pollard serve` or set --server", with_causes(&e))))?;
     Ok(InterceptedService::new(channel, Bearer(bearer)))
 }
 
@@ -119,27 +147,42 @@ fn block_sigpipe() {
     }
 }
 
-pub fn run(command: Command, remote: &Remote, json_out: bool) -> Result<(), String> {
+pub fn run(command: Command, remote: &Remote, json_out: bool) -> Res {
     runtime()?.block_on(async move {
         let ch = connect(remote).await?;
         match command {
             Command::Put(a) => put(ch, a, json_out).await,
             Command::Datasets { name } => datasets(ch, name, json_out).await,
             Command::Sweep(a) => sweep(ch, a, json_out).await,
-            Command::Follow { run, after } => follow(ch, &run, after, if json_out { Follow::JsonLines } else { Follow::Bar }).await.map(|_| ()),
+            Command::Follow { run, after } => follow(ch, &run, after, if json_out { Follow::JsonLines } else { Follow::Bar }).await?.check(&run),
             Command::Show { run, top } => show(ch, &run, top, json_out).await,
             Command::Runs(a) => runs(ch, a, json_out).await,
-            Command::Cancel { run } => {
-                let r = RunsClient::new(ch).cancel_run(pb::CancelRunRequest { id: run }).await.map_err(status_line)?.into_inner();
-                print_run(&r, json_out);
-                Ok(())
-            }
+            Command::Cancel { run } => cancel(ch, run, json_out).await,
             Command::Model { run, format, out } => model(ch, &run, &format, out, json_out).await,
             Command::Predict { run, file } => predict(ch, &run, &file, json_out).await,
+            Command::Report(a) => super::report::command(ch, a, json_out).await,
             Command::Schedule { action } => super::schedules::run(ch, action, json_out).await,
             _ => unreachable!("handled by the caller"),
         }
     })
+}
+
+/// Cancels a queued or running run; a run that already ended is an error that says so.
+async fn cancel(ch: Conn, id: String, json_out: bool) -> Res {
+    let mut client = RunsClient::new(ch);
+    let before = client.get_run(pb::GetRunRequest { id: id.clone() }).await.map_err(CliError::status)?.into_inner();
+    if ended(before.state) {
+        let state = output::state_name(before.state);
+        return Err(CliError::new(Exit::Other, "already_ended", format!("run {id} already {state}; nothing to cancel")));
+    }
+    let r = client.cancel_run(pb::CancelRunRequest { id }).await.map_err(CliError::status)?.into_inner();
+    print_run(&r, json_out);
+    Ok(())
+}
+
+/// Whether a run state is an end (finished, failed or cancelled).
+pub fn ended(state: i32) -> bool {
+    matches!(pb::RunState::try_from(state), Ok(pb::RunState::Finished | pb::RunState::Failed | pb::RunState::Cancelled))
 }
 
 fn print_run(r: &pb::RunInfo, json_out: bool) {
@@ -151,7 +194,7 @@ fn print_run(r: &pb::RunInfo, json_out: bool) {
 }
 
 /// Uploads a file in chunks with a progress bar.
-pub async fn upload_bytes(ch: Conn, name: &str, target: &str, categorical: Vec<String>, bytes: Vec<u8>, show: bool) -> Result<pb::DatasetInfo, String> {
+pub async fn upload_bytes(ch: Conn, name: &str, target: &str, categorical: Vec<String>, bytes: Vec<u8>, show: bool) -> Res<pb::DatasetInfo> {
     let bar = if show { ProgressBar::new(bytes.len() as u64) } else { ProgressBar::hidden() };
     bar.set_style(ProgressStyle::with_template("uploading {bar:30} {bytes}/{total_bytes}").unwrap());
     let header = pb::UploadChunk { part: Some(pb::upload_chunk::Part::Header(pb::UploadHeader { name: name.into(), format: pb::DataFormat::Csv as i32, target: target.into(), categorical })) };
@@ -162,12 +205,12 @@ pub async fn upload_bytes(ch: Conn, name: &str, target: &str, categorical: Vec<S
             b.inc(d.len() as u64);
         }
     })));
-    let info = DatasetsClient::new(ch).upload(stream).await.map_err(status_line)?.into_inner();
+    let info = DatasetsClient::new(ch).upload(stream).await.map_err(CliError::status)?.into_inner();
     bar.finish_and_clear();
     Ok(info)
 }
 
-async fn put(ch: Conn, a: PutArgs, json_out: bool) -> Result<(), String> {
+async fn put(ch: Conn, a: PutArgs, json_out: bool) -> Res {
     let bytes = std::fs::read(&a.file).map_err(|e| format!("{}: {e}", a.file.display()))?;
     let info = upload_bytes(ch, &a.name, &a.target, a.categorical, bytes, !json_out).await?;
     if json_out {
@@ -178,12 +221,12 @@ async fn put(ch: Conn, a: PutArgs, json_out: bool) -> Result<(), String> {
     Ok(())
 }
 
-async fn datasets(ch: Conn, name: Option<String>, json_out: bool) -> Result<(), String> {
+async fn datasets(ch: Conn, name: Option<String>, json_out: bool) -> Res {
     let mut client = DatasetsClient::new(ch);
     let mut token = String::new();
     let mut all = Vec::new();
     loop {
-        let r = client.list_datasets(pb::ListDatasetsRequest { name: name.clone().unwrap_or_default(), page_size: 100, page_token: token }).await.map_err(status_line)?.into_inner();
+        let r = client.list_datasets(pb::ListDatasetsRequest { name: name.clone().unwrap_or_default(), page_size: 100, page_token: token }).await.map_err(CliError::status)?.into_inner();
         all.extend(r.datasets);
         if r.next_page_token.is_empty() {
             break;
@@ -200,11 +243,11 @@ async fn datasets(ch: Conn, name: Option<String>, json_out: bool) -> Result<(), 
     Ok(())
 }
 
-async fn sweep(ch: Conn, a: SweepArgs, json_out: bool) -> Result<(), String> {
+async fn sweep(ch: Conn, a: SweepArgs, json_out: bool) -> Res {
     let spec = a.grid.to_spec()?;
     let (dataset_id, dataset_name) = if a.dataset.starts_with("ds_") { (a.dataset.clone(), String::new()) } else { (String::new(), a.dataset.clone()) };
     let req = pb::StartRunRequest { dataset_id, dataset_name, spec: Some(spec), idempotency_key: a.idempotency_key, labels: labels(&a.labels)? };
-    let run = RunsClient::new(ch.clone()).start_run(req).await.map_err(status_line)?.into_inner();
+    let run = RunsClient::new(ch.clone()).start_run(req).await.map_err(CliError::status)?.into_inner();
     if !a.follow {
         print_run(&run, json_out);
         return Ok(());
@@ -212,11 +255,11 @@ async fn sweep(ch: Conn, a: SweepArgs, json_out: bool) -> Result<(), String> {
     if !json_out {
         println!("started {}", run.id);
     }
-    follow(ch.clone(), &run.id, 0, if json_out { Follow::JsonLines } else { Follow::Bar }).await?;
+    let end = follow(ch.clone(), &run.id, 0, if json_out { Follow::JsonLines } else { Follow::Bar }).await?;
     if !json_out {
         show(ch, &run.id, 10, false).await?;
     }
-    Ok(())
+    end.check(&run.id)
 }
 
 /// How a follower shows events.
@@ -230,16 +273,48 @@ pub enum Follow {
     Silent,
 }
 
-/// Streams a run's events; returns how it ended ("finished", "failed: …", "cancelled: …").
-pub async fn follow(ch: Conn, id: &str, after: u64, mode: Follow) -> Result<String, String> {
+/// How a followed run ended.
+#[derive(Clone, Debug, PartialEq, Eq)]
+pub enum End {
+    /// The stream closed before an end event.
+    Open,
+    Finished,
+    Failed(String),
+    Cancelled(String),
+}
+
+impl End {
+    /// As the follower prints it: `finished`, `failed: REASON`, `cancelled: REASON`.
+    pub fn text(&self) -> String {
+        match self {
+            End::Open => "running".into(),
+            End::Finished => "finished".into(),
+            End::Failed(m) => format!("failed: {m}"),
+            End::Cancelled(m) => format!("cancelled: {m}"),
+        }
+    }
+
+    /// Success only for a finished run; failed and cancelled runs have their own exit codes.
+    pub fn check(self, id: &str) -> Res {
+        match self {
+            End::Finished => Ok(()),
+            End::Failed(m) => Err(CliError::new(Exit::RunFailed, "run_failed", format!("run {id} failed: {m}"))),
+            End::Cancelled(m) => Err(CliError::new(Exit::RunCancelled, "run_cancelled", format!("run {id} cancelled: {m}"))),
+            End::Open => Err(CliError::new(Exit::Unreachable, "unreachable", format!("the event stream of run {id} closed before the run ended"))),
+        }
+    }
+}
+
+/// Streams a run's events; returns how it ended.
+pub async fn follow(ch: Conn, id: &str, after: u64, mode: Follow) -> Res<End> {
     let json_out = mode == Follow::JsonLines;
-    let mut stream = RunsClient::new(ch).follow_run(pb::FollowRunRequest { id: id.into(), after_sequence: after }).await.map_err(status_line)?.into_inner();
+    let mut stream = RunsClient::new(ch).follow_run(pb::FollowRunRequest { id: id.into(), after_sequence: after }).await.map_err(CliError::status)?.into_inner();
     let bar = if mode == Follow::Bar { ProgressBar::new(0) } else { ProgressBar::hidden() };
     bar.set_style(ProgressStyle::with_template("{spinner} work units {pos}/{len} {bar:30} settings scored {msg} [{elapsed}]").unwrap());
     bar.enable_steady_tick(Duration::from_millis(200));
     let mut scored = 0;
-    let mut end = "running".to_string();
-    while let Some(ev) = stream.message().await.map_err(status_line)? {
+    let mut end = End::Open;
+    while let Some(ev) = stream.message().await.map_err(CliError::status)? {
         if json_out {
             println!("{}", event_json(&ev));
         }
@@ -252,15 +327,15 @@ pub async fn follow(ch: Conn, id: &str, after: u64, mode: Follow) -> Result<Stri
                 scored += 1;
                 bar.set_message(scored.to_string());
             }
-            Some(pb::run_event::Kind::Finished(_)) => end = "finished".into(),
-            Some(pb::run_event::Kind::Failed(m)) => end = format!("failed: {m}"),
-            Some(pb::run_event::Kind::Cancelled(m)) => end = format!("cancelled: {m}"),
+            Some(pb::run_event::Kind::Finished(_)) => end = End::Finished,
+            Some(pb::run_event::Kind::Failed(m)) => end = End::Failed(m),
+            Some(pb::run_event::Kind::Cancelled(m)) => end = End::Cancelled(m),
             None => {}
         }
     }
     bar.finish_and_clear();
     if mode == Follow::Bar {
-        println!("run {id}: {end}");
+        println!("run {id}: {}", end.text());
     }
     Ok(end)
 }
@@ -277,13 +352,16 @@ fn event_json(e: &pb::RunEvent) -> serde_json::Value {
     json!({"sequence": e.sequence, "run_id": e.run_id, "at": e.at, "kind": kind, "event": body})
 }
 
-pub async fn show(ch: Conn, id: &str, top: usize, json_out: bool) -> Result<(), String> {
-    let r = RunsClient::new(ch).get_run(pb::GetRunRequest { id: id.into() }).await.map_err(status_line)?.into_inner();
+pub async fn show(ch: Conn, id: &str, top: usize, json_out: bool) -> Res {
+    let r = RunsClient::new(ch).get_run(pb::GetRunRequest { id: id.into() }).await.map_err(CliError::status)?.into_inner();
     if json_out {
         println!("{}", output::run_json(&r));
         return Ok(());
     }
     println!("{}", output::run_line(&r));
+    if r.model.is_none() && r.spec.as_ref().is_some_and(|s| s.skip_final) && output::state_name(r.state) == "finished" {
+        println!("{}", super::report::model_state(&r));
+    }
     if !r.scores.is_empty() {
         let metric = if r.metric.is_empty() { "score" } else { &r.metric };
         print!("{}", output::scores_table(&r.scores, metric, higher_is_better(metric), top, r.picked, r.best));
@@ -301,10 +379,10 @@ pub async fn show(ch: Conn, id: &str, top: usize, json_out: bool) -> Result<(), 
     Ok(())
 }
 
-async fn runs(ch: Conn, a: RunsArgs, json_out: bool) -> Result<(), String> {
+async fn runs(ch: Conn, a: RunsArgs, json_out: bool) -> Res {
     let state = match a.state.as_deref() {
         None => 0,
-        Some(s) => convert::state_to(crate::job::RunState::parse(s).ok_or_else(|| format!("--state: '{s}' is not queued, running, finished, failed or cancelled"))?) as i32,
+        Some(s) => convert::state_to(crate::job::RunState::parse(s).ok_or_else(|| CliError::usage(format!("--state: '{s}' is not queued, running, finished, failed or cancelled")))?) as i32,
     };
     let req = pb::ListRunsRequest {
         dataset_name: a.dataset.unwrap_or_default(),
@@ -318,7 +396,7 @@ async fn runs(ch: Conn, a: RunsArgs, json_out: bool) -> Result<(), String> {
         score_fell: a.score_fell,
         drift_flagged: a.flagged,
     };
-    let r = RunsClient::new(ch).list_runs(req).await.map_err(status_line)?.into_inner();
+    let r = RunsClient::new(ch).list_runs(req).await.map_err(CliError::status)?.into_inner();
     if json_out {
         println!("{}", json!(r.runs.iter().map(output::run_json).collect::<Vec<_>>()));
     } else {
@@ -329,20 +407,20 @@ async fn runs(ch: Conn, a: RunsArgs, json_out: bool) -> Result<(), String> {
     Ok(())
 }
 
-fn model_format(f: &str) -> Result<pb::ModelFormat, String> {
+fn model_format(f: &str) -> Res<pb::ModelFormat> {
     Ok(match f {
         "json" => pb::ModelFormat::Json,
         "dot" => pb::ModelFormat::Dot,
         "text" => pb::ModelFormat::Text,
         "protobuf" => pb::ModelFormat::Protobuf,
         "onnx" => pb::ModelFormat::Onnx,
-        _ => return Err(format!("--format: '{f}' is not json, dot, text, protobuf or onnx")),
+        _ => return Err(CliError::usage(format!("--format: '{f}' is not json, dot, text, protobuf or onnx"))),
     })
 }
 
-async fn model(ch: Conn, id: &str, format: &str, out: Option<std::path::PathBuf>, json_out: bool) -> Result<(), String> {
+async fn model(ch: Conn, id: &str, format: &str, out: Option<std::path::PathBuf>, json_out: bool) -> Res {
     let f = model_format(format)?;
-    let file = ModelsClient::new(ch).get_model(pb::GetModelRequest { run_id: id.into(), format: f as i32 }).await.map_err(status_line)?.into_inner();
+    let file = ModelsClient::new(ch).get_model(pb::GetModelRequest { run_id: id.into(), format: f as i32 }).await.map_err(CliError::status)?.into_inner();
     let bytes = match f {
         pb::ModelFormat::Protobuf => prost::Message::encode_to_vec(&file.model.unwrap_or_default()),
         pb::ModelFormat::Onnx => file.data,
@@ -357,18 +435,38 @@ async fn model(ch: Conn, id: &str, format: &str, out: Option<std::path::PathBuf>
                 println!("wrote {} ({} bytes)", p.display(), bytes.len());
             }
         }
-        None if matches!(f, pb::ModelFormat::Protobuf | pb::ModelFormat::Onnx) => return Err(format!("--format {format} is binary; give --out FILE")),
+        None if matches!(f, pb::ModelFormat::Protobuf | pb::ModelFormat::Onnx) => return Err(CliError::usage(format!("--format {format} is binary; give --out FILE"))),
+        // One object: the model file itself (json), or the drawing as a string (dot, text).
+        None if json_out => {
+            let text = String::from_utf8_lossy(&bytes);
+            let body = match f {
+                pb::ModelFormat::Json => json!({"run_id": id, "format": format, "model": serde_json::from_str::<serde_json::Value>(&text).map_err(|e| format!("the server's model JSON: {e}"))?}),
+                _ => json!({"run_id": id, "format": format, "text": text}),
+            };
+            println!("{body}");
+        }
         None => print!("{}", String::from_utf8_lossy(&bytes)),
     }
     Ok(())
 }
 
-async fn predict(ch: Conn, id: &str, file: &std::path::Path, json_out: bool) -> Result<(), String> {
+async fn predict(ch: Conn, id: &str, file: &std::path::Path, json_out: bool) -> Res {
     let bytes = std::fs::read(file).map_err(|e| format!("{}: {e}", file.display()))?;
     let table = csv_table(&bytes).map_err(|e| format!("{}: {e}", file.display()))?;
-    let r = ModelsClient::new(ch).predict(pb::PredictRequest { run_id: id.into(), rows: Some(table) }).await.map_err(status_line)?.into_inner();
+    let r = ModelsClient::new(ch).predict(pb::PredictRequest { run_id: id.into(), rows: Some(table) }).await.map_err(CliError::status)?.into_inner();
     if json_out {
-        println!("{}", json!({"predicted": r.predicted, "classes": r.classes, "probabilities": r.probabilities, "values": r.values}));
+        // One object per row: the class and each class's probability, or the value.
+        let k = r.classes.len();
+        let mut out = std::io::BufWriter::new(std::io::stdout().lock());
+        let w = |e: std::io::Error| e.to_string();
+        for (i, p) in r.predicted.iter().enumerate() {
+            let probs: serde_json::Map<String, serde_json::Value> = r.classes.iter().cloned().zip(r.probabilities[i * k..(i + 1) * k].iter().map(|&x| output::num(x))).collect();
+            writeln!(out, "{}", json!({"row": i + 1, "predicted": p, "probabilities": probs})).map_err(w)?;
+        }
+        for (i, v) in r.values.iter().enumerate() {
+            writeln!(out, "{}", json!({"row": i + 1, "value": output::num(*v)})).map_err(w)?;
+        }
+        out.flush().map_err(w)?;
     } else if !r.predicted.is_empty() {
         println!("row,predicted,{}", r.classes.iter().map(|c| format!("p_{c}")).collect::<Vec<_>>().join(","));
         let k = r.classes.len();
@@ -419,10 +517,10 @@ pub fn csv_table(bytes: &[u8]) -> Result<pb::Table, String> {
 }
 
 /// A sweep in this process, no server: same flags and the same table.
-pub fn local(a: LocalArgs, json_out: bool) -> Result<(), String> {
+pub fn local(a: LocalArgs, json_out: bool) -> Res {
     let wire = a.grid.to_spec()?;
     if wire.target.is_empty() {
-        return Err("--target: name the column to predict".into());
+        return Err(CliError::usage("--target: name the column to predict"));
     }
     let bytes = std::fs::read(&a.file).map_err(|e| format!("{}: {e}", a.file.display()))?;
     let mut options = CsvOptions::new(wire.target.clone());

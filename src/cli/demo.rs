@@ -5,15 +5,16 @@
 //! settings with training and validation scores side by side and the one-SE pick, then writes
 //! the model (JSON, DOT), the score table (CSV) and one SVG plot per limit.
 
-use std::path::Path;
+use std::path::PathBuf;
 
 use tokio::sync::oneshot;
 
-use super::client::{connect, follow, status_line, upload_bytes, Follow, Remote};
+use super::client::{connect, follow, upload_bytes, Follow, Remote};
+use super::error::{CliError, Res};
 use super::output::{higher_is_better, scores_table};
+use super::report::{make_dir, print_written, write_results};
 use super::DemoArgs;
 use crate::pb;
-use crate::pb::models_client::ModelsClient;
 use crate::pb::runs_client::RunsClient;
 use crate::reefer::{voyages_csv, ReeferTarget};
 use crate::rpc::convert;
@@ -44,7 +45,13 @@ pub fn demo_spec(seed: u64) -> pb::SweepSpec {
     }
 }
 
-pub fn run(a: DemoArgs, remote: &Remote, json_out: bool) -> Result<(), String> {
+pub fn run(a: DemoArgs, remote: &Remote, json_out: bool) -> Res {
+    // The output folder and the data file come first, before any server starts: a path that
+    // cannot be made fails at once, naming it.
+    make_dir(&a.out)?;
+    let csv = voyages_csv(a.rows, a.seed, ReeferTarget::Excursion);
+    let data_path = a.out.join(format!("{DATASET}.csv"));
+    std::fs::write(&data_path, &csv).map_err(|e| format!("{}: {e}", data_path.display()))?;
     let runtime = tokio::runtime::Builder::new_multi_thread().worker_threads(2).enable_all().build().map_err(|e| e.to_string())?;
     runtime.block_on(async move {
         let (address, stop, served) = if a.remote {
@@ -60,7 +67,7 @@ pub fn run(a: DemoArgs, remote: &Remote, json_out: bool) -> Result<(), String> {
             }));
             (Remote::plain(format!("http://{addr}")), Some(tx), Some(handle))
         };
-        let result = demo(&a, &address, json_out).await;
+        let result = demo(&a, &address, json_out, csv, data_path).await;
         if let Some(tx) = stop {
             let _ = tx.send(());
         }
@@ -71,17 +78,13 @@ pub fn run(a: DemoArgs, remote: &Remote, json_out: bool) -> Result<(), String> {
     })
 }
 
-async fn demo(a: &DemoArgs, address: &Remote, json_out: bool) -> Result<(), String> {
+async fn demo(a: &DemoArgs, address: &Remote, json_out: bool, csv: String, data_path: PathBuf) -> Res {
     let say = |s: &str| {
         if !json_out {
             println!("{s}");
         }
     };
     let ch = connect(address).await?;
-    std::fs::create_dir_all(&a.out).map_err(|e| format!("{}: {e}", a.out.display()))?;
-    let csv = voyages_csv(a.rows, a.seed, ReeferTarget::Excursion);
-    let data_path = a.out.join(format!("{DATASET}.csv"));
-    std::fs::write(&data_path, &csv).map_err(|e| format!("{}: {e}", data_path.display()))?;
     say(&format!("pollard demo: {} synthetic reefer-container voyages (invented data), target 'excursion' (did the cargo leave its temperature band?)", a.rows));
     let info = upload_bytes(ch.clone(), DATASET, "excursion", Vec::new(), csv.into_bytes(), !json_out).await?;
     say(&format!("uploaded dataset {} ({} rows, {} columns)", info.id, info.rows, info.columns.len()));
@@ -89,14 +92,11 @@ async fn demo(a: &DemoArgs, address: &Remote, json_out: bool) -> Result<(), Stri
     let run = RunsClient::new(ch.clone())
         .start_run(pb::StartRunRequest { dataset_id: info.id.clone(), spec: Some(spec), labels: [("source".to_string(), "demo".to_string())].into(), ..Default::default() })
         .await
-        .map_err(status_line)?
+        .map_err(CliError::status)?
         .into_inner();
     say(&format!("sweeping every limit: run {}", run.id));
-    let end = follow(ch.clone(), &run.id, 0, if json_out { Follow::Silent } else { Follow::Bar }).await?;
-    if end != "finished" {
-        return Err(format!("the demo run ended {end}"));
-    }
-    let r = RunsClient::new(ch.clone()).get_run(pb::GetRunRequest { id: run.id.clone() }).await.map_err(status_line)?.into_inner();
+    follow(ch.clone(), &run.id, 0, if json_out { Follow::Silent } else { Follow::Bar }).await?.check(&run.id)?;
+    let r = RunsClient::new(ch.clone()).get_run(pb::GetRunRequest { id: run.id.clone() }).await.map_err(CliError::status)?.into_inner();
     let metric = r.metric.clone();
     if !json_out {
         println!("{} settings scored by 5-fold cross-validation", r.scores.len());
@@ -107,20 +107,8 @@ async fn demo(a: &DemoArgs, address: &Remote, json_out: bool) -> Result<(), Stri
             println!("one-SE pick: grid# {p}, {:.4} with {:.1} leaves (the fewest leaves within one standard error of the best)", ps.valid_mean, ps.mean_leaves);
         }
     }
-    let mut models = ModelsClient::new(ch.clone());
-    let mut written = vec![data_path.clone()];
-    for (format, name) in [(pb::ModelFormat::Json, "model.json"), (pb::ModelFormat::Dot, "model.dot"), (pb::ModelFormat::Text, "model.txt")] {
-        let f = models.get_model(pb::GetModelRequest { run_id: run.id.clone(), format: format as i32 }).await.map_err(status_line)?.into_inner();
-        let path = a.out.join(name);
-        std::fs::write(&path, f.text).map_err(|e| format!("{}: {e}", path.display()))?;
-        written.push(path);
-    }
-    let scores_path = a.out.join("scores.csv");
-    write_scores(&scores_path, &r.scores, r.picked, r.best)?;
-    written.push(scores_path);
-    let core: Vec<crate::sweep::SettingScore> = r.scores.iter().map(convert::score_from).collect();
-    let metric_kind = crate::sweep::Metric::parse(&metric).unwrap_or(crate::sweep::Metric::Accuracy);
-    written.extend(super::plots::limit_plots(&core, metric_kind, r.picked.map(|p| p as usize), &a.out)?);
+    let mut written = vec![data_path];
+    written.extend(write_results(ch, &r, &a.out).await?);
     if json_out {
         println!(
             "{}",
@@ -128,54 +116,7 @@ async fn demo(a: &DemoArgs, address: &Remote, json_out: bool) -> Result<(), Stri
                 "files": written.iter().map(|p| p.display().to_string()).collect::<Vec<_>>()})
         );
     } else {
-        println!("wrote {} files to {}:", written.len(), a.out.display());
-        for p in &written {
-            println!("  {}", p.display());
-        }
+        print_written(&written, &a.out);
     }
     Ok(())
-}
-
-fn write_scores(path: &Path, scores: &[pb::SettingScore], picked: Option<u32>, best: Option<u32>) -> Result<(), String> {
-    let mut w = csv::Writer::from_path(path).map_err(|e| format!("{}: {e}", path.display()))?;
-    let e = |e: csv::Error| format!("{}: {e}", path.display());
-    let folds = scores.first().map_or(0, |s| s.fold_scores.len());
-    let mut header: Vec<String> = ["grid_index", "criterion", "class_weight", "max_depth", "min_split_rows", "min_leaf_rows", "max_leaves", "min_gain", "prune_alpha", "train_mean", "valid_mean", "valid_sd", "gap", "mean_leaves", "mean_depth"]
-        .iter()
-        .map(|s| s.to_string())
-        .collect();
-    header.extend((0..folds).map(|i| format!("fold_{i}")));
-    header.push("marks".into());
-    w.write_record(&header).map_err(e)?;
-    for s in scores {
-        let l = s.limits.clone().unwrap_or_default();
-        let mut rec = vec![
-            s.index.to_string(),
-            l.criterion,
-            l.class_weight,
-            l.max_depth.map_or("none".into(), |x| x.to_string()),
-            l.min_split_rows.to_string(),
-            l.min_leaf_rows.to_string(),
-            l.max_leaves.map_or("none".into(), |x| x.to_string()),
-            l.min_gain.to_string(),
-            l.prune_alpha.to_string(),
-            s.train_mean.to_string(),
-            s.valid_mean.to_string(),
-            s.valid_sd.to_string(),
-            s.gap.to_string(),
-            s.mean_leaves.to_string(),
-            s.mean_depth.to_string(),
-        ];
-        rec.extend(s.fold_scores.iter().map(|x| x.to_string()));
-        let mut marks = Vec::new();
-        if best == Some(s.index) {
-            marks.push("best");
-        }
-        if picked == Some(s.index) {
-            marks.push("picked");
-        }
-        rec.push(marks.join(" "));
-        w.write_record(&rec).map_err(e)?;
-    }
-    w.flush().map_err(|x| format!("{}: {x}", path.display()))
 }

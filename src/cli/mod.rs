@@ -4,9 +4,11 @@
 
 mod client;
 mod demo;
+pub mod error;
 mod output;
 pub mod plots;
 pub mod ranges;
+mod report;
 mod schedules;
 mod spec;
 
@@ -15,23 +17,24 @@ use std::fs::File;
 use std::io::Write;
 use std::path::PathBuf;
 
-use clap::{Args, Parser, Subcommand};
+use clap::{Args, CommandFactory, FromArgMatches, Parser, Subcommand};
 
 use crate::data::csv::{read_dataset, CsvOptions};
 use crate::sweep::{FoldPlan, FoldScheme};
 
+pub use error::{CliError, Exit, Res};
 pub use spec::GridArgs;
 
 /// The default server address.
 pub const DEFAULT_SERVER: &str = "http://127.0.0.1:7311";
 
 #[derive(Parser, Debug)]
-#[command(name = "pollard", version, about = "Tunes the complexity limits of decision trees by cross-validated sweeps", long_about = None)]
+#[command(name = "pollard", version, about = "Tunes the complexity limits of decision trees by cross-validated sweeps", long_about = None, after_help = error::EXIT_CODES)]
 pub struct Cli {
-    /// Address of the pollard server for client commands.
+    /// Address of the pollard server for client commands: host:port, http://host:port or https://host:port.
     #[arg(long, global = true, env = "POLLARD_SERVER", default_value = DEFAULT_SERVER)]
     pub server: String,
-    /// Print machine-readable JSON instead of tables.
+    /// Print machine-readable JSON instead of tables (errors too, as one JSON line on stderr).
     #[arg(long, global = true)]
     pub json: bool,
     /// Token for a server that needs one (sent as `authorization: Bearer`).
@@ -66,8 +69,9 @@ pub enum Command {
     },
     /// Start a sweep on a dataset.
     Sweep(SweepArgs),
-    /// Stream a run's events until it ends.
+    /// Stream a run's events until it ends; exits 3 if the run failed, 4 if it was cancelled.
     Follow {
+        /// Run id (run_...).
         run: String,
         /// Resume after this event sequence number.
         #[arg(long, default_value_t = 0)]
@@ -75,6 +79,7 @@ pub enum Command {
     },
     /// Show one run: its state, its best settings and its pick.
     Show {
+        /// Run id (run_...).
         run: String,
         /// Settings to list, best first.
         #[arg(long, default_value_t = 10)]
@@ -82,10 +87,14 @@ pub enum Command {
     },
     /// List runs, newest first.
     Runs(RunsArgs),
-    /// Cancel a queued or running run.
-    Cancel { run: String },
+    /// Cancel a queued or running run (a run that already ended is an error).
+    Cancel {
+        /// Run id (run_...).
+        run: String,
+    },
     /// Fetch the model of a finished run.
     Model {
+        /// Run id (run_...) of a finished run.
         run: String,
         /// json, dot, text, protobuf or onnx (the binary formats need --out).
         #[arg(long, default_value = "text")]
@@ -96,12 +105,16 @@ pub enum Command {
     },
     /// Predict the rows of a CSV file with a run's model.
     Predict {
+        /// Run id (run_...) of a finished run.
         run: String,
+        /// CSV file with a header row and the model's feature columns.
         file: PathBuf,
     },
+    /// Write a stored run's results to a folder: scores CSV, plots, the model in every format, summary.txt.
+    Report(ReportArgs),
     /// Run a sweep in this process on a CSV file, with no server.
     Local(LocalArgs),
-    /// Print the fold assignment a sweep with this plan uses, as CSV row,repeat,fold.
+    /// Print the fold assignment a sweep with this plan uses, as CSV row,repeat,fold (or JSON with --json).
     Folds(FoldsArgs),
     /// Manage schedules: recurring sweeps compared run to run.
     Schedule {
@@ -139,7 +152,7 @@ pub struct ServeArgs {
     #[arg(long)]
     pub listen: Option<String>,
     /// Directory of the store.
-    #[arg(long)]
+    #[arg(long, value_name = "DIR")]
     pub data: Option<String>,
     /// TOML configuration file.
     #[arg(long)]
@@ -160,13 +173,14 @@ pub struct DemoArgs {
     /// Use the server at --server instead of starting one in this process.
     #[arg(long)]
     pub remote: bool,
-    /// Seed of the generated data.
+    /// Seed of the generated data and of the folds.
     #[arg(long, default_value_t = 20261202)]
     pub seed: u64,
 }
 
 #[derive(Args, Debug)]
 pub struct PutArgs {
+    /// CSV file with a header row.
     pub file: PathBuf,
     /// Name under which uploads form a version history.
     #[arg(long)]
@@ -186,7 +200,7 @@ pub struct SweepArgs {
     pub dataset: String,
     #[command(flatten)]
     pub grid: GridArgs,
-    /// Stream the run until it ends.
+    /// Stream the run until it ends; exits 3 if it failed, 4 if it was cancelled.
     #[arg(long)]
     pub follow: bool,
     /// Labels key=value (repeatable).
@@ -199,6 +213,7 @@ pub struct SweepArgs {
 
 #[derive(Args, Debug)]
 pub struct RunsArgs {
+    /// Only runs on datasets of this name.
     #[arg(long)]
     pub dataset: Option<String>,
     /// queued, running, finished, failed or cancelled.
@@ -207,6 +222,7 @@ pub struct RunsArgs {
     /// key=value.
     #[arg(long)]
     pub label: Option<String>,
+    /// Only runs started by this schedule (sch_...).
     #[arg(long)]
     pub schedule: Option<String>,
     /// Created at or after this RFC 3339 time.
@@ -221,12 +237,23 @@ pub struct RunsArgs {
     /// Only runs whose drift report raised any flag.
     #[arg(long)]
     pub flagged: bool,
+    /// Runs to list at most.
     #[arg(long, default_value_t = 20)]
     pub limit: u32,
 }
 
 #[derive(Args, Debug)]
+pub struct ReportArgs {
+    /// Run id (run_...).
+    pub run: String,
+    /// Folder to write to (made if missing).
+    #[arg(long)]
+    pub out: PathBuf,
+}
+
+#[derive(Args, Debug)]
 pub struct LocalArgs {
+    /// CSV file with a header row.
     pub file: PathBuf,
     #[command(flatten)]
     pub grid: GridArgs,
@@ -240,40 +267,73 @@ pub struct LocalArgs {
 
 #[derive(Args, Debug)]
 pub struct FoldsArgs {
-    #[arg(long)]
-    pub data: PathBuf,
+    /// CSV file with a header row.
+    #[arg(long, alias = "data")]
+    pub file: PathBuf,
+    /// Column to predict.
     #[arg(long)]
     pub target: String,
-    /// shuffled, stratified, grouped, forward or given (default: the task's).
-    #[arg(long)]
-    pub scheme: Option<String>,
+    /// Fold scheme: shuffled, stratified, grouped, forward or given (default: the task's).
+    #[arg(long, alias = "scheme")]
+    pub fold_scheme: Option<String>,
+    /// Number of folds.
     #[arg(long, default_value_t = 5)]
     pub k: u32,
+    /// Repeats of the fold plan.
     #[arg(long, default_value_t = 1)]
     pub repeats: u32,
+    /// Seed of the shuffles.
     #[arg(long, default_value_t = 0)]
     pub seed: u64,
-    /// Column of grouped, forward and given plans.
-    #[arg(long)]
-    pub column: Option<String>,
+    /// Column read by grouped, forward and given folds.
+    #[arg(long, alias = "column")]
+    pub fold_column: Option<String>,
+}
+
+/// The options that only client commands use: hidden from the help of commands that never
+/// talk to a server.
+const CLIENT_ONLY: [&str; 5] = ["server", "token", "ca", "cert", "key"];
+
+/// The parser: [`Cli`] with the client-only options hidden where they mean nothing.
+pub fn command() -> clap::Command {
+    let mut cmd = Cli::command();
+    // The connection options and --json after each command's own.
+    for (i, id) in CLIENT_ONLY.iter().chain(&["json"]).enumerate() {
+        cmd = cmd.mut_arg(*id, |a| a.display_order(1000 + i));
+    }
+    // A subcommand that has an argument of a global's id keeps its own: hidden copies here.
+    let hidden = |ids: &[&str]| -> Vec<clap::Arg> { cmd.get_arguments().filter(|a| ids.contains(&a.get_id().as_str())).map(|a| a.clone().global(false).hide(true)).collect() };
+    let client_only = hidden(&CLIENT_ONLY);
+    let with_json = hidden(&[&CLIENT_ONLY[..], &["json"]].concat());
+    for name in ["local", "folds", "token"] {
+        let args = client_only.clone();
+        cmd = cmd.mut_subcommand(name, |sub| sub.args(args));
+    }
+    cmd.mut_subcommand("serve", |sub| sub.args(with_json))
+}
+
+/// Whether the command line asks for JSON (so that even a usage error is printed as JSON).
+pub fn wants_json(args: &[String]) -> bool {
+    args.iter().take_while(|a| *a != "--").any(|a| a == "--json")
 }
 
 /// Runs the command named by `args` (without the program name).
-pub fn run(args: &[String]) -> Result<(), String> {
-    let cli = match Cli::try_parse_from(std::iter::once("pollard".to_string()).chain(args.iter().cloned())) {
-        Ok(c) => c,
+pub fn run(args: &[String]) -> Res {
+    let matches = match command().try_get_matches_from(std::iter::once("pollard".to_string()).chain(args.iter().cloned())) {
+        Ok(m) => m,
         Err(e) if matches!(e.kind(), clap::error::ErrorKind::DisplayHelp | clap::error::ErrorKind::DisplayVersion) => {
             print!("{e}");
             return Ok(());
         }
-        Err(e) => return Err(one_line_usage_error(&e.to_string())),
+        Err(e) => return Err(CliError::usage(one_line_usage_error(&e.to_string()))),
     };
+    let cli = Cli::from_arg_matches(&matches).map_err(|e| CliError::usage(one_line_usage_error(&e.to_string())))?;
     let remote = client::Remote { server: cli.server, token: cli.token, ca: cli.ca, cert: cli.cert, key: cli.key };
     match cli.command {
-        Command::Serve(a) => serve(a),
-        Command::Folds(a) => folds(a),
+        Command::Serve(a) => Ok(serve(a)?),
+        Command::Folds(a) => folds(a, cli.json),
         Command::Local(a) => client::local(a, cli.json),
-        Command::Token { action } => token(action, cli.json),
+        Command::Token { action } => Ok(token(action, cli.json)?),
         Command::Demo(a) => demo::run(a, &remote, cli.json),
         other => client::run(other, &remote, cli.json),
     }
@@ -315,32 +375,38 @@ fn token(action: TokenCommand, json_out: bool) -> Result<(), String> {
     Ok(())
 }
 
-fn folds(a: FoldsArgs) -> Result<(), String> {
-    let path = a.data.display().to_string();
-    let file = File::open(&a.data).map_err(|e| format!("{path}: {e}"))?;
+fn folds(a: FoldsArgs, json_out: bool) -> Res {
+    let path = a.file.display().to_string();
+    let file = File::open(&a.file).map_err(|e| format!("{path}: {e}"))?;
     let data = read_dataset(file, &CsvOptions::new(a.target.clone())).map_err(|e| format!("{path}: {e}"))?;
-    let column = || a.column.clone().ok_or_else(|| "--column C is required for this scheme".to_string());
-    let scheme = match a.scheme.as_deref() {
+    let column = || a.fold_column.clone().ok_or_else(|| CliError::usage("--fold-column C is required for this scheme"));
+    let scheme = match a.fold_scheme.as_deref() {
         None => FoldPlan::default_for(data.task()).scheme,
         Some("shuffled") => FoldScheme::Shuffled,
         Some("stratified") => FoldScheme::Stratified,
         Some("grouped") => FoldScheme::Grouped { column: column()? },
         Some("forward") => FoldScheme::Forward { column: column()? },
         Some("given") => FoldScheme::Given { column: column()? },
-        Some(s) => return Err(format!("--scheme: '{s}' is not one of shuffled, stratified, grouped, forward, given")),
+        Some(s) => return Err(CliError::usage(format!("--fold-scheme: '{s}' is not one of shuffled, stratified, grouped, forward, given"))),
     };
     let plan = FoldPlan { scheme, k: a.k, repeats: a.repeats };
     plan.check(&data).map_err(|e| e.to_string())?;
     let folds = plan.assign(&data, a.seed).map_err(|e| e.to_string())?;
     let mut out = std::io::BufWriter::new(std::io::stdout().lock());
     let w = |e: std::io::Error| e.to_string();
+    if json_out {
+        // One object: the plan and, per repeat, each row's fold (row 1 first).
+        let v = serde_json::json!({"rows": folds.assignment.first().map_or(0, Vec::len), "k": a.k, "repeats": a.repeats, "seed": a.seed, "assignment": folds.assignment});
+        writeln!(out, "{v}").map_err(w)?;
+        return Ok(out.flush().map_err(w)?);
+    }
     writeln!(out, "row,repeat,fold").map_err(w)?;
     for (rep, fold_of) in folds.assignment.iter().enumerate() {
         for (row, fold) in fold_of.iter().enumerate() {
             writeln!(out, "{},{rep},{fold}", row + 1).map_err(w)?;
         }
     }
-    out.flush().map_err(w)
+    Ok(out.flush().map_err(w)?)
 }
 
 fn serve(a: ServeArgs) -> Result<(), String> {
@@ -384,11 +450,17 @@ pub async fn shutdown_signal() {
 /// Log lines through `tracing`, plain or JSON; every line of a run carries its id.
 pub fn init_logging(config: &crate::config::Config) {
     let filter = tracing_subscriber::EnvFilter::try_new(&config.log_filter).unwrap_or_else(|_| tracing_subscriber::EnvFilter::new("info"));
-    let builder = tracing_subscriber::fmt().with_env_filter(filter).with_writer(std::io::stderr);
+    let builder = tracing_subscriber::fmt().with_env_filter(filter).with_writer(std::io::stderr).with_ansi(log_colours(std::io::IsTerminal::is_terminal(&std::io::stderr()), std::env::var_os("NO_COLOR")));
     let _ = match config.log_format {
         crate::config::LogFormat::Json => builder.json().try_init(),
         crate::config::LogFormat::Plain => builder.try_init(),
     };
+}
+
+/// Colour codes in the log only on a terminal, and never when NO_COLOR is set to anything
+/// but the empty string (no-color.org).
+fn log_colours(terminal: bool, no_color: Option<std::ffi::OsString>) -> bool {
+    terminal && no_color.is_none_or(|v| v.is_empty())
 }
 
 /// A usage error as one line: the problem and any tip, without the usage block (errors are
@@ -404,9 +476,9 @@ fn one_line_usage_error(text: &str) -> String {
 }
 
 /// `key=value` pairs.
-fn labels(list: &[String]) -> Result<HashMap<String, String>, String> {
+fn labels(list: &[String]) -> Res<HashMap<String, String>> {
     list.iter()
-        .map(|l| l.split_once('=').map(|(k, v)| (k.to_string(), v.to_string())).ok_or_else(|| format!("--label: '{l}' is not key=value")))
+        .map(|l| l.split_once('=').map(|(k, v)| (k.to_string(), v.to_string())).ok_or_else(|| CliError::usage(format!("--label: '{l}' is not key=value"))))
         .collect()
 }
 
@@ -414,15 +486,62 @@ fn labels(list: &[String]) -> Result<HashMap<String, String>, String> {
 mod tests {
     use super::*;
 
+    /// Every argument and option of every command says what it is for.
+    #[test]
+    fn every_argument_has_help() {
+        fn walk(cmd: &mut clap::Command, path: &str, missing: &mut Vec<String>) {
+            for a in cmd.get_arguments() {
+                let builtin = matches!(a.get_id().as_str(), "help" | "version");
+                if !builtin && a.get_help().is_none_or(|h| h.to_string().trim().is_empty()) {
+                    missing.push(format!("{path} {}", a.get_long().map_or(format!("<{}>", a.get_id()), |l| format!("--{l}"))));
+                }
+            }
+            for sub in cmd.get_subcommands_mut() {
+                let p = format!("{path} {}", sub.get_name());
+                walk(sub, &p, missing);
+            }
+        }
+        let mut cmd = command();
+        cmd.build();
+        let mut missing = Vec::new();
+        walk(&mut cmd, "pollard", &mut missing);
+        assert!(missing.is_empty(), "arguments without help: {missing:?}");
+    }
+
+    /// `serve` lists no client-only options; client commands do.
+    #[test]
+    fn serve_help_has_no_client_options() {
+        let mut cmd = command();
+        cmd.build();
+        let serve = cmd.find_subcommand_mut("serve").unwrap().render_long_help().to_string();
+        for flag in ["--server", "--token", "--ca", "--cert", "--key", "--json"] {
+            assert!(!serve.contains(flag), "serve --help lists {flag}:\n{serve}");
+        }
+        let runs = cmd.find_subcommand_mut("runs").unwrap().render_long_help().to_string();
+        assert!(runs.contains("--server") && runs.contains("--json"), "{runs}");
+        let top = cmd.render_long_help().to_string();
+        assert!(top.contains("Exit codes:") && top.contains("4  the run followed ended cancelled"), "{top}");
+    }
+
+    #[test]
+    fn log_colours_only_on_a_terminal_without_no_color() {
+        assert!(log_colours(true, None));
+        assert!(log_colours(true, Some("".into())));
+        assert!(!log_colours(true, Some("1".into())));
+        assert!(!log_colours(false, None));
+    }
+
     #[test]
     fn usage_errors_are_one_line() {
         for args in [vec!["runs", "--bogus"], vec!["schedule", "create", "--cron", "x"], vec!["sweep", "--max-depth"], vec!["nonsense"]] {
             let args: Vec<String> = args.into_iter().map(String::from).collect();
             let e = run(&args).unwrap_err();
+            assert_eq!(e.exit, Exit::Usage, "{e:?}");
+            let e = e.message;
             assert_eq!(e.lines().count(), 1, "{e}");
             assert!(e.ends_with("(try --help)") && !e.contains("Usage:"), "{e}");
         }
-        let e = run(&["schedule".into(), "create".into(), "--cron".into(), "x".into()]).unwrap_err();
+        let e = run(&["schedule".into(), "create".into(), "--cron".into(), "x".into()]).unwrap_err().message;
         assert!(e.contains("--dataset"), "{e}");
     }
 }

@@ -81,9 +81,37 @@ pub fn dataset_json(d: &pb::DatasetInfo) -> Value {
     })
 }
 
+/// The knobs of a setting as tables and summaries name them: the criterion, the class
+/// weighting and the six limits.
+pub const KNOBS: [&str; 8] = ["criterion", "class_weight", "max_depth", "min_split_rows", "min_leaf_rows", "max_leaves", "min_gain", "prune_alpha"];
+
+/// A setting's knob values as text, in [`KNOBS`] order (`-` where the task has none).
+pub fn knob_values(l: &pb::SettingLimits) -> [String; 8] {
+    let text = |s: &str| if s.is_empty() { "-".to_string() } else { s.to_string() };
+    [text(&l.criterion), text(&l.class_weight), limit(l.max_depth), l.min_split_rows.to_string(), l.min_leaf_rows.to_string(), limit(l.max_leaves), short(l.min_gain), short(l.prune_alpha)]
+}
+
+/// Which knobs vary over these scores (indices into [`KNOBS`]), and the constant ones as
+/// `name = value`.
+pub fn split_knobs(scores: &[pb::SettingScore]) -> (Vec<usize>, Vec<String>) {
+    let values: Vec<[String; 8]> = scores.iter().map(|s| knob_values(&s.limits.clone().unwrap_or_default())).collect();
+    let mut varying = Vec::new();
+    let mut fixed = Vec::new();
+    for (k, name) in KNOBS.iter().enumerate() {
+        match values.first() {
+            Some(first) if values.iter().all(|v| v[k] == first[k]) => fixed.push(format!("{name} = {}", first[k])),
+            Some(_) => varying.push(k),
+            None => {}
+        }
+    }
+    (varying, fixed)
+}
+
 /// The scores table: the picked setting first, then settings best first by validation score,
-/// training and validation side by side. Settings whose scores are identical on every fold
+/// training and validation side by side. Only the knobs that vary get a column; the constant
+/// ones are listed once above the table. Settings whose scores are identical on every fold
 /// (they grew the same trees) share one row, shown by the lowest grid number, with a count.
+/// Every column is right-aligned under its header (scripts can find a column by its name).
 pub fn scores_table(scores: &[pb::SettingScore], metric: &str, higher_is_better: bool, top: usize, picked: Option<u32>, best: Option<u32>) -> String {
     let mut order: Vec<&pb::SettingScore> = scores.iter().collect();
     order.sort_by(|a, b| {
@@ -100,48 +128,62 @@ pub fn scores_table(scores: &[pb::SettingScore], metric: &str, higher_is_better:
         }
     }
     let folds = scores.first().map_or(0, |s| s.fold_scores.len());
-    let mut out = String::new();
-    let row = |g: &[&pb::SettingScore], mark: &str| {
-        let s = g.iter().min_by_key(|s| s.index).unwrap();
-        let l = s.limits.clone().unwrap_or_default();
-        let also = if g.len() > 1 { format!(" (+{} alike)", g.len() - 1) } else { String::new() };
-        format!(
-            "{:<8} {:>6}  {:>9} {:>14} {:>13} {:>10} {:>9} {:>11}   {:>8.4}   {:>8.4} ± {:<6.4} {:>+8.4} {:>11.1}{also}\n",
-            mark,
-            s.index,
-            limit(l.max_depth),
-            l.min_split_rows,
-            l.min_leaf_rows,
-            limit(l.max_leaves),
-            short(l.min_gain),
-            short(l.prune_alpha),
-            s.train_mean,
-            s.valid_mean,
-            s.valid_sd,
-            s.gap,
-            s.mean_leaves,
-        )
-    };
-    let better = if higher_is_better { "higher is better" } else { "lower is better" };
-    out.push_str(&format!("{metric}: training and validation means over {folds} folds ({better}; ± = sample sd of the fold scores)\n"));
-    out.push_str("gap = how much better training scores than validation (larger = more overfit); (+N alike) = N more settings grew the same trees and scored the same\n");
-    out.push_str(&format!(
-        "{:<8} {:>6}  {:>9} {:>14} {:>13} {:>10} {:>9} {:>11}   {:>8}   {:>17} {:>8} {:>11}\n",
-        "", "grid#", "max_depth", "min_split_rows", "min_leaf_rows", "max_leaves", "min_gain", "prune_alpha", "training", "validation", "gap", "mean_leaves"
-    ));
+    let (varying, fixed) = split_knobs(scores);
+    // The rows shown: a mark and the group.
     let find = |i: Option<u32>| i.and_then(|i| groups.iter().find(|g| g.iter().any(|s| s.index == i)));
+    let mut shown: Vec<(String, &Vec<&pb::SettingScore>)> = Vec::new();
     if let Some(g) = find(picked) {
-        out.push_str(&row(g, "picked"));
+        shown.push(("picked".into(), g));
     }
     // The best is listed as #1 anyway; say so only when it is not the first group shown.
     let first_best = groups.first().is_some_and(|g| g.iter().any(|s| Some(s.index) == best));
     if best != picked && !first_best {
         if let Some(g) = find(best) {
-            out.push_str(&row(g, "best"));
+            shown.push(("best".into(), g));
         }
     }
     for (rank, g) in groups.iter().take(top).enumerate() {
-        out.push_str(&row(g, &format!("#{}", rank + 1)));
+        shown.push((format!("#{}", rank + 1), g));
+    }
+    // Cells: mark, grid#, the varying knobs, then the scores.
+    let mut header: Vec<String> = vec![String::new(), "grid#".into()];
+    header.extend(varying.iter().map(|&k| KNOBS[k].to_string()));
+    header.extend(["training", "validation", "sd", "gap", "leaves"].map(String::from));
+    let rows: Vec<(Vec<String>, usize)> = shown
+        .iter()
+        .map(|(mark, g)| {
+            let s = g.iter().min_by_key(|s| s.index).unwrap();
+            let v = knob_values(&s.limits.clone().unwrap_or_default());
+            let mut cells = vec![mark.clone(), s.index.to_string()];
+            cells.extend(varying.iter().map(|&k| v[k].clone()));
+            cells.extend([format!("{:.4}", s.train_mean), format!("{:.4}", s.valid_mean), format!("{:.4}", s.valid_sd), format!("{:+.4}", s.gap), format!("{:.1}", s.mean_leaves)]);
+            (cells, g.len() - 1)
+        })
+        .collect();
+    let widths: Vec<usize> = (0..header.len()).map(|c| rows.iter().map(|r| r.0[c].chars().count()).chain([header[c].len()]).max().unwrap_or(0)).collect();
+    let line = |cells: &[String]| {
+        let mut text = format!("{:<w$}", cells[0], w = widths[0]);
+        for (c, cell) in cells.iter().enumerate().skip(1) {
+            text.push_str(&format!(" {:>w$}", cell, w = widths[c]));
+        }
+        text
+    };
+    let better = if higher_is_better { "higher is better" } else { "lower is better" };
+    let mut out = String::new();
+    out.push_str(&format!("{metric}: training and validation means over {folds} folds ({better}); sd = sample sd of the validation fold scores\n"));
+    out.push_str("gap = how much better training scores than validation (larger = more overfit); leaves = mean leaves per tree\n");
+    out.push_str("(+N alike) = N more settings grew the same trees and scored the same\n");
+    if !fixed.is_empty() {
+        out.push_str(&format!("fixed: {}\n", fixed.join(", ")));
+    }
+    out.push_str(line(&header).trim_end());
+    out.push('\n');
+    for (cells, alike) in &rows {
+        out.push_str(&line(cells));
+        if *alike > 0 {
+            out.push_str(&format!(" (+{alike} alike)"));
+        }
+        out.push('\n');
     }
     out
 }

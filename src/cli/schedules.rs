@@ -5,7 +5,7 @@ use clap::{Args, Subcommand};
 use serde_json::{json, Value};
 use super::client::Conn;
 
-use super::client::status_line;
+use super::error::{CliError, Res};
 use super::output;
 use super::{labels, GridArgs};
 use crate::pb;
@@ -19,20 +19,32 @@ pub enum ScheduleCommand {
     List,
     /// Show one schedule and its latest fires.
     Show {
+        /// Schedule id (sch_...).
         schedule: String,
         /// Fires to list, newest first.
         #[arg(long, default_value_t = 10)]
         fires: u32,
     },
     /// Stop starting runs until resumed.
-    Pause { schedule: String },
+    Pause {
+        /// Schedule id (sch_...).
+        schedule: String,
+    },
     /// Start runs again from the next fire (fires during the pause are not caught up).
-    Resume { schedule: String },
+    Resume {
+        /// Schedule id (sch_...).
+        schedule: String,
+    },
     /// Delete a schedule and its fire records (its runs stay).
-    Delete { schedule: String },
+    Delete {
+        /// Schedule id (sch_...).
+        schedule: String,
+    },
     /// List a schedule's fires, newest first: started, or skipped and why.
     Fires {
+        /// Schedule id (sch_...).
         schedule: String,
+        /// Fires to list at most.
         #[arg(long, default_value_t = 20)]
         limit: u32,
     },
@@ -77,14 +89,14 @@ pub struct CreateArgs {
     pub size_factor: Option<f64>,
 }
 
-pub async fn run(ch: Conn, command: ScheduleCommand, json_out: bool) -> Result<(), String> {
+pub async fn run(ch: Conn, command: ScheduleCommand, json_out: bool) -> Res {
     let mut client = SchedulesClient::new(ch);
     match command {
         ScheduleCommand::Create(a) => {
             let catch_up = match a.catch_up.as_str() {
                 "once" => pb::CatchUp::Once,
                 "skip" => pb::CatchUp::Skip,
-                other => return Err(format!("--catch-up: '{other}' is not once or skip")),
+                other => return Err(CliError::usage(format!("--catch-up: '{other}' is not once or skip"))),
             };
             let req = pb::CreateScheduleRequest {
                 name: a.name,
@@ -99,11 +111,11 @@ pub async fn run(ch: Conn, command: ScheduleCommand, json_out: bool) -> Result<(
                 skip_unchanged: a.skip_unchanged,
                 drift: Some(pb::DriftThresholds { score_drop: a.score_drop.unwrap_or(0.0), size_factor: a.size_factor.unwrap_or(0.0) }),
             };
-            let s = client.create_schedule(req).await.map_err(status_line)?.into_inner();
+            let s = client.create_schedule(req).await.map_err(CliError::status)?.into_inner();
             print_schedule(&s, json_out);
         }
         ScheduleCommand::List => {
-            let r = client.list_schedules(pb::ListSchedulesRequest { page_size: 500, page_token: String::new() }).await.map_err(status_line)?.into_inner();
+            let r = client.list_schedules(pb::ListSchedulesRequest { page_size: 500, page_token: String::new() }).await.map_err(CliError::status)?.into_inner();
             if json_out {
                 println!("{}", json!(r.schedules.iter().map(schedule_json).collect::<Vec<_>>()));
             } else {
@@ -113,8 +125,8 @@ pub async fn run(ch: Conn, command: ScheduleCommand, json_out: bool) -> Result<(
             }
         }
         ScheduleCommand::Show { schedule, fires } => {
-            let s = client.get_schedule(pb::GetScheduleRequest { id: schedule.clone() }).await.map_err(status_line)?.into_inner();
-            let f = client.list_fires(pb::ListFiresRequest { schedule_id: schedule, page_size: fires.max(1), page_token: String::new() }).await.map_err(status_line)?.into_inner();
+            let s = client.get_schedule(pb::GetScheduleRequest { id: schedule.clone() }).await.map_err(CliError::status)?.into_inner();
+            let f = client.list_fires(pb::ListFiresRequest { schedule_id: schedule, page_size: fires.max(1), page_token: String::new() }).await.map_err(CliError::status)?.into_inner();
             if json_out {
                 let mut v = schedule_json(&s);
                 v["fires"] = json!(f.fires.iter().map(fire_json).collect::<Vec<_>>());
@@ -138,10 +150,10 @@ pub async fn run(ch: Conn, command: ScheduleCommand, json_out: bool) -> Result<(
                 }
             }
         }
-        ScheduleCommand::Pause { schedule } => print_schedule(&client.pause_schedule(pb::PauseScheduleRequest { id: schedule }).await.map_err(status_line)?.into_inner(), json_out),
-        ScheduleCommand::Resume { schedule } => print_schedule(&client.resume_schedule(pb::ResumeScheduleRequest { id: schedule }).await.map_err(status_line)?.into_inner(), json_out),
+        ScheduleCommand::Pause { schedule } => print_schedule(&client.pause_schedule(pb::PauseScheduleRequest { id: schedule }).await.map_err(CliError::status)?.into_inner(), json_out),
+        ScheduleCommand::Resume { schedule } => print_schedule(&client.resume_schedule(pb::ResumeScheduleRequest { id: schedule }).await.map_err(CliError::status)?.into_inner(), json_out),
         ScheduleCommand::Delete { schedule } => {
-            client.delete_schedule(pb::DeleteScheduleRequest { id: schedule.clone() }).await.map_err(status_line)?;
+            client.delete_schedule(pb::DeleteScheduleRequest { id: schedule.clone() }).await.map_err(CliError::status)?;
             if json_out {
                 println!("{}", json!({"deleted": schedule}));
             } else {
@@ -149,7 +161,7 @@ pub async fn run(ch: Conn, command: ScheduleCommand, json_out: bool) -> Result<(
             }
         }
         ScheduleCommand::Fires { schedule, limit } => {
-            let f = client.list_fires(pb::ListFiresRequest { schedule_id: schedule, page_size: limit.max(1), page_token: String::new() }).await.map_err(status_line)?.into_inner();
+            let f = client.list_fires(pb::ListFiresRequest { schedule_id: schedule, page_size: limit.max(1), page_token: String::new() }).await.map_err(CliError::status)?.into_inner();
             if json_out {
                 println!("{}", json!(f.fires.iter().map(fire_json).collect::<Vec<_>>()));
             } else {

@@ -24,6 +24,7 @@ use std::path::PathBuf;
 use clap::Args;
 use serde::Deserialize;
 
+use super::error::{CliError, Res};
 use super::ranges::parse_range;
 use crate::pb;
 use crate::rpc::convert::range_to;
@@ -51,7 +52,7 @@ pub struct GridArgs {
     /// Range of max_leaves, e.g. 8,32,none.
     #[arg(long)]
     pub max_leaves: Option<String>,
-    /// Range of min_gain, e.g. 0,log(0.0001,0.01,3) is written as log(0.0001,0.01,3).
+    /// Range of min_gain, e.g. 0,0.001,0.01 or log(0.0001,0.01,3).
     #[arg(long)]
     pub min_gain: Option<String>,
     /// Range of prune_alpha, e.g. 0,0.001,0.01.
@@ -67,8 +68,8 @@ pub struct GridArgs {
     #[arg(long, value_delimiter = ',')]
     pub class_weights: Vec<String>,
     /// Fold scheme: shuffled, stratified, grouped, forward or given.
-    #[arg(long)]
-    pub folds: Option<String>,
+    #[arg(long, alias = "folds")]
+    pub fold_scheme: Option<String>,
     /// Number of folds.
     #[arg(long)]
     pub k: Option<u32>,
@@ -84,6 +85,7 @@ pub struct GridArgs {
     /// highest or one_se.
     #[arg(long)]
     pub pick: Option<String>,
+    /// Seed of the fold shuffles (the same seed gives the same folds).
     #[arg(long)]
     pub seed: Option<u64>,
     /// Do not refit the picked setting on all rows.
@@ -129,10 +131,10 @@ struct FoldsFile {
     column: Option<String>,
 }
 
-fn range(name: &str, flag: &Option<String>, file: &Option<String>) -> Result<Option<pb::LimitRange>, String> {
+fn range(name: &str, flag: &Option<String>, file: &Option<String>) -> Res<Option<pb::LimitRange>> {
     match flag.as_ref().or(file.as_ref()) {
         None => Ok(None),
-        Some(text) => Ok(range_to(&Some(parse_range(text).map_err(|e| format!("--{}: {e}", name.replace('_', "-")))?))),
+        Some(text) => Ok(range_to(&Some(parse_range(text).map_err(|e| CliError::usage(format!("--{}: {e}", name.replace('_', "-"))))?))),
     }
 }
 
@@ -153,7 +155,7 @@ fn toml_error(text: &str, e: &toml::de::Error) -> String {
 
 impl GridArgs {
     /// The wire spec these flags (and the spec file) describe.
-    pub fn to_spec(&self) -> Result<pb::SweepSpec, String> {
+    pub fn to_spec(&self) -> Res<pb::SweepSpec> {
         let file: SpecFile = match &self.spec {
             None => SpecFile::default(),
             Some(p) => {
@@ -164,7 +166,7 @@ impl GridArgs {
         let l = &file.limits;
         let pick = |flag: &Vec<String>, f: &Option<Vec<String>>| if flag.is_empty() { f.clone().unwrap_or_default() } else { flag.clone() };
         let folds = pb::FoldPlan {
-            scheme: self.folds.clone().or(file.folds.scheme.clone()).unwrap_or_default(),
+            scheme: self.fold_scheme.clone().or(file.folds.scheme.clone()).unwrap_or_default(),
             k: self.k.or(file.folds.k).unwrap_or(0),
             repeats: self.repeats.or(file.folds.repeats).unwrap_or(0),
             column: self.fold_column.clone().or(file.folds.column.clone()).unwrap_or_default(),
