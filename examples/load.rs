@@ -18,6 +18,10 @@ use pollard::pb::runs_client::RunsClient;
 use tonic::transport::Channel;
 use tonic::Status;
 
+#[path = "common/mod.rs"]
+mod common;
+use common::{connect, quantile, values};
+
 /// The call types, in the order of the mix (each client walks it round and round from its
 /// own starting point); a name listed twice is called twice as often.
 const MIX: [Call; 10] = [Call::ListDatasets, Call::Predict, Call::GetRun, Call::ListRuns, Call::Upload, Call::Predict, Call::StartRun, Call::FollowRun, Call::ListDatasets, Call::GetRun];
@@ -72,19 +76,13 @@ struct Fixture {
 }
 
 fn upload_request(csv: &[u8]) -> impl tokio_stream::Stream<Item = pb::UploadChunk> {
-    let header = pb::UploadChunk {
-        part: Some(pb::upload_chunk::Part::Header(pb::UploadHeader { name: "load-iris".into(), format: pb::DataFormat::Csv as i32, target: "target".into(), categorical: vec![] })),
-    };
-    let chunks: Vec<pb::UploadChunk> = csv.chunks(64 << 10).map(|c| pb::UploadChunk { part: Some(pb::upload_chunk::Part::Data(c.to_vec())) }).collect();
-    tokio_stream::iter(std::iter::once(header).chain(chunks))
+    common::upload_request("load-iris", "target", csv)
 }
 
 fn small_sweep(dataset: &str) -> pb::StartRunRequest {
-    let depth = |d: f64| pb::LimitValue { value: Some(pb::limit_value::Value::Number(d)) };
-    let depths = pb::LimitRange { kind: Some(pb::limit_range::Kind::Values(pb::ValueList { values: vec![depth(1.0), depth(2.0), depth(3.0)] })) };
     pb::StartRunRequest {
         dataset_id: dataset.into(),
-        spec: Some(pb::SweepSpec { max_depth: Some(depths), folds: Some(pb::FoldPlan { k: 3, ..Default::default() }), ..Default::default() }),
+        spec: Some(pb::SweepSpec { max_depth: Some(values([1, 2, 3])), folds: Some(pb::FoldPlan { k: 3, ..Default::default() }), ..Default::default() }),
         ..Default::default()
     }
 }
@@ -102,10 +100,6 @@ fn feature_rows(csv: &[u8]) -> pb::Table {
         .map(|(i, n)| pb::TableColumn { name: n.clone(), cells: Some(pb::table_column::Cells::Numbers(pb::NumberCells { values: rows.iter().map(|r| r[i]).collect(), missing: vec![] })) })
         .collect();
     pb::Table { columns }
-}
-
-async fn connect(server: &str) -> Result<Channel, String> {
-    tonic::transport::Endpoint::from_shared(server.to_string()).map_err(|e| e.to_string())?.connect().await.map_err(|e| format!("{server}: {e}"))
 }
 
 async fn fixture(server: &str, data: &str) -> Result<Fixture, String> {
@@ -182,11 +176,6 @@ fn status_mb(pid: u32, key: &str) -> Option<f64> {
     let line = text.lines().find(|l| l.starts_with(key))?;
     let kb: f64 = line.split_whitespace().nth(1)?.parse().ok()?;
     Some(kb / 1000.0)
-}
-
-fn quantile(sorted: &[Duration], q: f64) -> f64 {
-    let i = ((sorted.len() as f64 - 1.0) * q).round() as usize;
-    sorted[i].as_secs_f64() * 1000.0
 }
 
 #[tokio::main]
