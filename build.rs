@@ -1,5 +1,5 @@
 //! Compiles the wire contract in `proto/` with a pure-Rust protobuf compiler, so no
-//! system `protoc` is needed, and the vendored ONNX schema (messages only).
+//! system `protoc` is needed, and the vendored ONNX schema (prost messages only).
 
 fn main() -> Result<(), Box<dyn std::error::Error>> {
     let protos = ["proto/pollard/v1/model.proto", "proto/pollard/v1/pollard.proto"];
@@ -15,11 +15,12 @@ fn main() -> Result<(), Box<dyn std::error::Error>> {
         .build_client(true)
         .build_server(true)
         .compile_fds(fds)?;
-    // The vendored ONNX schema (proto/onnx/README.md): messages only, for decoding and
-    // checking the files `export::onnx` writes. Not part of the reflection descriptors.
+    // The vendored ONNX schema (proto/onnx/README.md): plain prost messages (no services,
+    // no tonic), which `export::onnx` builds and encodes. Not part of the reflection
+    // descriptors.
     let onnx = "proto/onnx/onnx-ml.proto";
     println!("cargo:rerun-if-changed={onnx}");
     let onnx_fds = protox::compile([onnx], ["proto"])?;
-    tonic_prost_build::configure().build_client(false).build_server(false).compile_fds(onnx_fds)?;
+    prost_build::Config::new().compile_fds(onnx_fds)?;
     Ok(())
 }

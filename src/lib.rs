@@ -9,6 +9,7 @@
 //! - [`drift`]  the drift report: a scheduled run compared with the run before it
 //! - [`schedule`] crontab expressions in IANA zones: fire instants across DST, what is due
 //! - [`reefer`] the demo's invented, SYNTHETIC reefer-container voyages (CSV text or a dataset)
+//! - [`onnx_pb`] prost messages of the vendored ONNX schema, which [`export::onnx`] builds
 //!
 //! The shell:
 //! - [`store`]  the only module that names sled: datasets, runs, events, the queue, schedules
@@ -17,7 +18,6 @@
 //! - [`scheduler`] the task that starts schedules' runs at their fire times
 //! - [`cli`]    command-line entry point
 //! - [`pb`]     generated protobuf types (only the shell sees them)
-//! - [`onnx_pb`] generated messages of the vendored ONNX schema (decoding and checks only)
 
 pub mod access;
 pub mod cli;
@@ -45,12 +45,11 @@ pub mod pb {
     pub const DESCRIPTOR: &[u8] = tonic::include_file_descriptor_set!("pollard_descriptor");
 }
 
-/// Generated messages for the vendored ONNX schema `proto/onnx/onnx-ml.proto` (onnx 1.23.2).
-/// [`export::onnx`] writes the bytes by hand (the core names no protobuf crate); these types
-/// decode them in checks.
+/// Generated prost messages for the vendored ONNX schema `proto/onnx/onnx-ml.proto` (onnx
+/// 1.23.2): plain data, part of the core. [`export::onnx`] builds a `ModelProto` from them.
 pub mod onnx_pb {
     #![allow(clippy::all, missing_docs)]
-    tonic::include_proto!("onnx");
+    include!(concat!(env!("OUT_DIR"), "/onnx.rs"));
 
     #[cfg(test)]
     mod tests {
@@ -140,33 +139,4 @@ pub mod onnx_pb {
 }
 
 #[cfg(test)]
-mod layering {
-    /// The pure core names no network, storage, runtime or logging crate and no shell module.
-    #[test]
-    fn core_modules_stay_pure() {
-        let root = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("src");
-        let forbidden = ["tokio", "tonic", "prost", "sled", "tracing", "crate::store", "crate::rpc", "crate::worker", "crate::server", "crate::cli", "crate::pb", "crate::config"];
-        let mut files = Vec::new();
-        for core in ["data", "tree", "sweep", "export"] {
-            for e in std::fs::read_dir(root.join(core)).unwrap() {
-                files.push(e.unwrap().path());
-            }
-        }
-        files.push(root.join("job.rs"));
-        files.push(root.join("drift.rs"));
-        files.push(root.join("schedule.rs"));
-        files.push(root.join("reefer.rs"));
-        let mut bad = Vec::new();
-        for f in &files {
-            let text = std::fs::read_to_string(f).unwrap();
-            for (i, line) in text.lines().enumerate() {
-                let code = line.split("//").next().unwrap();
-                if forbidden.iter().any(|w| code.contains(&format!("{w}::")) || code.contains(&format!("use {w}"))) {
-                    bad.push(format!("{}:{}: {}", f.display(), i + 1, line.trim()));
-                }
-            }
-        }
-        assert!(files.len() > 10, "scanned only {} files", files.len());
-        assert!(bad.is_empty(), "core files reach into the shell:\n{}", bad.join("\n"));
-    }
-}
+mod layering;

@@ -122,13 +122,21 @@ async fn until_drained<E>(shared: &Arc<Shared>, served: impl Future<Output = Res
     }
 }
 
+/// Awaits the worker tasks, then flushes the store. Every run executes inside a worker task
+/// (`worker::execute`, called only by `worker_loop`, resumed runs included) and the task
+/// awaits the run's CPU job before it takes the next one, so once every task has ended no
+/// run is executing: nothing is left to wait for.
 async fn drain(shared: &Arc<Shared>, workers: Vec<tokio::task::JoinHandle<()>>) {
     for w in workers {
-        let _ = w.await;
+        if let Err(e) = w.await {
+            tracing::error!("a worker task ended abnormally: {e}");
+        }
     }
-    // Every run executes in a worker task, awaited above; this only makes sure of it.
-    while !shared.cancels.lock().unwrap().is_empty() {
-        tokio::time::sleep(std::time::Duration::from_millis(20)).await;
+    // A run still registered here lost its task to a panic outside its CPU job; it is not
+    // executing, stays `running` and resumes at the next start.
+    let left: Vec<String> = shared.cancels.lock().unwrap().keys().cloned().collect();
+    if !left.is_empty() {
+        tracing::error!(runs = ?left, "runs whose worker task ended without them; they resume at the next start");
     }
     if let Err(e) = shared.store.flush() {
         tracing::error!("flushing the store: {e}");
