@@ -12,6 +12,8 @@
 //!
 //! The shell:
 //! - [`store`]  the only module that names sled: datasets, runs, events, the queue, schedules
+//! - [`service`] the operations with core types (datasets, runs, models, schedules), one
+//!   error enum; `rpc` converts and calls them, the scheduler calls them directly
 //! - [`access`] tokens and roles, the role each RPC needs, TLS, reloads, owner-only data
 //! - [`clock`]  the system clock, or a test clock moved by hand
 //! - [`scheduler`] the task that starts schedules' runs at their fire times
@@ -32,6 +34,7 @@ pub mod rpc;
 pub mod schedule;
 pub mod scheduler;
 pub mod server;
+pub mod service;
 pub mod store;
 pub mod sweep;
 pub mod tree;
@@ -141,32 +144,51 @@ pub mod onnx_pb {
 
 #[cfg(test)]
 mod layering {
-    /// The pure core names no network, storage, runtime or logging crate and no shell module.
-    #[test]
-    fn core_modules_stay_pure() {
-        let root = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("src");
-        let forbidden = ["tokio", "tonic", "prost", "sled", "tracing", "crate::store", "crate::rpc", "crate::worker", "crate::server", "crate::cli", "crate::pb", "crate::config"];
-        let mut files = Vec::new();
-        for core in ["data", "tree", "sweep", "export"] {
-            for e in std::fs::read_dir(root.join(core)).unwrap() {
-                files.push(e.unwrap().path());
-            }
-        }
-        files.push(root.join("job.rs"));
-        files.push(root.join("drift.rs"));
-        files.push(root.join("schedule.rs"));
-        files.push(root.join("reefer.rs"));
+    use std::path::{Path, PathBuf};
+
+    fn src() -> PathBuf {
+        Path::new(env!("CARGO_MANIFEST_DIR")).join("src")
+    }
+
+    fn files_in(dir: &str) -> Vec<PathBuf> {
+        std::fs::read_dir(src().join(dir)).unwrap().map(|e| e.unwrap().path()).collect()
+    }
+
+    /// Code lines (comments cut) of `files` that use or name one of `forbidden` (as a path
+    /// `w::`, an import `use w`, or a type argument `w>`).
+    fn naming(files: &[PathBuf], forbidden: &[&str]) -> Vec<String> {
         let mut bad = Vec::new();
-        for f in &files {
+        for f in files {
             let text = std::fs::read_to_string(f).unwrap();
             for (i, line) in text.lines().enumerate() {
                 let code = line.split("//").next().unwrap();
-                if forbidden.iter().any(|w| code.contains(&format!("{w}::")) || code.contains(&format!("use {w}"))) {
+                if forbidden.iter().any(|w| code.contains(&format!("{w}::")) || code.contains(&format!("use {w}")) || code.contains(&format!("{w}>"))) {
                     bad.push(format!("{}:{}: {}", f.display(), i + 1, line.trim()));
                 }
             }
         }
+        bad
+    }
+
+    /// The pure core names no network, storage, runtime or logging crate and no shell module.
+    #[test]
+    fn core_modules_stay_pure() {
+        let forbidden = ["tokio", "tonic", "prost", "sled", "tracing", "crate::store", "crate::rpc", "crate::worker", "crate::server", "crate::cli", "crate::pb", "crate::config", "crate::service"];
+        let mut files: Vec<PathBuf> = ["data", "tree", "sweep", "export"].iter().flat_map(|d| files_in(d)).collect();
+        files.extend(["job.rs", "drift.rs", "schedule.rs", "reefer.rs"].iter().map(|f| src().join(f)));
         assert!(files.len() > 10, "scanned only {} files", files.len());
+        let bad = naming(&files, &forbidden);
         assert!(bad.is_empty(), "core files reach into the shell:\n{}", bad.join("\n"));
+    }
+
+    /// The service, the scheduler and the worker are transport-free: no protobuf, no gRPC
+    /// status, no handler module.
+    #[test]
+    fn service_stays_transport_free() {
+        let mut files = files_in("service");
+        files.extend(["scheduler.rs", "worker.rs"].iter().map(|f| src().join(f)));
+        assert!(files.len() >= 8, "scanned only {} files", files.len());
+        let bad = naming(&files, &["tonic", "prost", "crate::pb", "crate::rpc", "Status"]);
+        assert!(bad.is_empty(), "transport-free files name the transport:\n{}", bad.join("\n"));
     }
 }
