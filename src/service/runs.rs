@@ -95,7 +95,8 @@ pub struct EventsAfter {
 }
 
 impl Service {
-    /// The dataset a request names; `field` prefixes the messages.
+    /// The dataset a request names: NOT_FOUND for an unknown id or name, `Invalid` when it
+    /// names none.
     pub fn resolve_dataset(&self, dataset: Option<&DatasetRef>) -> Result<DatasetMeta> {
         match dataset {
             Some(DatasetRef::Id(id)) => {
