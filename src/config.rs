@@ -40,6 +40,9 @@ pub struct Config {
     /// Memory budget of running runs, in bytes: a run whose estimate alone is above it is
     /// refused; a queued run waits while the running runs and it would be above it.
     pub run_memory_bytes: u64,
+    /// Memory for parsed datasets kept between runs and calls, in bytes (estimated from
+    /// rows × columns); the least recently used frame goes first. 0 keeps none.
+    pub frame_cache_bytes: u64,
     /// Most queued runs in total; StartRun beyond it is refused, a scheduled fire skipped.
     pub max_queued_runs: usize,
     /// Most labels on a run or schedule, and the longest key and value (bytes).
@@ -150,6 +153,7 @@ impl Default for Config {
             max_repeats: 20,
             max_units_per_run: 10_000,
             run_memory_bytes: 2 << 30,
+            frame_cache_bytes: 512 << 20,
             max_queued_runs: 1_000,
             max_labels: 32,
             max_label_key_bytes: 64,
@@ -233,6 +237,7 @@ struct FileConfig {
     max_repeats: Option<u64>,
     max_units_per_run: Option<usize>,
     run_memory_bytes: Option<u64>,
+    frame_cache_bytes: Option<u64>,
     max_queued_runs: Option<usize>,
     max_labels: Option<usize>,
     max_label_key_bytes: Option<usize>,
@@ -318,6 +323,7 @@ impl Config {
         num!(max_repeats, "max_repeats", "POLLARD_MAX_REPEATS", u32);
         num!(max_units_per_run, "max_units_per_run", "POLLARD_MAX_UNITS_PER_RUN", usize);
         num!(run_memory_bytes, "run_memory_bytes", "POLLARD_RUN_MEMORY_BYTES", u64);
+        num!(frame_cache_bytes, "frame_cache_bytes", "POLLARD_FRAME_CACHE_BYTES", u64);
         num!(max_queued_runs, "max_queued_runs", "POLLARD_MAX_QUEUED_RUNS", usize);
         num!(max_labels, "max_labels", "POLLARD_MAX_LABELS", usize);
         num!(max_label_key_bytes, "max_label_key_bytes", "POLLARD_MAX_LABEL_KEY_BYTES", usize);

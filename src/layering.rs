@@ -428,7 +428,6 @@ fn core_modules_stay_pure() {
 }
 
 #[test]
-#[ignore = "until the service layer lands"]
 fn service_side_names_no_protobuf() {
     let (n, _, bad) = violations(&SERVICE, &["service", "scheduler.rs", "worker.rs"]);
     assert!(n >= 2, "scanned only {n} files");

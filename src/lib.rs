@@ -13,6 +13,8 @@
 //!
 //! The shell:
 //! - [`store`]  the only module that names sled: datasets, runs, events, the queue, schedules
+//! - [`service`] the operations with core types (datasets, runs, models, schedules), one
+//!   error enum; `rpc` converts and calls them, the scheduler calls them directly
 //! - [`access`] tokens and roles, the role each RPC needs, TLS, reloads, owner-only data
 //! - [`clock`]  the system clock, or a test clock moved by hand
 //! - [`scheduler`] the task that starts schedules' runs at their fire times
@@ -32,6 +34,7 @@ pub mod rpc;
 pub mod schedule;
 pub mod scheduler;
 pub mod server;
+pub mod service;
 pub mod store;
 pub mod sweep;
 pub mod tree;

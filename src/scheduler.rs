@@ -7,8 +7,8 @@
 //! - a fire whose previous run is still queued or running is recorded as skipped (busy);
 //! - with `skip_unchanged`, a fire whose dataset name has no version newer than the last
 //!   run's is recorded as skipped (unchanged);
-//! - otherwise the template is checked against the latest version of the dataset and queued
-//!   through the same queue as every other run; the run records the schedule's id.
+//! - otherwise the template is checked against the latest version of the dataset by the
+//!   same admission as StartRun ([`Service::admit_run`]) and queued; the run records the schedule's id.
 //!
 //! The fire record, the schedule's bookkeeping and the new run are stored in one transaction
 //! ([`crate::store::Store::record_fire`]), and the run's idempotency key is the schedule id
@@ -22,12 +22,9 @@ use std::sync::Arc;
 use tracing::{error, info, warn};
 
 use crate::job::{Fire, FireOutcome, Run, Schedule};
-use crate::pb;
-use crate::rpc::convert;
-use crate::rpc::runs::prepare_run;
 use crate::schedule::{self, CatchUp, Cron, Due};
+use crate::service::{DatasetRef, RunRequest, Service as Shared};
 use crate::store::{DeleteDataset, RunFilter, StoreError};
-use crate::worker::Shared;
 
 /// Runs until shutdown.
 pub async fn scheduler_loop(shared: Arc<Shared>) {
@@ -151,17 +148,19 @@ async fn run_for(shared: &Arc<Shared>, s: &Schedule, at: i64, fire: &mut Fire) -
         fire.detail = format!("dataset '{}' has no version newer than {} (version {})", s.dataset_name, latest.id, latest.version);
         return Ok(None);
     }
-    let request = pb::StartRunRequest {
-        dataset_id: latest.id.clone(),
-        dataset_name: String::new(),
-        spec: Some(convert::spec_to(&s.spec, &s.target)),
+    let request = RunRequest {
+        dataset: Some(DatasetRef::Id(latest.id.clone())),
+        target: s.target.clone(),
+        spec: s.spec.clone(),
+        default_fold_scheme: false,
         idempotency_key: format!("{}@{at}", s.id),
-        labels: s.labels.clone().into_iter().collect(),
+        labels: s.labels.clone(),
     };
-    match prepare_run(shared, request, s.id.clone()).await {
+    // The same admission as StartRun's.
+    match shared.admit_run(request, s.id.clone()).await {
         Ok(r) => Ok(Some(r)),
-        Err(status) => {
-            fire.fail(format!("the template no longer fits dataset {}: {}", latest.id, status.message()));
+        Err(e) => {
+            fire.fail(format!("the template no longer fits dataset {}: {e}", latest.id));
             Ok(None)
         }
     }

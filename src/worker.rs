@@ -2,144 +2,26 @@
 //! before announcing it, and end the run.
 //!
 //! Concurrency: tree fitting runs on a dedicated rayon pool sized by the config, never on
-//! tokio's threads; async code hands work over with [`cpu`] and awaits a oneshot. Sweeps and
+//! tokio's threads; async code hands work over with [`crate::service::cpu`] and awaits a oneshot. Sweeps and
 //! the short CPU work of calls (reading uploads, checking specs, predicting) get one pool
 //! each: a rayon worker busy in a sweep's parallel loop takes its own queued work before a
 //! job injected from outside, so a call sharing the sweep pool would wait for the whole
 //! sweep. A std `Mutex` guards the cancel flags, since no `.await` is held while it is locked.
 
-use std::collections::{HashMap, VecDeque};
-use std::panic::AssertUnwindSafe;
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::{Arc, Mutex};
 use std::time::Duration;
 
-use tokio::sync::{watch, Notify};
 use tracing::{error, info, info_span, warn};
 
-use crate::clock::Clock;
-use crate::config::Config;
 use crate::drift::{self, DriftThresholds, RunSide};
-use crate::data::csv::{read_dataset, CsvOptions};
-use crate::data::{Dataset, Task};
-use crate::job::{DatasetMeta, EventKind, Run, RunOutcome, RunState};
-use crate::store::{Claim, Resumed, RunFilter, Store};
+use crate::job::{EventKind, Run, RunOutcome, RunState};
+use crate::service::{on_pool, ServiceError};
+use crate::store::{Claim, Resumed, RunFilter};
 use crate::sweep::{self, Flow, SweepError};
 
-/// What every handler and worker shares.
-pub struct Shared {
-    pub store: Store,
-    pub config: Config,
-    /// Runs sweeps.
-    pub pool: rayon::ThreadPool,
-    /// Runs the CPU work of calls, apart from sweeps (see the module notes).
-    pub calls: rayon::ThreadPool,
-    /// Bumped after events are stored, so followers know to read.
-    pub changed: watch::Sender<u64>,
-    /// Signalled when a run is queued.
-    pub queued: Notify,
-    /// Cancel flags of the runs being executed.
-    pub cancels: Mutex<HashMap<String, Arc<AtomicBool>>>,
-    /// Set when the server stops: running runs stop at the next unit and stay `running`, to
-    /// be resumed from their stored units at the next start.
-    pub stopping: AtomicBool,
-    /// Flips to true when the server stops (for tasks that wait).
-    pub shutdown: watch::Sender<bool>,
-    /// Where every time the server records comes from.
-    pub clock: Arc<dyn Clock>,
-    /// Signalled when a schedule is created, resumed or deleted, so the scheduler looks again.
-    pub schedules_changed: Notify,
-    /// Runs left running by an earlier process, oldest first: workers take them before the
-    /// queue, so resumed runs hold worker slots like any other.
-    pub resumable: Mutex<VecDeque<String>>,
-    /// Bytes estimated for the runs being executed (see [`crate::sweep::memory`]).
-    pub memory_in_use: Mutex<u64>,
-    /// Held while the queue is counted and a run is added, so the queue cap holds exactly.
-    pub admit: Mutex<()>,
-}
-
-impl Shared {
-    pub fn with_clock(store: Store, config: Config, clock: Arc<dyn Clock>) -> Result<Arc<Shared>, String> {
-        let pool = rayon::ThreadPoolBuilder::new()
-            .num_threads(config.cpu_threads)
-            .thread_name(|i| format!("pollard-cpu-{i}"))
-            .build()
-            .map_err(|e| format!("cannot start the CPU pool: {e}"))?;
-        let calls = rayon::ThreadPoolBuilder::new()
-            .num_threads(config.cpu_threads)
-            .thread_name(|i| format!("pollard-calls-{i}"))
-            .build()
-            .map_err(|e| format!("cannot start the CPU pool for calls: {e}"))?;
-        Ok(Arc::new(Shared {
-            store,
-            config,
-            pool,
-            calls,
-            changed: watch::channel(0).0,
-            queued: Notify::new(),
-            cancels: Mutex::new(HashMap::new()),
-            stopping: AtomicBool::new(false),
-            shutdown: watch::channel(false).0,
-            clock,
-            schedules_changed: Notify::new(),
-            resumable: Mutex::new(VecDeque::new()),
-            memory_in_use: Mutex::new(0),
-            admit: Mutex::new(()),
-        }))
-    }
-
-    /// Now, by the server's clock, in Unix milliseconds.
-    pub fn now(&self) -> i64 {
-        self.clock.now_ms()
-    }
-
-    /// Tells followers that events were stored.
-    pub fn announce(&self) {
-        self.changed.send_modify(|v| *v += 1);
-    }
-
-    /// Raises a running run's cancel flag; false when this server is not executing it.
-    pub fn request_cancel(&self, run_id: &str) -> bool {
-        match self.cancels.lock().unwrap().get(run_id) {
-            Some(flag) => {
-                flag.store(true, Ordering::SeqCst);
-                true
-            }
-            None => false,
-        }
-    }
-}
-
-/// Runs `f` on the CPU pool for calls and awaits its result; a panic in `f` fails this call
-/// (INTERNAL), not the process.
-pub async fn cpu<T: Send + 'static>(shared: &Arc<Shared>, f: impl FnOnce() -> T + Send + 'static) -> Result<T, tonic::Status> {
-    on_pool(&shared.calls, f).await.map_err(|panic| crate::rpc::error::panicked(&panic))
-}
-
-/// Runs `f` on `pool`, catching a panic (whose message comes back as the error): a panic
-/// in a rayon job would otherwise abort the process.
-async fn on_pool<T: Send + 'static>(pool: &rayon::ThreadPool, f: impl FnOnce() -> T + Send + 'static) -> Result<T, String> {
-    let (tx, rx) = tokio::sync::oneshot::channel();
-    pool.spawn(move || {
-        let _ = tx.send(std::panic::catch_unwind(AssertUnwindSafe(f)).map_err(|p| panic_message(&*p)));
-    });
-    rx.await.unwrap_or_else(|_| Err("the CPU pool dropped a job".into()))
-}
-
-fn panic_message(p: &(dyn std::any::Any + Send)) -> String {
-    p.downcast_ref::<&str>().map(|s| s.to_string()).or_else(|| p.downcast_ref::<String>().cloned()).unwrap_or_else(|| "a panic without a message".into())
-}
-
-/// Parses a stored dataset for a run: its bytes, with the run's target and task.
-pub fn load_dataset(store: &Store, meta: &DatasetMeta, target: &str, task: Option<Task>, max_rows: usize, max_columns: usize) -> Result<Dataset, String> {
-    let file = store.dataset_reader(&meta.id).map_err(|e| e.to_string())?.ok_or_else(|| format!("dataset {} has no stored bytes", meta.id))?;
-    let mut options = CsvOptions::new(target);
-    options.task = task;
-    options.categorical = meta.categorical.clone();
-    options.max_rows = Some(max_rows);
-    options.max_columns = Some(max_columns);
-    read_dataset(std::io::BufReader::with_capacity(1 << 16, file), &options).map_err(|e| e.to_string())
-}
+/// What every handler and worker shares: the service's state (see [`crate::service`]).
+pub use crate::service::Service as Shared;
 
 /// A worker: executes runs one at a time until shutdown: first the runs an earlier process
 /// left running, then queued runs, oldest first, as the memory budget admits them.
@@ -273,9 +155,11 @@ fn execute_blocking(shared: &Shared, run: &Run, cancel: &AtomicBool) -> Ending {
         Ok(None) => return Ending::Failed(format!("dataset {} no longer exists", run.dataset_id)),
         Err(e) => return Ending::Failed(e.to_string()),
     };
-    let data = match load_dataset(&shared.store, &meta, &run.target, run.spec.task, cfg.max_rows, cfg.max_columns) {
+    // Through the frame cache: the run's admission parsed it already, most of the time.
+    let data = match shared.frames.load(&shared.store, &meta, &run.target, run.spec.task, cfg.max_rows, cfg.max_columns) {
         Ok(d) => d,
-        Err(e) => return Ending::Failed(e),
+        Err(ServiceError::Storage(e)) => return Ending::Failed(e.to_string()),
+        Err(e) => return Ending::Failed(e.to_string()),
     };
     let spec = run.spec.clone();
     let plan = match sweep::plan_with(&data, &spec, &cfg.spec_caps()) {

@@ -8,11 +8,13 @@ use crate::drift::{DriftReport, DriftThresholds};
 use crate::job::{DatasetMeta, Event, EventKind, Fire, FireOutcome, Retention, Run, RunOutcome, RunState, Schedule};
 use crate::schedule::CatchUp;
 use crate::pb;
+use crate::rpc::error::{echo, ServiceError};
+use crate::service::{DatasetRef, RunRequest};
 use crate::sweep::{FoldPlan, FoldScheme, Metric, PickRule, Range, SettingScore, SweepSpec};
 use crate::tree::{ClassWeight, ColumnInfo, Criterion, FitOptions, Limits, Node, Split, SplitRule, Tree, NO_NODE};
 
 fn invalid(field: &str, message: impl std::fmt::Display) -> Status {
-    Status::invalid_argument(format!("{field}: {message}"))
+    ServiceError::invalid(field, message.to_string()).into()
 }
 
 /// Unix milliseconds as RFC 3339 in UTC.
@@ -231,10 +233,38 @@ pub fn range_to(r: &Option<Range>) -> Option<pb::LimitRange> {
 /// The wire spec as a core spec; the target stays with the caller. `data_task` is the
 /// dataset's task, which picks the default fold scheme.
 pub fn spec_from(s: &pb::SweepSpec, data_task: Task) -> Result<SweepSpec, Status> {
+    Ok(spec_with(s, Some(data_task))?.0)
+}
+
+/// A StartRun request in core types, for [`crate::service::Service::queue_run`].
+pub fn run_request(r: pb::StartRunRequest) -> Result<RunRequest, Status> {
+    let wire = r.spec.unwrap_or_default();
+    let (spec, default_fold_scheme) = spec_request(&wire)?;
+    Ok(RunRequest {
+        dataset: DatasetRef::of(&r.dataset_id, &r.dataset_name),
+        target: wire.target,
+        spec,
+        default_fold_scheme,
+        idempotency_key: r.idempotency_key,
+        labels: r.labels.into_iter().collect(),
+    })
+}
+
+/// The wire spec of a request as a core spec, and whether its fold scheme is left to the
+/// data's task (see [`RunRequest::default_fold_scheme`]).
+pub fn spec_request(s: &pb::SweepSpec) -> Result<(SweepSpec, bool), Status> {
+    spec_with(s, None)
+}
+
+/// The wire spec as a core spec, and whether its fold scheme is left to the data's task:
+/// true when the spec gives fold counts but no scheme and neither it nor `data_task` says
+/// the task (the scheme is then a placeholder the service replaces).
+fn spec_with(s: &pb::SweepSpec, data_task: Option<Task>) -> Result<(SweepSpec, bool), Status> {
     let task = match s.task.as_str() {
         "" => None,
-        t => Some(Task::parse(t).ok_or_else(|| invalid("spec.task", format!("'{t}' is not classify or regress")))?),
+        t => Some(Task::parse(t).ok_or_else(|| invalid("spec.task", format!("'{}' is not classify or regress", echo(t))))?),
     };
+    let mut default_fold_scheme = false;
     let criteria = s
         .criteria
         .iter()
@@ -259,7 +289,13 @@ pub fn spec_from(s: &pb::SweepSpec, data_task: Task) -> Result<SweepSpec, Status
                 }
             };
             let scheme = match f.scheme.as_str() {
-                "" => FoldPlan::default_for(task.unwrap_or(data_task)).scheme,
+                "" => match task.or(data_task) {
+                    Some(t) => FoldPlan::default_for(t).scheme,
+                    None => {
+                        default_fold_scheme = true;
+                        FoldScheme::Shuffled
+                    }
+                },
                 "shuffled" => FoldScheme::Shuffled,
                 "stratified" => FoldScheme::Stratified,
                 "grouped" => FoldScheme::Grouped { column: column()? },
@@ -278,7 +314,7 @@ pub fn spec_from(s: &pb::SweepSpec, data_task: Task) -> Result<SweepSpec, Status
         "" => PickRule::Highest,
         p => PickRule::parse(p).ok_or_else(|| invalid("spec.pick", format!("'{p}' is not highest or one_se")))?,
     };
-    Ok(SweepSpec {
+    Ok((SweepSpec {
         task,
         criteria,
         class_weights,
@@ -295,7 +331,7 @@ pub fn spec_from(s: &pb::SweepSpec, data_task: Task) -> Result<SweepSpec, Status
         seed: s.seed,
         fit_final: !s.skip_final,
         max_settings: None,
-    })
+    }, default_fold_scheme))
 }
 
 pub fn spec_to(s: &SweepSpec, target: &str) -> pb::SweepSpec {

@@ -5,45 +5,48 @@
 
 use tonic::Status;
 
-use crate::data::csv::{DataError, DataErrorKind};
+use crate::data::csv::DataError;
 use crate::job::IdKind;
 use crate::store::StoreError;
-use crate::sweep::{SpecError, SpecErrorKind, SweepError};
+use crate::sweep::{SpecError, SweepError};
 
-/// The most characters of a caller's text quoted back in a message.
-pub const ECHO_CHARS: usize = 100;
+pub use crate::service::error::{echo, ServiceError, ECHO_CHARS};
 
-/// A caller's text as quoted in messages: cut at [`ECHO_CHARS`] characters with an ellipsis.
-pub fn echo(text: &str) -> String {
-    match text.char_indices().nth(ECHO_CHARS) {
-        None => text.to_string(),
-        Some((cut, _)) => format!("{}… ({} bytes in all)", &text[..cut], text.len()),
+/// THE map from a service error to a gRPC status: the one place a code is chosen for a
+/// failure of a service operation. A storage failure is the server's (INTERNAL), never
+/// INVALID_ARGUMENT.
+impl From<ServiceError> for Status {
+    fn from(e: ServiceError) -> Status {
+        let message = e.to_string();
+        match e {
+            ServiceError::NotFound(_) => Status::not_found(message),
+            ServiceError::Invalid { .. } => Status::invalid_argument(message),
+            ServiceError::TooLarge { .. } => Status::resource_exhausted(message),
+            ServiceError::Busy(_) => Status::unavailable(message),
+            ServiceError::Precondition(_) => Status::failed_precondition(message),
+            ServiceError::Conflict(_) => Status::already_exists(message),
+            ServiceError::Denied(_) => Status::permission_denied(message),
+            ServiceError::Storage(_) | ServiceError::Internal(_) => Status::internal(message),
+        }
     }
 }
 
 /// Bad table data: INVALID_ARGUMENT with the row and column in the message, or
 /// RESOURCE_EXHAUSTED for the row and column caps.
 pub fn data(e: &DataError) -> Status {
-    match e.kind {
-        DataErrorKind::TooManyRows | DataErrorKind::TooManyColumns => Status::resource_exhausted(e.to_string()),
-        DataErrorKind::Io => Status::internal(e.to_string()),
-        _ => Status::invalid_argument(e.to_string()),
-    }
+    ServiceError::data(e, 0, 0).into()
 }
 
 /// A bad sweep spec: INVALID_ARGUMENT with the field path, or RESOURCE_EXHAUSTED naming the
 /// cap and its value.
 pub fn spec(e: &SpecError) -> Status {
-    match e.kind {
-        SpecErrorKind::OverCap { .. } => Status::resource_exhausted(format!("spec.{e}")),
-        SpecErrorKind::Invalid => Status::invalid_argument(format!("spec.{e}")),
-    }
+    ServiceError::spec(e).into()
 }
 
 pub fn sweep(e: &SweepError) -> Status {
     match e {
         SweepError::Spec(s) => spec(s),
-        SweepError::Fit(f) => Status::invalid_argument(f.to_string()),
+        SweepError::Fit(f) => ServiceError::invalid("", f.to_string()).into(),
         SweepError::Cancelled => Status::cancelled("the sweep was cancelled"),
     }
 }
@@ -51,31 +54,27 @@ pub fn sweep(e: &SweepError) -> Status {
 /// A request above a server cap: RESOURCE_EXHAUSTED naming the field, the cap (its
 /// configuration key) and its value.
 pub fn cap(field: &str, detail: &str, cap: &str, limit: u64) -> Status {
-    Status::resource_exhausted(format!("{field}: {detail}, more than the cap {cap} = {limit}"))
+    ServiceError::cap(field, detail, cap, limit).into()
 }
 
 /// A panic in a call's CPU work: the call fails, the server goes on.
 pub fn panicked(message: &str) -> Status {
-    Status::internal(format!("the call failed on an internal error: {message}"))
+    ServiceError::panicked(message).into()
 }
 
 /// Storage failures are the server's, never the caller's.
 pub fn store(e: StoreError) -> Status {
-    Status::internal(format!("storage: {e}"))
+    ServiceError::Storage(e).into()
 }
 
 pub fn not_found(what: &str, id: &str) -> Status {
-    Status::not_found(format!("no {what} with id '{}'", echo(id)))
+    ServiceError::not_found(what, id).into()
 }
 
 /// Checks an id's shape before it is looked up: INVALID_ARGUMENT naming the field when it
 /// cannot be an id of that kind.
 pub fn check_id(field: &str, kind: IdKind, id: &str) -> Result<(), Status> {
-    if kind.is_well_formed(id) {
-        Ok(())
-    } else {
-        Err(Status::invalid_argument(format!("{field}: '{}' is not a {} id ({})", echo(id), kind.noun(), kind.shape())))
-    }
+    Ok(ServiceError::check_id(field, kind, id)?)
 }
 
 #[cfg(test)]
@@ -83,12 +82,11 @@ mod tests {
     use super::*;
 
     #[test]
-    fn echoes_are_cut() {
-        assert_eq!(echo("short"), "short");
-        let long = "é".repeat(10_000);
-        let e = echo(&long);
-        assert!(e.starts_with(&"é".repeat(ECHO_CHARS)) && e.contains("… (20000 bytes in all)"), "{e}");
-        assert!(e.len() < 250);
+    fn statuses_by_kind() {
+        let s: Status = ServiceError::Storage(StoreError::Corrupt("x".into())).into();
+        assert_eq!((s.code(), s.message()), (tonic::Code::Internal, "storage: store data is corrupt: x"));
+        let s: Status = ServiceError::cap("queue", "3 runs are queued", "max_queued_runs", 3).into();
+        assert_eq!((s.code(), s.message()), (tonic::Code::ResourceExhausted, "queue: 3 runs are queued, more than the cap max_queued_runs = 3"));
         let s = not_found("run", &"x".repeat(10_000));
         assert!(s.message().len() < 200, "{}", s.message());
     }
@@ -145,9 +143,4 @@ pub fn upload_idle(secs: u64) -> Status {
 /// An open call ended because the server stops.
 pub fn shutting_down(what_next: &str) -> Status {
     Status::unavailable(format!("the server is shutting down; {what_next}"))
-}
-
-/// An upload could not be staged (the server's disk, not the caller).
-pub fn staging(e: std::io::Error) -> Status {
-    Status::internal(format!("staging the upload: {e}"))
 }

@@ -5,7 +5,7 @@
 //!
 //! | held | bytes | where |
 //! | --- | --- | --- |
-//! | the CSV text while it is parsed | `csv` | `worker::load_dataset` |
+//! | the CSV text while it is parsed | `csv` | `service::frames` (parse) |
 //! | the dataset, and the plan's copy without the fold column | 2 · (4·n·f + 8·n) | `data::Frame` (f32 or u32 codes per cell), `Target` |
 //! | fold assignments and the splits' row lists | 4·n·r + 4·n·s | [`super::Folds`] |
 //! | per unit in flight: fit-local rows, weights, targets | 28·n | `tree::grow::Prepared` |

@@ -499,3 +499,74 @@ async fn schedules_survive_a_restart_and_catch_up_the_outage_once() {
     RunsClient::new(ch.clone()).get_run(pb::GetRunRequest { id: caught_up.id.clone() }).await.unwrap();
     server.stop().await;
 }
+
+// ------------------------------------------------------------------ one admission, one parse
+
+/// A StartRun and a scheduled fire go through the same service operation: each adds one
+/// to the service's admission count, and each queues one run.
+#[tokio::test]
+async fn start_run_and_a_scheduled_fire_share_one_admission() {
+    use pollard::pb::runs_server::Runs;
+    let (api, clock) = quiet("2027-03-01T00:00:00Z");
+    let iris = put(&api, iris_head(150)).await;
+    let s = api.create_schedule(Request::new(request("0 3 * * *", "UTC"))).await.unwrap().into_inner();
+    let admitted = || api.shared.admissions.load(std::sync::atomic::Ordering::SeqCst);
+    let before = admitted();
+    let started = api.start_run(Request::new(pb::StartRunRequest { dataset_id: iris.id.clone(), spec: Some(template()), ..Default::default() })).await.unwrap().into_inner();
+    assert_eq!(admitted(), before + 1, "StartRun is one admission");
+    clock.set(ms("2027-03-01T03:00:00Z"));
+    pollard::scheduler::tick(&api.shared).await;
+    assert_eq!(admitted(), before + 2, "a scheduled fire is one admission too");
+    let f = fires(&api, &s.id).await;
+    assert_eq!(f.len(), 1);
+    assert_eq!(f[0].outcome, pb::FireOutcome::Started as i32, "{:?}", f[0]);
+    let fired = api.shared.store.run(&f[0].run_id).unwrap().unwrap();
+    let manual = api.shared.store.run(&started.id).unwrap().unwrap();
+    assert_eq!((manual.state, fired.state), (RunState::Queued, RunState::Queued));
+    // The same checked spec, whichever way the run came.
+    assert_eq!(manual.spec, fired.spec);
+}
+
+/// A run parses its dataset's CSV once (its admission and its execution share the parse),
+/// and a second run on the same dataset does not parse it at all.
+#[tokio::test]
+async fn back_to_back_runs_parse_their_dataset_once() {
+    let (api, _clock) = quiet("2027-03-01T00:00:00Z");
+    let iris = put(&api, iris_head(150)).await;
+    let parses = || api.shared.frames.parses();
+    let before = parses();
+    for round in 0..2 {
+        let run = api.queue_run(&pollard::access::Caller::anonymous(), pb::StartRunRequest { dataset_id: iris.id.clone(), spec: Some(template()), ..Default::default() }).await.unwrap();
+        let claimed = match api.shared.store.claim_next_within(api.shared.now(), |_| true).unwrap() {
+            pollard::store::Claim::Claimed(r) => r,
+            _ => panic!("round {round}: the queued run is not claimed"),
+        };
+        assert_eq!(claimed.id, run.id);
+        pollard::worker::execute(&api.shared, claimed).await;
+        let done = api.shared.store.run(&run.id).unwrap().unwrap();
+        assert_eq!(done.state, RunState::Finished, "round {round}: {done:?}");
+        assert_eq!(parses(), before + 1, "round {round}: the CSV was parsed again");
+    }
+}
+
+/// A dataset whose stored bytes are gone is the store's failure (INTERNAL), never the
+/// caller's (INVALID_ARGUMENT).
+#[tokio::test]
+async fn a_store_failure_is_not_the_callers_fault() {
+    let (api, _clock) = quiet("2027-03-01T00:00:00Z");
+    let iris = put(&api, iris_head(150)).await;
+    std::fs::remove_file(api.shared.store.datasets_dir().join(format!("{}.csv", iris.id))).unwrap();
+    let e = api.queue_run(&pollard::access::Caller::anonymous(), pb::StartRunRequest { dataset_id: iris.id.clone(), spec: Some(template()), ..Default::default() }).await.unwrap_err();
+    assert_eq!(e.code(), Code::Internal, "{e:?}");
+    assert!(e.message().starts_with("storage: "), "{e:?}");
+    let request = pollard::service::RunRequest {
+        dataset: Some(pollard::service::DatasetRef::Id(iris.id.clone())),
+        target: "target".into(),
+        spec: pollard::sweep::SweepSpec::default(),
+        default_fold_scheme: false,
+        idempotency_key: String::new(),
+        labels: Default::default(),
+    };
+    let e = api.shared.admit_run(request, String::new()).await.unwrap_err();
+    assert!(matches!(e, pollard::service::ServiceError::Storage(_)), "{e:?}");
+}
