@@ -313,6 +313,18 @@ pub(crate) mod tests {
         }
         let old = show_threshold(t, None);
         assert!(sig_digits(&shown) <= sig_digits(&old), "({lo:e}, {hi:e}): {shown} is longer than {old}");
+        // None shorter lies between: with fewer digits, neither t rounded nor its neighbours
+        // at that many digits (written in exponent form, `3185e-2`) do.
+        for q in 1..sig_digits(&shown) {
+            let rounded = format!("{:.*e}", q - 1, t);
+            let (mantissa, exp) = rounded.split_once('e').unwrap();
+            let m: i64 = mantissa.replace('.', "").parse().unwrap();
+            let exp = exp.parse::<i32>().unwrap() - (q as i32 - 1);
+            for near in [m - 1, m, m + 1] {
+                let v: f32 = format!("{near}e{exp}").parse().unwrap();
+                assert!(!(lo < v && v < hi), "({lo:e}, {hi:e}): {near}e{exp} is shorter than {shown}");
+            }
+        }
         shown
     }
 
