@@ -323,6 +323,8 @@ fn put_sweep_follow_show_runs_model_predict() {
     let decoded = <pollard::pb::Model as prost::Message>::decode(&bytes[..]).expect("a pollard.v1.Model message");
     assert_eq!(decoded.nodes.len(), tree.nodes.len());
     assert_eq!(pollard::rpc::convert::model_from(&decoded).unwrap(), tree, "the protobuf and the JSON model are the same tree");
+    // Both carry each threshold's pair of training values, which the text shows short.
+    assert!(tree.nodes.iter().filter_map(|n| n.split.as_ref()).all(|s| s.between.is_some()), "{json_text}");
     let onnx_file = tmp.join("model.onnx");
     let wrote = server.run(&["model", &r1, "--format", "onnx", "--out", onnx_file.to_str().unwrap(), "--json"]).json();
     let bytes = std::fs::read(&onnx_file).unwrap();
@@ -752,6 +754,35 @@ fn demo_writes_files_that_parse() {
 
 /// A run whose spec names no metric is scored by the task's default; `show` must name that
 /// metric and, for a lower-is-better metric, list the lowest first.
+/// Significant digits of a plain decimal: `1.75` has 3, `0.8` 1.
+fn sig_digits(shown: &str) -> usize {
+    let digits: String = shown.chars().filter(char::is_ascii_digit).collect();
+    digits.trim_start_matches('0').trim_end_matches('0').len()
+}
+
+/// The text and DOT models of an iris run show each threshold as the short decimal between
+/// the training values around it (`4.95`, not `4.9499998`).
+#[test]
+fn model_text_shows_short_thresholds() {
+    let server = Serve::start();
+    server.run(&["put", data("iris.csv").to_str().unwrap(), "--name", "iris", "--target", "target", "--json"]).json();
+    let lines = server.run(&["sweep", "--dataset", "iris", "--max-depth", "3,4", "--follow", "--json"]).json_lines();
+    let id = s(&lines[0], "run_id").to_string();
+    assert_eq!(s(lines.last().unwrap(), "kind"), "finished", "{lines:?}");
+    let text = server.run(&["model", &id, "--format", "text"]).ok();
+    let shown: Vec<&str> = text.lines().filter_map(|l| l.split_once(" <= ")).map(|(_, rest)| rest.split_whitespace().next().unwrap()).collect();
+    assert!(shown.len() >= 2, "{text}");
+    for x in &shown {
+        assert!(x.parse::<f64>().is_ok(), "{x} in\n{text}");
+        assert!(sig_digits(x) <= 3 && !x.contains("99999") && !x.contains("00001"), "{x} in\n{text}");
+    }
+    assert!(shown.iter().any(|x| (2..=3).contains(&sig_digits(x))), "{text}");
+    let dot = server.run(&["model", &id, "--format", "dot"]).ok();
+    for x in &shown {
+        assert!(dot.contains(&format!(" <= {x}\\n")), "{x} in\n{dot}");
+    }
+}
+
 #[test]
 fn show_names_the_default_metric_of_a_regress_run() {
     let server = Serve::start();

@@ -23,6 +23,11 @@
 //! - `{"present": true}`: a row goes left when the cell is not missing;
 //! - `{"in": [names]}`: a row goes left when its category is listed.
 //!
+//! An `at_most` split of a fitted tree also has `"between": [lo, hi]`: the largest training
+//! value at that node that went left and the smallest that went right, as 32-bit floats
+//! (x is their midpoint). It only serves to show x short (`31.85`); x itself is the test.
+//! Files without it (written before it was kept) read as before.
+//!
 //! Missing cells, and categories the training data never had, go left exactly when
 //! `missing_left` is true. `gain` is the weighted impurity decrease of the split and
 //! `rank` its place in best-first order (largest gain first, from 0).
@@ -107,6 +112,8 @@ struct SplitFile {
     rank: u32,
     left: u32,
     right: u32,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    between: Option<[f32; 2]>,
 }
 
 #[derive(Serialize, Deserialize)]
@@ -156,6 +163,7 @@ fn to_file(tree: &Tree) -> ModelFile {
                 rank: n.rank,
                 left: n.left,
                 right: n.right,
+                between: s.between.map(|(lo, hi)| [lo, hi]),
             }),
         })
         .collect();
@@ -281,7 +289,12 @@ pub fn from_json(text: &str) -> Result<Tree, String> {
                     }
                     _ => return Err(format!("{at}: the test does not fit {} column '{}'", col.kind, col.name)),
                 };
-                (Some(Split { feature: s.column, rule, missing_left: s.missing_left }), s.gain, s.rank, s.left, s.right)
+                let between = match s.between {
+                    None => None,
+                    Some([lo, hi]) if rule.fits_between(lo, hi) => Some((lo, hi)),
+                    Some([lo, hi]) => return Err(format!("{at}: between [{lo}, {hi}] does not surround an at_most threshold")),
+                };
+                (Some(Split { feature: s.column, rule, missing_left: s.missing_left, between }), s.gain, s.rank, s.left, s.right)
             }
         };
         nodes.push(Node {
@@ -320,4 +333,89 @@ pub fn from_json(text: &str) -> Result<Tree, String> {
         total_weight: file.total_weight,
         options,
     })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::export::text::tests::{classify_tree, hand_tree, regress_tree};
+
+    /// Removes `between` from every split of a model file, as files written before it was
+    /// kept have none.
+    fn without_pairs(text: &str) -> String {
+        let mut v: serde_json::Value = serde_json::from_str(text).unwrap();
+        for node in v["nodes"].as_array_mut().unwrap() {
+            if let Some(split) = node.get_mut("split").and_then(|s| s.as_object_mut()) {
+                split.remove("between");
+            }
+        }
+        serde_json::to_string_pretty(&v).unwrap()
+    }
+
+    #[test]
+    fn the_exact_threshold_and_its_training_pair_survive_a_round_trip() {
+        for tree in [classify_tree(), regress_tree()] {
+            let text = to_json(&tree);
+            let back = from_json(&text).unwrap();
+            assert_eq!(back, tree, "{text}");
+            let pairs: Vec<_> = back
+                .nodes
+                .iter()
+                .filter_map(|n| n.split.as_ref())
+                .filter_map(|s| match s.rule {
+                    SplitRule::Threshold(t) if t.is_finite() => Some((t, s.between.expect("a fitted threshold has its pair"))),
+                    _ => None,
+                })
+                .collect();
+            assert!(!pairs.is_empty(), "{text}");
+            for (t, (lo, hi)) in pairs {
+                assert_eq!(t, lo as f64 / 2.0 + hi as f64 / 2.0, "the threshold is the exact midpoint");
+                assert!(text.contains(&format!("\"at_most\": {t:?}")), "{t:?} in\n{text}");
+            }
+            assert!(text.contains("\"between\": ["), "{text}");
+        }
+    }
+
+    #[test]
+    fn pairs_keep_every_f32_exactly() {
+        let mut rng = crate::sweep::folds::SplitMix64::new(17);
+        for _ in 0..100_000 {
+            let pair = [f32::from_bits(rng.next() as u32), f32::from_bits(rng.next() as u32)];
+            if pair.iter().all(|x| x.is_finite()) {
+                let back: [f32; 2] = serde_json::from_str(&serde_json::to_string(&pair).unwrap()).unwrap();
+                assert_eq!(back.map(f32::to_bits), pair.map(f32::to_bits), "{pair:?}");
+            }
+        }
+    }
+
+    #[test]
+    fn files_without_the_pair_still_load() {
+        for tree in [classify_tree(), regress_tree(), hand_tree()] {
+            let old = without_pairs(&to_json(&tree));
+            assert!(!old.contains("between"));
+            let back = from_json(&old).unwrap();
+            let mut expected = tree.clone();
+            for n in &mut expected.nodes {
+                if let Some(s) = &mut n.split {
+                    s.between = None;
+                }
+            }
+            assert_eq!(back, expected);
+            let value = |text: &str| serde_json::from_str::<serde_json::Value>(text).unwrap();
+            assert_eq!(value(&to_json(&back)), value(&old), "written back as it was read");
+        }
+    }
+
+    #[test]
+    fn a_pair_that_does_not_surround_the_threshold_is_refused() {
+        let text = to_json(&regress_tree());
+        assert!(text.contains("\"between\": [\n"), "{text}");
+        let mut v: serde_json::Value = serde_json::from_str(&text).unwrap();
+        v["nodes"][0]["split"]["between"] = serde_json::json!([6.0, 7.0]);
+        let e = from_json(&v.to_string()).unwrap_err();
+        assert!(e.contains("nodes[0]: between [6, 7] does not surround"), "{e}");
+        v["nodes"][0]["split"]["test"] = serde_json::json!({"present": true});
+        let e = from_json(&v.to_string()).unwrap_err();
+        assert!(e.contains("nodes[0]: between"), "{e}");
+    }
 }

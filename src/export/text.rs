@@ -19,7 +19,8 @@
 //!
 //! (the classify tree of this file's tests.)
 //!
-//! Tests read `column <= value` (value in shortest round-trip form), `column is present`, or `column in {a, b}` (at most eight
+//! Tests read `column <= value` (value as short as the training data allows, see
+//! [`show_threshold`]), `column is present`, or `column in {a, b}` (at most eight
 //! categories are listed, then `… (+N more)`). Shares of rows are of all training rows. A
 //! classify leaf shows its most likely class (lowest class code on ties, as prediction does)
 //! and that class's share of the leaf's (weighted) rows; a regress leaf shows its mean to
@@ -88,18 +89,84 @@ pub(crate) fn summary(tree: &Tree) -> String {
     )
 }
 
-/// A threshold as a reader wants it. Cells are stored as `f32` and thresholds are midpoints
-/// of two cells taken in `f64` (`30.65000057220459` between 30.6 and 30.7), so a cell goes
-/// left exactly when it is at most the largest `f32` at or below the threshold. That `f32`
-/// is shown, in its shortest form that reads back as the same `f32` (`30.65`); the model
-/// file keeps the exact value.
-pub(crate) fn show_threshold(t: f64) -> String {
+/// A threshold as a reader wants it. Cells are stored as `f32` and a fit's threshold is the
+/// midpoint, taken in `f64`, of two neighbouring training values `lo < hi` at its node
+/// (`30.65000057220459` between 30.6 and 30.7). With that pair known (`between`), the shown
+/// number is the decimal with the fewest significant digits, and among those the one nearest
+/// the threshold, that read as an `f32` lies strictly between `lo` and `hi`: it sends every
+/// training value the way the threshold does (`31.85`, not `31.849998`). Without the pair,
+/// or when no `f32` lies between them, the shown number is the largest `f32` at or below the
+/// threshold in its shortest form, which splits every possible cell alike. The model file
+/// keeps the exact threshold.
+pub(crate) fn show_threshold(t: f64, between: Option<(f32, f32)>) -> String {
     if !t.is_finite() {
         return t.to_string();
+    }
+    if let Some(short) = between.and_then(|(lo, hi)| shortest_between(t, lo, hi)) {
+        return short;
     }
     let near = t as f32;
     let below = if near as f64 <= t { near } else { near.next_down() };
     below.to_string()
+}
+
+/// The shortest decimal `d` (1 to 9 significant digits; nearest `t` among the shortest) with
+/// `lo < d as f32 < hi`, the string itself parsed. At `p` digits the candidates are `t`
+/// rounded to `p` digits and its two neighbours at `p` digits, which include `t` rounded down
+/// and up; since `f32` parsing is monotone, a `p`-digit decimal between `lo` and `hi` exists
+/// only if one of those is. `None` when there is none (no `f32` lies between `lo` and `hi`).
+fn shortest_between(t: f64, lo: f32, hi: f32) -> Option<String> {
+    for p in 1..=9usize {
+        // `{:.Ne}` rounds the exact binary value correctly: `3.07e1`.
+        let sci = format!("{:.*e}", p - 1, t.abs());
+        let (mantissa, exp) = sci.split_once('e')?;
+        let digits: u64 = mantissa.replace('.', "").parse().ok()?;
+        let exp = exp.parse::<i32>().ok()? - (p as i32 - 1);
+        let mut best: Option<(f64, String)> = None;
+        for m in [digits.saturating_sub(1), digits, digits + 1] {
+            let shown = plain_decimal(t < 0.0, m, exp);
+            let Ok(v) = shown.parse::<f32>() else { continue };
+            if lo < v && v < hi {
+                let off = (shown.parse::<f64>().ok()? - t).abs();
+                if best.as_ref().is_none_or(|(b, _)| off < *b) {
+                    best = Some((off, shown));
+                }
+            }
+        }
+        if let Some((_, shown)) = best {
+            return Some(shown);
+        }
+    }
+    None
+}
+
+/// `m × 10^exp` written out without an exponent, trailing zeros dropped: `3065, -2` is `30.65`.
+fn plain_decimal(negative: bool, mut m: u64, mut exp: i32) -> String {
+    if m == 0 {
+        return "0".to_string();
+    }
+    while m % 10 == 0 {
+        m /= 10;
+        exp += 1;
+    }
+    let digits = m.to_string();
+    let mut out = String::from(if negative { "-" } else { "" });
+    if exp >= 0 {
+        out.push_str(&digits);
+        out.extend(std::iter::repeat_n('0', exp as usize));
+    } else {
+        let point = digits.len() as i64 + exp as i64;
+        if point > 0 {
+            out.push_str(&digits[..point as usize]);
+            out.push('.');
+            out.push_str(&digits[point as usize..]);
+        } else {
+            out.push_str("0.");
+            out.extend(std::iter::repeat_n('0', (-point) as usize));
+            out.push_str(&digits);
+        }
+    }
+    out
 }
 
 /// The test of a split, as a reader would say it: `x <= 2.45`, `x is present`, `c in {a, b}`.
@@ -108,7 +175,7 @@ pub(crate) fn describe_test(tree: &Tree, split: &Split) -> String {
     let name = column.map_or_else(|| format!("column {}", split.feature), |c| clean(&c.name));
     match &split.rule {
         SplitRule::Threshold(t) if *t == f64::INFINITY => format!("{name} is present"),
-        SplitRule::Threshold(t) => format!("{name} <= {}", show_threshold(*t)),
+        SplitRule::Threshold(t) => format!("{name} <= {}", show_threshold(*t, split.between)),
         SplitRule::Categories(bits) => {
             let levels = column.map_or(&[][..], |c| &c.levels[..]);
             let chosen: Vec<&String> = levels
@@ -222,25 +289,174 @@ pub(crate) mod tests {
     use crate::data::{Column, ColumnKind, Feature, Frame, Target, MISSING_CODE};
     use crate::tree::{fit, ColumnInfo, FitOptions, Node, TrainSet, NO_NODE};
 
+    fn mid(a: f32, b: f32) -> f64 {
+        a as f64 / 2.0 + b as f64 / 2.0
+    }
+
+    /// Significant digits of a plain decimal: `30.65` has 4, `-0.5` 1, `1200` 2, `0` none.
+    fn sig_digits(shown: &str) -> usize {
+        let digits: String = shown.chars().filter(char::is_ascii_digit).collect();
+        digits.trim_start_matches('0').trim_end_matches('0').len()
+    }
+
+    /// Checks the shown threshold of the pair `(lo, hi)` against the rule: read as an `f32` it
+    /// lies strictly between them when some `f32` does (at `lo` otherwise), and it has no more
+    /// significant digits than the display without the pair.
+    fn check_between(lo: f32, hi: f32) -> String {
+        let t = mid(lo, hi);
+        let shown = show_threshold(t, Some((lo, hi)));
+        let v: f32 = shown.parse().unwrap_or_else(|e| panic!("{shown}: {e}"));
+        if lo.next_up() < hi {
+            assert!(lo < v && v < hi, "({lo:e}, {hi:e}) shown as {shown}");
+        } else {
+            assert!(lo <= v && v < hi, "adjacent ({lo:e}, {hi:e}) shown as {shown}");
+        }
+        let old = show_threshold(t, None);
+        assert!(sig_digits(&shown) <= sig_digits(&old), "({lo:e}, {hi:e}): {shown} is longer than {old}");
+        // None shorter lies between: with fewer digits, neither t rounded nor its neighbours
+        // at that many digits (written in exponent form, `3185e-2`) do.
+        for q in 1..sig_digits(&shown) {
+            let rounded = format!("{:.*e}", q - 1, t);
+            let (mantissa, exp) = rounded.split_once('e').unwrap();
+            let m: i64 = mantissa.replace('.', "").parse().unwrap();
+            let exp = exp.parse::<i32>().unwrap() - (q as i32 - 1);
+            for near in [m - 1, m, m + 1] {
+                let v: f32 = format!("{near}e{exp}").parse().unwrap();
+                assert!(!(lo < v && v < hi), "({lo:e}, {hi:e}): {near}e{exp} is shorter than {shown}");
+            }
+        }
+        shown
+    }
+
     #[test]
-    fn thresholds_show_the_shortest_decimal_that_splits_every_f32_alike() {
-        let mid = |a: f32, b: f32| a as f64 / 2.0 + b as f64 / 2.0;
-        assert_eq!(show_threshold(mid(30.6, 30.7)), "30.65");
-        assert_eq!(show_threshold(mid(2.4, 2.5)), "2.45");
-        assert_eq!(show_threshold(mid(-1.0, 0.0)), "-0.5");
-        assert_eq!(show_threshold(f64::INFINITY), "inf");
+    fn without_the_training_pair_thresholds_split_every_f32_alike() {
+        assert_eq!(show_threshold(mid(30.6, 30.7), None), "30.65");
+        assert_eq!(show_threshold(mid(31.8, 31.9), None), "31.849998");
+        assert_eq!(show_threshold(mid(2.4, 2.5), None), "2.45");
+        assert_eq!(show_threshold(mid(-1.0, 0.0), None), "-0.5");
+        assert_eq!(show_threshold(f64::INFINITY, None), "inf");
         // Neighbouring cells, tiny and large values, negatives: the shown number, read as an
         // f32 the way cells are stored, sends the f32 values around the threshold the way the
         // threshold does.
         let one = 1.0f32;
         for (x, y) in [(30.6f32, 30.7f32), (31.8, 31.9), (one, one.next_up()), (0.1, 0.2), (123456.7, 123456.8), (-3.3, -3.2), (1e-30, 2e-30), (0.0, 1e-8)] {
             let t = mid(x, y);
-            let shown: f32 = show_threshold(t).parse().unwrap();
+            let shown: f32 = show_threshold(t, None).parse().unwrap();
             let below = if (t as f32) as f64 <= t { t as f32 } else { (t as f32).next_down() };
             for v in [below.next_down(), below, below.next_up(), below.next_up().next_up(), x, y] {
                 assert_eq!(v as f64 <= t, v <= shown, "{v} against {t} shown as {shown}");
             }
         }
+    }
+
+    #[test]
+    fn with_the_training_pair_thresholds_show_the_shortest_decimal_between() {
+        for (lo, hi, shown) in [(30.6f32, 30.7f32, "30.65"), (31.8, 31.9, "31.85"), (2.4, 2.5, "2.45"), (-1.0, 0.0, "-0.5"), (1.9, 3.0, "2"), (0.6, 1.0, "0.8"), (-31.9, -31.8, "-31.85"), (123456.7, 123456.8, "123456.75"), (99.5, 100.5, "100"), (0.0, 1e-8, "0.000000005")] {
+            assert_eq!(check_between(lo, hi), shown, "({lo}, {hi})");
+        }
+        // No f32 lies between 1 and the next f32: the shown 1 still sends 1 left and the
+        // other right.
+        assert_eq!(check_between(1.0, 1.0f32.next_up()), "1");
+        // The "is present" test has no pair.
+        assert_eq!(show_threshold(f64::INFINITY, Some((1.0, 2.0))), "inf");
+    }
+
+    #[test]
+    fn shown_thresholds_lie_between_random_training_pairs() {
+        let mut rng = crate::sweep::folds::SplitMix64::new(0x7468_7265_7368);
+        let mut seen = 0;
+        while seen < 20_000 {
+            let kind = rng.next() % 4;
+            let a = match kind {
+                // Any finite f32, tiny and huge ones included.
+                0 => f32::from_bits(rng.next() as u32),
+                // Values as tables write them: a few decimal digits.
+                1 => ((rng.next() % 200_000) as f32 - 100_000.0) / 10f32.powi((rng.next() % 6) as i32),
+                // Near zero and near powers of two.
+                2 => 2f32.powi((rng.next() % 60) as i32 - 30) * if rng.next() % 2 == 0 { 1.0 } else { -1.0 },
+                _ => ((rng.next() % 2_000) as f32 - 1_000.0) / 100.0,
+            };
+            // The other value: a few f32 steps away, or a random one of the same kind.
+            let mut b = a;
+            if rng.next() % 2 == 0 {
+                for _ in 0..=rng.next() % 4 {
+                    b = b.next_up();
+                }
+            } else {
+                b = ((rng.next() % 2_000) as f32 - 1_000.0) / 10f32.powi((rng.next() % 4) as i32);
+            }
+            if !a.is_finite() || !b.is_finite() || a == b {
+                continue;
+            }
+            check_between(a.min(b), a.max(b));
+            seen += 1;
+        }
+    }
+
+    /// Every split of trees fitted on the open datasets (and the synthetic ones with missing
+    /// cells, see tests/data/SOURCES.md): the shown threshold, read back, sends every training
+    /// row that reached the node the way the stored threshold does.
+    #[test]
+    fn shown_thresholds_route_the_training_rows_like_the_stored_ones() {
+        use crate::data::csv::{read_dataset, CsvOptions};
+        let mut shortened = 0;
+        for file in ["iris.csv", "wine.csv", "breast_cancer.csv", "diabetes.csv", "synthetic_missing.csv", "synthetic_missing_reg.csv"] {
+            let path = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/data").join(file);
+            let data = read_dataset(std::fs::File::open(&path).unwrap(), &CsvOptions::new("target")).unwrap();
+            let task = match data.target {
+                Target::Classes { .. } => Task::Classify,
+                Target::Values(_) => Task::Regress,
+            };
+            let tree = fit(&TrainSet::of(&data), &FitOptions::default().check(task).unwrap()).unwrap();
+            let mut checked = 0;
+            for row in 0..data.frame.rows {
+                let mut i = 0usize;
+                while let Some(split) = &tree.nodes[i].split {
+                    let left = match (&split.rule, &data.frame.features[split.feature as usize].column) {
+                        (SplitRule::Threshold(t), Column::Numeric(v)) if v[row].is_nan() => {
+                            assert!(split.between.is_some() || *t == f64::INFINITY, "{file}: node {i} has no pair");
+                            split.missing_left
+                        }
+                        (SplitRule::Threshold(t), Column::Numeric(_)) if *t == f64::INFINITY => {
+                            assert_eq!(split.between, None);
+                            true
+                        }
+                        (SplitRule::Threshold(t), Column::Numeric(v)) => {
+                            let (lo, hi) = split.between.unwrap_or_else(|| panic!("{file}: node {i} has no pair"));
+                            let test = describe_test(&tree, split);
+                            let shown = test.rsplit_once(" <= ").unwrap_or_else(|| panic!("{test}")).1;
+                            let (as_f32, as_f64): (f32, f64) = (shown.parse().unwrap(), shown.parse().unwrap());
+                            let x = v[row];
+                            let left = (x as f64) <= *t;
+                            assert_eq!(x <= as_f32, left, "{file}: row {row} ({x}) at node {i}: {test}, threshold {t}");
+                            assert_eq!((x as f64) <= as_f64, left, "{file}: row {row} ({x}) at node {i}: {test}, threshold {t}");
+                            assert!(x <= lo || x >= hi, "{file}: row {row} ({x}) lies inside the pair ({lo}, {hi})");
+                            checked += 1;
+                            left
+                        }
+                        (SplitRule::Categories(bits), Column::Categorical { codes, .. }) => {
+                            assert_eq!(split.between, None);
+                            let c = codes[row];
+                            if c == MISSING_CODE {
+                                split.missing_left
+                            } else {
+                                SplitRule::category_left(bits, c)
+                            }
+                        }
+                        _ => unreachable!("a split on a column of the other kind"),
+                    };
+                    i = if left { tree.nodes[i].left } else { tree.nodes[i].right } as usize;
+                }
+                assert_eq!(i as u32, tree.apply_row(&data.frame, row), "{file}: row {row} walked to another leaf");
+            }
+            assert!(checked > 0, "{file}: no threshold checked");
+            for split in tree.nodes.iter().filter_map(|n| n.split.as_ref()) {
+                if let (SplitRule::Threshold(t), Some(_)) = (&split.rule, split.between) {
+                    shortened += usize::from(sig_digits(&show_threshold(*t, split.between)) < sig_digits(&show_threshold(*t, None)));
+                }
+            }
+        }
+        assert!(shortened > 0, "no threshold came out shorter than before");
     }
 
     /// Category names of the small frame, with DOT's troublemakers among them.
@@ -310,7 +526,7 @@ pub(crate) mod tests {
                 weighted_rows: 8.0,
                 impurity: 0.5,
                 gain: 0.2,
-                split: Some(Split { feature: 1, rule: SplitRule::Categories(bits), missing_left: true }),
+                split: Some(Split { feature: 1, rule: SplitRule::Categories(bits), missing_left: true, between: None }),
                 left: 1,
                 right: 4,
                 rank: 0,
@@ -321,7 +537,7 @@ pub(crate) mod tests {
                 weighted_rows: 5.0,
                 impurity: 0.48,
                 gain: 0.1,
-                split: Some(Split { feature: 0, rule: SplitRule::Threshold(f64::INFINITY), missing_left: false }),
+                split: Some(Split { feature: 0, rule: SplitRule::Threshold(f64::INFINITY), missing_left: false, between: None }),
                 left: 2,
                 right: 3,
                 rank: 1,

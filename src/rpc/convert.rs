@@ -614,6 +614,7 @@ pub fn model_to(t: &Tree) -> pb::Model {
                     rank: n.rank,
                     left: n.left,
                     right: n.right,
+                    between: s.between.map(|(lo, hi)| pb::Between { lo, hi }),
                 }),
             })
             .collect(),
@@ -668,7 +669,12 @@ pub fn model_from(m: &pb::Model) -> Result<Tree, String> {
                     }
                     None => return Err("a split has no test".into()),
                 };
-                (Some(Split { feature: s.column, rule, missing_left: s.missing_left }), s.gain, s.rank, s.left, s.right)
+                let between = match s.between {
+                    None => None,
+                    Some(pb::Between { lo, hi }) if rule.fits_between(lo, hi) => Some((lo, hi)),
+                    Some(pb::Between { lo, hi }) => return Err(format!("between [{lo}, {hi}] does not surround an at_most threshold")),
+                };
+                (Some(Split { feature: s.column, rule, missing_left: s.missing_left, between }), s.gain, s.rank, s.left, s.right)
             }
         };
         nodes.push(Node { depth: n.depth, rows: n.rows as u32, weighted_rows: n.weighted_rows, impurity: n.impurity, gain, split, left, right, rank });

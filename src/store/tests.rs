@@ -244,6 +244,8 @@ fn outcome_record_round_trips_with_models() {
     let classify = fitted("iris.csv", Limits::default());
     let regress = fitted("diabetes.csv", Limits { max_depth: Some(4), ..Limits::default() });
     for tree in [classify, regress] {
+        // Each threshold carries its pair of training values, which the round trip keeps.
+        assert!(tree.nodes.iter().filter_map(|n| n.split.as_ref()).all(|s| s.between.is_some()));
         let o = outcome(Some(tree.clone()));
         let back = records::decode_outcome(&records::encode_outcome(&o)).unwrap();
         assert_same!(back.scores, o.scores);

@@ -465,14 +465,14 @@ impl<'p> Grower<'p> {
     fn make_split(&self, feature: usize, fb: &FeatureBest) -> Split {
         let start_missing_left = fb.missing_left;
         match &fb.cut {
-            Cut::Threshold(t) => Split { feature: feature as u32, rule: SplitRule::Threshold(*t), missing_left: start_missing_left },
+            Cut::Threshold { at, between } => Split { feature: feature as u32, rule: SplitRule::Threshold(*at), missing_left: start_missing_left, between: *between },
             Cut::Codes { left: codes, .. } => {
                 let levels = self.levels[feature];
                 let mut bits = vec![0u64; levels.div_ceil(64)];
                 for &c in codes {
                     bits[(c / 64) as usize] |= 1 << (c % 64);
                 }
-                Split { feature: feature as u32, rule: SplitRule::Categories(bits), missing_left: start_missing_left }
+                Split { feature: feature as u32, rule: SplitRule::Categories(bits), missing_left: start_missing_left, between: None }
             }
         }
     }

@@ -43,9 +43,23 @@ pub struct Split {
     pub rule: SplitRule,
     /// Where missing cells (and unseen categories) go.
     pub missing_left: bool,
+    /// For a numeric threshold, the training values around the cut as the fit saw them at
+    /// this node: the largest present value that went left and the smallest that went right
+    /// (the threshold is their midpoint). Only for showing the threshold; `None` for the
+    /// `is present` test, category sets and trees read from files written before it was kept.
+    pub between: Option<(f32, f32)>,
 }
 
 impl SplitRule {
+    /// Whether `(lo, hi)` can be a split's `between` pair under this rule: both finite and
+    /// the rule a finite threshold that sends `lo` left and `hi` right.
+    pub fn fits_between(&self, lo: f32, hi: f32) -> bool {
+        match self {
+            SplitRule::Threshold(t) => t.is_finite() && lo.is_finite() && hi.is_finite() && (lo as f64) <= *t && *t < hi as f64,
+            SplitRule::Categories(_) => false,
+        }
+    }
+
     /// Whether a known category code goes left.
     pub fn category_left(bits: &[u64], code: u32) -> bool {
         let word = (code / 64) as usize;

@@ -71,7 +71,9 @@ impl Totals {
 /// How the winning candidate of one feature splits.
 #[derive(Clone, Debug, PartialEq)]
 pub(crate) enum Cut {
-    Threshold(f64),
+    /// The threshold, and the two present values it lies between (`None` for the
+    /// `is present` cut).
+    Threshold { at: f64, between: Option<(f32, f32)> },
     /// Codes that go left, and every code present in the node; absent codes follow the
     /// missing direction.
     Codes { left: Vec<u32>, present: Vec<u32> },
@@ -225,17 +227,18 @@ impl SearchCtx<'_> {
                 all_left = true;
             }
         }
-        let threshold = |i: usize| seg[i].v as f64 / 2.0 + seg[i + 1].v as f64 / 2.0;
+        // Only the winner's cut is made: the scan above kept positions, not pairs.
+        let threshold = |i: usize| Cut::Threshold { at: seg[i].v as f64 / 2.0 + seg[i + 1].v as f64 / 2.0, between: Some((seg[i].v, seg[i + 1].v)) };
         let right_found = pass_right.at.is_some() || all_left;
         if pass_left.at.is_some() && (!right_found || pass_left.proxy > pass_right.proxy) {
             let i = pass_left.at.unwrap();
-            return Some(FeatureBest { proxy: pass_left.proxy, cut: Cut::Threshold(threshold(i)), missing_left: true, saw_missing: true });
+            return Some(FeatureBest { proxy: pass_left.proxy, cut: threshold(i), missing_left: true, saw_missing: true });
         }
         if all_left {
-            return Some(FeatureBest { proxy: pass_right.proxy, cut: Cut::Threshold(f64::INFINITY), missing_left: false, saw_missing: true });
+            return Some(FeatureBest { proxy: pass_right.proxy, cut: Cut::Threshold { at: f64::INFINITY, between: None }, missing_left: false, saw_missing: true });
         }
         let i = pass_right.at?;
-        Some(FeatureBest { proxy: pass_right.proxy, cut: Cut::Threshold(threshold(i)), missing_left: false, saw_missing: n_miss > 0 })
+        Some(FeatureBest { proxy: pass_right.proxy, cut: threshold(i), missing_left: false, saw_missing: n_miss > 0 })
     }
 
     /// The forward scan over the present values of a numeric feature. `REGRESS` picks the
