@@ -93,6 +93,13 @@ fn header_names(text: &str) -> Vec<String> {
     text.lines().find(|l| l.trim_start().starts_with("grid#")).unwrap().split_whitespace().map(String::from).collect()
 }
 
+/// Asserts every line of `text` is at most 120 characters wide (counted in characters).
+fn assert_fits(text: &str) {
+    for l in text.lines() {
+        assert!(l.chars().count() <= 120, "a line of {} characters (at most 120):\n{l}\n--- in\n{text}", l.chars().count());
+    }
+}
+
 /// Asserts a failure printed as one JSON line on stderr (`--json`), nothing on stdout, and the
 /// exit code; returns the error object.
 fn json_error(out: Out, exit: i32) -> Value {
@@ -220,12 +227,14 @@ fn put_sweep_follow_show_runs_model_predict() {
     let grid_col = column(&text, "grid#");
     assert!(rows[0].starts_with("picked") && grid_col[0] == picked.to_string(), "{text}");
     // Every limit the grid varies has a column; the constant ones are listed once above.
-    assert_eq!(header_names(&text)[1..4], ["max_depth", "min_leaf_rows", "min_gain"], "{text}");
+    assert_eq!(header_names(&text)[1..4], ["depth", "leaf", "gain"], "{text}");
+    assert!(text.lines().any(|l| l.starts_with("columns: ") && l.contains("depth = max_depth, leaf = min_leaf_rows, gain = min_gain")), "{text}");
     assert!(!header_names(&text).contains(&"criterion".to_string()), "{text}");
     let fixed = text.lines().find(|l| l.starts_with("fixed: ")).unwrap_or_else(|| panic!("{text}"));
     assert!(fixed.contains("criterion = gini") && fixed.contains("max_leaves = none") && fixed.contains("min_split_rows = 2") && fixed.contains("prune_alpha = 0"), "{fixed}");
-    assert!(text.contains("(+N alike) = N more settings"), "{text}");
-    assert!(text.lines().all(|l| l.chars().count() <= 120), "{text}");
+    // Settings that grew the same trees share a row, and the header says what the count means.
+    assert_eq!(header_names(&text).contains(&"alike".to_string()), text.contains("alike = how many more settings grew the same trees"), "{text}");
+    assert_fits(&text);
     assert!(text.contains(&format!("pick rule highest: grid# {picked}")), "{text}");
     assert!(text.contains(&format!("model: {model_nodes} nodes")), "{text}");
 
@@ -263,7 +272,7 @@ fn put_sweep_follow_show_runs_model_predict() {
     let table2 = server.run(&["show", &r2]).ok();
     assert!(table2.contains("pick rule one_se: grid#"), "{table2}");
     // Two settings with the same max_depth differ by criterion: the criterion has a column.
-    assert_eq!(header_names(&table2)[1..3], ["criterion", "max_depth"], "{table2}");
+    assert_eq!(header_names(&table2)[1..3], ["criterion", "depth"], "{table2}");
     let crits: BTreeSet<String> = column(&table2, "criterion").into_iter().collect();
     assert!(crits.iter().all(|c| c == "gini" || c == "entropy"), "{table2}");
     assert!(table2.lines().any(|l| l.starts_with("fixed: ") && l.contains("min_leaf_rows = 2") && l.contains("class_weight = none")), "{table2}");
@@ -672,7 +681,7 @@ fn local_and_folds() {
     let text = pollard(&["local", iris, "--target", "target", "--max-depth", "1,3,none", "--top", "2"]).ok();
     let rows = table_rows(&text);
     assert!((2..=4).contains(&rows.len()), "{text}");
-    assert!(text.contains("accuracy: training and validation means"), "{text}");
+    assert!(text.contains("accuracy (higher is better): train, valid = mean training and validation scores"), "{text}");
     assert!(text.contains("pick rule highest: grid# "), "{text}");
     assert!(text.lines().any(|l| l.starts_with("model: ") && l.contains(" nodes")), "{text}");
 }
@@ -748,6 +757,56 @@ fn demo_writes_files_that_parse() {
     assert!(text.contains("synthetic") && text.contains(&format!("{settings} settings scored")), "{text}");
     assert!(text.contains(&format!("wrote {} files to {}", files.len(), out2.display())), "{text}");
     assert!(text.contains(&format!("one-SE pick: grid# {picked}")), "the same seed gives the same pick:\n{text}");
+    // Every line fits in 120 columns (the paths of the files written are as long as --out).
+    let listed = format!("  {}", out2.display());
+    let said: String = text.lines().filter(|l| !l.starts_with(&listed)).map(|l| format!("{l}\n")).collect();
+    assert!(said.contains("higher is better") && said.contains("larger = more overfit") && said.contains("alpha = prune_alpha"), "{text}");
+    assert_fits(&said);
+}
+
+/// A grid where all six limits, the criterion and the class weighting vary: the tables of
+/// `sweep --follow`, `show` and `local` each give every knob a column and fit in 120 columns.
+/// wine is the open UCI wine dataset (tests/data/SOURCES.md); diabetes likewise, for a
+/// regress run whose scores are in the tens.
+#[test]
+fn score_tables_of_every_knob_fit_in_120_columns() {
+    let server = Serve::start();
+    let wine = data("wine.csv");
+    server.run(&["put", wine.to_str().unwrap(), "--name", "wine", "--target", "target", "--json"]).json();
+    let grid = [
+        "--criteria", "gini,entropy", "--class-weights", "none,balanced", "--max-depth", "2,4,none", "--min-split-rows", "2,10", "--min-leaf-rows", "1,5",
+        "--max-leaves", "8,none", "--min-gain", "log(0.0001,0.01,5)", "--prune-alpha", "0,0.0005,0.03",
+    ];
+    let mut args = vec!["sweep", "--dataset", "wine", "--follow"];
+    args.extend_from_slice(&grid);
+    let followed = server.run(&args).ok();
+    let id = followed.lines().next().unwrap().strip_prefix("started ").unwrap_or_else(|| panic!("{followed}")).to_string();
+    let shown = server.run(&["show", &id]).ok();
+    let mut args = vec!["local", wine.to_str().unwrap(), "--target", "target"];
+    args.extend_from_slice(&grid);
+    let local = pollard(&args).ok();
+    for text in [&followed, &shown, &local] {
+        assert_eq!(header_names(text)[1..9], ["criterion", "weight", "depth", "split", "leaf", "leaf_cap", "gain", "alpha"], "{text}");
+        assert!(!text.lines().any(|l| l.starts_with("fixed: ")), "every knob varies: {text}");
+        for name in ["weight = class_weight", "depth = max_depth", "split = min_split_rows", "leaf = min_leaf_rows", "leaf_cap = max_leaves", "gain = min_gain", "alpha = prune_alpha"] {
+            assert!(text.contains(name), "the header note spells out {name:?}:\n{text}");
+        }
+        assert!(text.contains("accuracy (higher is better)") && text.contains("larger = more overfit"), "{text}");
+        assert_eq!(table_rows(text).len(), 11, "the pick and the ten best:\n{text}");
+        assert_fits(text);
+    }
+    // The values a log range made stay short: min_gain 0.000316… shows as 0.000316.
+    let gains: BTreeSet<String> = column(&local, "gain").into_iter().collect();
+    assert!(gains.iter().all(|g| ["0.0001", "0.000316", "0.001", "0.00316", "0.01"].contains(&g.as_str())), "{gains:?}\n{local}");
+
+    // A regress run of the six limits: lower is better, scores in the tens.
+    server.run(&["put", data("diabetes.csv").to_str().unwrap(), "--name", "diabetes", "--target", "target", "--json"]).json();
+    let text = server
+        .run(&["sweep", "--dataset", "diabetes", "--follow", "--max-depth", "2,4,none", "--min-split-rows", "2,40", "--min-leaf-rows", "1,10", "--max-leaves", "8,none", "--min-gain", "0,100", "--prune-alpha", "0,50"])
+        .ok();
+    assert_eq!(header_names(&text)[1..7], ["depth", "split", "leaf", "leaf_cap", "gain", "alpha"], "{text}");
+    assert!(text.contains("rmse (lower is better)") && text.contains("fixed: criterion = squared_error, class_weight = none"), "{text}");
+    assert_fits(&text);
 }
 
 // ------------------------------------------------------------------ regress runs
@@ -793,12 +852,12 @@ fn show_names_the_default_metric_of_a_regress_run() {
     let r = server.run(&["show", &id, "--json"]).json();
     assert_eq!(s(&r, "metric"), "rmse", "the run names the metric it was scored by: {r}");
     let text = server.run(&["show", &id]).ok();
-    assert!(text.contains("rmse: training and validation means"), "{text}");
+    assert!(text.contains("rmse (lower is better): train, valid = mean training and validation scores"), "{text}");
     let rows = table_rows(&text);
     // Under `highest` the pick is the best: the first ranked row (lowest RMSE) shows it.
     let grid = column(&text, "grid#");
     assert!(rows[0].starts_with("picked") && rows[1].starts_with("#1") && grid[0] == grid[1], "best first:\n{text}");
-    let rmse: Vec<f64> = column(&text, "validation").iter().map(|v| v.parse().unwrap()).collect();
+    let rmse: Vec<f64> = column(&text, "valid").iter().map(|v| v.parse().unwrap()).collect();
     assert!(rmse[1] <= rmse[2], "lower RMSE ranks first:\n{text}");
     assert!(text.contains("lower is better") && text.contains("fixed: criterion = squared_error"), "{text}");
     // predict --json on a regress run: one object per row with its value.
@@ -1049,6 +1108,40 @@ fn report_writes_the_results_of_a_stored_run() {
     let under = file.join("out");
     let e = server.run(&["report", &id, "--out", under.to_str().unwrap()]).fails();
     assert!(e.contains(under.to_str().unwrap()), "{e}");
+}
+
+/// `pollard --help` lists the exit codes and the README's table says the same, code for code;
+/// the README states the minimum Rust version (Cargo.toml's `rust-version`) in its quick
+/// start, and how to put `pollard` on the PATH before the command line's first example.
+#[test]
+fn help_and_readme_agree_on_exit_codes_and_setup() {
+    let help = pollard(&["--help"]).ok();
+    let root = Path::new(env!("CARGO_MANIFEST_DIR"));
+    let readme = std::fs::read_to_string(root.join("README.md")).unwrap();
+    let table = readme.split("Exit codes, for scripts").nth(1).unwrap_or_else(|| panic!("the README has no exit-code table"));
+    let rows: Vec<(String, String)> = table
+        .lines()
+        .skip_while(|l| !l.starts_with('|'))
+        .take_while(|l| l.starts_with('|'))
+        .filter_map(|l| {
+            let cells: Vec<&str> = l.split('|').map(str::trim).collect();
+            (cells.len() == 4 && cells[1].parse::<u8>().is_ok()).then(|| (cells[1].to_string(), cells[2].replace('`', "")))
+        })
+        .collect();
+    let codes: Vec<&str> = rows.iter().map(|r| r.0.as_str()).collect();
+    assert_eq!(codes, ["0", "1", "2", "3", "4", "5", "6"], "{table}");
+    let listed: Vec<&str> = help.lines().skip_while(|l| *l != "Exit codes:").skip(1).take_while(|l| !l.is_empty()).collect();
+    assert_eq!(listed.len(), rows.len(), "{help}");
+    for ((code, meaning), line) in rows.iter().zip(&listed) {
+        assert_eq!(line.trim_start(), format!("{code}  {meaning}"), "--help and the README differ on exit code {code}");
+    }
+    let cargo = std::fs::read_to_string(root.join("Cargo.toml")).unwrap();
+    let version = cargo.lines().find_map(|l| l.strip_prefix("rust-version = ")).unwrap().trim_matches('"');
+    let cli = readme.find("\n## The command line\n").expect("a command line section");
+    assert!(readme[..cli].contains(&format!("Rust {version} or newer")), "the README does not state Rust {version} before the command line");
+    let on_path = readme.find("cargo install --path .").expect("the README says how to put pollard on the PATH");
+    let first_example = cli + readme[cli..].find("\npollard ").expect("an example");
+    assert!(on_path < first_example, "the PATH comes after the first example");
 }
 
 /// `demo --out` to a path that cannot be made fails at once, naming it (tests run as root, so

@@ -305,12 +305,22 @@ impl End {
     }
 }
 
+/// The follower's progress line: no bar and no count until the run has work units (a queued
+/// run's 0 of 0 would draw a full bar).
+pub fn bar_template(units_total: u32) -> &'static str {
+    if units_total == 0 {
+        "{spinner} waiting for the run to start (settings scored {msg}) [{elapsed}]"
+    } else {
+        "{spinner} work units {pos}/{len} {bar:30} settings scored {msg} [{elapsed}]"
+    }
+}
+
 /// Streams a run's events; returns how it ended.
 pub async fn follow(ch: Conn, id: &str, after: u64, mode: Follow) -> Res<End> {
     let json_out = mode == Follow::JsonLines;
     let mut stream = RunsClient::new(ch).follow_run(pb::FollowRunRequest { id: id.into(), after_sequence: after }).await.map_err(CliError::status)?.into_inner();
-    let bar = if mode == Follow::Bar { ProgressBar::new(0) } else { ProgressBar::hidden() };
-    bar.set_style(ProgressStyle::with_template("{spinner} work units {pos}/{len} {bar:30} settings scored {msg} [{elapsed}]").unwrap());
+    let bar = if mode == Follow::Bar { ProgressBar::no_length() } else { ProgressBar::hidden() };
+    bar.set_style(ProgressStyle::with_template(bar_template(0)).unwrap());
     bar.enable_steady_tick(Duration::from_millis(200));
     let mut scored = 0;
     let mut end = End::Open;
@@ -320,6 +330,7 @@ pub async fn follow(ch: Conn, id: &str, after: u64, mode: Follow) -> Res<End> {
         }
         match ev.kind {
             Some(pb::run_event::Kind::Progress(p)) => {
+                bar.set_style(ProgressStyle::with_template(bar_template(p.units_total)).unwrap());
                 bar.set_length(p.units_total as u64);
                 bar.set_position(p.units_done as u64);
             }

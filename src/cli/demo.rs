@@ -85,7 +85,8 @@ async fn demo(a: &DemoArgs, address: &Remote, json_out: bool, csv: String, data_
         }
     };
     let ch = connect(address).await?;
-    say(&format!("pollard demo: {} synthetic reefer-container voyages (invented data), target 'excursion' (did the cargo leave its temperature band?)", a.rows));
+    say(&format!("pollard demo: {} synthetic reefer-container voyages (invented data)", a.rows));
+    say("target 'excursion': did the cargo leave its temperature band?");
     let info = upload_bytes(ch.clone(), DATASET, "excursion", Vec::new(), csv.into_bytes(), !json_out).await?;
     say(&format!("uploaded dataset {} ({} rows, {} columns)", info.id, info.rows, info.columns.len()));
     let spec = demo_spec(a.seed);

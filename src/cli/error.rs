@@ -26,7 +26,7 @@ pub enum Exit {
 pub const EXIT_CODES: &str = "\
 Exit codes:
   0  success
-  1  any other error (the server refused the request, a file cannot be read or written, …)
+  1  any other error (the server refused the request, a file cannot be read or written, cancel of a run that already ended)
   2  usage: an unknown flag, a bad value, a malformed --server address
   3  the run followed (follow, sweep --follow, demo) ended failed
   4  the run followed ended cancelled

@@ -486,25 +486,89 @@ fn labels(list: &[String]) -> Res<HashMap<String, String>> {
 mod tests {
     use super::*;
 
-    /// Every argument and option of every command says what it is for.
+    /// A queued run (0 of 0 work units) shows no bar, which would be drawn full, and no count.
     #[test]
-    fn every_argument_has_help() {
-        fn walk(cmd: &mut clap::Command, path: &str, missing: &mut Vec<String>) {
+    fn a_queued_run_shows_no_full_bar() {
+        let waiting = client::bar_template(0);
+        assert!(!waiting.contains("{bar") && !waiting.contains("{len}") && !waiting.contains("{pos}"), "{waiting}");
+        let running = client::bar_template(12);
+        assert!(running.contains("{bar") && running.contains("{pos}/{len}"), "{running}");
+    }
+
+    /// Every argument of every command, with the path of commands it sits under.
+    fn all_arguments() -> Vec<(String, clap::Arg)> {
+        fn walk(cmd: &mut clap::Command, path: &str, out: &mut Vec<(String, clap::Arg)>) {
             for a in cmd.get_arguments() {
-                let builtin = matches!(a.get_id().as_str(), "help" | "version");
-                if !builtin && a.get_help().is_none_or(|h| h.to_string().trim().is_empty()) {
-                    missing.push(format!("{path} {}", a.get_long().map_or(format!("<{}>", a.get_id()), |l| format!("--{l}"))));
-                }
+                out.push((path.to_string(), a.clone()));
             }
             for sub in cmd.get_subcommands_mut() {
                 let p = format!("{path} {}", sub.get_name());
-                walk(sub, &p, missing);
+                walk(sub, &p, out);
             }
         }
         let mut cmd = command();
         cmd.build();
-        let mut missing = Vec::new();
-        walk(&mut cmd, "pollard", &mut missing);
+        let mut out = Vec::new();
+        walk(&mut cmd, "pollard", &mut out);
+        out
+    }
+
+    /// The range examples in the help (`e.g. A or B`) are ranges our syntax reads, and each
+    /// limit's examples name values that limit takes (whole numbers for the counts).
+    #[test]
+    fn range_examples_in_the_help_parse() {
+        let args = all_arguments();
+        let iris = read_dataset(File::open(concat!(env!("CARGO_MANIFEST_DIR"), "/tests/data/iris.csv")).unwrap(), &CsvOptions::new("target")).unwrap();
+        let mut seen = 0;
+        for (path, a) in &args {
+            let help = a.get_help().map(|h| h.to_string()).unwrap_or_default();
+            let Some(rest) = help.strip_prefix("Range of ") else { continue };
+            let (limit, examples) = rest.split_once(", e.g. ").unwrap_or_else(|| panic!("{path} {help}: no example"));
+            for example in examples.trim_end_matches('.').split(" or ") {
+                let flag = a.get_long().unwrap();
+                let range = Some(ranges::parse_range(example).unwrap_or_else(|e| panic!("{path} --{flag}: example {example:?}: {e}")));
+                let mut spec = crate::sweep::SweepSpec::default();
+                match limit {
+                    "max_depth" => spec.max_depth = range,
+                    "min_split_rows" => spec.min_split_rows = range,
+                    "min_leaf_rows" => spec.min_leaf_rows = range,
+                    "max_leaves" => spec.max_leaves = range,
+                    "min_gain" => spec.min_gain = range,
+                    "prune_alpha" => spec.prune_alpha = range,
+                    _ => panic!("{path} --{flag}: {limit} is not a limit"),
+                }
+                spec.check(&iris).unwrap_or_else(|e| panic!("{path} --{flag}: example {example:?} is refused: {e}"));
+                seen += 1;
+            }
+        }
+        assert!(seen >= 8, "the range examples were found: {seen}");
+    }
+
+    /// One flag name per concept: names retired for the one name are hidden aliases, never
+    /// shown in a help; `--data` names the store directory, shown only by `serve`.
+    #[test]
+    fn retired_flag_names_are_hidden() {
+        let args = all_arguments();
+        for (path, a) in &args {
+            let Some(long) = a.get_long() else { continue };
+            assert!(!["scheme", "column", "folds"].contains(&long), "{path} shows --{long}, a retired name");
+            if long == "data" {
+                assert!(path == "pollard serve" || a.is_hide_set(), "{path} shows --data for something other than the store");
+            }
+        }
+        // The retired names still parse where they were used.
+        let folds = |flag: &str| Cli::try_parse_from(["pollard", "folds", flag, "x.csv", "--target", "y"]).is_ok();
+        assert!(folds("--data") && folds("--file"));
+    }
+
+    /// Every argument and option of every command says what it is for.
+    #[test]
+    fn every_argument_has_help() {
+        let missing: Vec<String> = all_arguments()
+            .into_iter()
+            .filter(|(_, a)| !matches!(a.get_id().as_str(), "help" | "version") && a.get_help().is_none_or(|h| h.to_string().trim().is_empty()))
+            .map(|(path, a)| format!("{path} {}", a.get_long().map_or(format!("<{}>", a.get_id()), |l| format!("--{l}"))))
+            .collect();
         assert!(missing.is_empty(), "arguments without help: {missing:?}");
     }
 

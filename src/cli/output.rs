@@ -107,11 +107,73 @@ pub fn split_knobs(scores: &[pb::SettingScore]) -> (Vec<usize>, Vec<String>) {
     (varying, fixed)
 }
 
+/// The column names of the knobs in the scores table, in [`KNOBS`] order: short, so a table
+/// of every knob fits in [`WIDTH`] columns; each one that differs from its knob's name is
+/// spelled out in the table's notes.
+pub const KNOB_COLUMNS: [&str; 8] = ["criterion", "weight", "depth", "split", "leaf", "leaf_cap", "gain", "alpha"];
+
+/// How wide a table's lines may be, notes included (a common terminal is wider than this).
+pub const WIDTH: usize = 120;
+
+/// A number for a table cell: 3 significant digits as a plain decimal (0.000316), or with an
+/// exponent below 0.0001 (3.16e-5), so a cell stays short whatever a range made.
+pub fn compact(x: f64) -> String {
+    if x == 0.0 || !x.is_finite() {
+        return short(x);
+    }
+    // Rounded to 3 significant digits first, so 0.0000999… counts as 0.0001.
+    let e = format!("{x:.2e}");
+    let (mantissa, exp) = e.split_once('e').unwrap_or((&e, "0"));
+    let exp: i32 = exp.parse().unwrap_or(0);
+    let trim = |s: &str| if s.contains('.') { s.trim_end_matches('0').trim_end_matches('.').to_string() } else { s.to_string() };
+    if exp < -4 {
+        return format!("{}e{exp}", trim(mantissa));
+    }
+    let digits = (2 - exp).max(0) as usize;
+    trim(&format!("{x:.digits$}"))
+}
+
+/// Decimals for a column of scores: 5 significant digits for the largest value (0.8533,
+/// 58.123, 3456.1), never more than 4 decimals.
+fn decimals(values: impl Iterator<Item = f64>) -> usize {
+    let top = values.filter(|x| x.is_finite()).fold(0.0_f64, |m, x| m.max(x.abs()));
+    if top < 1.0 {
+        return 4;
+    }
+    (4 - top.log10().floor() as i64).clamp(0, 4) as usize
+}
+
+/// `prefix` and the items joined by `, `, broken into lines of at most `width` characters
+/// (later lines indented by two spaces); each line ends with a newline.
+pub fn wrap(prefix: &str, items: &[String], width: usize) -> String {
+    let mut out = String::new();
+    let mut line = prefix.to_string();
+    let mut first = true;
+    for (i, item) in items.iter().enumerate() {
+        let piece = if i + 1 < items.len() { format!("{item},") } else { item.clone() };
+        let gap = if first { "" } else { " " };
+        if !first && line.chars().count() + gap.len() + piece.chars().count() > width {
+            out.push_str(&line);
+            out.push('\n');
+            line = format!("  {piece}");
+        } else {
+            line.push_str(gap);
+            line.push_str(&piece);
+        }
+        first = false;
+    }
+    out.push_str(&line);
+    out.push('\n');
+    out
+}
+
 /// The scores table: the picked setting first, then settings best first by validation score,
-/// training and validation side by side. Only the knobs that vary get a column; the constant
-/// ones are listed once above the table. Settings whose scores are identical on every fold
-/// (they grew the same trees) share one row, shown by the lowest grid number, with a count.
-/// Every column is right-aligned under its header (scripts can find a column by its name).
+/// training and validation side by side. Only the knobs that vary get a column (under a short
+/// name, spelled out above the table); the constant ones are listed once above the table.
+/// Settings whose scores are identical on every fold (they grew the same trees) share one
+/// row, shown by the lowest grid number, with how many others are alike. Every column is
+/// right-aligned under its header (scripts can find a column by its name), and every line
+/// fits in [`WIDTH`] columns for a grid of every knob.
 pub fn scores_table(scores: &[pb::SettingScore], metric: &str, higher_is_better: bool, top: usize, picked: Option<u32>, best: Option<u32>) -> String {
     let mut order: Vec<&pb::SettingScore> = scores.iter().collect();
     order.sort_by(|a, b| {
@@ -145,44 +207,61 @@ pub fn scores_table(scores: &[pb::SettingScore], metric: &str, higher_is_better:
     for (rank, g) in groups.iter().take(top).enumerate() {
         shown.push((format!("#{}", rank + 1), g));
     }
-    // Cells: mark, grid#, the varying knobs, then the scores.
+    let firsts: Vec<&pb::SettingScore> = shown.iter().map(|(_, g)| *g.iter().min_by_key(|s| s.index).unwrap()).collect();
+    let alike = shown.iter().any(|(_, g)| g.len() > 1);
+    let d = decimals(firsts.iter().flat_map(|s| [s.train_mean, s.valid_mean]));
+    // Cells: mark, grid#, the varying knobs, then the scores (and how many are alike).
     let mut header: Vec<String> = vec![String::new(), "grid#".into()];
-    header.extend(varying.iter().map(|&k| KNOBS[k].to_string()));
-    header.extend(["training", "validation", "sd", "gap", "leaves"].map(String::from));
-    let rows: Vec<(Vec<String>, usize)> = shown
+    header.extend(varying.iter().map(|&k| KNOB_COLUMNS[k].to_string()));
+    header.extend(["train", "valid", "sd", "gap", "leaves"].map(String::from));
+    if alike {
+        header.push("alike".into());
+    }
+    let rows: Vec<Vec<String>> = shown
         .iter()
-        .map(|(mark, g)| {
-            let s = g.iter().min_by_key(|s| s.index).unwrap();
-            let v = knob_values(&s.limits.clone().unwrap_or_default());
+        .zip(&firsts)
+        .map(|((mark, g), s)| {
+            let l = s.limits.clone().unwrap_or_default();
+            let mut v = knob_values(&l);
+            v[6] = compact(l.min_gain);
+            v[7] = compact(l.prune_alpha);
             let mut cells = vec![mark.clone(), s.index.to_string()];
             cells.extend(varying.iter().map(|&k| v[k].clone()));
-            cells.extend([format!("{:.4}", s.train_mean), format!("{:.4}", s.valid_mean), format!("{:.4}", s.valid_sd), format!("{:+.4}", s.gap), format!("{:.1}", s.mean_leaves)]);
-            (cells, g.len() - 1)
+            cells.extend([format!("{:.d$}", s.train_mean), format!("{:.d$}", s.valid_mean), format!("{:.d$}", s.valid_sd), format!("{:+.d$}", s.gap), format!("{:.1}", s.mean_leaves)]);
+            if alike {
+                cells.push(if g.len() > 1 { format!("+{}", g.len() - 1) } else { String::new() });
+            }
+            cells
         })
         .collect();
-    let widths: Vec<usize> = (0..header.len()).map(|c| rows.iter().map(|r| r.0[c].chars().count()).chain([header[c].len()]).max().unwrap_or(0)).collect();
+    let widths: Vec<usize> = (0..header.len()).map(|c| rows.iter().map(|r| r[c].chars().count()).chain([header[c].len()]).max().unwrap_or(0)).collect();
     let line = |cells: &[String]| {
         let mut text = format!("{:<w$}", cells[0], w = widths[0]);
         for (c, cell) in cells.iter().enumerate().skip(1) {
             text.push_str(&format!(" {:>w$}", cell, w = widths[c]));
         }
-        text
+        text.trim_end().to_string()
     };
     let better = if higher_is_better { "higher is better" } else { "lower is better" };
     let mut out = String::new();
-    out.push_str(&format!("{metric}: training and validation means over {folds} folds ({better}); sd = sample sd of the validation fold scores\n"));
-    out.push_str("gap = how much better training scores than validation (larger = more overfit); leaves = mean leaves per tree\n");
-    out.push_str("(+N alike) = N more settings grew the same trees and scored the same\n");
-    if !fixed.is_empty() {
-        out.push_str(&format!("fixed: {}\n", fixed.join(", ")));
+    out.push_str(&format!("{metric} ({better}): train, valid = mean training and validation scores over {folds} folds\n"));
+    out.push_str("sd = sample sd of the validation fold scores; gap = how much better train scores than valid (larger = more overfit)\n");
+    out.push_str("leaves = mean leaves per tree");
+    if alike {
+        out.push_str("; alike = how many more settings grew the same trees and scored the same");
     }
-    out.push_str(line(&header).trim_end());
     out.push('\n');
-    for (cells, alike) in &rows {
+    let named: Vec<String> = varying.iter().filter(|&&k| KNOB_COLUMNS[k] != KNOBS[k]).map(|&k| format!("{} = {}", KNOB_COLUMNS[k], KNOBS[k])).collect();
+    if !named.is_empty() {
+        out.push_str(&wrap("columns: ", &named, WIDTH));
+    }
+    if !fixed.is_empty() {
+        out.push_str(&wrap("fixed: ", &fixed, WIDTH));
+    }
+    out.push_str(&line(&header));
+    out.push('\n');
+    for cells in &rows {
         out.push_str(&line(cells));
-        if *alike > 0 {
-            out.push_str(&format!(" (+{alike} alike)"));
-        }
         out.push('\n');
     }
     out
@@ -210,4 +289,34 @@ pub fn dataset_line(d: &pb::DatasetInfo) -> String {
 /// Whether a metric's larger values are better (by name, as the wire carries it).
 pub fn higher_is_better(metric: &str) -> bool {
     crate::sweep::Metric::parse(metric).is_none_or(|m| m.higher_is_better())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn compact_numbers_keep_three_digits() {
+        let cases = [(0.0, "0"), (0.000316227766, "0.000316"), (0.00009999999, "0.0001"), (0.0000316, "3.16e-5"), (0.00001, "1e-5"), (0.03, "0.03"), (12.345, "12.3"), (100.0, "100"), (123456.0, "123456"), (-0.5, "-0.5")];
+        for (x, want) in cases {
+            assert_eq!(compact(x), want, "{x}");
+        }
+    }
+
+    #[test]
+    fn score_decimals_follow_the_largest_value() {
+        assert_eq!(decimals([0.85, 0.99].into_iter()), 4);
+        assert_eq!(decimals([1.0].into_iter()), 4);
+        assert_eq!(decimals([54.2, 59.9].into_iter()), 3);
+        assert_eq!(decimals([3456.1, f64::NAN].into_iter()), 1);
+        assert_eq!(decimals([123456.0].into_iter()), 0);
+    }
+
+    #[test]
+    fn wrap_breaks_between_items() {
+        let items: Vec<String> = ["alpha = 1", "beta = 2", "gamma = 3"].map(String::from).into();
+        assert_eq!(wrap("fixed: ", &items, 120), "fixed: alpha = 1, beta = 2, gamma = 3\n");
+        assert_eq!(wrap("fixed: ", &items, 27), "fixed: alpha = 1, beta = 2,\n  gamma = 3\n");
+        assert_eq!(wrap("fixed: ", &items, 10), "fixed: alpha = 1,\n  beta = 2,\n  gamma = 3\n");
+    }
 }

@@ -712,13 +712,19 @@ mod tests {
         dir
     }
 
-    #[test]
-    fn one_well_formed_svg_per_varying_limit() {
-        let dir = temp_dir("grid");
+    /// The plots of [`grid`] in a fresh folder, with a picked setting that is not the best of
+    /// any plot: depth 1 (d = 0), l = 0, g = 1.
+    fn grid_plots(name: &str) -> (PathBuf, Vec<PathBuf>) {
+        let dir = temp_dir(name);
         let g = grid();
-        // Pick a setting that is not the best of any plot: depth 1 (d = 0), l = 0, g = 1.
         let picked = g.iter().position(|s| s.setting.options.limits.max_depth == Some(1) && s.setting.options.limits.min_leaf_rows == 1).unwrap();
         let files = limit_plots(&g, Metric::Accuracy, Some(picked), &dir).unwrap();
+        (dir, files)
+    }
+
+    #[test]
+    fn one_well_formed_svg_per_varying_limit() {
+        let (dir, files) = grid_plots("grid");
         let names: Vec<String> = files.iter().map(|p| p.file_name().unwrap().to_string_lossy().into_owned()).collect();
         assert_eq!(names, ["max_depth.svg", "min_leaf_rows.svg", "min_gain.svg"]);
         let on_disk = std::fs::read_dir(&dir).unwrap().count();
@@ -735,6 +741,28 @@ mod tests {
         let gain = std::fs::read_to_string(dir.join("min_gain.svg")).unwrap();
         assert!(gain.contains("min_gain (log scale)") && gain.contains(">0</text>") && gain.contains(">1e-5</text>"));
         finish(&dir);
+    }
+
+    /// Our look, as DEVELOPERS.md ("Our look") describes it: training olive, open squares on a
+    /// dashed line; validation plum, filled circles; the best ringed; the picked setting a
+    /// hollow diamond; the one-SE floor a grey dashed rule.
+    #[test]
+    fn the_plots_keep_our_look() {
+        let (dir, files) = grid_plots("look");
+        let text = std::fs::read_to_string(&files[0]).unwrap();
+        let has = |what: &str, needle: &str| assert!(text.contains(needle), "{what}: no {needle:?} in {}", files[0].display());
+        has("training squares, open", &format!(r##"width="7" height="7" fill="#ffffff" stroke="{TRAIN_COLOUR}""##));
+        has("training line, dashed", &format!(r#"stroke="{TRAIN_COLOUR}" stroke-width="2.5" stroke-dasharray="7 4""#));
+        has("validation circles, filled", &format!(r#"r="4" fill="{VALID_COLOUR}""#));
+        has("the best, ringed", &format!(r#"r="9" fill="none" stroke="{VALID_COLOUR}""#));
+        has("the pick, a hollow diamond", r#"Z" fill="none" stroke="#);
+        has("the one-SE floor", &format!(r#"stroke="{MUTED}" stroke-width="1.2" stroke-dasharray="3 3""#));
+        finish(&dir);
+        let guide = std::fs::read_to_string(concat!(env!("CARGO_MANIFEST_DIR"), "/DEVELOPERS.md")).unwrap();
+        let look = guide.split("\n## Our look\n").nth(1).expect("DEVELOPERS.md has an Our look section");
+        for word in ["olive", "plum", "open squares", "filled circles", "ringed", "hollow diamond", "hexagons", "holds ▸", "Score tables"] {
+            assert!(look.contains(word), "Our look does not say {word:?}");
+        }
     }
 
     #[test]

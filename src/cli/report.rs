@@ -61,7 +61,7 @@ pub fn summary(r: &pb::RunInfo) -> String {
         out.push_str(&format!("{} settings scored by {metric} over {folds} folds ({})\n", r.scores.len(), if higher_is_better(metric) { "higher is better" } else { "lower is better" }));
         let (_, fixed) = output::split_knobs(&r.scores);
         if !fixed.is_empty() {
-            out.push_str(&format!("fixed: {}\n", fixed.join(", ")));
+            out.push_str(&output::wrap("fixed: ", &fixed, output::WIDTH));
         }
         let rule = r.spec.as_ref().map_or("highest", |s| if s.pick.is_empty() { "highest" } else { s.pick.as_str() });
         for (what, i) in [("best", r.best), (rule, r.picked)] {

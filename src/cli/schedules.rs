@@ -241,7 +241,8 @@ pub fn drift_lines(d: &pb::DriftReport, metric: &str) -> String {
     } else {
         out.push_str("  picked setting unchanged\n");
     }
-    out.push_str(&format!("  {metric} {:.4} -> {:.4} ({:+.4} ± {:.4} standard error)\n", d.previous_score, d.score, d.score_delta, d.score_delta_se));
+    let better = if output::higher_is_better(metric) { "higher is better" } else { "lower is better" };
+    out.push_str(&format!("  {metric} ({better}) {:.4} -> {:.4} ({:+.4} ± {:.4} standard error)\n", d.previous_score, d.score, d.score_delta, d.score_delta_se));
     out.push_str(&format!("  dataset v{} ({} rows) -> v{} ({} rows)\n", d.previous_version, d.previous_rows, d.version, d.rows));
     out.push_str(&format!("  leaves {} -> {}\n", output::short(d.previous_leaves), output::short(d.leaves)));
     let flags: Vec<&str> = [(d.score_fell, "score fell"), (d.tree_grew, "tree grew"), (d.tree_shrank, "tree shrank")].into_iter().filter(|f| f.0).map(|f| f.1).collect();
@@ -260,4 +261,19 @@ pub fn drift_json(d: &pb::DriftReport) -> Value {
         "previous_leaves": d.previous_leaves, "leaves": d.leaves,
         "score_fell": d.score_fell, "tree_grew": d.tree_grew, "tree_shrank": d.tree_shrank,
     })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// The drift report shows scores, so it says which way is better for the run's metric.
+    #[test]
+    fn drift_lines_say_which_way_is_better() {
+        let d = pb::DriftReport { previous_run_id: "run_a".into(), previous_score: 0.9, score: 0.85, score_delta: -0.05, ..Default::default() };
+        let text = drift_lines(&d, "accuracy");
+        assert!(text.contains("  accuracy (higher is better) 0.9000 -> 0.8500 (-0.0500"), "{text}");
+        let text = drift_lines(&d, "rmse");
+        assert!(text.contains("  rmse (lower is better) 0.9000 -> 0.8500"), "{text}");
+    }
 }

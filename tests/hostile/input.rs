@@ -297,6 +297,16 @@ fn bad_sweep_requests_are_refused_by_field() {
     let span = pb::LimitRange { kind: Some(pb::limit_range::Kind::Span(pb::Span { from: 5.0, to: 1.0, step: 1.0 })) };
     let r = start(&f, pb::SweepSpec { max_depth: Some(span), ..Default::default() });
     f.refused("an inverted span", r, Code::InvalidArgument, &["spec.max_depth.span"]);
+    // Counts are whole numbers: a fraction is refused, naming the value, never rounded.
+    let values = |v: Vec<f64>| {
+        let values = v.into_iter().map(|x| pb::LimitValue { value: Some(pb::limit_value::Value::Number(x)) }).collect();
+        Some(pb::LimitRange { kind: Some(pb::limit_range::Kind::Values(pb::ValueList { values })) })
+    };
+    let r = start(&f, pb::SweepSpec { max_depth: values(vec![3.0, 2.5]), ..Default::default() });
+    f.refused("a fractional max_depth", r, Code::InvalidArgument, &["spec.max_depth.values[1]"]);
+    let step = pb::LimitRange { kind: Some(pb::limit_range::Kind::Span(pb::Span { from: 2.0, to: 5.0, step: 1.5 })) };
+    let r = start(&f, pb::SweepSpec { min_split_rows: Some(step), ..Default::default() });
+    f.refused("a fractional min_split_rows step", r, Code::InvalidArgument, &["spec.min_split_rows.span.step"]);
     let r = start(&f, pb::SweepSpec { min_leaf_rows: Some(pb::LimitRange { kind: None }), ..Default::default() });
     f.refused("a range of no kind", r, Code::InvalidArgument, &["spec.min_leaf_rows"]);
     let req = pb::StartRunRequest { ..Default::default() };
