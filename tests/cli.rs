@@ -1183,3 +1183,30 @@ fn serve_log_to_a_file_has_no_colour_codes() {
     assert!(!text.contains('\u{1b}'), "colour codes in a log file: {text:?}");
     assert!(text.contains(&format!("addr={listen}")), "{text}");
 }
+
+/// `sweep --idempotency-key`: the same command again is the same run; another request under
+/// that key is refused, naming the key and the first run, and queues nothing.
+#[test]
+fn an_idempotency_key_reused_with_another_request_is_refused() {
+    let server = Serve::start();
+    server.run(&["put", data("iris.csv").to_str().unwrap(), "--name", "iris", "--target", "target", "--json"]).json();
+    let sweep = |depth: &str, json: bool| {
+        let mut args = vec!["sweep", "--dataset", "iris", "--max-depth", depth, "--idempotency-key", "nightly-7"];
+        if json {
+            args.push("--json");
+        }
+        server.run(&args)
+    };
+    let first = sweep("1,2", true).json();
+    let again = sweep("1,2", true).json();
+    assert_eq!(s(&again, "id"), s(&first, "id"), "a retry returns the first run");
+    let e = sweep("1,3", false).fails();
+    assert!(e.contains("nightly-7") && e.contains(s(&first, "id")), "{e}");
+    let out = sweep("1,3", true);
+    assert_eq!(out.code, Some(1), "{}", out.describe());
+    let e: Value = serde_json::from_str(out.stderr.trim()).unwrap_or_else(|_| panic!("{}", out.describe()));
+    assert_eq!(e["error"]["code"], "already_exists", "{e}");
+    assert!(e["error"]["message"].as_str().is_some_and(|m| m.contains("nightly-7")), "{e}");
+    let runs = server.run(&["runs", "--json"]).json();
+    assert_eq!(runs.as_array().map(Vec::len), Some(1), "the refused request queued a run: {runs}");
+}

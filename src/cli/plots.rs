@@ -732,7 +732,7 @@ mod tests {
         for (f, limit) in files.iter().zip(["max_depth", "min_leaf_rows", "min_gain"]) {
             let text = std::fs::read_to_string(f).unwrap();
             assert_eq!(well_formed(&text), Ok("svg".to_string()), "{}", f.display());
-            for word in ["training", "validation", "accuracy", limit, ">best<", ">picked<", "picked setting: validation"] {
+            for word in ["training", "validation", "accuracy", "higher is better", limit, ">best<", ">picked<", "picked setting: validation"] {
                 assert!(text.contains(word), "{} lacks {word}", f.display());
             }
         }
@@ -798,6 +798,11 @@ mod tests {
         let text = std::fs::read_to_string(&files[0]).unwrap();
         assert_eq!(well_formed(&text), Ok("svg".to_string()));
         assert!(!text.contains("NaN") && !text.contains("inf"));
+        std::fs::remove_dir_all(&dir).unwrap();
+        // A lower-is-better metric says so on its axis.
+        let files = limit_plots(&two, Metric::Rmse, None, &dir).unwrap();
+        let text = std::fs::read_to_string(&files[0]).unwrap();
+        assert!(text.contains("lower is better") && !text.contains("higher is better"), "{}", files[0].display());
         std::fs::remove_dir_all(&dir).unwrap();
     }
 
