@@ -11,7 +11,7 @@
 //!   through the same queue as every other run; the run records the schedule's id.
 //!
 //! The fire record, the schedule's bookkeeping and the new run are stored in one transaction
-//! ([`crate::store::Store::record_fire`]), and the run's idempotency key is the schedule id
+//! ([`crate::store::Storage::record_fire`]), and the run's idempotency key is the schedule id
 //! and the fire instant, so a crash or a restart never starts one fire twice. After each
 //! fire the schedule's retention rule deletes its expired runs and the datasets no stored
 //! run uses any more (the latest version of the name always stays).

@@ -23,12 +23,13 @@ use crate::drift::{self, DriftThresholds, RunSide};
 use crate::data::csv::{read_dataset, CsvOptions};
 use crate::data::{Dataset, Task};
 use crate::job::{DatasetMeta, EventKind, Run, RunOutcome, RunState};
-use crate::store::{Claim, Resumed, RunFilter, Store};
+use crate::store::{Claim, Resumed, RunFilter, Storage};
 use crate::sweep::{self, Flow, SweepError};
 
 /// What every handler and worker shares.
 pub struct Shared {
-    pub store: Store,
+    /// Every read and write of stored state (see [`crate::store`]).
+    pub store: Arc<dyn Storage>,
     pub config: Config,
     /// Runs sweeps.
     pub pool: rayon::ThreadPool,
@@ -59,7 +60,7 @@ pub struct Shared {
 }
 
 impl Shared {
-    pub fn with_clock(store: Store, config: Config, clock: Arc<dyn Clock>) -> Result<Arc<Shared>, String> {
+    pub fn with_clock(store: Arc<dyn Storage>, config: Config, clock: Arc<dyn Clock>) -> Result<Arc<Shared>, String> {
         let pool = rayon::ThreadPoolBuilder::new()
             .num_threads(config.cpu_threads)
             .thread_name(|i| format!("pollard-cpu-{i}"))
@@ -131,7 +132,7 @@ fn panic_message(p: &(dyn std::any::Any + Send)) -> String {
 }
 
 /// Parses a stored dataset for a run: its bytes, with the run's target and task.
-pub fn load_dataset(store: &Store, meta: &DatasetMeta, target: &str, task: Option<Task>, max_rows: usize, max_columns: usize) -> Result<Dataset, String> {
+pub fn load_dataset(store: &Arc<dyn Storage>, meta: &DatasetMeta, target: &str, task: Option<Task>, max_rows: usize, max_columns: usize) -> Result<Dataset, String> {
     let file = store.dataset_reader(&meta.id).map_err(|e| e.to_string())?.ok_or_else(|| format!("dataset {} has no stored bytes", meta.id))?;
     let mut options = CsvOptions::new(target);
     options.task = task;
@@ -169,7 +170,7 @@ pub async fn worker_loop(shared: Arc<Shared>) {
         let budget = shared.config.run_memory_bytes;
         let claimed = {
             let mut used = shared.memory_in_use.lock().unwrap();
-            let claim = shared.store.claim_next_within(shared.now(), |run| used.saturating_add(run.memory_estimate) <= budget);
+            let claim = shared.store.claim_next_within(shared.now(), &|run| used.saturating_add(run.memory_estimate) <= budget);
             if let Ok(Claim::Claimed(run)) = &claim {
                 *used += run.memory_estimate;
             }

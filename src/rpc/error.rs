@@ -60,8 +60,13 @@ pub fn panicked(message: &str) -> Status {
 }
 
 /// Storage failures are the server's, never the caller's.
+/// A store failure: UNAVAILABLE when the backend cannot be reached now (a retry may
+/// succeed), INTERNAL otherwise.
 pub fn store(e: StoreError) -> Status {
-    Status::internal(format!("storage: {e}"))
+    match e {
+        StoreError::Unavailable(_) => Status::unavailable(format!("storage: {e}")),
+        StoreError::Io(_) | StoreError::Corrupt(_) => Status::internal(format!("storage: {e}")),
+    }
 }
 
 pub fn not_found(what: &str, id: &str) -> Status {

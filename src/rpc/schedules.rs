@@ -90,7 +90,7 @@ impl pb::schedules_server::Schedules for Api {
     async fn pause_schedule(&self, request: Request<pb::PauseScheduleRequest>) -> Result<Response<pb::ScheduleInfo>, Status> {
         let id = request.into_inner().id;
         error::check_id("id", IdKind::Schedule, &id)?;
-        let s = self.shared.store.update_schedule(&id, |s| s.paused = true).map_err(error::store)?.ok_or_else(|| error::not_found("schedule", &id))?;
+        let s = self.shared.store.update_schedule(&id, &|s| s.paused = true).map_err(error::store)?.ok_or_else(|| error::not_found("schedule", &id))?;
         info!(schedule_id = %id, "schedule paused");
         Ok(Response::new(self.schedule_reply(&s)?))
     }
@@ -103,7 +103,7 @@ impl pb::schedules_server::Schedules for Api {
         let s = self
             .shared
             .store
-            .update_schedule(&id, |s| {
+            .update_schedule(&id, &|s| {
                 if s.paused {
                     s.paused = false;
                     s.considered_until = s.considered_until.max(now);
