@@ -3,7 +3,9 @@
 
 use std::collections::BTreeMap;
 
+use crate::data::{ColumnKind, Task};
 use crate::drift::{DriftReport, DriftThresholds};
+use crate::schedule::CatchUp;
 use crate::sweep::{Progress, SettingScore, SweepSpec, UnitResult};
 use crate::tree::Tree;
 
@@ -96,8 +98,8 @@ pub struct DatasetMeta {
     pub columns: Vec<ColumnMeta>,
     /// Default target column ("" when none was named).
     pub target: String,
-    /// "classify" / "regress" ("" without a target).
-    pub task: String,
+    /// The task of the default target; `None` without a target.
+    pub task: Option<Task>,
     pub created_at: i64,
     pub bytes: u64,
     /// Feature columns read as categories even when numeric.
@@ -107,8 +109,7 @@ pub struct DatasetMeta {
 #[derive(Clone, Debug, PartialEq)]
 pub struct ColumnMeta {
     pub name: String,
-    /// "numeric" or "categorical".
-    pub kind: String,
+    pub kind: ColumnKind,
     pub missing: u64,
     pub levels: u64,
 }
@@ -345,8 +346,8 @@ pub struct Schedule {
     /// Labels every run of the schedule carries.
     pub labels: BTreeMap<String, String>,
     pub retention: Retention,
-    /// "once" or "skip": what a start-up after missed fires does.
-    pub catch_up: String,
+    /// What a start-up after missed fires does.
+    pub catch_up: CatchUp,
     /// Skip a fire when the dataset has no version newer than the last run's.
     pub skip_unchanged: bool,
     pub drift: DriftThresholds,
@@ -439,7 +440,7 @@ mod tests {
     use super::*;
 
     fn run(id: &str, state: RunState, created_at: i64) -> Run {
-        let meta = DatasetMeta { id: "ds_a".into(), content: "a".into(), name: "a".into(), version: 1, rows: 3, columns: vec![], target: "y".into(), task: "classify".into(), created_at: 0, bytes: 0, categorical: vec![] };
+        let meta = DatasetMeta { id: "ds_a".into(), content: "a".into(), name: "a".into(), version: 1, rows: 3, columns: vec![], target: "y".into(), task: Some(Task::Classify), created_at: 0, bytes: 0, categorical: vec![] };
         Run { state, ..Run::queued(id.into(), &meta, "y".into(), SweepSpec::default(), created_at) }
     }
 

@@ -25,7 +25,7 @@ use crate::job::{Fire, FireOutcome, Run, Schedule};
 use crate::pb;
 use crate::rpc::convert;
 use crate::rpc::runs::prepare_run;
-use crate::schedule::{self, CatchUp, Cron, Due};
+use crate::schedule::{self, Cron, Due};
 use crate::store::{DeleteDataset, RunFilter, StoreError};
 use crate::worker::Shared;
 
@@ -66,7 +66,7 @@ pub async fn tick(shared: &Arc<Shared>) -> Option<i64> {
                 continue;
             }
         };
-        let catch_up = CatchUp::parse(&s.catch_up).unwrap_or(CatchUp::Once);
+        let catch_up = s.catch_up;
         let due = schedule::due(&cron, s.considered_until, now, grace, catch_up);
         if due.considered_until != s.considered_until {
             if let Err(e) = handle(shared, &s, &due, now).await {

@@ -9,7 +9,7 @@ use tonic::{Request, Response, Status, Streaming};
 
 use super::{convert, error, page_size, token, Api};
 use crate::data::csv::{read_dataset, read_frame, CsvOptions};
-use crate::data::{Column, Frame};
+use crate::data::{Column, ColumnKind, Frame};
 use crate::job::{ColumnMeta, DatasetMeta, IdKind};
 use crate::pb;
 use crate::store::{DeleteDataset, PutDataset};
@@ -144,10 +144,10 @@ fn summarize(frame: &Frame) -> Vec<ColumnMeta> {
         .features
         .iter()
         .map(|f| match &f.column {
-            Column::Numeric(v) => ColumnMeta { name: f.name.clone(), kind: "numeric".into(), missing: v.iter().filter(|x| x.is_nan()).count() as u64, levels: 0 },
+            Column::Numeric(v) => ColumnMeta { name: f.name.clone(), kind: ColumnKind::Numeric, missing: v.iter().filter(|x| x.is_nan()).count() as u64, levels: 0 },
             Column::Categorical { codes, levels } => ColumnMeta {
                 name: f.name.clone(),
-                kind: "categorical".into(),
+                kind: ColumnKind::Categorical,
                 missing: codes.iter().filter(|&&c| c == crate::data::MISSING_CODE).count() as u64,
                 levels: levels.len() as u64,
             },
@@ -170,10 +170,10 @@ impl Api {
             options.max_columns = Some(cfg.max_columns);
             let reader = || bytes.reader().map_err(error::staging);
             let (frame, task) = if target.is_empty() {
-                (read_frame(reader()?, &options).map_err(|e| error::data(&e))?, String::new())
+                (read_frame(reader()?, &options).map_err(|e| error::data(&e))?, None)
             } else {
                 let d = read_dataset(reader()?, &options).map_err(|e| error::data(&e))?;
-                let task = d.task().as_str().to_string();
+                let task = Some(d.task());
                 (d.frame, task)
             };
             let content = bytes.content();

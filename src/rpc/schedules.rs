@@ -57,7 +57,7 @@ impl pb::schedules_server::Schedules for Api {
             spec,
             labels: r.labels.into_iter().collect(),
             retention: convert::retention_from(r.retention.as_ref()),
-            catch_up: catch_up.as_str().to_string(),
+            catch_up,
             skip_unchanged: r.skip_unchanged,
             drift,
             paused: false,
