@@ -136,12 +136,13 @@ pub struct Run {
     /// A digest of the request that started the run (for idempotency key reuse); empty when
     /// not recorded.
     pub request_digest: String,
-    pub schedule_id: String,
+    /// The schedule that started the run; `None` for a run started by a call.
+    pub schedule_id: Option<String>,
     pub created_at: i64,
     pub started_at: Option<i64>,
     pub finished_at: Option<i64>,
-    /// Why the run failed or was cancelled.
-    pub reason: String,
+    /// Why the run failed or was cancelled; `None` while it runs and once it finished.
+    pub reason: Option<String>,
     pub settings: u32,
     pub units_total: u32,
     pub units_done: u32,
@@ -188,11 +189,11 @@ impl Run {
             idempotency_key: String::new(),
             owner: None,
             request_digest: String::new(),
-            schedule_id: String::new(),
+            schedule_id: None,
             created_at,
             started_at: None,
             finished_at: None,
-            reason: String::new(),
+            reason: None,
             settings: 0,
             units_total: 0,
             units_done: 0,
@@ -234,12 +235,12 @@ impl Run {
         self.units_total = units_total;
     }
 
-    /// Running (or queued, for cancel) → a terminal state.
-    pub fn end(&mut self, state: RunState, now: i64, reason: &str) {
+    /// Running (or queued, for cancel) → a terminal state, with why for a failure or a cancel.
+    pub fn end(&mut self, state: RunState, now: i64, reason: Option<&str>) {
         debug_assert!(state.is_terminal() && !self.state.is_terminal());
         self.state = state;
         self.finished_at = Some(now);
-        self.reason = reason.to_string();
+        self.reason = reason.map(str::to_string);
     }
 
     /// Takes the next event sequence number.
@@ -340,7 +341,7 @@ pub struct Schedule {
     /// Every run sweeps the latest version of this dataset name at its fire.
     pub dataset_name: String,
     /// When set, every run sweeps this one dataset instead of the latest version of the name.
-    pub dataset_id: String,
+    pub dataset_id: Option<String>,
     pub target: String,
     pub spec: SweepSpec,
     /// Labels every run of the schedule carries.
@@ -355,9 +356,9 @@ pub struct Schedule {
     pub created_at: i64,
     /// Every fire instant up to this one is handled (fired, skipped or passed over).
     pub considered_until: i64,
-    /// The last run the schedule started, and the dataset it used.
-    pub last_run_id: String,
-    pub last_dataset_id: String,
+    /// The last run the schedule started, and the dataset it used (`None` before its first run).
+    pub last_run_id: Option<String>,
+    pub last_dataset_id: Option<String>,
     /// Sequence number of the next fire record.
     pub next_fire_sequence: u64,
 }

@@ -11,7 +11,7 @@
 //! - [`reefer`] the demo's invented, SYNTHETIC reefer-container voyages (CSV text or a dataset)
 //!
 //! The shell:
-//! - [`store`]  the only module that names sled: datasets, runs, events, the queue, schedules
+//! - [`store`]  the `Storage` interface (datasets, runs, events, the queue, schedules) and its sled backend
 //! - [`access`] tokens and roles, the role each RPC needs, TLS, reloads, owner-only data
 //! - [`clock`]  the system clock, or a test clock moved by hand
 //! - [`scheduler`] the task that starts schedules' runs at their fire times

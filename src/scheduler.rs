@@ -137,16 +137,26 @@ async fn handle(shared: &Arc<Shared>, s: &Schedule, due: &Due, now: i64) -> Resu
 /// when the fire is recorded; looking first saves checking a template for nothing.
 async fn run_for(shared: &Arc<Shared>, s: &Schedule, at: i64, fire: &mut Fire) -> Result<Option<Run>, StoreError> {
     let store = &shared.store;
-    if let Some(busy) = store.run(&s.last_run_id)?.filter(|r| r.state.is_active()) {
+    let last = match &s.last_run_id {
+        Some(id) => store.run(id)?,
+        None => None,
+    };
+    if let Some(busy) = last.filter(|r| r.state.is_active()) {
         fire.skip_busy(busy);
         return Ok(None);
     }
-    let latest = if s.dataset_id.is_empty() { store.latest_dataset(&s.dataset_name)? } else { store.dataset(&s.dataset_id)? };
+    let latest = match &s.dataset_id {
+        None => store.latest_dataset(&s.dataset_name)?,
+        Some(id) => store.dataset(id)?,
+    };
     let Some(latest) = latest else {
-        fire.fail(if s.dataset_id.is_empty() { format!("no dataset named '{}' is stored", s.dataset_name) } else { format!("dataset {} is no longer stored", s.dataset_id) });
+        fire.fail(match &s.dataset_id {
+            None => format!("no dataset named '{}' is stored", s.dataset_name),
+            Some(id) => format!("dataset {id} is no longer stored"),
+        });
         return Ok(None);
     };
-    if s.skip_unchanged && latest.id == s.last_dataset_id {
+    if s.skip_unchanged && s.last_dataset_id.as_ref() == Some(&latest.id) {
         fire.outcome = FireOutcome::SkippedUnchanged;
         fire.detail = format!("dataset '{}' has no version newer than {} (version {})", s.dataset_name, latest.id, latest.version);
         return Ok(None);
@@ -158,7 +168,7 @@ async fn run_for(shared: &Arc<Shared>, s: &Schedule, at: i64, fire: &mut Fire) -
         idempotency_key: format!("{}@{at}", s.id),
         labels: s.labels.clone().into_iter().collect(),
     };
-    match prepare_run(shared, request, s.id.clone()).await {
+    match prepare_run(shared, request, Some(s.id.clone())).await {
         Ok(r) => Ok(Some(r)),
         Err(status) => {
             fire.fail(format!("the template no longer fits dataset {}: {}", latest.id, status.message()));

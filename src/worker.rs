@@ -240,7 +240,7 @@ pub async fn execute(shared: &Arc<Shared>, run: Run) {
     let now = shared.now();
     let ended = match end {
         Ending::Finished(outcome) => {
-            let drift = if schedule_id.is_empty() { None } else { drift_report(shared, &id, &schedule_id, &outcome) };
+            let drift = schedule_id.and_then(|schedule_id| drift_report(shared, &id, &schedule_id, &outcome));
             shared.store.finish_run(&id, &outcome, drift, now).map(|_| ())
         }
         Ending::Failed(reason) => {

@@ -89,7 +89,7 @@ pub fn check_labels<'a>(cfg: &Config, labels: impl IntoIterator<Item = (&'a Stri
 }
 
 /// A checked, queued run for a request, not yet stored (shared by StartRun and schedules).
-pub async fn prepare_run(shared: &Arc<Shared>, r: pb::StartRunRequest, schedule_id: String) -> Result<Run, Status> {
+pub async fn prepare_run(shared: &Arc<Shared>, r: pb::StartRunRequest, schedule_id: Option<String>) -> Result<Run, Status> {
     check_labels(&shared.config, &r.labels)?;
     let meta = resolve_dataset(shared, &r.dataset_id, &r.dataset_name)?;
     let (spec, target, estimate) = check_sweep(shared, &meta, r.spec.unwrap_or_default()).await?;
@@ -142,7 +142,7 @@ impl Api {
                 return same(run);
             }
         }
-        let mut run = prepare_run(&self.shared, r, String::new()).await?;
+        let mut run = prepare_run(&self.shared, r, None).await?;
         run.owner = caller.name.clone();
         run.request_digest = digest.clone();
         let dataset_id = run.dataset_id.clone();

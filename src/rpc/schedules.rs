@@ -52,7 +52,7 @@ impl pb::schedules_server::Schedules for Api {
             cron: cron.expr().to_string(),
             time_zone,
             dataset_name: if r.dataset_id.is_empty() { r.dataset_name } else { latest.name.clone() },
-            dataset_id: r.dataset_id,
+            dataset_id: (!r.dataset_id.is_empty()).then_some(r.dataset_id),
             target,
             spec,
             labels: r.labels.into_iter().collect(),
@@ -63,8 +63,8 @@ impl pb::schedules_server::Schedules for Api {
             paused: false,
             created_at: now,
             considered_until: now,
-            last_run_id: String::new(),
-            last_dataset_id: String::new(),
+            last_run_id: None,
+            last_dataset_id: None,
             next_fire_sequence: 1,
         };
         if !self.shared.store.create_schedule(&schedule).map_err(error::store)? {

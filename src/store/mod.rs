@@ -139,7 +139,7 @@ impl RunFilter {
         self.dataset_name.as_ref().is_none_or(|n| *n == run.dataset_name)
             && self.state.is_none_or(|s| s == run.state)
             && self.label.as_ref().is_none_or(|(k, v)| run.labels.get(k) == Some(v))
-            && self.schedule_id.as_ref().is_none_or(|s| *s == run.schedule_id)
+            && self.schedule_id.as_ref().is_none_or(|s| run.schedule_id.as_ref() == Some(s))
             && self.created_from.is_none_or(|t| run.created_at >= t)
             && self.created_to.is_none_or(|t| run.created_at < t)
             && (!self.score_fell || run.drift.as_ref().is_some_and(|d| d.score_fell))

@@ -90,6 +90,11 @@ fn parse_name<T>(what: &str, field: &str, text: &str, parse: impl Fn(&str) -> Op
     parse(text).ok_or_else(|| corrupt(what, format!("{field} '{text}' is not known to this build")))
 }
 
+/// A stored string where "" stands for none (the record formats have always written it so).
+fn some(text: String) -> Option<String> {
+    Some(text).filter(|t| !t.is_empty())
+}
+
 fn to_usize(what: &str, field: &str, x: u64) -> Result<usize, StoreError> {
     usize::try_from(x).map_err(|_| corrupt(what, format!("{field} {x} does not fit this machine")))
 }
@@ -357,11 +362,11 @@ impl From<&Run> for RunRecord {
             idempotency_key: r.idempotency_key.clone(),
             owner: r.owner.clone(),
             request_digest: r.request_digest.clone(),
-            schedule_id: r.schedule_id.clone(),
+            schedule_id: r.schedule_id.clone().unwrap_or_default(),
             created_at: r.created_at,
             started_at: r.started_at,
             finished_at: r.finished_at,
-            reason: r.reason.clone(),
+            reason: r.reason.clone().unwrap_or_default(),
             settings: r.settings,
             units_total: r.units_total,
             units_done: r.units_done,
@@ -390,11 +395,12 @@ impl TryFrom<RunRecord> for Run {
             idempotency_key: r.idempotency_key,
             owner: r.owner,
             request_digest: r.request_digest,
-            schedule_id: r.schedule_id,
+            // "" stands for none in the stored record, as it always did.
+            schedule_id: some(r.schedule_id),
             created_at: r.created_at,
             started_at: r.started_at,
             finished_at: r.finished_at,
-            reason: r.reason,
+            reason: some(r.reason),
             settings: r.settings,
             units_total: r.units_total,
             units_done: r.units_done,
@@ -524,7 +530,7 @@ impl From<&Schedule> for ScheduleRecord {
             cron: s.cron.clone(),
             time_zone: s.time_zone.clone(),
             dataset_name: s.dataset_name.clone(),
-            dataset_id: s.dataset_id.clone(),
+            dataset_id: s.dataset_id.clone().unwrap_or_default(),
             target: s.target.clone(),
             spec: SpecRecord::from(&s.spec),
             labels: s.labels.clone(),
@@ -537,8 +543,8 @@ impl From<&Schedule> for ScheduleRecord {
             paused: s.paused,
             created_at: s.created_at,
             considered_until: s.considered_until,
-            last_run_id: s.last_run_id.clone(),
-            last_dataset_id: s.last_dataset_id.clone(),
+            last_run_id: s.last_run_id.clone().unwrap_or_default(),
+            last_dataset_id: s.last_dataset_id.clone().unwrap_or_default(),
             next_fire_sequence: s.next_fire_sequence,
         }
     }
@@ -554,7 +560,8 @@ impl TryFrom<ScheduleRecord> for Schedule {
             cron: r.cron,
             time_zone: r.time_zone,
             dataset_name: r.dataset_name,
-            dataset_id: r.dataset_id,
+            // "" stands for none in stored schedules, as it always did.
+            dataset_id: some(r.dataset_id),
             target: r.target,
             labels: r.labels,
             retention: Retention { keep_last: r.keep_last, keep_days: r.keep_days },
@@ -565,8 +572,8 @@ impl TryFrom<ScheduleRecord> for Schedule {
             paused: r.paused,
             created_at: r.created_at,
             considered_until: r.considered_until,
-            last_run_id: r.last_run_id,
-            last_dataset_id: r.last_dataset_id,
+            last_run_id: some(r.last_run_id),
+            last_dataset_id: some(r.last_dataset_id),
             next_fire_sequence: r.next_fire_sequence,
         })
     }

@@ -184,7 +184,7 @@ impl Tx<'_> {
             self.remove(QUEUE, &run.id)?;
         }
         let event = self.append(run, kind, now)?;
-        run.end(state, now, reason);
+        run.end(state, now, Some(reason));
         self.put_run(run)?;
         self.release(&run.dataset_id, &run.id)?;
         Ok(event)
@@ -839,7 +839,7 @@ impl Storage for SledStore {
                 tx.insert(RESULTS, run_id, bytes.clone())?;
                 run.drift = drift.clone();
                 let event = tx.append(&mut run, EventKind::Finished { picked: outcome.picked, best: outcome.best }, now)?;
-                run.end(RunState::Finished, now, "");
+                run.end(RunState::Finished, now, None);
                 tx.put_run(&run)?;
                 tx.release(&run.dataset_id, run_id)?;
                 Ok(Some(event))
@@ -1079,14 +1079,17 @@ impl Storage for SledStore {
                 let mut fire = draft.clone();
                 let mut created = None;
                 if let Some(run) = run {
-                    // (No run has the empty id, so a schedule that never ran is never busy.)
-                    if let Some(busy) = tx.run(&s.last_run_id)?.filter(|r| r.state.is_active()) {
+                    let last = match &s.last_run_id {
+                        Some(id) => tx.run(id)?,
+                        None => None,
+                    };
+                    if let Some(busy) = last.filter(|r| r.state.is_active()) {
                         fire.skip_busy(busy);
                     } else {
                         match tx.insert_run(run, false)? {
                             CreateRun::Created(r) => {
-                                s.last_run_id = r.id.clone();
-                                s.last_dataset_id = r.dataset_id.clone();
+                                s.last_run_id = Some(r.id.clone());
+                                s.last_dataset_id = Some(r.dataset_id.clone());
                                 fire.run_id = r.id.clone();
                                 created = Some(r);
                             }

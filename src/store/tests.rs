@@ -176,11 +176,11 @@ fn run_record_round_trips_every_spec_field() {
         let mut run = Run::queued(format!("run_{i}"), &meta("ds_1", "reefer", 10, 0), "spoiled".into(), spec, 1_700_000_000_000);
         run.labels.insert("team".into(), "cold chain".into());
         run.idempotency_key = "k-1".into();
-        run.schedule_id = "nightly".into();
+        run.schedule_id = Some("nightly".into());
         run.state = RunState::Cancelled;
         run.started_at = Some(1);
         run.finished_at = Some(i64::MIN);
-        run.reason = "stopped by \"ops\"\n".into();
+        run.reason = Some("stopped by \"ops\"\n".into());
         (run.settings, run.units_total, run.units_done, run.next_sequence) = (1, 2, 3, u64::MAX);
         assert_eq!(records::decode_run(&records::encode_run(&run)).unwrap(), run);
     }
@@ -552,7 +552,7 @@ fn resume_counts_crash_strikes() {
     assert!(matches!(store.resume("run_0001", 3).unwrap(), Resumed::GaveUp(_)));
     let failed = store.run("run_0001").unwrap().unwrap();
     assert_eq!(failed.state, RunState::Failed);
-    assert!(failed.reason.contains("3 times"));
+    assert!(failed.reason.as_deref().is_some_and(|r| r.contains("3 times")));
     assert_eq!(store.resume("run_0001", 4).unwrap(), Resumed::NotRunning);
     for _ in 0..5 {
         assert!(matches!(store.resume("run_0002", 3).unwrap(), Resumed::Again(_)));
@@ -786,7 +786,7 @@ fn step(store: &dyn Storage, model: &mut Model, op: &Op, now: i64) {
             let o = outcome(None);
             let want = if model.runs.get(&id).is_some_and(|r| r.state == RunState::Running) {
                 let e = model.append(&id, EventKind::Finished { picked: 1, best: 0 }, now);
-                model.runs.get_mut(&id).unwrap().end(RunState::Finished, now, "");
+                model.runs.get_mut(&id).unwrap().end(RunState::Finished, now, None);
                 model.outcomes.insert(id.clone(), o.clone());
                 Some(e)
             } else {
@@ -802,7 +802,7 @@ fn step(store: &dyn Storage, model: &mut Model, op: &Op, now: i64) {
                 let kind = if *cancel { EventKind::Cancelled(reason.into()) } else { EventKind::Failed(reason.into()) };
                 let e = model.append(&id, kind, now);
                 let r = model.runs.get_mut(&id).unwrap();
-                r.end(state, now, reason);
+                r.end(state, now, Some(reason));
                 Some((r.clone(), e))
             } else {
                 None
@@ -1113,15 +1113,15 @@ fn fixture_store_of_017cda4_decodes() {
     assert_eq!(first.idempotency_key, "fx-iris");
     assert_eq!(first.labels.get("fixture").map(String::as_str), Some("classify"));
     assert_eq!(first.spec.seed, 7);
-    assert_eq!((first.reason.as_str(), first.schedule_id.as_str(), first.owner.as_deref()), ("", "", None));
+    assert_eq!((first.reason.as_deref(), first.schedule_id.as_deref(), first.owner.as_deref()), (None, None, None));
     let no_refit = by_id("run_01a23abf22527418a966d4303cbb7b23");
     assert!(!no_refit.spec.fit_final);
     assert_eq!(no_refit.spec.metric, Some(Metric::Rmse));
     let cancelled = by_id("run_01a23abf461674ecac721ef178c7c4d4");
-    assert_eq!((cancelled.reason.as_str(), cancelled.units_done, cancelled.units_total), ("cancelled by request", 14, 50));
+    assert_eq!((cancelled.reason.as_deref(), cancelled.units_done, cancelled.units_total), (Some("cancelled by request"), 14, 50));
     assert!(matches!(store.events(&cancelled.id, 0).unwrap().last().unwrap().kind, EventKind::Cancelled(ref r) if r == "cancelled by request"));
     for r in &runs[..3] {
-        assert_eq!(r.schedule_id, FIXTURE_SCHEDULE);
+        assert_eq!(r.schedule_id.as_deref(), Some(FIXTURE_SCHEDULE));
     }
     // The third scheduled run (on iris v3, two classes) moved max_depth from 2 to 1.
     let drift = runs[0].drift.as_ref().unwrap();
@@ -1135,9 +1135,9 @@ fn fixture_store_of_017cda4_decodes() {
     // The schedule and its fires.
     let s = store.schedule(FIXTURE_SCHEDULE).unwrap().unwrap();
     assert_eq!((s.name.as_str(), s.cron.as_str(), s.time_zone.as_str(), s.dataset_name.as_str()), ("fixture-nightly", "* * * * *", "UTC", "iris"));
-    assert_eq!((s.dataset_id.as_str(), s.catch_up, s.paused, s.skip_unchanged), ("", CatchUp::Skip, false, false));
+    assert_eq!((s.dataset_id.as_deref(), s.catch_up, s.paused, s.skip_unchanged), (None, CatchUp::Skip, false, false));
     assert_eq!(s.retention, Retention { keep_last: Some(5), keep_days: None });
-    assert_eq!((s.last_run_id.as_str(), s.next_fire_sequence), (runs[0].id.as_str(), 4));
+    assert_eq!((s.last_run_id.as_deref(), s.last_dataset_id.as_deref(), s.next_fire_sequence), (Some(runs[0].id.as_str()), Some(runs[0].dataset_id.as_str()), 4));
     assert_eq!(s.labels.get("fixture").map(String::as_str), Some("schedule"));
     assert_eq!(store.all_schedules().unwrap().len(), 1);
     let (fires, more) = store.fires(FIXTURE_SCHEDULE, None, 10).unwrap();

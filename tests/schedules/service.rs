@@ -128,7 +128,7 @@ async fn a_busy_previous_run_skips_the_fire_and_an_outage_is_caught_up_once() {
     assert_eq!(outcome(&f[1]), pb::FireOutcome::SkippedBusy);
     assert_eq!(f[1].run_id, f[0].run_id);
     let first = api.shared.store.run(&f[0].run_id).unwrap().unwrap();
-    assert_eq!((first.state, first.schedule_id.as_str()), (RunState::Queued, s.id.as_str()));
+    assert_eq!((first.state, first.schedule_id.as_deref()), (RunState::Queued, Some(s.id.as_str())));
     assert_eq!(first.created_at, ms("2027-05-01T03:00:00Z"), "the run is stamped by the server's clock");
 
     // An outage from just after day 2 to day 7 05:00: days 3, 4, 5, 6 and 7 (07 03:00 is two
@@ -237,7 +237,7 @@ async fn retention_deletes_exactly_the_expired_runs_and_no_dataset_in_use() {
         .unwrap()
         .into_inner();
     // A run outside the schedule on version 1: it keeps version 1 alive.
-    let manual = pollard::rpc::runs::prepare_run(&api.shared, pb::StartRunRequest { dataset_id: v1.id.clone(), spec: Some(template()), ..Default::default() }, String::new()).await.unwrap();
+    let manual = pollard::rpc::runs::prepare_run(&api.shared, pb::StartRunRequest { dataset_id: v1.id.clone(), spec: Some(template()), ..Default::default() }, None).await.unwrap();
     api.shared.store.create_run(manual.clone()).unwrap();
     cancel(&api, &manual.id);
     let mut versions = vec![v1.clone()];
