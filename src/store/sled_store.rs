@@ -39,7 +39,6 @@
 //! its delete transaction commits, both under [`files::Files::lock`]: a stored record always
 //! has its file. Files without a record (a crash between the two) are removed at open; a
 //! record whose file is missing anyway is a [`StoreError::Corrupt`] when its bytes are read.
-//!
 
 use std::io::Write as _;
 use std::path::Path;
