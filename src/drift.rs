@@ -55,10 +55,45 @@ pub struct RunSide<'a> {
     pub leaves: f64,
 }
 
+/// A setting's knob, as drift reports name it: a limit, the criterion or the class weight.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Hash)]
+pub enum Knob {
+    Criterion,
+    ClassWeight,
+    MaxDepth,
+    MinSplitRows,
+    MinLeafRows,
+    MaxLeaves,
+    MinGain,
+    PruneAlpha,
+}
+
+impl Knob {
+    /// In the order reports list them.
+    pub const ALL: [Knob; 8] = [Knob::Criterion, Knob::ClassWeight, Knob::MaxDepth, Knob::MinSplitRows, Knob::MinLeafRows, Knob::MaxLeaves, Knob::MinGain, Knob::PruneAlpha];
+
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Knob::Criterion => "criterion",
+            Knob::ClassWeight => "class_weight",
+            Knob::MaxDepth => "max_depth",
+            Knob::MinSplitRows => "min_split_rows",
+            Knob::MinLeafRows => "min_leaf_rows",
+            Knob::MaxLeaves => "max_leaves",
+            Knob::MinGain => "min_gain",
+            Knob::PruneAlpha => "prune_alpha",
+        }
+    }
+
+    pub fn parse(text: &str) -> Option<Knob> {
+        Knob::ALL.into_iter().find(|k| k.as_str() == text)
+    }
+}
+
 /// A limit (or criterion, or class weight) whose picked value changed.
 #[derive(Clone, Debug, PartialEq)]
 pub struct LimitMove {
-    pub limit: String,
+    pub limit: Knob,
     pub from: String,
     pub to: String,
 }
@@ -101,18 +136,18 @@ impl DriftReport {
 }
 
 /// The values of a setting by name, in the order reports list them.
-pub fn setting_values(o: &FitOptions) -> Vec<(&'static str, String)> {
+pub fn setting_values(o: &FitOptions) -> Vec<(Knob, String)> {
     let l = &o.limits;
     let opt = |v: Option<u32>| v.map_or("none".to_string(), |v| v.to_string());
     vec![
-        ("criterion", o.criterion.map_or("default".to_string(), |c| c.as_str().to_string())),
-        ("class_weight", o.class_weight.as_str().to_string()),
-        ("max_depth", opt(l.max_depth)),
-        ("min_split_rows", l.min_split_rows.to_string()),
-        ("min_leaf_rows", l.min_leaf_rows.to_string()),
-        ("max_leaves", opt(l.max_leaves)),
-        ("min_gain", l.min_gain.to_string()),
-        ("prune_alpha", l.prune_alpha.to_string()),
+        (Knob::Criterion, o.criterion.map_or("default".to_string(), |c| c.as_str().to_string())),
+        (Knob::ClassWeight, o.class_weight.as_str().to_string()),
+        (Knob::MaxDepth, opt(l.max_depth)),
+        (Knob::MinSplitRows, l.min_split_rows.to_string()),
+        (Knob::MinLeafRows, l.min_leaf_rows.to_string()),
+        (Knob::MaxLeaves, opt(l.max_leaves)),
+        (Knob::MinGain, l.min_gain.to_string()),
+        (Knob::PruneAlpha, l.prune_alpha.to_string()),
     ]
 }
 
@@ -133,7 +168,7 @@ pub fn compare(previous: &RunSide, current: &RunSide, thresholds: DriftThreshold
         .into_iter()
         .zip(after)
         .filter(|(b, a)| b.1 != a.1)
-        .map(|(b, a)| LimitMove { limit: b.0.to_string(), from: b.1, to: a.1 })
+        .map(|(b, a)| LimitMove { limit: b.0, from: b.1, to: a.1 })
         .collect();
     let same_metric = previous.metric == current.metric;
     let (p, c) = (previous.picked.valid_mean, current.picked.valid_mean);
@@ -199,7 +234,7 @@ mod tests {
         let b = score(Some(3), &[0.9, 0.8, 0.9, 0.8]);
         let r = compare(&side("a", &a, Metric::Accuracy, 2.0), &side("b", &b, Metric::Accuracy, 5.0), DriftThresholds::default());
         assert!(r.picked_changed);
-        assert_eq!(r.moved, vec![LimitMove { limit: "max_depth".into(), from: "1".into(), to: "3".into() }]);
+        assert_eq!(r.moved, vec![LimitMove { limit: Knob::MaxDepth, from: "1".into(), to: "3".into() }]);
         // Worked by hand: means 0.975 and 0.85, delta −0.125. Sample variances: (3·0.025² +
         // 0.075²)/3 = 0.0025 and 4·0.05²/3 = 0.0033…; se² = 0.0025/4 + 0.003333…/4 = 0.0014583…
         assert!((r.score_delta + 0.125).abs() < 1e-12);

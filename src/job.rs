@@ -3,7 +3,9 @@
 
 use std::collections::BTreeMap;
 
+use crate::data::{ColumnKind, Task};
 use crate::drift::{DriftReport, DriftThresholds};
+use crate::schedule::CatchUp;
 use crate::sweep::{Progress, SettingScore, SweepSpec, UnitResult};
 use crate::tree::Tree;
 
@@ -96,8 +98,8 @@ pub struct DatasetMeta {
     pub columns: Vec<ColumnMeta>,
     /// Default target column ("" when none was named).
     pub target: String,
-    /// "classify" / "regress" ("" without a target).
-    pub task: String,
+    /// The task of the default target; `None` without a target.
+    pub task: Option<Task>,
     pub created_at: i64,
     pub bytes: u64,
     /// Feature columns read as categories even when numeric.
@@ -107,8 +109,7 @@ pub struct DatasetMeta {
 #[derive(Clone, Debug, PartialEq)]
 pub struct ColumnMeta {
     pub name: String,
-    /// "numeric" or "categorical".
-    pub kind: String,
+    pub kind: ColumnKind,
     pub missing: u64,
     pub levels: u64,
 }
@@ -135,12 +136,13 @@ pub struct Run {
     /// A digest of the request that started the run (for idempotency key reuse); empty when
     /// not recorded.
     pub request_digest: String,
-    pub schedule_id: String,
+    /// The schedule that started the run; `None` for a run started by a call.
+    pub schedule_id: Option<String>,
     pub created_at: i64,
     pub started_at: Option<i64>,
     pub finished_at: Option<i64>,
-    /// Why the run failed or was cancelled.
-    pub reason: String,
+    /// Why the run failed or was cancelled; `None` while it runs and once it finished.
+    pub reason: Option<String>,
     pub settings: u32,
     pub units_total: u32,
     pub units_done: u32,
@@ -187,11 +189,11 @@ impl Run {
             idempotency_key: String::new(),
             owner: None,
             request_digest: String::new(),
-            schedule_id: String::new(),
+            schedule_id: None,
             created_at,
             started_at: None,
             finished_at: None,
-            reason: String::new(),
+            reason: None,
             settings: 0,
             units_total: 0,
             units_done: 0,
@@ -233,12 +235,12 @@ impl Run {
         self.units_total = units_total;
     }
 
-    /// Running (or queued, for cancel) → a terminal state.
-    pub fn end(&mut self, state: RunState, now: i64, reason: &str) {
+    /// Running (or queued, for cancel) → a terminal state, with why for a failure or a cancel.
+    pub fn end(&mut self, state: RunState, now: i64, reason: Option<&str>) {
         debug_assert!(state.is_terminal() && !self.state.is_terminal());
         self.state = state;
         self.finished_at = Some(now);
-        self.reason = reason.to_string();
+        self.reason = reason.map(str::to_string);
     }
 
     /// Takes the next event sequence number.
@@ -339,14 +341,14 @@ pub struct Schedule {
     /// Every run sweeps the latest version of this dataset name at its fire.
     pub dataset_name: String,
     /// When set, every run sweeps this one dataset instead of the latest version of the name.
-    pub dataset_id: String,
+    pub dataset_id: Option<String>,
     pub target: String,
     pub spec: SweepSpec,
     /// Labels every run of the schedule carries.
     pub labels: BTreeMap<String, String>,
     pub retention: Retention,
-    /// "once" or "skip": what a start-up after missed fires does.
-    pub catch_up: String,
+    /// What a start-up after missed fires does.
+    pub catch_up: CatchUp,
     /// Skip a fire when the dataset has no version newer than the last run's.
     pub skip_unchanged: bool,
     pub drift: DriftThresholds,
@@ -354,9 +356,9 @@ pub struct Schedule {
     pub created_at: i64,
     /// Every fire instant up to this one is handled (fired, skipped or passed over).
     pub considered_until: i64,
-    /// The last run the schedule started, and the dataset it used.
-    pub last_run_id: String,
-    pub last_dataset_id: String,
+    /// The last run the schedule started, and the dataset it used (`None` before its first run).
+    pub last_run_id: Option<String>,
+    pub last_dataset_id: Option<String>,
     /// Sequence number of the next fire record.
     pub next_fire_sequence: u64,
 }
@@ -439,7 +441,7 @@ mod tests {
     use super::*;
 
     fn run(id: &str, state: RunState, created_at: i64) -> Run {
-        let meta = DatasetMeta { id: "ds_a".into(), content: "a".into(), name: "a".into(), version: 1, rows: 3, columns: vec![], target: "y".into(), task: "classify".into(), created_at: 0, bytes: 0, categorical: vec![] };
+        let meta = DatasetMeta { id: "ds_a".into(), content: "a".into(), name: "a".into(), version: 1, rows: 3, columns: vec![], target: "y".into(), task: Some(Task::Classify), created_at: 0, bytes: 0, categorical: vec![] };
         Run { state, ..Run::queued(id.into(), &meta, "y".into(), SweepSpec::default(), created_at) }
     }
 

@@ -12,7 +12,7 @@
 //! - [`onnx_pb`] prost messages of the vendored ONNX schema, which [`export::onnx`] builds
 //!
 //! The shell:
-//! - [`store`]  the only module that names sled: datasets, runs, events, the queue, schedules
+//! - [`store`]  the `Storage` interface (datasets, runs, events, the queue, schedules) and its sled backend
 //! - [`service`] the operations with core types (datasets, runs, models, schedules), one
 //!   error enum; `rpc` converts and calls them, the scheduler calls them directly
 //! - [`access`] tokens and roles, the role each RPC needs, TLS, reloads, owner-only data

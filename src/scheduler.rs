@@ -11,7 +11,7 @@
 //!   same admission as StartRun ([`Service::admit_run`]) and queued; the run records the schedule's id.
 //!
 //! The fire record, the schedule's bookkeeping and the new run are stored in one transaction
-//! ([`crate::store::Store::record_fire`]), and the run's idempotency key is the schedule id
+//! ([`crate::store::Storage::record_fire`]), and the run's idempotency key is the schedule id
 //! and the fire instant, so a crash or a restart never starts one fire twice. After each
 //! fire the schedule's retention rule deletes its expired runs and the datasets no stored
 //! run uses any more (the latest version of the name always stays).
@@ -22,7 +22,7 @@ use std::sync::Arc;
 use tracing::{error, info, warn};
 
 use crate::job::{Fire, FireOutcome, Run, Schedule};
-use crate::schedule::{self, CatchUp, Cron, Due};
+use crate::schedule::{self, Cron, Due};
 use crate::service::{DatasetRef, RunRequest, Service as Shared};
 use crate::store::{DeleteDataset, RunFilter, StoreError};
 
@@ -63,7 +63,7 @@ pub async fn tick(shared: &Arc<Shared>) -> Option<i64> {
                 continue;
             }
         };
-        let catch_up = CatchUp::parse(&s.catch_up).unwrap_or(CatchUp::Once);
+        let catch_up = s.catch_up;
         let due = schedule::due(&cron, s.considered_until, now, grace, catch_up);
         if due.considered_until != s.considered_until {
             if let Err(e) = handle(shared, &s, &due, now).await {
@@ -134,16 +134,26 @@ async fn handle(shared: &Arc<Shared>, s: &Schedule, due: &Due, now: i64) -> Resu
 /// when the fire is recorded; looking first saves checking a template for nothing.
 async fn run_for(shared: &Arc<Shared>, s: &Schedule, at: i64, fire: &mut Fire) -> Result<Option<Run>, StoreError> {
     let store = &shared.store;
-    if let Some(busy) = store.run(&s.last_run_id)?.filter(|r| r.state.is_active()) {
+    let last = match &s.last_run_id {
+        Some(id) => store.run(id)?,
+        None => None,
+    };
+    if let Some(busy) = last.filter(|r| r.state.is_active()) {
         fire.skip_busy(busy);
         return Ok(None);
     }
-    let latest = if s.dataset_id.is_empty() { store.latest_dataset(&s.dataset_name)? } else { store.dataset(&s.dataset_id)? };
+    let latest = match &s.dataset_id {
+        None => store.latest_dataset(&s.dataset_name)?,
+        Some(id) => store.dataset(id)?,
+    };
     let Some(latest) = latest else {
-        fire.fail(if s.dataset_id.is_empty() { format!("no dataset named '{}' is stored", s.dataset_name) } else { format!("dataset {} is no longer stored", s.dataset_id) });
+        fire.fail(match &s.dataset_id {
+            None => format!("no dataset named '{}' is stored", s.dataset_name),
+            Some(id) => format!("dataset {id} is no longer stored"),
+        });
         return Ok(None);
     };
-    if s.skip_unchanged && latest.id == s.last_dataset_id {
+    if s.skip_unchanged && s.last_dataset_id.as_ref() == Some(&latest.id) {
         fire.outcome = FireOutcome::SkippedUnchanged;
         fire.detail = format!("dataset '{}' has no version newer than {} (version {})", s.dataset_name, latest.id, latest.version);
         return Ok(None);
@@ -157,7 +167,7 @@ async fn run_for(shared: &Arc<Shared>, s: &Schedule, at: i64, fire: &mut Fire) -
         labels: s.labels.clone(),
     };
     // The same admission as StartRun's.
-    match shared.admit_run(request, s.id.clone()).await {
+    match shared.admit_run(request, Some(s.id.clone())).await {
         Ok(r) => Ok(Some(r)),
         Err(e) => {
             fire.fail(format!("the template no longer fits dataset {}: {e}", latest.id));

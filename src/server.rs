@@ -16,7 +16,7 @@ use crate::scheduler;
 use crate::pb;
 use crate::rpc::limits::GuardLayer;
 use crate::rpc::Api;
-use crate::store::Store;
+use crate::store::Storage;
 use crate::worker::{self, Shared};
 
 /// The gRPC services the server registers, by full name (also what health checks name).
@@ -25,12 +25,12 @@ pub const SERVICES: [&str; 4] = ["pollard.v1.Datasets", "pollard.v1.Runs", "poll
 /// Serves on `listener` until `shutdown` completes, then stops taking calls, lets running
 /// runs stop at their next unit (their finished units stay stored, so they resume at the
 /// next start), and flushes the store.
-pub async fn run(listener: TcpListener, config: Config, store: Store, shutdown: impl Future<Output = ()> + Send + 'static) -> Result<(), String> {
+pub async fn run(listener: TcpListener, config: Config, store: Arc<dyn Storage>, shutdown: impl Future<Output = ()> + Send + 'static) -> Result<(), String> {
     run_with_clock(listener, config, store, Arc::new(SystemClock), shutdown).await
 }
 
 /// [`run`] with a given clock (tests move a [`crate::clock::TestClock`] by hand).
-pub async fn run_with_clock(listener: TcpListener, config: Config, store: Store, clock: Arc<dyn Clock>, shutdown: impl Future<Output = ()> + Send + 'static) -> Result<(), String> {
+pub async fn run_with_clock(listener: TcpListener, config: Config, store: Arc<dyn Storage>, clock: Arc<dyn Clock>, shutdown: impl Future<Output = ()> + Send + 'static) -> Result<(), String> {
     let addr = listener.local_addr().map_err(|e| e.to_string())?;
     let mut access = Access::load(&config.access, addr)?;
     let shared = Shared::with_clock(store, config, clock)?;

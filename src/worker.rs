@@ -51,7 +51,7 @@ pub async fn worker_loop(shared: Arc<Shared>) {
         let budget = shared.config.run_memory_bytes;
         let claimed = {
             let mut used = shared.memory_in_use.lock().unwrap();
-            let claim = shared.store.claim_next_within(shared.now(), |run| used.saturating_add(run.memory_estimate) <= budget);
+            let claim = shared.store.claim_next_within(shared.now(), &|run| used.saturating_add(run.memory_estimate) <= budget);
             if let Ok(Claim::Claimed(run)) = &claim {
                 *used += run.memory_estimate;
             }
@@ -121,7 +121,7 @@ pub async fn execute(shared: &Arc<Shared>, run: Run) {
     let now = shared.now();
     let ended = match end {
         Ending::Finished(outcome) => {
-            let drift = if schedule_id.is_empty() { None } else { drift_report(shared, &id, &schedule_id, &outcome) };
+            let drift = schedule_id.and_then(|schedule_id| drift_report(shared, &id, &schedule_id, &outcome));
             shared.store.finish_run(&id, &outcome, drift, now).map(|_| ())
         }
         Ending::Failed(reason) => {
@@ -156,7 +156,7 @@ fn execute_blocking(shared: &Shared, run: &Run, cancel: &AtomicBool) -> Ending {
         Err(e) => return Ending::Failed(e.to_string()),
     };
     // Through the frame cache: the run's admission parsed it already, most of the time.
-    let data = match shared.frames.load(&shared.store, &meta, &run.target, run.spec.task, cfg.max_rows, cfg.max_columns) {
+    let data = match shared.frames.load(shared.store.as_ref(), &meta, &run.target, run.spec.task, cfg.max_rows, cfg.max_columns) {
         Ok(d) => d,
         Err(ServiceError::Storage(e)) => return Ending::Failed(e.to_string()),
         Err(e) => return Ending::Failed(e.to_string()),

@@ -26,7 +26,7 @@ use pollard::pb::datasets_client::DatasetsClient;
 use pollard::pb::models_client::ModelsClient;
 use pollard::pb::run_event::Kind;
 use pollard::pb::runs_client::RunsClient;
-use pollard::store::Store;
+use pollard::store::{SledStore, Storage};
 use process::{data, Serve, ServeOptions, PATIENCE, POLL};
 use tonic::transport::Channel;
 
@@ -289,7 +289,7 @@ fn large_csv() -> (Vec<u8>, u64) {
 /// With the server down: every stored dataset is whole (its bytes are all there, hash to its
 /// id, and its row count is the file's); the ids found.
 fn stored_datasets_are_whole(server: &Serve, rows: u64) -> Vec<String> {
-    let store = Store::open(&server.store).unwrap();
+    let store = SledStore::open(&server.store).unwrap();
     let (list, _) = store.list_datasets(None, None, 1000).unwrap();
     let mut ids = Vec::new();
     for m in list {
@@ -418,7 +418,7 @@ fn a_run_that_cannot_be_planned_at_resume_ends_failed_and_the_server_stays_up() 
     let ds = rt.block_on(async { upload(channel(&server).await, "iris", &file("iris.csv")).await });
     server.kill9();
     let run_id = {
-        let store = Store::open(&server.store).unwrap();
+        let store = SledStore::open(&server.store).unwrap();
         let meta = store.dataset(&ds.id).unwrap().unwrap();
         let spec = pollard::sweep::SweepSpec { max_depth: Some(pollard::sweep::Range::LogSpan { from: 1.0, to: 1e9, count: u32::MAX }), ..Default::default() };
         let now = chrono::Utc::now().timestamp_millis();

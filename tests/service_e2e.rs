@@ -18,7 +18,7 @@ use pollard::pb;
 use pollard::pb::datasets_client::DatasetsClient;
 use pollard::pb::models_client::ModelsClient;
 use pollard::pb::runs_client::RunsClient;
-use pollard::store::Store;
+use pollard::store::{SledStore, Storage};
 use pollard::tree::{Predictions, SplitRule, Tree};
 use tonic::transport::Channel;
 use tonic::{Code, Status};
@@ -266,7 +266,7 @@ async fn sweep_to_end(runs: &mut RunsClient<Channel>, request: pb::StartRunReque
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn datasets_upload_version_list_delete_and_refuse() {
     let config = Config { max_upload_bytes: 10_000, max_rows: 160, ..test_config() };
-    let server = start(Store::open_temporary().unwrap(), config).await;
+    let server = start(SledStore::open_temporary().unwrap(), config).await;
     let mut datasets = DatasetsClient::new(server.channel().await);
     let iris = data_file("iris.csv");
     assert!(iris.len() > 3 * CHUNK, "the upload goes in several chunks");
@@ -389,7 +389,7 @@ async fn datasets_upload_version_list_delete_and_refuse() {
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn sweep_follow_inspect_export_and_predict() {
-    let server = start(Store::open_temporary().unwrap(), test_config()).await;
+    let server = start(SledStore::open_temporary().unwrap(), test_config()).await;
     let ch = server.channel().await;
     let mut datasets = DatasetsClient::new(ch.clone());
     let mut runs = RunsClient::new(ch.clone());
@@ -588,7 +588,7 @@ fn long_spec() -> pb::SweepSpec {
 async fn queue_cancel_list_and_refuse() {
     // long_spec's 30 repeats are above the default cap of 20.
     let config = Config { concurrent_runs: 1, max_settings: 500, max_repeats: 30, ..test_config() };
-    let server = start(Store::open_temporary().unwrap(), config).await;
+    let server = start(SledStore::open_temporary().unwrap(), config).await;
     let ch = server.channel().await;
     let mut datasets = DatasetsClient::new(ch.clone());
     let mut runs = RunsClient::new(ch.clone());
@@ -760,10 +760,10 @@ impl Drop for TempDir {
 }
 
 /// Opens the store in `dir`, waiting until the previous server has let go of it.
-async fn reopen(dir: &std::path::Path) -> Store {
+async fn reopen(dir: &std::path::Path) -> SledStore {
     let deadline = Instant::now() + PATIENCE;
     loop {
-        match Store::open(dir) {
+        match SledStore::open(dir) {
             Ok(s) => return s,
             Err(e) => {
                 assert!(Instant::now() < deadline, "cannot reopen the store: {e}");
@@ -786,7 +786,7 @@ async fn restart_resumes_a_run_without_repeating_units() {
     // with a bigger run.
     for repeats in [10, 40, 160] {
         let _ = std::fs::remove_dir_all(&dir.0);
-        let mut server = start(Store::open(&dir.0).unwrap(), test_config()).await;
+        let mut server = start(SledStore::open(&dir.0).unwrap(), test_config()).await;
         let ch = server.channel().await;
         let mut datasets = DatasetsClient::new(ch.clone());
         let mut runs = RunsClient::new(ch.clone());
@@ -886,7 +886,7 @@ async fn health_and_reflection() {
     use tonic_reflection::pb::v1::server_reflection_response::MessageResponse;
     use tonic_reflection::pb::v1::ServerReflectionRequest;
 
-    let server = start(Store::open_temporary().unwrap(), test_config()).await;
+    let server = start(SledStore::open_temporary().unwrap(), test_config()).await;
     let ch = server.channel().await;
     let mut health = HealthClient::new(ch.clone());
     for service in pollard::server::SERVICES {
@@ -921,7 +921,7 @@ async fn health_and_reflection() {
 /// falls), and event times never go backwards within the run.
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn progress_rises_with_the_sequence_on_two_threads() {
-    let server = start(Store::open_temporary().unwrap(), test_config()).await;
+    let server = start(SledStore::open_temporary().unwrap(), test_config()).await;
     let ch = server.channel().await;
     let mut datasets = DatasetsClient::new(ch.clone());
     let mut runs = RunsClient::new(ch.clone());

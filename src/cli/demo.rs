@@ -59,7 +59,7 @@ pub fn run(a: DemoArgs, remote: &Remote, json_out: bool) -> Res {
         } else {
             let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await.map_err(|e| e.to_string())?;
             let addr = listener.local_addr().map_err(|e| e.to_string())?;
-            let store = crate::store::Store::open_temporary().map_err(|e| e.to_string())?;
+            let store = std::sync::Arc::new(crate::store::SledStore::open_temporary().map_err(|e| e.to_string())?);
             let (tx, rx) = oneshot::channel::<()>();
             let config = crate::config::Config { listen: addr, ..Default::default() };
             let handle = tokio::spawn(crate::server::run(listener, config, store, async move {

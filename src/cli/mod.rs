@@ -423,7 +423,7 @@ fn serve(a: ServeArgs) -> Result<(), String> {
     crate::access::secure_dir(&config.data_dir)?;
     let runtime = tokio::runtime::Builder::new_multi_thread().enable_all().build().map_err(|e| e.to_string())?;
     runtime.block_on(async move {
-        let store = crate::store::Store::open(&config.data_dir).map_err(|e| format!("{}: {e}", config.data_dir.display()))?;
+        let store = std::sync::Arc::new(crate::store::SledStore::open(&config.data_dir).map_err(|e| format!("{}: {e}", config.data_dir.display()))?);
         let listener = tokio::net::TcpListener::bind(config.listen).await.map_err(|e| format!("cannot listen on {}: {e}", config.listen))?;
         crate::server::run(listener, config, store, shutdown_signal()).await
     })

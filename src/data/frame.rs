@@ -56,6 +56,10 @@ impl ColumnKind {
             ColumnKind::Categorical => "categorical",
         }
     }
+
+    pub fn parse(text: &str) -> Option<ColumnKind> {
+        [ColumnKind::Numeric, ColumnKind::Categorical].into_iter().find(|k| k.as_str() == text)
+    }
 }
 
 impl fmt::Display for ColumnKind {

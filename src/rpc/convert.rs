@@ -49,13 +49,13 @@ pub fn dataset_info(m: &DatasetMeta) -> pb::DatasetInfo {
             .iter()
             .map(|c| pb::ColumnSummary {
                 name: c.name.clone(),
-                kind: if c.kind == "categorical" { pb::ColumnKind::Categorical } else { pb::ColumnKind::Numeric } as i32,
+                kind: if c.kind == ColumnKind::Categorical { pb::ColumnKind::Categorical } else { pb::ColumnKind::Numeric } as i32,
                 missing: c.missing,
                 levels: c.levels,
             })
             .collect(),
         target: m.target.clone(),
-        task: m.task.clone(),
+        task: m.task.map(|t| t.as_str().to_string()).unwrap_or_default(),
         created_at: time(m.created_at),
         bytes: m.bytes,
     }
@@ -419,12 +419,12 @@ pub fn run_info(r: &Run, outcome: Option<&RunOutcome>) -> pb::RunInfo {
         created_at: time(r.created_at),
         started_at: opt_time(r.started_at),
         finished_at: opt_time(r.finished_at),
-        reason: r.reason.clone(),
+        reason: r.reason.clone().unwrap_or_default(),
         metric: r.spec.metric.map(|m| m.as_str().to_string()).unwrap_or_default(),
         settings: r.settings,
         units_done: r.units_done,
         units_total: r.units_total,
-        schedule_id: r.schedule_id.clone(),
+        schedule_id: r.schedule_id.clone().unwrap_or_default(),
         drift: r.drift.as_ref().map(drift_to),
         dataset_rows: r.dataset_rows,
         owner: r.owner.clone().unwrap_or_default(),
@@ -470,7 +470,7 @@ pub fn drift_to(d: &DriftReport) -> pb::DriftReport {
     pb::DriftReport {
         previous_run_id: d.previous_run_id.clone(),
         picked_changed: d.picked_changed,
-        moved: d.moved.iter().map(|m| pb::LimitChange { limit: m.limit.clone(), from: m.from.clone(), to: m.to.clone() }).collect(),
+        moved: d.moved.iter().map(|m| pb::LimitChange { limit: m.limit.as_str().to_string(), from: m.from.clone(), to: m.to.clone() }).collect(),
         previous_score: d.previous_score,
         score: d.score,
         score_delta: d.score_delta,
@@ -519,10 +519,10 @@ pub fn catch_up_from(c: i32) -> Result<CatchUp, Status> {
     }
 }
 
-fn catch_up_to(name: &str) -> pb::CatchUp {
-    match CatchUp::parse(name) {
-        Some(CatchUp::Skip) => pb::CatchUp::Skip,
-        _ => pb::CatchUp::Once,
+fn catch_up_to(rule: CatchUp) -> pb::CatchUp {
+    match rule {
+        CatchUp::Skip => pb::CatchUp::Skip,
+        CatchUp::Once => pb::CatchUp::Once,
     }
 }
 
@@ -557,17 +557,17 @@ pub fn schedule_info(s: &Schedule, next_fire: Option<i64>, last_fire: Option<&Fi
         cron: s.cron.clone(),
         time_zone: s.time_zone.clone(),
         dataset_name: s.dataset_name.clone(),
-        dataset_id: s.dataset_id.clone(),
+        dataset_id: s.dataset_id.clone().unwrap_or_default(),
         spec: Some(spec_to(&s.spec, &s.target)),
         labels: s.labels.clone().into_iter().collect(),
         retention: Some(pb::Retention { keep_last: s.retention.keep_last.unwrap_or(0), keep_days: s.retention.keep_days.unwrap_or(0) }),
-        catch_up: catch_up_to(&s.catch_up) as i32,
+        catch_up: catch_up_to(s.catch_up) as i32,
         skip_unchanged: s.skip_unchanged,
         drift: Some(thresholds_to(&s.drift)),
         paused: s.paused,
         created_at: time(s.created_at),
         next_fire_at: if s.paused { String::new() } else { opt_time(next_fire) },
-        last_run_id: s.last_run_id.clone(),
+        last_run_id: s.last_run_id.clone().unwrap_or_default(),
         last_fire: last_fire.map(fire_to),
     }
 }

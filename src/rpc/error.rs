@@ -26,6 +26,7 @@ impl From<ServiceError> for Status {
             ServiceError::Precondition(_) => Status::failed_precondition(message),
             ServiceError::Conflict(_) => Status::already_exists(message),
             ServiceError::Denied(_) => Status::permission_denied(message),
+            ServiceError::Storage(StoreError::Unavailable(_)) => Status::unavailable(message),
             ServiceError::Storage(_) | ServiceError::Internal(_) => Status::internal(message),
         }
     }
@@ -63,6 +64,8 @@ pub fn panicked(message: &str) -> Status {
 }
 
 /// Storage failures are the server's, never the caller's.
+/// A store failure: UNAVAILABLE when the backend cannot be reached now (a retry may
+/// succeed), INTERNAL otherwise.
 pub fn store(e: StoreError) -> Status {
     ServiceError::Storage(e).into()
 }

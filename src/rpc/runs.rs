@@ -19,7 +19,7 @@ use crate::store::RunFilter;
 pub use crate::service::runs::new_run_id;
 
 /// A checked, queued run for a request, not yet stored (the service's admission).
-pub async fn prepare_run(shared: &Arc<Service>, r: pb::StartRunRequest, schedule_id: String) -> Result<Run, Status> {
+pub async fn prepare_run(shared: &Arc<Service>, r: pb::StartRunRequest, schedule_id: Option<String>) -> Result<Run, Status> {
     Ok(shared.admit_run(convert::run_request(r)?, schedule_id).await?)
 }
 

@@ -8,7 +8,7 @@ use sha2::{Digest, Sha256};
 use super::error::{Result, ServiceError};
 use super::{cpu, Service};
 use crate::data::csv::{read_dataset, read_frame, CsvOptions};
-use crate::data::{Column, Frame};
+use crate::data::{Column, ColumnKind, Frame};
 use crate::job::{ColumnMeta, DatasetMeta, IdKind};
 use crate::store::{DeleteDataset, PutDataset};
 
@@ -101,10 +101,10 @@ fn summarize(frame: &Frame) -> Vec<ColumnMeta> {
         .features
         .iter()
         .map(|f| match &f.column {
-            Column::Numeric(v) => ColumnMeta { name: f.name.clone(), kind: "numeric".into(), missing: v.iter().filter(|x| x.is_nan()).count() as u64, levels: 0 },
+            Column::Numeric(v) => ColumnMeta { name: f.name.clone(), kind: ColumnKind::Numeric, missing: v.iter().filter(|x| x.is_nan()).count() as u64, levels: 0 },
             Column::Categorical { codes, levels } => ColumnMeta {
                 name: f.name.clone(),
-                kind: "categorical".into(),
+                kind: ColumnKind::Categorical,
                 missing: codes.iter().filter(|&&c| c == crate::data::MISSING_CODE).count() as u64,
                 levels: levels.len() as u64,
             },
@@ -127,10 +127,10 @@ impl Service {
             let reader = || bytes.reader().map_err(staging);
             let data_error = |e: &crate::data::csv::DataError| ServiceError::data(e, cfg.max_rows, cfg.max_columns);
             let (frame, task) = if target.is_empty() {
-                (read_frame(reader()?, &options).map_err(|e| data_error(&e))?, String::new())
+                (read_frame(reader()?, &options).map_err(|e| data_error(&e))?, None)
             } else {
                 let d = read_dataset(reader()?, &options).map_err(|e| data_error(&e))?;
-                let task = d.task().as_str().to_string();
+                let task = Some(d.task());
                 (d.frame, task)
             };
             let content = bytes.content();

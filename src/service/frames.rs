@@ -15,7 +15,7 @@ use super::error::ServiceError;
 use crate::data::csv::{read_dataset, CsvOptions, DataErrorKind};
 use crate::data::{Dataset, Task};
 use crate::job::DatasetMeta;
-use crate::store::{Store, StoreError};
+use crate::store::{Storage, StoreError};
 
 type Key = (String, String, Option<Task>);
 
@@ -64,7 +64,7 @@ impl FrameCache {
     /// from its bytes (blocking; call on a CPU pool). A store failure (bytes missing or
     /// unreadable) is `Storage`, never the caller's fault; a table that does not fit the
     /// target or task is `Invalid`.
-    pub fn load(&self, store: &Store, meta: &DatasetMeta, target: &str, task: Option<Task>, max_rows: usize, max_columns: usize) -> Result<Arc<Dataset>, ServiceError> {
+    pub fn load(&self, store: &dyn Storage, meta: &DatasetMeta, target: &str, task: Option<Task>, max_rows: usize, max_columns: usize) -> Result<Arc<Dataset>, ServiceError> {
         let key = (meta.id.clone(), target.to_string(), task);
         {
             let mut inner = self.inner.lock().unwrap();
@@ -116,7 +116,7 @@ impl FrameCache {
     }
 }
 
-fn parse(store: &Store, meta: &DatasetMeta, target: &str, task: Option<Task>, max_rows: usize, max_columns: usize) -> Result<Dataset, ServiceError> {
+fn parse(store: &dyn Storage, meta: &DatasetMeta, target: &str, task: Option<Task>, max_rows: usize, max_columns: usize) -> Result<Dataset, ServiceError> {
     let file = store.dataset_reader(&meta.id)?.ok_or_else(|| StoreError::Corrupt(format!("dataset {} has no stored bytes", meta.id)))?;
     let mut options = CsvOptions::new(target);
     options.task = task;

@@ -30,7 +30,7 @@ use tokio::sync::{watch, Notify};
 
 use crate::clock::Clock;
 use crate::config::Config;
-use crate::store::Store;
+use crate::store::Storage;
 
 pub use error::ServiceError;
 pub use runs::{DatasetRef, RunRequest};
@@ -38,7 +38,8 @@ pub use runs::{DatasetRef, RunRequest};
 /// What every handler, worker and the scheduler share: the store, the pools, the queue's
 /// signals and the cancel flags.
 pub struct Service {
-    pub store: Store,
+    /// Every read and write of stored state (see [`crate::store`]).
+    pub store: Arc<dyn Storage>,
     pub config: Config,
     /// Runs sweeps.
     pub pool: rayon::ThreadPool,
@@ -74,7 +75,7 @@ pub struct Service {
 }
 
 impl Service {
-    pub fn with_clock(store: Store, config: Config, clock: Arc<dyn Clock>) -> Result<Arc<Service>, String> {
+    pub fn with_clock(store: Arc<dyn Storage>, config: Config, clock: Arc<dyn Clock>) -> Result<Arc<Service>, String> {
         let pool = rayon::ThreadPoolBuilder::new()
             .num_threads(config.cpu_threads)
             .thread_name(|i| format!("pollard-cpu-{i}"))

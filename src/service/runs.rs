@@ -124,7 +124,7 @@ impl Service {
         let threads = self.pool.current_num_threads();
         let (spec, estimate) = cpu(self, move || -> Result<(SweepSpec, u64)> {
             let cfg = &service.config;
-            let data = service.frames.load(&service.store, &meta, &target2, spec.task, cfg.max_rows, cfg.max_columns)?;
+            let data = service.frames.load(service.store.as_ref(), &meta, &target2, spec.task, cfg.max_rows, cfg.max_columns)?;
             let mut spec = spec;
             if default_fold_scheme {
                 if let Some(f) = spec.folds.as_mut() {
@@ -150,7 +150,7 @@ impl Service {
     /// Admission: the checked, queued run a request makes, not yet stored. StartRun and a
     /// schedule's fire both come through here (counted in `admissions`): labels within
     /// their caps, the dataset resolved, the spec checked once against the data.
-    pub async fn admit_run(self: &Arc<Self>, request: RunRequest, schedule_id: String) -> Result<Run> {
+    pub async fn admit_run(self: &Arc<Self>, request: RunRequest, schedule_id: Option<String>) -> Result<Run> {
         self.admissions.fetch_add(1, Ordering::SeqCst);
         check_labels(&self.config, &request.labels)?;
         let meta = self.resolve_dataset(request.dataset.as_ref())?;
@@ -182,7 +182,7 @@ impl Service {
                 return same(run);
             }
         }
-        let mut run = self.admit_run(request, String::new()).await?;
+        let mut run = self.admit_run(request, None).await?;
         run.owner = caller.name.clone();
         run.request_digest = digest.clone();
         let dataset_id = run.dataset_id.clone();

@@ -62,8 +62,8 @@ impl Service {
         let (spec, target, _) = self.check_sweep(&latest, &r.target, r.spec, r.default_fold_scheme).await?;
         let now = self.now();
         let (dataset_name, dataset_id) = match dataset {
-            DatasetRef::Id(id) => (latest.name.clone(), id),
-            DatasetRef::Name(name) => (name, String::new()),
+            DatasetRef::Id(id) => (latest.name.clone(), Some(id)),
+            DatasetRef::Name(name) => (name, None),
         };
         let schedule = Schedule {
             id: new_schedule_id(),
@@ -76,14 +76,14 @@ impl Service {
             spec,
             labels: r.labels,
             retention: r.retention,
-            catch_up: r.catch_up.as_str().to_string(),
+            catch_up: r.catch_up,
             skip_unchanged: r.skip_unchanged,
             drift: r.drift,
             paused: false,
             created_at: now,
             considered_until: now,
-            last_run_id: String::new(),
-            last_dataset_id: String::new(),
+            last_run_id: None,
+            last_dataset_id: None,
             next_fire_sequence: 1,
         };
         if !self.store.create_schedule(&schedule)? {
@@ -115,7 +115,7 @@ impl Service {
 
     pub fn pause_schedule(&self, id: &str) -> Result<ScheduleView> {
         ServiceError::check_id("id", IdKind::Schedule, id)?;
-        let s = self.store.update_schedule(id, |s| s.paused = true)?.ok_or_else(|| ServiceError::not_found("schedule", id))?;
+        let s = self.store.update_schedule(id, &|s| s.paused = true)?.ok_or_else(|| ServiceError::not_found("schedule", id))?;
         info!(schedule_id = %id, "schedule paused");
         self.schedule_view(s)
     }
@@ -126,7 +126,7 @@ impl Service {
         // Fires that fell in the pause were paused on purpose: they are not caught up.
         let s = self
             .store
-            .update_schedule(id, |s| {
+            .update_schedule(id, &|s| {
                 if s.paused {
                     s.paused = false;
                     s.considered_until = s.considered_until.max(now);

@@ -23,10 +23,11 @@ use serde::de::DeserializeOwned;
 use serde::{Deserialize, Deserializer, Serialize, Serializer};
 
 use super::StoreError;
-use crate::data::Task;
+use crate::data::{ColumnKind, Task};
 use crate::export::json::{from_json, to_json};
-use crate::drift::{DriftReport, DriftThresholds, LimitMove};
+use crate::drift::{DriftReport, DriftThresholds, Knob, LimitMove};
 use crate::job::{ColumnMeta, DatasetMeta, Event, EventKind, Fire, FireOutcome, Retention, Run, RunOutcome, RunState, Schedule};
+use crate::schedule::CatchUp;
 use crate::sweep::{FoldPlan, FoldScheme, FoldScore, Metric, PickRule, Progress, Range, Setting, SettingScore, SweepSpec, UnitResult};
 use crate::tree::{ClassWeight, Criterion, FitOptions, Limits};
 
@@ -89,6 +90,11 @@ fn parse_name<T>(what: &str, field: &str, text: &str, parse: impl Fn(&str) -> Op
     parse(text).ok_or_else(|| corrupt(what, format!("{field} '{text}' is not known to this build")))
 }
 
+/// A stored string where "" stands for none (the record formats have always written it so).
+fn some(text: String) -> Option<String> {
+    Some(text).filter(|t| !t.is_empty())
+}
+
 fn to_usize(what: &str, field: &str, x: u64) -> Result<usize, StoreError> {
     usize::try_from(x).map_err(|_| corrupt(what, format!("{field} {x} does not fit this machine")))
 }
@@ -130,9 +136,9 @@ impl From<&DatasetMeta> for DatasetRecord {
             name: m.name.clone(),
             version: m.version,
             rows: m.rows,
-            columns: m.columns.iter().map(|c| ColumnRecord { name: c.name.clone(), kind: c.kind.clone(), missing: c.missing, levels: c.levels }).collect(),
+            columns: m.columns.iter().map(|c| ColumnRecord { name: c.name.clone(), kind: c.kind.as_str().to_string(), missing: c.missing, levels: c.levels }).collect(),
             target: m.target.clone(),
-            task: m.task.clone(),
+            task: m.task.map(|t| t.as_str().to_string()).unwrap_or_default(),
             created_at: m.created_at,
             bytes: m.bytes,
             categorical: m.categorical.clone(),
@@ -140,21 +146,28 @@ impl From<&DatasetMeta> for DatasetRecord {
     }
 }
 
-impl From<DatasetRecord> for DatasetMeta {
-    fn from(r: DatasetRecord) -> Self {
-        DatasetMeta {
+/// `task` is "" for a dataset without a target (`None`), as written since the first format.
+impl TryFrom<DatasetRecord> for DatasetMeta {
+    type Error = StoreError;
+    fn try_from(r: DatasetRecord) -> Result<Self, StoreError> {
+        let w = "dataset";
+        Ok(DatasetMeta {
             content: if r.content.is_empty() { r.id.strip_prefix("ds_").unwrap_or(&r.id).to_string() } else { r.content },
             id: r.id,
             name: r.name,
             version: r.version,
             rows: r.rows,
-            columns: r.columns.into_iter().map(|c| ColumnMeta { name: c.name, kind: c.kind, missing: c.missing, levels: c.levels }).collect(),
+            columns: r
+                .columns
+                .into_iter()
+                .map(|c| Ok(ColumnMeta { kind: parse_name(w, "column kind", &c.kind, ColumnKind::parse)?, name: c.name, missing: c.missing, levels: c.levels }))
+                .collect::<Result<_, StoreError>>()?,
             target: r.target,
-            task: r.task,
+            task: if r.task.is_empty() { None } else { Some(parse_name(w, "task", &r.task, Task::parse)?) },
             created_at: r.created_at,
             bytes: r.bytes,
             categorical: r.categorical,
-        }
+        })
     }
 }
 
@@ -349,11 +362,11 @@ impl From<&Run> for RunRecord {
             idempotency_key: r.idempotency_key.clone(),
             owner: r.owner.clone(),
             request_digest: r.request_digest.clone(),
-            schedule_id: r.schedule_id.clone(),
+            schedule_id: r.schedule_id.clone().unwrap_or_default(),
             created_at: r.created_at,
             started_at: r.started_at,
             finished_at: r.finished_at,
-            reason: r.reason.clone(),
+            reason: r.reason.clone().unwrap_or_default(),
             settings: r.settings,
             units_total: r.units_total,
             units_done: r.units_done,
@@ -382,16 +395,17 @@ impl TryFrom<RunRecord> for Run {
             idempotency_key: r.idempotency_key,
             owner: r.owner,
             request_digest: r.request_digest,
-            schedule_id: r.schedule_id,
+            // "" stands for none in the stored record, as it always did.
+            schedule_id: some(r.schedule_id),
             created_at: r.created_at,
             started_at: r.started_at,
             finished_at: r.finished_at,
-            reason: r.reason,
+            reason: some(r.reason),
             settings: r.settings,
             units_total: r.units_total,
             units_done: r.units_done,
             next_sequence: r.next_sequence,
-            drift: r.drift.map(DriftReport::from),
+            drift: r.drift.map(DriftReport::try_from).transpose()?,
             memory_estimate: r.memory_estimate,
             units_at_start: r.units_at_start,
             crash_strikes: r.crash_strikes,
@@ -426,7 +440,7 @@ impl From<&DriftReport> for DriftRecord {
     fn from(d: &DriftReport) -> Self {
         DriftRecord {
             previous_run_id: d.previous_run_id.clone(),
-            moved: d.moved.iter().map(|m| [m.limit.clone(), m.from.clone(), m.to.clone()]).collect(),
+            moved: d.moved.iter().map(|m| [m.limit.as_str().to_string(), m.from.clone(), m.to.clone()]).collect(),
             previous_score: Real(d.previous_score),
             score: Real(d.score),
             score_delta: Real(d.score_delta),
@@ -448,11 +462,16 @@ impl From<&DriftReport> for DriftRecord {
     }
 }
 
-impl From<DriftRecord> for DriftReport {
-    fn from(d: DriftRecord) -> Self {
-        DriftReport {
+impl TryFrom<DriftRecord> for DriftReport {
+    type Error = StoreError;
+    fn try_from(d: DriftRecord) -> Result<Self, StoreError> {
+        Ok(DriftReport {
             picked_changed: !d.moved.is_empty(),
-            moved: d.moved.into_iter().map(|[limit, from, to]| LimitMove { limit, from, to }).collect(),
+            moved: d
+                .moved
+                .into_iter()
+                .map(|[limit, from, to]| Ok(LimitMove { limit: parse_name("run", "drift move", &limit, Knob::parse)?, from, to }))
+                .collect::<Result<_, StoreError>>()?,
             previous_run_id: d.previous_run_id,
             previous_score: d.previous_score.0,
             score: d.score.0,
@@ -470,7 +489,7 @@ impl From<DriftRecord> for DriftReport {
             tree_grew: d.tree_grew,
             tree_shrank: d.tree_shrank,
             thresholds: DriftThresholds { score_drop: d.score_drop.0, size_factor: d.size_factor.0 },
-        }
+        })
     }
 }
 
@@ -511,21 +530,21 @@ impl From<&Schedule> for ScheduleRecord {
             cron: s.cron.clone(),
             time_zone: s.time_zone.clone(),
             dataset_name: s.dataset_name.clone(),
-            dataset_id: s.dataset_id.clone(),
+            dataset_id: s.dataset_id.clone().unwrap_or_default(),
             target: s.target.clone(),
             spec: SpecRecord::from(&s.spec),
             labels: s.labels.clone(),
             keep_last: s.retention.keep_last,
             keep_days: s.retention.keep_days,
-            catch_up: s.catch_up.clone(),
+            catch_up: s.catch_up.as_str().to_string(),
             skip_unchanged: s.skip_unchanged,
             score_drop: Real(s.drift.score_drop),
             size_factor: Real(s.drift.size_factor),
             paused: s.paused,
             created_at: s.created_at,
             considered_until: s.considered_until,
-            last_run_id: s.last_run_id.clone(),
-            last_dataset_id: s.last_dataset_id.clone(),
+            last_run_id: s.last_run_id.clone().unwrap_or_default(),
+            last_dataset_id: s.last_dataset_id.clone().unwrap_or_default(),
             next_fire_sequence: s.next_fire_sequence,
         }
     }
@@ -541,18 +560,20 @@ impl TryFrom<ScheduleRecord> for Schedule {
             cron: r.cron,
             time_zone: r.time_zone,
             dataset_name: r.dataset_name,
-            dataset_id: r.dataset_id,
+            // "" stands for none in stored schedules, as it always did.
+            dataset_id: some(r.dataset_id),
             target: r.target,
             labels: r.labels,
             retention: Retention { keep_last: r.keep_last, keep_days: r.keep_days },
-            catch_up: r.catch_up,
+            // "" never was written; read as the default rule, as the scheduler always did.
+            catch_up: if r.catch_up.is_empty() { CatchUp::Once } else { parse_name("schedule", "catch_up", &r.catch_up, CatchUp::parse)? },
             skip_unchanged: r.skip_unchanged,
             drift: DriftThresholds { score_drop: r.score_drop.0, size_factor: r.size_factor.0 },
             paused: r.paused,
             created_at: r.created_at,
             considered_until: r.considered_until,
-            last_run_id: r.last_run_id,
-            last_dataset_id: r.last_dataset_id,
+            last_run_id: some(r.last_run_id),
+            last_dataset_id: some(r.last_dataset_id),
             next_fire_sequence: r.next_fire_sequence,
         })
     }
@@ -852,7 +873,7 @@ pub fn encode_dataset(m: &DatasetMeta) -> Vec<u8> {
     encode(&DatasetRecord::from(m))
 }
 pub fn decode_dataset(bytes: &[u8]) -> Result<DatasetMeta, StoreError> {
-    decode::<DatasetRecord>("dataset", bytes).map(DatasetMeta::from)
+    decode::<DatasetRecord>("dataset", bytes).and_then(DatasetMeta::try_from)
 }
 pub fn encode_run(r: &Run) -> Vec<u8> {
     encode(&RunRecord::from(r))

@@ -26,7 +26,7 @@ use pollard::pb::runs_client::RunsClient;
 use pollard::pb::schedules_client::SchedulesClient;
 use pollard::pb::schedules_server::Schedules;
 use pollard::rpc::Api;
-use pollard::store::{RunFilter, Store};
+use pollard::store::{RunFilter, SledStore};
 use pollard::worker::Shared;
 use tonic::transport::Channel;
 use tonic::{Code, Request};
@@ -79,8 +79,13 @@ fn config() -> Config {
 
 /// Shared state with a test clock and no worker: queued runs stay queued.
 fn quiet(start: &str) -> (Api, Arc<TestClock>) {
+    quiet_on(SledStore::open_temporary().unwrap(), start)
+}
+
+/// [`quiet`] on a given store (a clone of it lets the test look at its files).
+fn quiet_on(store: SledStore, start: &str) -> (Api, Arc<TestClock>) {
     let clock = TestClock::new(ms(start));
-    let shared = Shared::with_clock(Store::open_temporary().unwrap(), config(), clock.clone()).unwrap();
+    let shared = Shared::with_clock(Arc::new(store), config(), clock.clone()).unwrap();
     (Api { shared }, clock)
 }
 
@@ -123,7 +128,7 @@ async fn a_busy_previous_run_skips_the_fire_and_an_outage_is_caught_up_once() {
     assert_eq!(outcome(&f[1]), pb::FireOutcome::SkippedBusy);
     assert_eq!(f[1].run_id, f[0].run_id);
     let first = api.shared.store.run(&f[0].run_id).unwrap().unwrap();
-    assert_eq!((first.state, first.schedule_id.as_str()), (RunState::Queued, s.id.as_str()));
+    assert_eq!((first.state, first.schedule_id.as_deref()), (RunState::Queued, Some(s.id.as_str())));
     assert_eq!(first.created_at, ms("2027-05-01T03:00:00Z"), "the run is stamped by the server's clock");
 
     // An outage from just after day 2 to day 7 05:00: days 3, 4, 5, 6 and 7 (07 03:00 is two
@@ -161,7 +166,7 @@ async fn a_busy_previous_run_skips_the_fire_and_an_outage_is_caught_up_once() {
 #[tokio::test]
 async fn a_fire_over_the_queue_cap_is_skipped() {
     let clock = TestClock::new(ms("2027-05-01T00:00:00Z"));
-    let shared = Shared::with_clock(Store::open_temporary().unwrap(), Config { max_queued_runs: 1, ..config() }, clock.clone()).unwrap();
+    let shared = Shared::with_clock(Arc::new(SledStore::open_temporary().unwrap()), Config { max_queued_runs: 1, ..config() }, clock.clone()).unwrap();
     let api = Api { shared };
     let iris = put(&api, iris_head(150)).await;
     let s = api.create_schedule(Request::new(request("0 3 * * *", "UTC"))).await.unwrap().into_inner();
@@ -223,7 +228,8 @@ async fn a_schedule_on_one_exact_dataset_ignores_newer_versions() {
 
 #[tokio::test]
 async fn retention_deletes_exactly_the_expired_runs_and_no_dataset_in_use() {
-    let (api, clock) = quiet("2027-06-01T00:00:00Z");
+    let store = SledStore::open_temporary().unwrap();
+    let (api, clock) = quiet_on(store.clone(), "2027-06-01T00:00:00Z");
     let v1 = put(&api, iris_head(150)).await;
     let s = api
         .create_schedule(Request::new(pb::CreateScheduleRequest { retention: Some(pb::Retention { keep_last: 2, keep_days: 0 }), ..request("0 3 * * *", "UTC") }))
@@ -231,7 +237,7 @@ async fn retention_deletes_exactly_the_expired_runs_and_no_dataset_in_use() {
         .unwrap()
         .into_inner();
     // A run outside the schedule on version 1: it keeps version 1 alive.
-    let manual = pollard::rpc::runs::prepare_run(&api.shared, pb::StartRunRequest { dataset_id: v1.id.clone(), spec: Some(template()), ..Default::default() }, String::new()).await.unwrap();
+    let manual = pollard::rpc::runs::prepare_run(&api.shared, pb::StartRunRequest { dataset_id: v1.id.clone(), spec: Some(template()), ..Default::default() }, None).await.unwrap();
     api.shared.store.create_run(manual.clone()).unwrap();
     cancel(&api, &manual.id);
     let mut versions = vec![v1.clone()];
@@ -261,7 +267,7 @@ async fn retention_deletes_exactly_the_expired_runs_and_no_dataset_in_use() {
     let stored: BTreeSet<u32> = api.shared.store.list_datasets(Some("iris"), None, 100).unwrap().0.into_iter().map(|d| d.version).collect();
     assert_eq!(stored, [1, 3, 4].into_iter().collect());
     // The deleted version's file went with it.
-    let files: BTreeSet<String> = std::fs::read_dir(api.shared.store.datasets_dir()).unwrap().map(|e| e.unwrap().file_name().into_string().unwrap()).collect();
+    let files: BTreeSet<String> = std::fs::read_dir(store.datasets_dir()).unwrap().map(|e| e.unwrap().file_name().into_string().unwrap()).collect();
     let want: BTreeSet<String> = [0, 2, 3].iter().map(|&i| format!("{}.csv", versions[i].id)).collect();
     assert_eq!(files, want);
 }
@@ -304,7 +310,7 @@ async fn schedule_calls_check_their_arguments() {
 mod support;
 use support::{start_with_clock, POLL};
 
-async fn start(store: Store, clock: Arc<TestClock>) -> support::Server {
+async fn start(store: SledStore, clock: Arc<TestClock>) -> support::Server {
     start_with_clock(store, config(), clock).await
 }
 
@@ -348,7 +354,7 @@ async fn wait_finished(ch: &Channel, run_id: &str) -> pb::RunInfo {
 #[tokio::test]
 async fn a_nightly_schedule_fires_at_the_right_instants_across_both_dst_transitions() {
     let clock = TestClock::new(ms("2027-03-26T12:00:00Z"));
-    let server = start(Store::open_temporary().unwrap(), clock.clone()).await;
+    let server = start(SledStore::open_temporary().unwrap(), clock.clone()).await;
     let ch = server.channel().await;
     upload(&ch, iris_head(150)).await;
     let mut schedules = SchedulesClient::new(ch.clone());
@@ -406,7 +412,7 @@ async fn a_nightly_schedule_fires_at_the_right_instants_across_both_dst_transiti
 #[tokio::test]
 async fn a_drift_report_shows_the_change_between_two_dataset_versions() {
     let clock = TestClock::new(ms("2027-07-01T00:00:00Z"));
-    let server = start(Store::open_temporary().unwrap(), clock.clone()).await;
+    let server = start(SledStore::open_temporary().unwrap(), clock.clone()).await;
     let ch = server.channel().await;
     let v1 = upload(&ch, iris_head(100)).await;
     let req = pb::CreateScheduleRequest { drift: Some(pb::DriftThresholds { score_drop: 0.01, size_factor: 1.4 }), ..request("0 2 * * *", "UTC") };
@@ -468,7 +474,7 @@ async fn schedules_survive_a_restart_and_catch_up_the_outage_once() {
     let nanos = std::time::SystemTime::now().duration_since(std::time::UNIX_EPOCH).unwrap().as_nanos();
     let dir = TempDir(std::env::temp_dir().join(format!("pollard-schedules-{}-{nanos}", std::process::id())));
     let clock = TestClock::new(ms("2027-08-01T00:00:00Z"));
-    let server = start(Store::open(&dir.0).unwrap(), clock.clone()).await;
+    let server = start(SledStore::open(&dir.0).unwrap(), clock.clone()).await;
     let ch = server.channel().await;
     upload(&ch, iris_head(150)).await;
     let s = SchedulesClient::new(ch.clone()).create_schedule(request("15 4 * * *", "America/New_York")).await.unwrap().into_inner();
@@ -480,7 +486,7 @@ async fn schedules_survive_a_restart_and_catch_up_the_outage_once() {
 
     // Down for three nights; the server comes back at 12:00 UTC on 4 August.
     clock.set(ms("2027-08-04T12:00:00Z"));
-    let server = start(Store::open(&dir.0).unwrap(), clock.clone()).await;
+    let server = start(SledStore::open(&dir.0).unwrap(), clock.clone()).await;
     let ch = server.channel().await;
     let again = SchedulesClient::new(ch.clone()).get_schedule(pb::GetScheduleRequest { id: s.id.clone() }).await.unwrap().into_inner();
     // (The catch-up may already have fired: the scheduler starts with the server.)
@@ -537,7 +543,7 @@ async fn back_to_back_runs_parse_their_dataset_once() {
     let before = parses();
     for round in 0..2 {
         let run = api.queue_run(&pollard::access::Caller::anonymous(), pb::StartRunRequest { dataset_id: iris.id.clone(), spec: Some(template()), ..Default::default() }).await.unwrap();
-        let claimed = match api.shared.store.claim_next_within(api.shared.now(), |_| true).unwrap() {
+        let claimed = match api.shared.store.claim_next_within(api.shared.now(), &|_| true).unwrap() {
             pollard::store::Claim::Claimed(r) => r,
             _ => panic!("round {round}: the queued run is not claimed"),
         };
@@ -553,9 +559,11 @@ async fn back_to_back_runs_parse_their_dataset_once() {
 /// caller's (INVALID_ARGUMENT).
 #[tokio::test]
 async fn a_store_failure_is_not_the_callers_fault() {
-    let (api, _clock) = quiet("2027-03-01T00:00:00Z");
+    let store = SledStore::open_temporary().unwrap();
+    let files = store.datasets_dir().to_path_buf();
+    let (api, _clock) = quiet_on(store, "2027-03-01T00:00:00Z");
     let iris = put(&api, iris_head(150)).await;
-    std::fs::remove_file(api.shared.store.datasets_dir().join(format!("{}.csv", iris.id))).unwrap();
+    std::fs::remove_file(files.join(format!("{}.csv", iris.id))).unwrap();
     let e = api.queue_run(&pollard::access::Caller::anonymous(), pb::StartRunRequest { dataset_id: iris.id.clone(), spec: Some(template()), ..Default::default() }).await.unwrap_err();
     assert_eq!(e.code(), Code::Internal, "{e:?}");
     assert!(e.message().starts_with("storage: "), "{e:?}");
@@ -567,6 +575,6 @@ async fn a_store_failure_is_not_the_callers_fault() {
         idempotency_key: String::new(),
         labels: Default::default(),
     };
-    let e = api.shared.admit_run(request, String::new()).await.unwrap_err();
+    let e = api.shared.admit_run(request, None).await.unwrap_err();
     assert!(matches!(e, pollard::service::ServiceError::Storage(_)), "{e:?}");
 }
