@@ -33,15 +33,6 @@ fail() { echo "latency: FAIL: $*" >&2; exit 1; }
 say() { echo "latency: $*"; }
 
 work="$(mktemp -d "${TMPDIR:-/tmp}/pollard-latency.XXXXXX")"
-server_pid=""
-cleanup() {
-    if [ -n "$server_pid" ] && kill -0 "$server_pid" 2>/dev/null; then
-        kill -TERM "$server_pid" 2>/dev/null || true
-        wait "$server_pid" 2>/dev/null || true
-    fi
-    rm -rf "$work"
-}
-trap cleanup EXIT
 export PIP_DISABLE_PIP_VERSION_CHECK=1 PIP_NO_INPUT=1
 
 # --- the Python client's packages and stubs --------------------------------------------
@@ -64,15 +55,8 @@ cargo build --release --quiet --bin pollard --example latency
 bin="$root/target/release/pollard"
 client="$root/target/release/examples/latency"
 
-port="$(python3 -c 'import socket; s = socket.socket(); s.bind(("127.0.0.1", 0)); print(s.getsockname()[1])')"
-env -u POLLARD_CONFIG "$bin" serve --listen "127.0.0.1:$port" --data "$work/store" 2>"$work/serve.log" &
-server_pid=$!
-for _ in $(seq 1 400); do
-    grep -q "pollard serving" "$work/serve.log" 2>/dev/null && break
-    kill -0 "$server_pid" 2>/dev/null || { cat "$work/serve.log" >&2; fail "the server exited"; }
-    sleep 0.05
-done
-grep -q "pollard serving" "$work/serve.log" || { cat "$work/serve.log" >&2; fail "the server did not start"; }
+source "$here/serve.sh"
+start_server
 say "pollard serve pid $server_pid on 127.0.0.1:$port; $(nproc) cores, load average $(cut -d' ' -f1-3 /proc/loadavg)"
 
 "$client" --server "http://127.0.0.1:$port" --repeats "$repeats" --data "$root/tests/data/iris.csv" | tee "$work/rust.txt" \
@@ -104,6 +88,4 @@ for client in ("rust", "python"):
         print(f"compute share of sweep100 ({client}): {compute[1] / e2e[1] * 100:.0f} % "
               f"({compute[1]:.2f} ms of {e2e[1]:.2f} ms)")
 PYEOF
-kill -TERM "$server_pid"
-wait "$server_pid" || fail "the server exited with an error after SIGTERM"
-server_pid=""
+stop_server || fail "the server exited with an error after SIGTERM"

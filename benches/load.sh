@@ -35,32 +35,13 @@ bin="$root/target/release/pollard"
 load="$root/target/release/examples/load"
 
 work="$(mktemp -d)"
-server_pid=""
-cleanup() {
-    if [ -n "$server_pid" ] && kill -0 "$server_pid" 2>/dev/null; then
-        kill -TERM "$server_pid" 2>/dev/null || true
-        wait "$server_pid" 2>/dev/null || true
-    fi
-    rm -rf "$work"
-}
-trap cleanup EXIT
-
-# A free port: bind port 0 and read what the kernel gave.
-port="$(python3 -c 'import socket; s = socket.socket(); s.bind(("127.0.0.1", 0)); print(s.getsockname()[1])')"
-env -u POLLARD_CONFIG "$bin" serve --listen "127.0.0.1:$port" --data "$work/store" 2>"$work/serve.log" &
-server_pid=$!
-for _ in $(seq 1 400); do
-    grep -q "pollard serving" "$work/serve.log" 2>/dev/null && break
-    kill -0 "$server_pid" 2>/dev/null || { cat "$work/serve.log" >&2; echo "load: the server exited" >&2; exit 1; }
-    sleep 0.05
-done
-grep -q "pollard serving" "$work/serve.log" || { cat "$work/serve.log" >&2; echo "load: the server did not start" >&2; exit 1; }
+fail() { echo "load: $*" >&2; exit 1; }
+source "$here/serve.sh"
+start_server
 
 echo "load: pollard serve pid $server_pid on 127.0.0.1:$port, default caps; $(nproc) cores, load average $(cut -d' ' -f1-3 /proc/loadavg)"
 status=0
 "$load" --server "http://127.0.0.1:$port" --pid "$server_pid" --clients "$clients" --seconds "$seconds" --data "$root/tests/data/iris.csv" || status=$?
 echo "load: load average after $(cut -d' ' -f1-3 /proc/loadavg)"
-kill -TERM "$server_pid"
-wait "$server_pid" || { echo "load: the server exited with an error after SIGTERM" >&2; status=1; }
-server_pid=""
+stop_server || { echo "load: the server exited with an error after SIGTERM" >&2; status=1; }
 exit "$status"
