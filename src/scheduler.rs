@@ -105,7 +105,7 @@ async fn handle(shared: &Arc<Shared>, s: &Schedule, due: &Due, now: i64) -> Resu
     // Counted and recorded under the admission lock, so the queue cap holds exactly.
     let recorded = {
         let _admit = shared.admit.lock().unwrap();
-        let (queued, cap) = (store.queued_count(), shared.config.max_queued_runs);
+        let (queued, cap) = (store.queued_count()?, shared.config.max_queued_runs);
         let run = if run.is_some() && queued >= cap {
             fire.skip_queue_full(queued, cap);
             None

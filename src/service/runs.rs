@@ -195,7 +195,7 @@ impl Service {
                     return Err(ServiceError::cap("queue", &format!("token '{owner}' has {own_cap} queued runs; wait for some to start or cancel them"), "max_queued_per_token", own_cap as u64));
                 }
             }
-            let queued = self.store.queued_count();
+            let queued = self.store.queued_count()?;
             self.store.create_run_within(run, queued >= cap)?
         };
         match created {
@@ -206,7 +206,7 @@ impl Service {
             }
             CreateRun::Existing(run) => same(run),
             CreateRun::DatasetMissing => Err(ServiceError::not_found("dataset", &dataset_id)),
-            CreateRun::QueueFull => Err(ServiceError::cap("queue", &format!("{} runs are queued", self.store.queued_count()), "max_queued_runs", cap as u64)),
+            CreateRun::QueueFull => Err(ServiceError::cap("queue", &format!("{} runs are queued", self.store.queued_count()?), "max_queued_runs", cap as u64)),
         }
     }
 

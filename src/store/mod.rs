@@ -226,7 +226,7 @@ pub trait Storage: Send + Sync {
     fn queued_by(&self, owner: &str) -> Result<usize, StoreError>;
 
     /// How many runs are queued.
-    fn queued_count(&self) -> usize;
+    fn queued_count(&self) -> Result<usize, StoreError>;
 
     fn run(&self, id: &str) -> Result<Option<Run>, StoreError>;
 

@@ -900,8 +900,8 @@ impl Storage for SledStore {
     }
 
     /// How many runs are queued.
-    fn queued_count(&self) -> usize {
-        self.tree(QUEUE).len()
+    fn queued_count(&self) -> Result<usize, StoreError> {
+        Ok(self.tree(QUEUE).len())
     }
 
     /// Appends a non-terminal event (progress) to a running run; one transaction. `None`

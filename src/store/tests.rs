@@ -865,7 +865,7 @@ fn check(store: &dyn Storage, model: &Model) {
     let mut queue: Vec<String> = all_runs(store, &RunFilter { state: Some(RunState::Queued), ..RunFilter::default() }).into_iter().map(|r| r.id).collect();
     queue.reverse();
     assert_eq!(queue, model.queue);
-    assert_eq!(store.queued_count(), model.queue.len());
+    assert_eq!(store.queued_count().unwrap(), model.queue.len());
     for k in 0..KEYS_USED {
         let key = format!("key-{k}");
         let got = store.run_by_idempotency(None, &key).unwrap().map(|r| r.id);
@@ -1147,6 +1147,6 @@ fn fixture_store_of_017cda4_decodes() {
     let fired: Vec<(u64, FireOutcome, &str)> = fires.iter().map(|f| (f.sequence, f.outcome, f.run_id.as_str())).collect();
     assert_eq!(fired, [(3, FireOutcome::Started, runs[0].id.as_str()), (2, FireOutcome::Started, runs[1].id.as_str()), (1, FireOutcome::Started, runs[2].id.as_str())]);
     assert!(fires.iter().all(|f| f.scheduled_for % 60_000 == 0 && f.missed == 0));
-    assert_eq!(store.queued_count(), 0);
+    assert_eq!(store.queued_count().unwrap(), 0);
     assert!(store.running_runs().unwrap().is_empty());
 }
