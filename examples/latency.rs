@@ -196,15 +196,6 @@ async fn measure(a: &Args) -> Result<(), String> {
 
 #[tokio::main]
 async fn main() {
-    let a = match args() {
-        Ok(a) => a,
-        Err(e) => {
-            eprintln!("latency: {e}");
-            std::process::exit(2);
-        }
-    };
-    if let Err(e) = measure(&a).await {
-        eprintln!("latency: {e}");
-        std::process::exit(1);
-    }
+    let a = common::or_exit("latency", args(), 2);
+    common::or_exit("latency", measure(&a).await, 1);
 }

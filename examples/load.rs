@@ -180,20 +180,8 @@ fn status_mb(pid: u32, key: &str) -> Option<f64> {
 
 #[tokio::main]
 async fn main() {
-    let a = match args() {
-        Ok(a) => a,
-        Err(e) => {
-            eprintln!("load: {e}");
-            std::process::exit(2);
-        }
-    };
-    let f = match fixture(&a.server, &a.data).await {
-        Ok(f) => f,
-        Err(e) => {
-            eprintln!("load: setting up: {e}");
-            std::process::exit(1);
-        }
-    };
+    let a = common::or_exit("load", args(), 2);
+    let f = common::or_exit("load", fixture(&a.server, &a.data).await.map_err(|e| format!("setting up: {e}")), 1);
     let rss_before = a.pid.and_then(|p| status_mb(p, "VmRSS:"));
     let start = Instant::now();
     let until = start + Duration::from_secs(a.seconds);

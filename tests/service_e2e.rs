@@ -27,6 +27,9 @@ use tonic::{Code, Status};
 
 #[path = "support/server.rs"]
 mod support;
+#[path = "support/process.rs"]
+mod process;
+use process::expect_status;
 use support::{start, POLL};
 
 
@@ -70,19 +73,6 @@ fn folds(scheme: &str, k: u32, repeats: u32) -> Option<pb::FoldPlan> {
 
 fn strings(v: &[&str]) -> Vec<String> {
     v.iter().map(|s| s.to_string()).collect()
-}
-
-/// Asserts an error status: its code, and that its message names the problem.
-fn expect_status<T: std::fmt::Debug>(what: &str, r: Result<T, Status>, code: Code, needles: &[&str]) -> Status {
-    let s = match r {
-        Ok(v) => panic!("{what}: expected {code:?}, got Ok({v:?})"),
-        Err(s) => s,
-    };
-    assert_eq!(s.code(), code, "{what}: status {s:?}");
-    for n in needles {
-        assert!(s.message().contains(n), "{what}: message {:?} does not mention {n:?}", s.message());
-    }
-    s
 }
 
 fn rfc3339(s: &str) -> chrono::DateTime<chrono::FixedOffset> {

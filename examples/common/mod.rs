@@ -32,3 +32,12 @@ pub fn values(v: impl IntoIterator<Item = u32>) -> pb::LimitRange {
     let one = |d: u32| pb::LimitValue { value: Some(pb::limit_value::Value::Number(d as f64)) };
     pb::LimitRange { kind: Some(pb::limit_range::Kind::Values(pb::ValueList { values: v.into_iter().map(one).collect() })) }
 }
+
+/// The value, or `tool: error` on stderr and exit with `code` (2 for bad arguments, 1 for a
+/// failure).
+pub fn or_exit<T>(tool: &str, r: Result<T, String>, code: i32) -> T {
+    r.unwrap_or_else(|e| {
+        eprintln!("{tool}: {e}");
+        std::process::exit(code)
+    })
+}
