@@ -75,6 +75,8 @@ struct Prepared<'a> {
     w: Vec<f64>,
     wy: Vec<f64>,
     k: usize,
+    /// Every weight is exactly 1.
+    unit: bool,
 }
 
 impl<'a> Prepared<'a> {
@@ -135,38 +137,44 @@ impl<'a> Prepared<'a> {
             }
         }
         let wy = if k == 0 { y.iter().zip(&w).map(|(y, w)| y * w).collect() } else { Vec::new() };
-        Ok(Prepared { frame, target: set.target, target_name: set.target_name.to_string(), frame_rows, class, y, w, wy, k })
+        let unit = w.iter().all(|&x| x == 1.0);
+        Ok(Prepared { frame, target: set.target, target_name: set.target_name.to_string(), frame_rows, class, y, w, wy, k, unit })
     }
 
     fn rows(&self) -> Rows<'_> {
-        Rows { class: &self.class, y: &self.y, w: &self.w, wy: &self.wy, k: self.k }
+        Rows { class: &self.class, y: &self.y, w: &self.w, wy: &self.wy, k: self.k, unit: self.unit }
     }
 
     /// Each feature's fit-local rows sorted by value, missing cells last; ties by row.
+    ///
+    /// Sorted as one `u64` per entry: the value's bits mapped so that unsigned order is
+    /// `f32::total_cmp` order (missing cells are a positive NaN, after +inf), then the row.
+    /// The keys are unique, so the order is the same as sorting by (value, row).
     fn presort(&self, parallel: bool) -> Vec<Vec<Entry>> {
         let one = |f: &crate::data::Feature| {
-            let mut e: Vec<Entry> = match &f.column {
-                Column::Numeric(v) => self
-                    .frame_rows
-                    .iter()
-                    .enumerate()
-                    .map(|(i, &r)| {
+            let value = |r: u32| -> f32 {
+                match &f.column {
+                    Column::Numeric(v) => {
                         let x = v[r as usize];
-                        Entry { v: if x.is_nan() { f32::NAN } else { x }, r: i as u32 }
-                    })
-                    .collect(),
-                Column::Categorical { codes, .. } => self
-                    .frame_rows
-                    .iter()
-                    .enumerate()
-                    .map(|(i, &r)| {
+                        if x.is_nan() {
+                            f32::NAN
+                        } else {
+                            x
+                        }
+                    }
+                    Column::Categorical { codes, .. } => {
                         let c = codes[r as usize];
-                        Entry { v: if c == MISSING_CODE { f32::NAN } else { c as f32 }, r: i as u32 }
-                    })
-                    .collect(),
+                        if c == MISSING_CODE {
+                            f32::NAN
+                        } else {
+                            c as f32
+                        }
+                    }
+                }
             };
-            e.sort_unstable_by(|a, b| a.v.total_cmp(&b.v).then(a.r.cmp(&b.r)));
-            e
+            let mut keys: Vec<u64> = self.frame_rows.iter().enumerate().map(|(i, &r)| (order_bits(value(r)) as u64) << 32 | i as u64).collect();
+            keys.sort_unstable();
+            keys.into_iter().map(|k| Entry { v: from_order_bits((k >> 32) as u32), r: k as u32 }).collect::<Vec<Entry>>()
         };
         if parallel {
             self.frame.features.par_iter().map(one).collect()
@@ -174,6 +182,23 @@ impl<'a> Prepared<'a> {
             self.frame.features.iter().map(one).collect()
         }
     }
+}
+
+/// The bits of `v` mapped so that unsigned order is `f32::total_cmp` order.
+#[inline]
+fn order_bits(v: f32) -> u32 {
+    let b = v.to_bits();
+    if b >> 31 == 1 {
+        !b
+    } else {
+        b | 1 << 31
+    }
+}
+
+/// The inverse of [`order_bits`].
+#[inline]
+fn from_order_bits(k: u32) -> f32 {
+    f32::from_bits(if k >> 31 == 1 { k & !(1 << 31) } else { !k })
 }
 
 /// A node's totals and impurity.
@@ -443,21 +468,25 @@ impl<'p> Grower<'p> {
             }
         };
         let nf = self.sorted.len();
-        let results: Vec<Option<FeatureBest>> = if self.parallel && (end - start) * nf >= PARALLEL_WORK && nf > 1 {
-            (0..nf).into_par_iter().map_init(Scratch::default, |s, f| one(f, s)).collect()
-        } else {
-            let mut s = std::mem::take(&mut self.search_scratch);
-            let r = (0..nf).map(|f| one(f, &mut s)).collect();
-            self.search_scratch = s;
-            r
-        };
         let mut best: Option<(usize, FeatureBest)> = None;
-        for (f, r) in results.into_iter().enumerate() {
+        let mut offer = |f: usize, r: Option<FeatureBest>| {
             if let Some(fb) = r {
                 if best.as_ref().is_none_or(|(_, b)| fb.proxy > b.proxy) {
                     best = Some((f, fb));
                 }
             }
+        };
+        if self.parallel && (end - start) * nf >= PARALLEL_WORK && nf > 1 {
+            let results: Vec<Option<FeatureBest>> = (0..nf).into_par_iter().map_init(Scratch::default, |s, f| one(f, s)).collect();
+            for (f, r) in results.into_iter().enumerate() {
+                offer(f, r);
+            }
+        } else {
+            let mut s = std::mem::take(&mut self.search_scratch);
+            for f in 0..nf {
+                offer(f, one(f, &mut s));
+            }
+            self.search_scratch = s;
         }
         best
     }
@@ -486,19 +515,21 @@ impl<'p> Grower<'p> {
             self.go_left[e.r as usize] = entry_goes_left(&p.split, e.v);
         }
         let go_left = &self.go_left;
+        // Stable and branch-free: every entry is written to both the left slot and the
+        // right buffer, and only the cursor of its side moves on.
         let partition = |seg: &mut [Entry], scratch: &mut Vec<Entry>| {
             scratch.clear();
-            let mut w = 0;
+            scratch.resize(seg.len(), Entry { v: 0.0, r: 0 });
+            let (mut l, mut r) = (0, 0);
             for i in 0..seg.len() {
                 let e = seg[i];
-                if go_left[e.r as usize] {
-                    seg[w] = e;
-                    w += 1;
-                } else {
-                    scratch.push(e);
-                }
+                let left = go_left[e.r as usize];
+                seg[l] = e;
+                scratch[r] = e;
+                l += left as usize;
+                r += !left as usize;
             }
-            seg[w..].copy_from_slice(scratch);
+            seg[l..].copy_from_slice(&scratch[..r]);
         };
         let nf = self.sorted.len();
         if self.parallel && (end - start) * nf >= PARALLEL_WORK && nf > 1 {

@@ -31,6 +31,9 @@ pub(crate) struct Rows<'a> {
     pub wy: &'a [f64],
     /// Number of classes; 0 when regressing.
     pub k: usize,
+    /// Every weight is exactly 1, so a running weight is a row count (exact in f64) and the
+    /// scans need not read `w`.
+    pub unit: bool,
 }
 
 /// Weighted totals of a set of rows.
@@ -115,6 +118,27 @@ struct Scan {
     msl: u32,
     miss_w: f64,
     nonmiss_w: f64,
+}
+
+impl Scan {
+    /// Positions a scan visits: past the last one, no cut leaves `min_leaf_rows` on the right
+    /// even with the missing cells there.
+    #[inline(always)]
+    fn end(&self) -> usize {
+        (self.nn - 1).min((self.nn + self.n_miss as usize).saturating_sub(self.msl as usize))
+    }
+
+    /// After the entry at `i` joined the left side: `None` when the next present value equals
+    /// it (within [`VALUE_TOLERANCE`]), else whether a cut after `i` is allowed with missing
+    /// cells right, and with them left.
+    #[inline(always)]
+    fn cut_after(&self, seg: &[Entry], i: usize) -> Option<(bool, bool)> {
+        if seg[i + 1].v <= seg[i].v + VALUE_TOLERANCE {
+            return None;
+        }
+        let (nn, nl, n_miss, msl) = (self.nn as u32, i as u32 + 1, self.n_miss, self.msl);
+        Some((nl >= msl, n_miss > 0 && nl + n_miss >= msl && nn - nl >= msl))
+    }
 }
 
 /// Tracks the best candidate of one pass; replaces only on a strictly larger proxy.
@@ -211,10 +235,12 @@ impl SearchCtx<'_> {
         let mut pass_left: Best<usize> = Best::new(); // missing cells left
         if !constant {
             let scan = Scan { nn, n_miss, msl, miss_w, nonmiss_w };
-            if self.rows.k == 0 {
-                self.scan_positions::<true>(seg, &scan, s, &mut pass_right, &mut pass_left);
-            } else {
-                self.scan_positions::<false>(seg, &scan, s, &mut pass_right, &mut pass_left);
+            match (self.rows.k, self.rows.unit) {
+                (0, true) => self.scan_positions::<true, true>(seg, &scan, s, &mut pass_right, &mut pass_left),
+                (0, false) => self.scan_positions::<true, false>(seg, &scan, s, &mut pass_right, &mut pass_left),
+                (2, true) => self.scan_two_classes::<true>(seg, &scan, s, &mut pass_right, &mut pass_left),
+                (2, false) => self.scan_two_classes::<false>(seg, &scan, s, &mut pass_right, &mut pass_left),
+                _ => self.scan_positions::<false, false>(seg, &scan, s, &mut pass_right, &mut pass_left),
             }
         }
         // All present values left, missing cells right.
@@ -242,31 +268,30 @@ impl SearchCtx<'_> {
     }
 
     /// The forward scan over the present values of a numeric feature. `REGRESS` picks the
-    /// scalar squared-error path at compile time, so the hot loop carries no branch on the task.
+    /// scalar squared-error path at compile time, so the hot loop carries no branch on the task;
+    /// `UNIT` (every weight 1) counts the left weight instead of summing it: the same exact
+    /// integer, without reading `w`.
     #[inline(always)]
-    fn scan_positions<const REGRESS: bool>(&self, seg: &[Entry], sc: &Scan, s: &mut Scratch, pass_right: &mut Best<usize>, pass_left: &mut Best<usize>) {
+    fn scan_positions<const REGRESS: bool, const UNIT: bool>(&self, seg: &[Entry], sc: &Scan, s: &mut Scratch, pass_right: &mut Best<usize>, pass_left: &mut Best<usize>) {
         let rows = self.rows;
         let width = s.left.len();
-        let (nn32, n_miss, msl) = (sc.nn as u32, sc.n_miss, sc.msl);
         let mut lw = 0.0;
         let mut sl = 0.0;
         let (miss0, nonmiss0) = (s.miss[0], s.nonmiss[0]);
-        for i in 0..sc.nn - 1 {
+        for i in 0..sc.end() {
             let r = seg[i].r as usize;
-            lw += rows.w[r];
+            if UNIT {
+                lw = (i + 1) as f64;
+            } else {
+                lw += rows.w[r];
+            }
             if REGRESS {
                 sl += rows.wy[r];
             } else {
                 s.left[rows.class[r] as usize] += rows.w[r];
             }
-            if seg[i + 1].v <= seg[i].v + VALUE_TOLERANCE {
-                continue;
-            }
-            let nl = i as u32 + 1;
-            if nn32 - nl + n_miss < msl {
-                break;
-            }
-            if nl >= msl {
+            let Some((right, left)) = sc.cut_after(seg, i) else { continue };
+            if right {
                 let rw = sc.nonmiss_w - lw + sc.miss_w;
                 let p = if REGRESS {
                     super::criterion::squared_error_proxy(sl, lw, nonmiss0 - sl + miss0, rw)
@@ -278,7 +303,7 @@ impl SearchCtx<'_> {
                 };
                 pass_right.offer(p, i);
             }
-            if n_miss > 0 && nl + n_miss >= msl && nn32 - nl >= msl {
+            if left {
                 let rw = sc.nonmiss_w - lw;
                 let p = if REGRESS {
                     super::criterion::squared_error_proxy(sl + miss0, lw + sc.miss_w, nonmiss0 - sl, rw)
@@ -290,6 +315,52 @@ impl SearchCtx<'_> {
                     self.criterion.class_proxy(&s.tmp, lw + sc.miss_w, &s.right, rw)
                 };
                 pass_left.offer(p, i);
+            }
+        }
+    }
+
+    /// [`Self::scan_positions`] for two classes: both class weights live in registers and are
+    /// updated without a branch on the class. Bit for bit the general scan: adding `w · 0`
+    /// or `w − w` (both +0) leaves a sum unchanged, and with unit weights the class-1 count is
+    /// an integer and the class-0 weight the row count minus it, the same exact integers.
+    #[inline(always)]
+    fn scan_two_classes<const UNIT: bool>(&self, seg: &[Entry], sc: &Scan, s: &mut Scratch, pass_right: &mut Best<usize>, pass_left: &mut Best<usize>) {
+        let rows = self.rows;
+        let (m0, m1, n0, n1) = (s.miss[0], s.miss[1], s.nonmiss[0], s.nonmiss[1]);
+        let gini = self.criterion == Criterion::Gini;
+        let proxy = |a0: f64, a1: f64, wa: f64, b0: f64, b1: f64, wb: f64| {
+            if gini {
+                // Criterion::class_proxy's Gini branch, unrolled (0 + x is x for x >= 0).
+                (a0 * a0 + a1 * a1) / wa + (b0 * b0 + b1 * b1) / wb
+            } else {
+                self.criterion.class_proxy(&[a0, a1], wa, &[b0, b1], wb)
+            }
+        };
+        let (mut lw, mut l0, mut l1) = (0.0f64, 0.0f64, 0.0f64);
+        let mut ones = 0u32;
+        for i in 0..sc.end() {
+            let r = seg[i].r as usize;
+            let c = rows.class[r];
+            if UNIT {
+                ones += c;
+                lw = (i + 1) as f64;
+                l1 = ones as f64;
+                l0 = (i as u32 + 1 - ones) as f64;
+            } else {
+                let w = rows.w[r];
+                let wc = w * c as f64;
+                lw += w;
+                l1 += wc;
+                l0 += w - wc;
+            }
+            let Some((right, left)) = sc.cut_after(seg, i) else { continue };
+            if right {
+                let rw = sc.nonmiss_w - lw + sc.miss_w;
+                pass_right.offer(proxy(l0, l1, lw, n0 - l0 + m0, n1 - l1 + m1, rw), i);
+            }
+            if left {
+                let rw = sc.nonmiss_w - lw;
+                pass_left.offer(proxy(l0 + m0, l1 + m1, lw + sc.miss_w, n0 - l0, n1 - l1, rw), i);
             }
         }
     }
