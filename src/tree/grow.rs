@@ -518,8 +518,10 @@ impl<'p> Grower<'p> {
         // Stable and branch-free: every entry is written to both the left slot and the
         // right buffer, and only the cursor of its side moves on.
         let partition = |seg: &mut [Entry], scratch: &mut Vec<Entry>| {
-            scratch.clear();
-            scratch.resize(seg.len(), Entry { v: 0.0, r: 0 });
+            // Grown once to the largest segment, never cleared: every slot read is written first.
+            if scratch.len() < seg.len() {
+                scratch.resize(seg.len(), Entry { v: 0.0, r: 0 });
+            }
             let (mut l, mut r) = (0, 0);
             for i in 0..seg.len() {
                 let e = seg[i];

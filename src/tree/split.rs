@@ -103,10 +103,18 @@ pub(crate) struct Scratch {
 }
 
 impl Scratch {
+    /// Sizes every buffer to `width` and zeroes the two that are summed into (`left`,
+    /// `miss`); the others are written before they are read.
+    #[inline]
     fn reset(&mut self, width: usize) {
-        for b in [&mut self.left, &mut self.right, &mut self.miss, &mut self.nonmiss, &mut self.tmp] {
-            b.clear();
-            b.resize(width, 0.0);
+        if self.left.len() != width {
+            for b in [&mut self.left, &mut self.right, &mut self.miss, &mut self.nonmiss, &mut self.tmp] {
+                b.clear();
+                b.resize(width, 0.0);
+            }
+        } else {
+            self.left.fill(0.0);
+            self.miss.fill(0.0);
         }
     }
 }
