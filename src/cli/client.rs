@@ -533,12 +533,15 @@ pub fn local(a: LocalArgs, json_out: bool) -> Res {
     if wire.target.is_empty() {
         return Err(CliError::usage("--target: name the column to predict"));
     }
-    let bytes = std::fs::read(&a.file).map_err(|e| format!("{}: {e}", a.file.display()))?;
+    // Read through a buffer, not whole into memory, and let the parsed table go once the plan
+    // holds its own copy: a big table is in memory once while the sweep runs.
+    let file = std::fs::File::open(&a.file).map_err(|e| format!("{}: {e}", a.file.display()))?;
     let mut options = CsvOptions::new(wire.target.clone());
     options.task = crate::data::Task::parse(&wire.task);
-    let data = read_dataset(&bytes[..], &options).map_err(|e| format!("{}: {e}", a.file.display()))?;
+    let data = read_dataset(std::io::BufReader::with_capacity(1 << 20, file), &options).map_err(|e| format!("{}: {e}", a.file.display()))?;
     let spec = convert::spec_from(&wire, data.task()).map_err(|s| s.message().to_string())?;
     let plan = crate::sweep::plan(&data, &spec).map_err(|e| e.to_string())?;
+    drop(data);
     let bar = if json_out { ProgressBar::hidden() } else { ProgressBar::new(plan.units.len() as u64) };
     bar.set_style(ProgressStyle::with_template("{spinner} work units {pos}/{len} {bar:30} [{elapsed}]").unwrap());
     let cancel = AtomicBool::new(false);

@@ -255,29 +255,40 @@ pub fn infer_task(cells: &[&str]) -> Task {
 }
 
 /// Trimmed cell texts of one column, packed into one buffer so a cell costs no allocation.
+/// Each cell's length is one byte; a cell of 255 bytes or more keeps 255 there and its length
+/// in `long`, so a big table's texts cost about one byte per cell beyond the text itself.
 #[derive(Default)]
 struct CellTexts {
     text: String,
-    ends: Vec<usize>,
+    lens: Vec<u8>,
+    long: Vec<usize>,
 }
 
 impl CellTexts {
     fn push(&mut self, cell: &str) {
         self.text.push_str(cell);
-        self.ends.push(self.text.len());
+        if cell.len() < 255 {
+            self.lens.push(cell.len() as u8);
+        } else {
+            self.lens.push(255);
+            self.long.push(cell.len());
+        }
     }
 
     fn len(&self) -> usize {
-        self.ends.len()
+        self.lens.len()
     }
 
-    fn get(&self, i: usize) -> &str {
-        let start = if i == 0 { 0 } else { self.ends[i - 1] };
-        &self.text[start..self.ends[i]]
-    }
-
+    /// The cells in order.
     fn iter(&self) -> impl Iterator<Item = &str> + '_ {
-        (0..self.len()).map(move |i| self.get(i))
+        let mut long = self.long.iter();
+        let mut start = 0;
+        self.lens.iter().map(move |&l| {
+            let len = if l == 255 { *long.next().expect("a long length per 255 mark") } else { l as usize };
+            let cell = &self.text[start..start + len];
+            start += len;
+            cell
+        })
     }
 }
 
@@ -295,8 +306,9 @@ struct PendingColumn {
     texts: CellTexts,
     /// `None` once a non-number is seen or when the caller asked for categorical.
     numbers: Option<Vec<f32>>,
-    /// First number that is not finite in f32; an error only if the column stays numeric.
-    first_non_finite: Option<CellPlace>,
+    /// First number that is not finite in f32, and its text; an error only if the column
+    /// stays numeric.
+    first_non_finite: Option<(CellPlace, String)>,
 }
 
 impl PendingColumn {
@@ -321,7 +333,7 @@ impl PendingColumn {
         match parse_f32(cell) {
             Some(v) => {
                 if !v.is_finite() && self.first_non_finite.is_none() {
-                    self.first_non_finite = Some(place);
+                    self.first_non_finite = Some((place, cell.to_string()));
                 }
                 numbers.push(v);
             }
@@ -335,9 +347,8 @@ impl PendingColumn {
 
     fn finish(self) -> Result<Feature, DataError> {
         if let Some(numbers) = self.numbers {
-            if let Some(place) = self.first_non_finite {
-                let cell = self.texts.get(place.row as usize - 1);
-                return Err(non_finite_value(cell)
+            if let Some((place, cell)) = self.first_non_finite {
+                return Err(non_finite_value(&cell)
                     .at(Some(place.row), Some(place.line))
                     .in_column(&self.name));
             }

@@ -11,7 +11,7 @@
 
 use super::metrics::{score_classes, score_values, ClassGroups, Metric, ValueGroup};
 use crate::data::{Dataset, Target};
-use crate::tree::{fit, pruning_path_of, FitError, FitOptions, TrainSet, Tree, NO_NODE};
+use crate::tree::{fit_with_leaves, pruning_path_of, FitError, FitOptions, TrainSet, Tree, NO_NODE};
 
 /// Scores of one setting on one fold.
 #[derive(Clone, Debug, PartialEq)]
@@ -31,8 +31,12 @@ enum LeafRows {
 }
 
 impl LeafRows {
-    fn build(tree: &Tree, leaf_slot: &[u32], n_leaves: usize, data: &Dataset, rows: &[u32]) -> LeafRows {
-        let leaves: Vec<u32> = rows.iter().map(|&r| leaf_slot[tree.apply_row(&data.frame, r as usize) as usize]).collect();
+    /// Aggregates `rows`, whose leaves in `tree` are `leaf_of` (routed here when `None`).
+    fn build(tree: &Tree, leaf_slot: &[u32], n_leaves: usize, data: &Dataset, rows: &[u32], leaf_of: Option<&[u32]>) -> LeafRows {
+        let leaves: Vec<u32> = match leaf_of {
+            Some(l) => l.iter().map(|&node| leaf_slot[node as usize]).collect(),
+            None => rows.iter().map(|&r| leaf_slot[tree.apply_row(&data.frame, r as usize) as usize]).collect(),
+        };
         match &data.target {
             Target::Classes { codes, labels } => {
                 let k = labels.len();
@@ -139,7 +143,8 @@ impl Envelope {
     pub fn grow(data: &Dataset, options: &FitOptions, train: &[u32], valid: &[u32]) -> Result<Envelope, FitError> {
         let checked = options.check(data.task())?;
         let set = TrainSet { frame: &data.frame, target: &data.target, target_name: &data.target_name, rows: Some(train), weights: None };
-        let tree = fit(&set, &checked)?;
+        // The grower knows each training row's leaf; only the validation rows are routed.
+        let (tree, train_leaves) = fit_with_leaves(&set, &checked)?;
         let n = tree.nodes.len();
         let mut parent = vec![NO_NODE; n];
         for (i, node) in tree.nodes.iter().enumerate() {
@@ -155,8 +160,8 @@ impl Envelope {
         for (j, &l) in leaves.iter().enumerate() {
             slot[l as usize] = j as u32;
         }
-        let valid_rows = LeafRows::build(&tree, &slot, leaves.len(), data, valid);
-        let train_rows = LeafRows::build(&tree, &slot, leaves.len(), data, train);
+        let valid_rows = LeafRows::build(&tree, &slot, leaves.len(), data, valid, None);
+        let train_rows = LeafRows::build(&tree, &slot, leaves.len(), data, train, Some(&train_leaves));
         Ok(Envelope { tree, parent, by_rank, leaves, valid: valid_rows, train: train_rows })
     }
 

@@ -55,11 +55,37 @@ pub fn fit(set: &TrainSet, options: &CheckedOptions) -> Result<Tree, FitError> {
 /// As [`fit`], with feature-level parallelism on or off (for the equality test of the two paths).
 pub fn fit_with(set: &TrainSet, options: &CheckedOptions, parallel: bool) -> Result<Tree, FitError> {
     let prepared = Prepared::new(set, options)?;
-    let tree = Grower::new(&prepared, options, parallel).grow();
+    let (tree, _) = Grower::new(&prepared, options, parallel).grow(false);
+    Ok(pruned(tree, options))
+}
+
+/// As [`fit`], and the leaf each training row reached: one entry per row of `set.rows` (per
+/// frame row when `None`), [`NO_NODE`] for rows of weight 0. The grower knows them from its
+/// partitions, so they cost no routing; they are the leaves [`Tree::apply_row`] gives.
+pub fn fit_with_leaves(set: &TrainSet, options: &CheckedOptions) -> Result<(Tree, Vec<u32>), FitError> {
+    let prepared = Prepared::new(set, options)?;
+    let (tree, leaf_of) = Grower::new(&prepared, options, true).grow(true);
+    let tree = pruned(tree, options);
+    let mut leaves = vec![NO_NODE; set.rows.map_or(set.frame.rows, <[u32]>::len)];
     if options.limits.prune_alpha > 0.0 {
-        Ok(super::prune::prune(&tree, options.limits.prune_alpha))
+        // Pruning renumbers the nodes: route the rows that took part through the pruned tree.
+        for &j in &prepared.positions {
+            let r = set.rows.map_or(j, |rows| rows[j as usize]);
+            leaves[j as usize] = tree.apply_row(set.frame, r as usize);
+        }
     } else {
-        Ok(tree)
+        for (&j, &leaf) in prepared.positions.iter().zip(&leaf_of) {
+            leaves[j as usize] = leaf;
+        }
+    }
+    Ok((tree, leaves))
+}
+
+fn pruned(tree: Tree, options: &CheckedOptions) -> Tree {
+    if options.limits.prune_alpha > 0.0 {
+        super::prune::prune(&tree, options.limits.prune_alpha)
+    } else {
+        tree
     }
 }
 
@@ -70,6 +96,8 @@ struct Prepared<'a> {
     target_name: String,
     /// Frame row of each fit-local row.
     frame_rows: Vec<u32>,
+    /// Position in the set's rows of each fit-local row.
+    positions: Vec<u32>,
     class: Vec<u32>,
     y: Vec<f64>,
     w: Vec<f64>,
@@ -102,8 +130,9 @@ impl<'a> Prepared<'a> {
             }
         };
         let mut frame_rows = Vec::with_capacity(rows.len());
+        let mut positions = Vec::with_capacity(rows.len());
         let mut w = Vec::with_capacity(rows.len());
-        for &r in rows {
+        for (j, &r) in rows.iter().enumerate() {
             if r as usize >= frame.rows {
                 return Err(fit_error("rows", format!("row {r} is beyond the frame's {} rows", frame.rows)));
             }
@@ -114,6 +143,7 @@ impl<'a> Prepared<'a> {
             // Zero-weight rows are left out entirely, so they count in no row limit.
             if wr > 0.0 {
                 frame_rows.push(r);
+                positions.push(j as u32);
                 w.push(wr);
             }
         }
@@ -138,7 +168,7 @@ impl<'a> Prepared<'a> {
         }
         let wy = if k == 0 { y.iter().zip(&w).map(|(y, w)| y * w).collect() } else { Vec::new() };
         let unit = w.iter().all(|&x| x == 1.0);
-        Ok(Prepared { frame, target: set.target, target_name: set.target_name.to_string(), frame_rows, class, y, w, wy, k, unit })
+        Ok(Prepared { frame, target: set.target, target_name: set.target_name.to_string(), frame_rows, positions, class, y, w, wy, k, unit })
     }
 
     fn rows(&self) -> Rows<'_> {
@@ -147,9 +177,9 @@ impl<'a> Prepared<'a> {
 
     /// Each feature's fit-local rows sorted by value, missing cells last; ties by row.
     ///
-    /// Sorted as one `u64` per entry: the value's bits mapped so that unsigned order is
-    /// `f32::total_cmp` order (missing cells are a positive NaN, after +inf), then the row.
-    /// The keys are unique, so the order is the same as sorting by (value, row).
+    /// A stable radix sort (radsort) of the entries, made in row order, by the value's bits
+    /// mapped so that unsigned order is `f32::total_cmp` order (missing cells are a positive
+    /// NaN, after +inf): stability keeps equal values in row order.
     fn presort(&self, parallel: bool) -> Vec<Vec<Entry>> {
         let one = |f: &crate::data::Feature| {
             let value = |r: u32| -> f32 {
@@ -172,9 +202,9 @@ impl<'a> Prepared<'a> {
                     }
                 }
             };
-            let mut keys: Vec<u64> = self.frame_rows.iter().enumerate().map(|(i, &r)| (order_bits(value(r)) as u64) << 32 | i as u64).collect();
-            keys.sort_unstable();
-            keys.into_iter().map(|k| Entry { v: from_order_bits((k >> 32) as u32), r: k as u32 }).collect::<Vec<Entry>>()
+            let mut entries: Vec<Entry> = self.frame_rows.iter().enumerate().map(|(i, &r)| Entry { v: value(r), r: i as u32 }).collect();
+            radsort::sort_by_key(&mut entries, |e| order_bits(e.v));
+            entries
         };
         if parallel {
             self.frame.features.par_iter().map(one).collect()
@@ -195,11 +225,6 @@ fn order_bits(v: f32) -> u32 {
     }
 }
 
-/// The inverse of [`order_bits`].
-#[inline]
-fn from_order_bits(k: u32) -> f32 {
-    f32::from_bits(if k >> 31 == 1 { k & !(1 << 31) } else { !k })
-}
 
 /// A node's totals and impurity.
 #[derive(Clone, Debug)]
@@ -298,7 +323,8 @@ impl<'p> Grower<'p> {
         }
     }
 
-    fn grow(mut self) -> Tree {
+    /// Grows the tree; with `leaves`, also the leaf (final node id) of every fit-local row.
+    fn grow(mut self, leaves: bool) -> (Tree, Vec<u32>) {
         let n = self.prep.frame_rows.len() as u32;
         let root = self.stats_of((0..n).collect::<Vec<_>>().iter().copied());
         self.total_weight = root.totals.w;
@@ -343,7 +369,23 @@ impl<'p> Grower<'p> {
                 }
             }
         }
-        self.finish()
+        let mut leaf_of = Vec::new();
+        if leaves {
+            leaf_of = vec![NO_NODE; n as usize];
+            for (id, node) in self.nodes.iter().enumerate() {
+                if node.is_leaf() {
+                    let start = self.starts[id] as usize;
+                    for e in &self.sorted[0][start..start + node.rows as usize] {
+                        leaf_of[e.r as usize] = id as u32;
+                    }
+                }
+            }
+        }
+        let (tree, new_id) = self.finish();
+        for l in &mut leaf_of {
+            *l = new_id[*l as usize];
+        }
+        (tree, leaf_of)
     }
 
     fn push_node(&mut self, depth: u32, start: u32, s: NodeStats) -> u32 {
@@ -556,7 +598,8 @@ impl<'p> Grower<'p> {
     }
 
     /// Ranks splits in best-first order, renumbers nodes in preorder and fills the values.
-    fn finish(self) -> Tree {
+    /// The tree, and the new id of each node by creation order.
+    fn finish(self) -> (Tree, Vec<u32>) {
         let mut nodes = self.nodes;
         // Best-first ranks: a priority walk from the root over split nodes.
         let mut heap = BinaryHeap::new();
@@ -628,7 +671,7 @@ impl<'p> Grower<'p> {
                 },
             })
             .collect();
-        Tree {
+        let tree = Tree {
             task: if k > 0 { Task::Classify } else { Task::Regress },
             target: self.prep.target_name.clone(),
             labels,
@@ -640,7 +683,8 @@ impl<'p> Grower<'p> {
             class_totals,
             total_weight: self.total_weight,
             options: self.options,
-        }
+        };
+        (tree, new_id)
     }
 }
 
