@@ -15,7 +15,7 @@ use std::collections::BinaryHeap;
 use rayon::prelude::*;
 
 use super::limits::fit_error;
-use super::split::{Cut, Entry, FeatureBest, Rows, Scratch, SearchCtx, Totals};
+use super::split::{Cut, Entry, CLASS_BIT, FeatureBest, Rows, Scratch, SearchCtx, Totals};
 use super::{CheckedOptions, ClassWeight, ColumnInfo, Criterion, FitError, Node, Split, SplitRule, Tree, NO_NODE};
 use crate::data::{Column, Frame, Target, Task, MISSING_CODE};
 
@@ -147,6 +147,9 @@ impl<'a> Prepared<'a> {
                 w.push(wr);
             }
         }
+        if frame_rows.len() >= CLASS_BIT as usize {
+            return Err(fit_error("rows", format!("{} rows take part; a fit takes fewer than 2^31", frame_rows.len())));
+        }
         if frame_rows.is_empty() {
             return Err(fit_error("rows", "no rows with a positive weight to fit on"));
         }
@@ -181,6 +184,8 @@ impl<'a> Prepared<'a> {
     /// mapped so that unsigned order is `f32::total_cmp` order (missing cells are a positive
     /// NaN, after +inf): stability keeps equal values in row order.
     fn presort(&self, parallel: bool) -> Vec<Vec<Entry>> {
+        // Two classes: each entry carries its row's class in bit 31 (see `Entry::r`).
+        let class_bit = |i: usize| if self.k == 2 { self.class[i] << 31 } else { 0 };
         let one = |f: &crate::data::Feature| {
             let value = |r: u32| -> f32 {
                 match &f.column {
@@ -202,7 +207,7 @@ impl<'a> Prepared<'a> {
                     }
                 }
             };
-            let mut entries: Vec<Entry> = self.frame_rows.iter().enumerate().map(|(i, &r)| Entry { v: value(r), r: i as u32 }).collect();
+            let mut entries: Vec<Entry> = self.frame_rows.iter().enumerate().map(|(i, &r)| Entry { v: value(r), r: i as u32 | class_bit(i) }).collect();
             radsort::sort_by_key(&mut entries, |e| order_bits(e.v));
             entries
         };
@@ -376,7 +381,7 @@ impl<'p> Grower<'p> {
                 if node.is_leaf() {
                     let start = self.starts[id] as usize;
                     for e in &self.sorted[0][start..start + node.rows as usize] {
-                        leaf_of[e.r as usize] = id as u32;
+                        leaf_of[e.row()] = id as u32;
                     }
                 }
             }
@@ -411,7 +416,7 @@ impl<'p> Grower<'p> {
         let r = self.prep.rows();
         let mut t = Totals::zero(self.width);
         for i in rows.clone() {
-            t.add(&r, i);
+            t.add(&r, i as usize);
         }
         let impurity = if self.prep.k > 0 {
             self.criterion.class_impurity(&t.sums, t.w)
@@ -465,9 +470,9 @@ impl<'p> Grower<'p> {
         right_rows.clear();
         for e in seg {
             if entry_goes_left(&split, e.v) {
-                left_rows.push(e.r);
+                left_rows.push(e.row() as u32);
             } else {
-                right_rows.push(e.r);
+                right_rows.push(e.row() as u32);
             }
         }
         if !fb.saw_missing {
@@ -554,7 +559,7 @@ impl<'p> Grower<'p> {
         let end = end as usize;
         let f = p.split.feature as usize;
         for e in &self.sorted[f][start..end] {
-            self.go_left[e.r as usize] = entry_goes_left(&p.split, e.v);
+            self.go_left[e.row()] = entry_goes_left(&p.split, e.v);
         }
         let go_left = &self.go_left;
         // Stable and branch-free: every entry is written to both the left slot and the
@@ -567,7 +572,7 @@ impl<'p> Grower<'p> {
             let (mut l, mut r) = (0, 0);
             for i in 0..seg.len() {
                 let e = seg[i];
-                let left = go_left[e.r as usize];
+                let left = go_left[e.row()];
                 seg[l] = e;
                 scratch[r] = e;
                 l += left as usize;

@@ -12,7 +12,20 @@ use super::Criterion;
 #[derive(Clone, Copy, Debug, PartialEq)]
 pub(crate) struct Entry {
     pub v: f32,
+    /// The row in the low 31 bits; in a two-class fit bit 31 is the row's class, so the scans
+    /// read it without a lookup (a fit has fewer than 2^31 rows).
     pub r: u32,
+}
+
+/// The class bit of [`Entry::r`].
+pub(crate) const CLASS_BIT: u32 = 1 << 31;
+
+impl Entry {
+    /// The fit-local row.
+    #[inline(always)]
+    pub fn row(self) -> usize {
+        (self.r & !CLASS_BIT) as usize
+    }
 }
 
 /// Values closer than this (in float32 arithmetic) are treated as one value, as the
@@ -51,8 +64,7 @@ impl Totals {
     }
 
     #[inline]
-    pub fn add(&mut self, rows: &Rows, r: u32) {
-        let r = r as usize;
+    pub fn add(&mut self, rows: &Rows, r: usize) {
         self.n += 1;
         self.w += rows.w[r];
         if rows.k > 0 {
@@ -200,7 +212,7 @@ impl SearchCtx<'_> {
         let rows = self.rows;
         let mut w = 0.0;
         for e in seg {
-            let r = e.r as usize;
+            let r = e.row();
             w += rows.w[r];
             if rows.k > 0 {
                 sums[rows.class[r] as usize] += rows.w[r];
@@ -214,7 +226,7 @@ impl SearchCtx<'_> {
     fn missing_totals(&self, seg: &[Entry], width: usize) -> Totals {
         let mut t = Totals::zero(width);
         for e in seg {
-            t.add(self.rows, e.r);
+            t.add(self.rows, e.row());
         }
         t
     }
@@ -287,7 +299,7 @@ impl SearchCtx<'_> {
         let mut sl = 0.0;
         let (miss0, nonmiss0) = (s.miss[0], s.nonmiss[0]);
         for i in 0..sc.end() {
-            let r = seg[i].r as usize;
+            let r = seg[i].row();
             if UNIT {
                 lw = (i + 1) as f64;
             } else {
@@ -347,15 +359,14 @@ impl SearchCtx<'_> {
         let (mut lw, mut l0, mut l1) = (0.0f64, 0.0f64, 0.0f64);
         let mut ones = 0u32;
         for i in 0..sc.end() {
-            let r = seg[i].r as usize;
-            let c = rows.class[r];
+            let c = seg[i].r >> 31;
             if UNIT {
                 ones += c;
                 lw = (i + 1) as f64;
                 l1 = ones as f64;
                 l0 = (i as u32 + 1 - ones) as f64;
             } else {
-                let w = rows.w[r];
+                let w = rows.w[seg[i].row()];
                 let wc = w * c as f64;
                 lw += w;
                 l1 += wc;
@@ -386,7 +397,7 @@ impl SearchCtx<'_> {
             let code = seg[i].v;
             let mut t = Totals::zero(width);
             while i < nn && seg[i].v == code {
-                t.add(self.rows, seg[i].r);
+                t.add(self.rows, seg[i].row());
                 i += 1;
             }
             groups.push((code as u32, t));
