@@ -16,7 +16,7 @@ use pollard::data::{Column, Feature, Frame, Target, Task, MISSING_CODE};
 use pollard::export::{from_json, to_json};
 use pollard::tree::grow::fit_with;
 use pollard::tree::{
-    fit, prune, pruning_path, ClassWeight, Criterion, FitOptions, Limits, Predictions, SplitRule, TrainSet, Tree,
+    fit, prune, pruning_path, ClassWeight, Criterion, FitOptions, Limits, Predictions, SplitRule, Splitter, TrainSet, Tree,
 };
 use proptest::collection::vec;
 use proptest::option;
@@ -189,7 +189,7 @@ fn case_from(data: impl Strategy<Value = Data>, limits: BoxedStrategy<Limits>, w
     })
     .prop_map(|(data, limits, criterion, class_weight, weights)| Case {
         data,
-        options: FitOptions { limits, criterion, class_weight },
+        options: FitOptions { limits, criterion, class_weight, splitter: Default::default() },
         weights,
     })
 }
@@ -396,7 +396,7 @@ proptest! {
         let target = Target::Classes { codes: classes.clone(), labels: class_labels(2) };
         // min_leaf_rows = 1 (the default), so every partition with two non-empty sides counts.
         let limits = Limits { max_depth: Some(1), ..Limits::default() };
-        let opts = FitOptions { limits, criterion: Some(Criterion::Gini), class_weight: ClassWeight::None };
+        let opts = FitOptions { limits, criterion: Some(Criterion::Gini), class_weight: ClassWeight::None, splitter: Default::default() };
         let tree = fit(&TrainSet::new(&frame, &target), &opts.check(Task::Classify).unwrap()).unwrap();
         let engine = tree.nodes[0].gain;
 
@@ -645,7 +645,7 @@ proptest! {
         let (frame, target) = big_data(seed, task);
         assert!(frame.rows * frame.n_features() >= 1 << 17, "the frame must cross the parallel threshold");
         let class_weight = if balanced && task == Task::Classify { ClassWeight::Balanced } else { ClassWeight::None };
-        let opts = FitOptions { limits: Limits { max_leaves, min_leaf_rows, ..Limits::default() }, criterion: None, class_weight };
+        let opts = FitOptions { limits: Limits { max_leaves, min_leaf_rows, ..Limits::default() }, criterion: None, class_weight, splitter: Default::default() };
         let checked = opts.check(task).unwrap();
         let set = TrainSet::new(&frame, &target);
         let parallel = fit_with(&set, &checked, true).unwrap();
@@ -793,4 +793,94 @@ fn json_round_trip_keeps_ten_elevenths() {
     let back = from_json(&to_json(&tree)).unwrap();
     assert_eq!(back.value(0), tree.value(0));
     assert_eq!(back, tree);
+}
+
+// ---------------------------------------------------------------------------------------------
+// The binned splitter
+// ---------------------------------------------------------------------------------------------
+
+/// Numeric columns of `rows` cells, column j with `distinct[j]` distinct values (every one of
+/// them present: the first `distinct[j]` rows take each once), some cells missing.
+fn few_valued(rows: usize, distinct: Vec<usize>) -> BoxedStrategy<Vec<Column>> {
+    distinct
+        .into_iter()
+        .map(move |d| {
+            vec(prop_oneof![12 => (0..d).prop_map(Some), 1 => Just(None)], rows)
+                .prop_map(move |cells| {
+                    let v = cells.iter().enumerate().map(|(i, c)| match (i < d, c) {
+                        (true, _) => i as f32 * 0.25 - 7.0,
+                        (false, Some(k)) => *k as f32 * 0.25 - 7.0,
+                        (false, None) => f32::NAN,
+                    });
+                    Column::Numeric(v.collect())
+                })
+                .boxed()
+        })
+        .collect::<Vec<_>>()
+        .boxed()
+}
+
+fn binned(options: &FitOptions) -> FitOptions {
+    FitOptions { splitter: Splitter::Binned, ..options.clone() }
+}
+
+proptest! {
+    #![proptest_config(config(48))]
+
+    /// 14. On numeric features with at most 255 distinct values (255 included), the binned
+    /// splitter grows exactly the exact splitter's tree: same nodes, thresholds, gains, values.
+    #[test]
+    fn binned_equals_exact_up_to_255_values(
+        (data, limits, criterion, class_weight, weights) in (256usize..=700, vec(2usize..=255, 1..=3), task(), any::<bool>())
+            .prop_flat_map(|(rows, mut distinct, task, full)| {
+                if full {
+                    distinct[0] = 255;
+                }
+                (few_valued(rows, distinct), target(task, rows), Just(rows))
+            })
+            .prop_flat_map(|(columns, target, rows)| {
+                let task = target.task();
+                let data = Data { frame: frame_of(columns), target, specs: Vec::new() };
+                (Just(data), limits(), criterion(task), class_weight(task), option::of(weights(rows)))
+            })
+    ) {
+        let case = Case { data, options: FitOptions { limits, criterion, class_weight, splitter: Splitter::Exact }, weights };
+        let exact = case.fit();
+        let bins = case.fit_with_options(&binned(&case.options));
+        prop_assert_eq!(&bins.nodes, &exact.nodes);
+        prop_assert_eq!(&bins.values, &exact.values);
+        prop_assert_eq!(bins.options.splitter, Splitter::Binned);
+    }
+
+    /// 15. On a feature with more than 255 distinct values the binned splitter cuts it at no
+    /// more than 254 places (255 bins), however deep the tree grows, where the exact splitter,
+    /// on a target with a distinct value per row, cuts it between almost every pair of rows.
+    #[test]
+    fn binned_cuts_a_many_valued_feature_at_most_254_ways(rows in 600usize..=900, seed in any::<u64>()) {
+        let mut state = seed;
+        let mut next = || {
+            state = state.wrapping_add(0x9E37_79B9_7F4A_7C15);
+            let mut z = state;
+            z = (z ^ (z >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
+            z = (z ^ (z >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
+            z ^ (z >> 31)
+        };
+        let x: Vec<f32> = (0..rows).map(|_| (next() % 100_000) as f32 / 7.0).collect();
+        let target = Target::Values((0..rows).map(|i| i as f64).collect());
+        let frame = frame_of(vec![Column::Numeric(x)]);
+        let cuts = |splitter: Splitter| {
+            let options = FitOptions { splitter, ..FitOptions::default() };
+            let tree = fit(&TrainSet::new(&frame, &target), &options.check(Task::Regress).unwrap()).unwrap();
+            let mut cuts: Vec<f64> = tree.nodes.iter().filter_map(|n| match n.split.as_ref().map(|s| &s.rule) {
+                Some(SplitRule::Threshold(t)) => Some(*t),
+                _ => None,
+            }).collect();
+            cuts.sort_by(f64::total_cmp);
+            cuts.dedup();
+            cuts.len()
+        };
+        let (binned, exact) = (cuts(Splitter::Binned), cuts(Splitter::Exact));
+        prop_assert!(binned <= 254, "binned: {} distinct cuts", binned);
+        prop_assert!(exact > 254, "exact: only {} distinct cuts", exact);
+    }
 }

@@ -70,6 +70,7 @@ fn options_of(case: &Value) -> FitOptions {
             None => ClassWeight::None,
             Some(other) => panic!("unknown class weight {other}"),
         },
+        splitter: Default::default(),
     }
 }
 

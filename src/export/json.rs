@@ -238,6 +238,8 @@ pub fn from_json(text: &str) -> Result<Tree, String> {
             min_gain: lf.min_gain,
             prune_alpha: lf.prune_alpha,
         },
+        // Model files do not record the splitter: the tree is complete without it.
+        splitter: Default::default(),
         criterion,
         class_weight,
     };

@@ -11,7 +11,7 @@ use crate::pb;
 use crate::rpc::error::{echo, ServiceError};
 use crate::service::{DatasetRef, RunRequest};
 use crate::sweep::{FoldPlan, FoldScheme, Metric, PickRule, Range, SettingScore, SweepSpec};
-use crate::tree::{ClassWeight, ColumnInfo, Criterion, FitOptions, Limits, Node, Split, SplitRule, Tree, NO_NODE};
+use crate::tree::{ClassWeight, ColumnInfo, Criterion, FitOptions, Limits, Node, Split, SplitRule, Splitter, Tree, NO_NODE};
 
 fn invalid(field: &str, message: impl std::fmt::Display) -> Status {
     ServiceError::invalid(field, message.to_string()).into()
@@ -310,6 +310,10 @@ fn spec_with(s: &pb::SweepSpec, data_task: Option<Task>) -> Result<(SweepSpec, b
         "" => None,
         m => Some(Metric::parse(m).ok_or_else(|| invalid("spec.metric", format!("'{m}' is not a metric pollard knows")))?),
     };
+    let splitter = match s.splitter.as_str() {
+        "" => Splitter::Exact,
+        x => Splitter::parse(x).ok_or_else(|| invalid("spec.splitter", format!("'{}' is not exact or binned", echo(x))))?,
+    };
     let pick = match s.pick.as_str() {
         "" => PickRule::Highest,
         p => PickRule::parse(p).ok_or_else(|| invalid("spec.pick", format!("'{p}' is not highest or one_se")))?,
@@ -331,6 +335,7 @@ fn spec_with(s: &pb::SweepSpec, data_task: Option<Task>) -> Result<(SweepSpec, b
         seed: s.seed,
         fit_final: !s.skip_final,
         max_settings: None,
+        splitter,
     }, default_fold_scheme))
 }
 
@@ -352,6 +357,10 @@ pub fn spec_to(s: &SweepSpec, target: &str) -> pb::SweepSpec {
         pick: s.pick.as_str().to_string(),
         seed: s.seed,
         skip_final: !s.fit_final,
+        splitter: match s.splitter {
+            Splitter::Exact => String::new(),
+            other => other.as_str().to_string(),
+        },
     }
 }
 
@@ -702,6 +711,7 @@ pub fn model_from(m: &pb::Model) -> Result<Tree, String> {
             },
             criterion: Criterion::parse(&g.criterion),
             class_weight: ClassWeight::parse(&g.class_weight).unwrap_or_default(),
+            splitter: Default::default(),
         },
     })
 }
@@ -723,6 +733,7 @@ pub fn score_from(s: &pb::SettingScore) -> SettingScore {
                 },
                 criterion: Criterion::parse(&l.criterion),
                 class_weight: ClassWeight::parse(&l.class_weight).unwrap_or_default(),
+                splitter: Default::default(),
             },
         },
         fold_scores: s.fold_scores.clone(),

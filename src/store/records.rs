@@ -29,7 +29,7 @@ use crate::drift::{DriftReport, DriftThresholds, Knob, LimitMove};
 use crate::job::{ColumnMeta, DatasetMeta, Event, EventKind, Fire, FireOutcome, Retention, Run, RunOutcome, RunState, Schedule};
 use crate::schedule::CatchUp;
 use crate::sweep::{FoldPlan, FoldScheme, FoldScore, Metric, PickRule, Progress, Range, Setting, SettingScore, SweepSpec, UnitResult};
-use crate::tree::{ClassWeight, Criterion, FitOptions, Limits};
+use crate::tree::{ClassWeight, Criterion, FitOptions, Limits, Splitter};
 
 /// The format byte this build writes (and the only one it reads).
 pub const FORMAT: u8 = 1;
@@ -192,6 +192,9 @@ pub struct SpecRecord {
     seed: u64,
     fit_final: bool,
     max_settings: Option<u64>,
+    /// Absent in records written before the binned splitter, and for the exact one.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    splitter: Option<String>,
 }
 
 #[derive(Serialize, Deserialize)]
@@ -276,6 +279,7 @@ impl From<&SweepSpec> for SpecRecord {
             seed: s.seed,
             fit_final: s.fit_final,
             max_settings: s.max_settings.map(|n| n as u64),
+            splitter: splitter_record(s.splitter),
         }
     }
 }
@@ -301,6 +305,7 @@ impl TryFrom<SpecRecord> for SweepSpec {
             seed: r.seed,
             fit_final: r.fit_final,
             max_settings: r.max_settings.map(|n| to_usize(w, "max_settings", n)).transpose()?,
+            splitter: splitter_of(w, r.splitter)?,
         })
     }
 }
@@ -760,6 +765,9 @@ struct FitOptionsRecord {
     /// `None`: the task's default.
     criterion: Option<String>,
     class_weight: String,
+    /// Absent in records written before the binned splitter, and for the exact one.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    splitter: Option<String>,
 }
 
 impl From<&FitOptions> for FitOptionsRecord {
@@ -774,6 +782,7 @@ impl From<&FitOptions> for FitOptionsRecord {
             prune_alpha: Real(l.prune_alpha),
             criterion: o.criterion.map(|c| c.as_str().to_string()),
             class_weight: o.class_weight.as_str().to_string(),
+            splitter: splitter_record(o.splitter),
         }
     }
 }
@@ -792,7 +801,21 @@ impl TryFrom<FitOptionsRecord> for FitOptions {
             },
             criterion: r.criterion.map(|c| parse_name("outcome", "criterion", &c, Criterion::parse)).transpose()?,
             class_weight: parse_name("outcome", "class weight", &r.class_weight, ClassWeight::parse)?,
+            splitter: splitter_of("outcome", r.splitter)?,
         })
+    }
+}
+
+/// The stored name of a splitter: none for the exact one, so its records are as before.
+fn splitter_record(s: Splitter) -> Option<String> {
+    (s != Splitter::Exact).then(|| s.as_str().to_string())
+}
+
+/// A stored splitter name; absent means exact (records written before it existed).
+fn splitter_of(what: &str, name: Option<String>) -> Result<Splitter, StoreError> {
+    match name {
+        None => Ok(Splitter::Exact),
+        Some(n) => parse_name(what, "splitter", &n, Splitter::parse),
     }
 }
 

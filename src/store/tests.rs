@@ -109,6 +109,7 @@ fn setting_score(valid_mean: f64) -> SettingScore {
                 limits: Limits { max_depth: Some(4), min_split_rows: 7, min_leaf_rows: 2, max_leaves: None, min_gain: 1e-7, prune_alpha: 0.011699999999999999 },
                 criterion: Some(Criterion::Entropy),
                 class_weight: ClassWeight::Balanced,
+                splitter: Default::default(),
             },
         },
         fold_scores: vec![0.1, f64::NAN, 0.3, -0.0],

@@ -174,7 +174,7 @@ fn path_alphas(data: &Dataset, spec: &CheckedSpec, key: &ShapingKey) -> Result<V
 }
 
 fn envelope_options(spec: &CheckedSpec, key: &ShapingKey) -> FitOptions {
-    FitOptions { limits: spec.envelope_limits(key), criterion: Some(key.criterion), class_weight: key.class_weight }
+    FitOptions { limits: spec.envelope_limits(key), criterion: Some(key.criterion), class_weight: key.class_weight, splitter: spec.spec.splitter }
 }
 
 impl Plan {

@@ -6,7 +6,7 @@ use std::fmt;
 use super::folds::FoldPlan;
 use super::metrics::Metric;
 use crate::data::{Dataset, Task};
-use crate::tree::{ClassWeight, Criterion, FitOptions, Limits};
+use crate::tree::{ClassWeight, Criterion, FitOptions, Limits, Splitter};
 
 /// The values to try for one limit.
 #[derive(Clone, Debug, PartialEq)]
@@ -76,6 +76,8 @@ pub struct SweepSpec {
     pub fit_final: bool,
     /// Most settings allowed (a guard for the service); `None` uses [`DEFAULT_MAX_SETTINGS`].
     pub max_settings: Option<usize>,
+    /// Where numeric features may be cut, for every tree of the sweep (exact by default).
+    pub splitter: Splitter,
 }
 
 /// Default cap on the number of settings in one sweep.
@@ -100,6 +102,7 @@ impl Default for SweepSpec {
             seed: 0,
             fit_final: true,
             max_settings: None,
+            splitter: Splitter::Exact,
         }
     }
 }
@@ -336,7 +339,7 @@ impl CheckedSpec {
                                 for &min_gain in &self.min_gain {
                                     for &prune_alpha in &alphas_per_key[key] {
                                         let limits = Limits { max_depth, min_split_rows, min_leaf_rows: k.min_leaf_rows, max_leaves, min_gain, prune_alpha };
-                                        let options = FitOptions { limits, criterion: Some(k.criterion), class_weight: k.class_weight };
+                                        let options = FitOptions { limits, criterion: Some(k.criterion), class_weight: k.class_weight, splitter: self.spec.splitter };
                                         out.push(Setting { key, options });
                                     }
                                 }

@@ -15,8 +15,8 @@ use std::collections::BinaryHeap;
 use rayon::prelude::*;
 
 use super::limits::fit_error;
-use super::split::{Cut, Entry, CLASS_BIT, FeatureBest, Rows, Scratch, SearchCtx, Totals};
-use super::{CheckedOptions, ClassWeight, ColumnInfo, Criterion, FitError, Node, Split, SplitRule, Tree, NO_NODE};
+use super::split::{Cut, Entry, CLASS_BIT, VALUE_TOLERANCE, FeatureBest, Rows, Scratch, SearchCtx, Totals};
+use super::{CheckedOptions, ClassWeight, Splitter, MAX_BINS, ColumnInfo, Criterion, FitError, Node, Split, SplitRule, Tree, NO_NODE};
 use crate::data::{Column, Frame, Target, Task, MISSING_CODE};
 
 /// Nodes with at least this many (rows × features) search and partition features in
@@ -219,6 +219,23 @@ impl<'a> Prepared<'a> {
     }
 }
 
+/// Quantile bin edges of one numeric feature from its sorted entries (missing cells last):
+/// none when the present values have at most [`MAX_BINS`] distinct values (as the scan tells
+/// values apart, within [`VALUE_TOLERANCE`]), so every cut stays allowed; else the values at
+/// ranks ⌊b·n/MAX_BINS⌋ for b = 1 … MAX_BINS − 1, without repeats, which make at most
+/// MAX_BINS bins of about equal row counts.
+fn bin_edges(sorted: &[Entry]) -> Vec<f32> {
+    let nn = sorted.iter().rposition(|e| !e.v.is_nan()).map_or(0, |i| i + 1);
+    let present = &sorted[..nn];
+    let distinct = 1 + present.windows(2).filter(|w| w[1].v > w[0].v + VALUE_TOLERANCE).count();
+    if nn == 0 || distinct <= MAX_BINS {
+        return Vec::new();
+    }
+    let mut edges: Vec<f32> = (1..MAX_BINS).map(|b| present[b * nn / MAX_BINS].v).filter(|&e| e > present[0].v).collect();
+    edges.dedup();
+    edges
+}
+
 /// The bits of `v` mapped so that unsigned order is `f32::total_cmp` order.
 #[inline]
 fn order_bits(v: f32) -> u32 {
@@ -254,6 +271,8 @@ struct Grower<'p> {
     options: super::FitOptions,
     parallel: bool,
     sorted: Vec<Vec<Entry>>,
+    /// Per feature, the bin edges of the binned splitter (empty: every cut allowed).
+    edges: Vec<Vec<f32>>,
     go_left: Vec<bool>,
     scratch: Vec<Entry>,
     search_scratch: Scratch,
@@ -296,6 +315,14 @@ impl Ord for Frontier {
 impl<'p> Grower<'p> {
     fn new(prep: &'p Prepared<'p>, options: &CheckedOptions, parallel: bool) -> Self {
         let sorted = prep.presort(parallel);
+        let edges = sorted
+            .iter()
+            .zip(&prep.frame.features)
+            .map(|(col, f)| match (&f.column, options.splitter) {
+                (Column::Numeric(_), Splitter::Binned) => bin_edges(col),
+                _ => Vec::new(),
+            })
+            .collect();
         let n = prep.frame_rows.len();
         let width = if prep.k > 0 { prep.k } else { 1 };
         let levels = prep
@@ -314,6 +341,7 @@ impl<'p> Grower<'p> {
             options: options.to_options(),
             parallel,
             sorted,
+            edges,
             go_left: vec![false; n],
             scratch: Vec::with_capacity(n),
             search_scratch: Scratch::default(),
@@ -511,7 +539,7 @@ impl<'p> Grower<'p> {
             if self.levels[f] > 0 {
                 ctx.categorical(seg, totals, s)
             } else {
-                ctx.numeric(seg, totals, s)
+                ctx.numeric(seg, &self.edges[f], totals, s)
             }
         };
         let nf = self.sorted.len();

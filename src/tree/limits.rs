@@ -56,6 +56,34 @@ impl ClassWeight {
     }
 }
 
+/// Where a numeric feature may be cut.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Hash, Default)]
+pub enum Splitter {
+    /// Between any two neighbouring distinct values.
+    #[default]
+    Exact,
+    /// Only between quantile bins: at most 255 bins per numeric feature, their edges taken
+    /// from the fit's own rows (a fold's training rows in a sweep). A feature with at most 255
+    /// distinct values keeps every cut, so it splits exactly as [`Splitter::Exact`] does.
+    Binned,
+}
+
+impl Splitter {
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Splitter::Exact => "exact",
+            Splitter::Binned => "binned",
+        }
+    }
+
+    pub fn parse(s: &str) -> Option<Splitter> {
+        [Splitter::Exact, Splitter::Binned].into_iter().find(|x| x.as_str() == s)
+    }
+}
+
+/// Most bins of a numeric feature under [`Splitter::Binned`].
+pub const MAX_BINS: usize = 255;
+
 /// Everything a fit is told, before checking.
 #[derive(Clone, Debug, PartialEq, Default)]
 pub struct FitOptions {
@@ -63,6 +91,7 @@ pub struct FitOptions {
     /// `None` picks the task's default: Gini impurity, or squared error.
     pub criterion: Option<Criterion>,
     pub class_weight: ClassWeight,
+    pub splitter: Splitter,
 }
 
 /// Options that passed [`FitOptions::check`] for one task; fitting accepts only these.
@@ -71,6 +100,7 @@ pub struct CheckedOptions {
     pub(crate) limits: Limits,
     pub(crate) criterion: Criterion,
     pub(crate) class_weight: ClassWeight,
+    pub(crate) splitter: Splitter,
     pub(crate) task: Task,
 }
 
@@ -87,9 +117,12 @@ impl CheckedOptions {
     pub fn task(&self) -> Task {
         self.task
     }
+    pub fn splitter(&self) -> Splitter {
+        self.splitter
+    }
     /// The options as given, with the criterion made explicit.
     pub fn to_options(&self) -> FitOptions {
-        FitOptions { limits: self.limits.clone(), criterion: Some(self.criterion), class_weight: self.class_weight }
+        FitOptions { limits: self.limits.clone(), criterion: Some(self.criterion), class_weight: self.class_weight, splitter: self.splitter }
     }
 }
 
@@ -145,6 +178,6 @@ impl FitOptions {
         if task == Task::Regress && self.class_weight != ClassWeight::None {
             return Err(fit_error("class_weight", "class weighting needs a classify target"));
         }
-        Ok(CheckedOptions { limits: l.clone(), criterion, class_weight: self.class_weight, task })
+        Ok(CheckedOptions { limits: l.clone(), criterion, class_weight: self.class_weight, splitter: self.splitter, task })
     }
 }

@@ -132,15 +132,20 @@ impl Scratch {
 }
 
 /// Counts and weights a numeric scan needs.
-struct Scan {
+struct Scan<'e> {
     nn: usize,
     n_miss: u32,
     msl: u32,
     miss_w: f64,
     nonmiss_w: f64,
+    /// Bin edges (binned splitter), ascending: a cut between present values `u < v` needs an
+    /// edge `e` with `u < e <= v`. Empty: every cut is allowed.
+    edges: &'e [f32],
+    /// The first edge above the values scanned so far.
+    edge: usize,
 }
 
-impl Scan {
+impl Scan<'_> {
     /// Positions a scan visits: past the last one, no cut leaves `min_leaf_rows` on the right
     /// even with the missing cells there.
     #[inline(always)]
@@ -152,9 +157,17 @@ impl Scan {
     /// it (within [`VALUE_TOLERANCE`]), else whether a cut after `i` is allowed with missing
     /// cells right, and with them left.
     #[inline(always)]
-    fn cut_after(&self, seg: &[Entry], i: usize) -> Option<(bool, bool)> {
+    fn cut_after(&mut self, seg: &[Entry], i: usize) -> Option<(bool, bool)> {
         if seg[i + 1].v <= seg[i].v + VALUE_TOLERANCE {
             return None;
+        }
+        if !self.edges.is_empty() {
+            while self.edge < self.edges.len() && self.edges[self.edge] <= seg[i].v {
+                self.edge += 1;
+            }
+            if self.edge == self.edges.len() || self.edges[self.edge] > seg[i + 1].v {
+                return None;
+            }
         }
         let (nn, nl, n_miss, msl) = (self.nn as u32, i as u32 + 1, self.n_miss, self.msl);
         Some((nl >= msl, n_miss > 0 && nl + n_miss >= msl && nn - nl >= msl))
@@ -232,7 +245,7 @@ impl SearchCtx<'_> {
     }
 
     /// Best threshold split of a numeric feature.
-    pub fn numeric(&self, seg: &[Entry], node: &Totals, s: &mut Scratch) -> Option<FeatureBest> {
+    pub fn numeric(&self, seg: &[Entry], edges: &[f32], node: &Totals, s: &mut Scratch) -> Option<FeatureBest> {
         let width = node.sums.len();
         let nn = Self::missing_start(seg);
         if nn == 0 {
@@ -254,13 +267,13 @@ impl SearchCtx<'_> {
         let mut pass_right: Best<usize> = Best::new(); // missing cells right
         let mut pass_left: Best<usize> = Best::new(); // missing cells left
         if !constant {
-            let scan = Scan { nn, n_miss, msl, miss_w, nonmiss_w };
+            let mut scan = Scan { nn, n_miss, msl, miss_w, nonmiss_w, edges, edge: 0 };
             match (self.rows.k, self.rows.unit) {
-                (0, true) => self.scan_positions::<true, true>(seg, &scan, s, &mut pass_right, &mut pass_left),
-                (0, false) => self.scan_positions::<true, false>(seg, &scan, s, &mut pass_right, &mut pass_left),
-                (2, true) => self.scan_two_classes::<true>(seg, &scan, s, &mut pass_right, &mut pass_left),
-                (2, false) => self.scan_two_classes::<false>(seg, &scan, s, &mut pass_right, &mut pass_left),
-                _ => self.scan_positions::<false, false>(seg, &scan, s, &mut pass_right, &mut pass_left),
+                (0, true) => self.scan_positions::<true, true>(seg, &mut scan, s, &mut pass_right, &mut pass_left),
+                (0, false) => self.scan_positions::<true, false>(seg, &mut scan, s, &mut pass_right, &mut pass_left),
+                (2, true) => self.scan_two_classes::<true>(seg, &mut scan, s, &mut pass_right, &mut pass_left),
+                (2, false) => self.scan_two_classes::<false>(seg, &mut scan, s, &mut pass_right, &mut pass_left),
+                _ => self.scan_positions::<false, false>(seg, &mut scan, s, &mut pass_right, &mut pass_left),
             }
         }
         // All present values left, missing cells right.
@@ -292,7 +305,7 @@ impl SearchCtx<'_> {
     /// `UNIT` (every weight 1) counts the left weight instead of summing it: the same exact
     /// integer, without reading `w`.
     #[inline(always)]
-    fn scan_positions<const REGRESS: bool, const UNIT: bool>(&self, seg: &[Entry], sc: &Scan, s: &mut Scratch, pass_right: &mut Best<usize>, pass_left: &mut Best<usize>) {
+    fn scan_positions<const REGRESS: bool, const UNIT: bool>(&self, seg: &[Entry], sc: &mut Scan, s: &mut Scratch, pass_right: &mut Best<usize>, pass_left: &mut Best<usize>) {
         let rows = self.rows;
         let width = s.left.len();
         let mut lw = 0.0;
@@ -344,7 +357,7 @@ impl SearchCtx<'_> {
     /// or `w − w` (both +0) leaves a sum unchanged, and with unit weights the class-1 count is
     /// an integer and the class-0 weight the row count minus it, the same exact integers.
     #[inline(always)]
-    fn scan_two_classes<const UNIT: bool>(&self, seg: &[Entry], sc: &Scan, s: &mut Scratch, pass_right: &mut Best<usize>, pass_left: &mut Best<usize>) {
+    fn scan_two_classes<const UNIT: bool>(&self, seg: &[Entry], sc: &mut Scan, s: &mut Scratch, pass_right: &mut Best<usize>, pass_left: &mut Best<usize>) {
         let rows = self.rows;
         let (m0, m1, n0, n1) = (s.miss[0], s.miss[1], s.nonmiss[0], s.nonmiss[1]);
         let gini = self.criterion == Criterion::Gini;
