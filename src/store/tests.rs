@@ -20,7 +20,7 @@ use crate::drift::Knob;
 use crate::job::{ColumnMeta, FireOutcome, Retention};
 use crate::schedule::CatchUp;
 use crate::sweep::{FoldPlan, FoldScheme, FoldScore, Metric, PickRule, Progress, Range, Setting, SettingScore, SweepSpec};
-use crate::tree::{fit, ClassWeight, Criterion, FitOptions, Limits, TrainSet, Tree};
+use crate::tree::{fit, ClassWeight, Criterion, FitOptions, Limits, Splitter, TrainSet, Tree};
 
 // ---------------------------------------------------------------------------------------
 // Helpers
@@ -98,6 +98,7 @@ fn full_spec(seed: u64) -> SweepSpec {
         seed,
         fit_final: false,
         max_settings: Some(5000),
+        splitter: Splitter::Binned,
     }
 }
 
@@ -109,7 +110,7 @@ fn setting_score(valid_mean: f64) -> SettingScore {
                 limits: Limits { max_depth: Some(4), min_split_rows: 7, min_leaf_rows: 2, max_leaves: None, min_gain: 1e-7, prune_alpha: 0.011699999999999999 },
                 criterion: Some(Criterion::Entropy),
                 class_weight: ClassWeight::Balanced,
-                splitter: Default::default(),
+                splitter: Splitter::Binned,
             },
         },
         fold_scores: vec![0.1, f64::NAN, 0.3, -0.0],
