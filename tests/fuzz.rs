@@ -290,7 +290,8 @@ fn wild_spec(range: BoxedStrategy<pb::LimitRange>) -> impl Strategy<Value = pb::
     );
     let folds = prop::option::of((name_of(&["", "shuffled", "stratified", "grouped", "forward", "given"]), prop_oneof![0u32..12, any::<u32>()], prop_oneof![0u32..4, any::<u32>()], name_of(&["", "target", "sepal_length_cm", "age"])))
         .prop_map(|f| f.map(|(scheme, k, repeats, column)| pb::FoldPlan { scheme, k, repeats, column }));
-    (words, (r(), r(), r(), r(), r(), r()), folds, any::<bool>(), any::<u64>()).prop_map(|((task, criteria, class_weights, metric, pick), (d, s, l, v, g, a), folds, prune_path, seed)| pb::SweepSpec {
+    let splitter = name_of(&["", "exact", "binned", "histogram"]);
+    (words, (r(), r(), r(), r(), r(), r()), folds, any::<bool>(), any::<u64>(), splitter).prop_map(|((task, criteria, class_weights, metric, pick), (d, s, l, v, g, a), folds, prune_path, seed, splitter)| pb::SweepSpec {
         target: String::new(),
         task,
         criteria,
@@ -307,6 +308,7 @@ fn wild_spec(range: BoxedStrategy<pb::LimitRange>) -> impl Strategy<Value = pb::
         pick,
         seed,
         skip_final: false,
+        splitter,
     })
 }
 
