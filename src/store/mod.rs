@@ -17,6 +17,7 @@
 
 pub mod files;
 pub mod keys;
+pub mod paging;
 pub mod records;
 pub mod sled_store;
 
@@ -149,8 +150,8 @@ impl RunFilter {
 
 /// Every read and write of stored state. Each method that changes something is one
 /// transaction; reads of one record see whole changes, listings may see a change half done.
-/// Ids, page tokens and orders are the backend's promise to callers: runs and schedules
-/// newest first by id (ids are time-ordered), datasets newest first by `created_at`, then id.
+/// Ids, page tokens and orders are the backend's promise to callers, the same for every
+/// backend: see [`paging`].
 pub trait Storage: Send + Sync {
     // -- files and lifetime
 

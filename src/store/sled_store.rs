@@ -47,6 +47,7 @@ use std::sync::Arc;
 use sled::transaction::{ConflictableTransactionError, TransactionError, TransactionalTree, UnabortableTransactionError};
 use sled::{IVec, Transactional};
 
+use super::paging::{dataset_position, page};
 use super::records::{self, HoldsRecord};
 use super::{files, keys, same_version, Claim, CreateRun, DeleteDataset, PutDataset, Resumed, RunFilter, Storage, StoreError};
 use crate::drift::DriftReport;
@@ -1126,23 +1127,6 @@ impl Storage for SledStore {
         }
         Ok(page(found, limit, |f| f.sequence.to_string(), |f| f))
     }
-}
-
-/// Sort position of a dataset in listings: newest first, then by id.
-fn dataset_position(m: &DatasetMeta) -> String {
-    let newest_first = (i64::MAX as i128 - m.created_at as i128) as u64;
-    format!("{newest_first:020}:{}", m.id)
-}
-
-/// Cuts `items` (in listing order, possibly one more than fits) to a page; the token is the
-/// position of the last item on the page when more remain.
-fn page<I, T>(items: Vec<I>, limit: usize, position: impl Fn(&I) -> String, value: impl Fn(I) -> T) -> (Vec<T>, Option<String>) {
-    let limit = limit.max(1);
-    let more = items.len() > limit;
-    let mut kept: Vec<I> = items;
-    kept.truncate(limit);
-    let token = if more { kept.last().map(&position) } else { None };
-    (kept.into_iter().map(value).collect(), token)
 }
 
 /// The error of a store whose lock another process (or a database still open) holds.
