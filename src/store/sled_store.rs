@@ -790,27 +790,38 @@ impl Storage for SledStore {
     /// event then carries), numbers and stores each event, saves the run. Returns the stored events; none when the unit was already
     /// stored or the run is not running (nothing is stored then).
     fn record_unit(&self, run_id: &str, unit: &UnitResult, events: Vec<EventKind>, now: i64) -> Result<Vec<Event>, StoreError> {
-        let index = u32::try_from(unit.unit).map_err(|_| StoreError::Corrupt(format!("unit index {} does not fit a key", unit.unit)))?;
-        let key = keys::unit(run_id, index);
-        let bytes = records::encode_unit(unit);
+        self.record_units(run_id, vec![(unit.clone(), events)], now)
+    }
+
+    /// The whole batch in one transaction, flushed once.
+    fn record_units(&self, run_id: &str, batch: Vec<(UnitResult, Vec<EventKind>)>, now: i64) -> Result<Vec<Event>, StoreError> {
+        let mut encoded = Vec::with_capacity(batch.len());
+        for (unit, events) in &batch {
+            let index = u32::try_from(unit.unit).map_err(|_| StoreError::Corrupt(format!("unit index {} does not fit a key", unit.unit)))?;
+            encoded.push((keys::unit(run_id, index), records::encode_unit(unit), events));
+        }
         retrying(|| {
             self.transact(|tx| {
                 let Some(mut run) = tx.run(run_id)?.filter(|r| r.state == RunState::Running) else { return Ok(Vec::new()) };
-                if tx.get(UNITS, &key)?.is_some() {
-                    return Ok(Vec::new());
-                }
-                tx.insert(UNITS, &key, bytes.clone())?;
-                run.units_done += 1;
-                let mut out = Vec::with_capacity(events.len());
-                for kind in &events {
-                    let mut kind = kind.clone();
-                    // The store's count of stored units is the one announced.
-                    if let EventKind::Progress(p) = &mut kind {
-                        p.units_done = run.units_done as usize;
+                let (mut out, before) = (Vec::new(), run.units_done);
+                for (key, bytes, events) in &encoded {
+                    if tx.get(UNITS, key)?.is_some() {
+                        continue;
                     }
-                    out.push(tx.append(&mut run, kind, now)?);
+                    tx.insert(UNITS, key, bytes.clone())?;
+                    run.units_done += 1;
+                    for kind in events.iter() {
+                        let mut kind = kind.clone();
+                        // The store's count of stored units is the one announced.
+                        if let EventKind::Progress(p) = &mut kind {
+                            p.units_done = run.units_done as usize;
+                        }
+                        out.push(tx.append(&mut run, kind, now)?);
+                    }
                 }
-                tx.put_progress(&run)?;
+                if run.units_done != before {
+                    tx.put_progress(&run)?;
+                }
                 Ok(out)
             })
         })
