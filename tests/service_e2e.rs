@@ -536,6 +536,38 @@ async fn sweep_follow_inspect_export_and_predict() {
     check_paths(&tree, &csv_table(&iris), &explained);
     assert!(explained.paths.iter().any(|p| p.conditions.iter().any(|c| c.holds)) && explained.paths.iter().any(|p| p.conditions.iter().any(|c| !c.holds)));
 
+    // Pick rules with a budget or a tolerance, checked against the run's own scores by brute
+    // force, and the Pareto front of (accuracy, mean leaves) reported with the run.
+    let front_of = |scores: &[pb::SettingScore]| -> Vec<u32> {
+        let beats = |j: &pb::SettingScore, i: &pb::SettingScore| j.valid_mean >= i.valid_mean && j.mean_leaves <= i.mean_leaves && (j.valid_mean > i.valid_mean || j.mean_leaves < i.mean_leaves);
+        let mut front: Vec<&pb::SettingScore> = scores
+            .iter()
+            .enumerate()
+            .filter(|(k, i)| !scores.iter().any(|j| beats(j, i)) && !scores[..*k].iter().any(|j| j.valid_mean == i.valid_mean && j.mean_leaves == i.mean_leaves))
+            .map(|(_, i)| i)
+            .collect();
+        front.sort_by(|a, b| a.mean_leaves.total_cmp(&b.mean_leaves));
+        front.iter().map(|s| s.index).collect()
+    };
+    assert_eq!(got.pareto_front, front_of(&got.scores));
+    assert!(got.pareto_front.len() >= 2, "{:?}", got.pareto_front);
+    let best_mean = got.scores.iter().map(|s| s.valid_mean).fold(f64::MIN, f64::max);
+    for (rule, ok) in [
+        ("max_leaves_budget:3", Box::new(|s: &pb::SettingScore, all: &[pb::SettingScore]| s.mean_leaves <= 3.0 && all.iter().filter(|t| t.mean_leaves <= 3.0).all(|t| t.valid_mean <= s.valid_mean)) as Box<dyn Fn(&pb::SettingScore, &[pb::SettingScore]) -> bool>),
+        ("within:0.02", Box::new(move |s: &pb::SettingScore, all: &[pb::SettingScore]| s.valid_mean >= best_mean - 0.02 && all.iter().filter(|t| t.valid_mean >= best_mean - 0.02).all(|t| t.mean_leaves >= s.mean_leaves))),
+    ] {
+        let ruled = pb::SweepSpec { pick: rule.into(), ..spec.clone() };
+        let (r, done, _) = sweep_to_end(&mut runs, pb::StartRunRequest { dataset_id: ds.id.clone(), spec: Some(ruled), ..Default::default() }).await;
+        assert_eq!(r.spec.as_ref().unwrap().pick, rule);
+        let picked = &r.scores[r.picked.unwrap() as usize];
+        assert!(ok(picked, &r.scores), "{rule} picked {picked:?}");
+        assert_eq!(done.picked, r.picked.unwrap());
+    }
+    for bad in ["max_leaves_budget:0", "within:-0.1", "best"] {
+        let ruled = pb::SweepSpec { pick: bad.into(), ..spec.clone() };
+        expect_status(bad, runs.start_run(pb::StartRunRequest { dataset_id: ds.id.clone(), spec: Some(ruled), ..Default::default() }).await, Code::InvalidArgument, &["spec.pick", "max_leaves_budget:N"]);
+    }
+
     // By name: the latest version of "iris"; the same spec and seed give the same scores.
     let by_name = pb::StartRunRequest { dataset_name: "iris".into(), spec: Some(spec.clone()), ..Default::default() };
     let (named, named_done, _) = sweep_to_end(&mut runs, by_name).await;

@@ -380,6 +380,9 @@ pub async fn show(ch: Conn, id: &str, top: usize, json_out: bool) -> Res {
         if let Some(p) = r.picked {
             println!("pick rule {rule}: grid# {p}");
         }
+        if !r.pareto_front.is_empty() {
+            print!("{}", output::pareto_lines(&r.scores, &r.pareto_front, metric));
+        }
     }
     if let Some(m) = &r.model {
         println!("model: {} nodes, {} leaves, depth {}", m.nodes, m.leaves, m.depth);

@@ -81,13 +81,24 @@ pub fn state_name(s: i32) -> &'static str {
     }
 }
 
+/// The Pareto front, fewest leaves first, wrapped to the table width:
+/// `grid# 3 (4 leaves, 0.94)`.
+pub fn pareto_lines(scores: &[pb::SettingScore], front: &[u32], metric: &str) -> String {
+    let points: Vec<String> = front
+        .iter()
+        .filter_map(|&i| scores.iter().find(|s| s.index == i))
+        .map(|s| format!("grid# {} ({} leaves, {})", s.index, short(s.mean_leaves), short(s.valid_mean)))
+        .collect();
+    wrap(&format!("no setting beats these on both {metric} and mean leaves: "), &points, 120)
+}
+
 pub fn run_json(r: &pb::RunInfo) -> Value {
     json!({
         "id": r.id, "state": state_name(r.state), "dataset_id": r.dataset_id, "dataset_name": r.dataset_name,
         "dataset_version": r.dataset_version, "labels": r.labels, "created_at": r.created_at,
         "started_at": r.started_at, "finished_at": r.finished_at, "reason": r.reason, "metric": r.metric,
         "settings": r.settings, "units_done": r.units_done, "units_total": r.units_total,
-        "picked": r.picked, "best": r.best, "schedule_id": r.schedule_id, "owner": r.owner,
+        "picked": r.picked, "best": r.best, "pareto_front": r.pareto_front, "schedule_id": r.schedule_id, "owner": r.owner,
         "scores": r.scores.iter().map(score_json).collect::<Vec<_>>(),
         "model": r.model.as_ref().map(|m| json!({"nodes": m.nodes, "leaves": m.leaves, "depth": m.depth, "classes": m.classes})),
         "dataset_rows": r.dataset_rows,

@@ -313,7 +313,7 @@ fn spec_with(s: &pb::SweepSpec, data_task: Option<Task>) -> Result<(SweepSpec, b
     };
     let pick = match s.pick.as_str() {
         "" => PickRule::Highest,
-        p => PickRule::parse(p).ok_or_else(|| invalid("spec.pick", format!("'{p}' is not highest or one_se")))?,
+        p => PickRule::parse(p).ok_or_else(|| invalid("spec.pick", format!("'{}' is not {}", echo(p), PickRule::CHOICES)))?,
     };
     Ok((SweepSpec {
         task,
@@ -435,6 +435,9 @@ pub fn run_info(r: &Run, outcome: Option<&RunOutcome>) -> pb::RunInfo {
         info.scores = o.scores.iter().enumerate().map(|(i, s)| score_to(i, s)).collect();
         info.picked = Some(o.picked);
         info.best = Some(o.best);
+        if let Some(metric) = r.spec.metric {
+            info.pareto_front = crate::sweep::pareto_front(&o.scores, metric).into_iter().map(|i| i as u32).collect();
+        }
         info.fold_assignment = o.fold_assignment.iter().map(|f| pb::FoldAssignment { folds: f.clone() }).collect();
         if let Some(m) = &o.model {
             info.model = Some(pb::ModelSummary { nodes: m.nodes.len() as u32, leaves: m.n_leaves() as u32, depth: m.depth(), classes: m.labels.clone() });
