@@ -4,6 +4,28 @@ use serde_json::{json, Value};
 
 use crate::pb;
 
+/// One condition of a row's path in words: `petal_length_cm <= 2.45: holds`, and for a
+/// blank cell (or a category the training rows did not have) the side it was sent to.
+pub fn condition_words(c: &pb::PathCondition) -> String {
+    let side = if c.holds { "holds" } else { "fails" };
+    if c.missing {
+        format!("{}: blank cell, sent to the {side} side", c.text)
+    } else {
+        format!("{}: {side}", c.text)
+    }
+}
+
+/// One condition of a row's path as JSON fields.
+pub fn condition_json(c: &pb::PathCondition) -> serde_json::Value {
+    let mut v = json!({"node": c.node, "feature": c.feature, "test": c.text, "holds": c.holds, "missing": c.missing});
+    if c.categories.is_empty() {
+        v["threshold"] = num(c.threshold);
+    } else {
+        v["categories"] = json!(c.categories);
+    }
+    v
+}
+
 fn limit(v: Option<u32>) -> String {
     v.map_or("none".into(), |x| x.to_string())
 }
@@ -59,13 +81,24 @@ pub fn state_name(s: i32) -> &'static str {
     }
 }
 
+/// The Pareto front, fewest leaves first, wrapped to the table width:
+/// `grid# 3 (4 leaves, 0.94)`.
+pub fn pareto_lines(scores: &[pb::SettingScore], front: &[u32], metric: &str) -> String {
+    let points: Vec<String> = front
+        .iter()
+        .filter_map(|&i| scores.iter().find(|s| s.index == i))
+        .map(|s| format!("grid# {} ({} leaves, {})", s.index, short(s.mean_leaves), short(s.valid_mean)))
+        .collect();
+    wrap(&format!("no setting beats these on both {metric} and mean leaves: "), &points, 120)
+}
+
 pub fn run_json(r: &pb::RunInfo) -> Value {
     json!({
         "id": r.id, "state": state_name(r.state), "dataset_id": r.dataset_id, "dataset_name": r.dataset_name,
         "dataset_version": r.dataset_version, "labels": r.labels, "created_at": r.created_at,
         "started_at": r.started_at, "finished_at": r.finished_at, "reason": r.reason, "metric": r.metric,
         "settings": r.settings, "units_done": r.units_done, "units_total": r.units_total,
-        "picked": r.picked, "best": r.best, "schedule_id": r.schedule_id, "owner": r.owner,
+        "picked": r.picked, "best": r.best, "pareto_front": r.pareto_front, "schedule_id": r.schedule_id, "owner": r.owner,
         "scores": r.scores.iter().map(score_json).collect::<Vec<_>>(),
         "model": r.model.as_ref().map(|m| json!({"nodes": m.nodes, "leaves": m.leaves, "depth": m.depth, "classes": m.classes})),
         "dataset_rows": r.dataset_rows,

@@ -83,7 +83,8 @@ pub struct GridArgs {
     /// accuracy, balanced_accuracy, macro_f1, log_loss, brier, roc_auc, rmse, mae or r2.
     #[arg(long)]
     pub metric: Option<String>,
-    /// highest or one_se.
+    /// highest, one_se, max_leaves_budget:N (best tree of at most N mean leaves) or within:T
+    /// (simplest setting within T of the best score).
     #[arg(long)]
     pub pick: Option<String>,
     /// Seed of the fold shuffles (the same seed gives the same folds).

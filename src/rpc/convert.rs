@@ -5,10 +5,11 @@ use tonic::Status;
 
 use crate::data::{Column, ColumnKind, Feature, Frame, Task, MISSING_CODE};
 use crate::drift::{DriftReport, DriftThresholds};
-use crate::job::{DatasetMeta, Event, EventKind, Fire, FireOutcome, Retention, Run, RunOutcome, RunState, Schedule};
+use crate::job::{given, DatasetMeta, Event, EventKind, Fire, FireOutcome, Retention, Run, RunOutcome, RunState, Schedule};
 use crate::schedule::CatchUp;
 use crate::pb;
 use crate::rpc::error::{echo, ServiceError};
+use crate::service::models::RowPath;
 use crate::service::{DatasetRef, RunRequest};
 use crate::sweep::{FoldPlan, FoldScheme, Metric, PickRule, Range, SettingScore, SweepSpec};
 use crate::tree::{ClassWeight, ColumnInfo, Criterion, FitOptions, Limits, Node, Split, SplitRule, Splitter, Tree, NO_NODE};
@@ -54,7 +55,7 @@ pub fn dataset_info(m: &DatasetMeta) -> pb::DatasetInfo {
                 levels: c.levels,
             })
             .collect(),
-        target: m.target.clone(),
+        target: m.target.clone().unwrap_or_default(),
         task: m.task.map(|t| t.as_str().to_string()).unwrap_or_default(),
         created_at: time(m.created_at),
         bytes: m.bytes,
@@ -242,10 +243,10 @@ pub fn run_request(r: pb::StartRunRequest) -> Result<RunRequest, Status> {
     let (spec, default_fold_scheme) = spec_request(&wire)?;
     Ok(RunRequest {
         dataset: DatasetRef::of(&r.dataset_id, &r.dataset_name),
-        target: wire.target,
+        target: given(wire.target),
         spec,
         default_fold_scheme,
-        idempotency_key: r.idempotency_key,
+        idempotency_key: given(r.idempotency_key),
         labels: r.labels.into_iter().collect(),
     })
 }
@@ -316,7 +317,7 @@ fn spec_with(s: &pb::SweepSpec, data_task: Option<Task>) -> Result<(SweepSpec, b
     };
     let pick = match s.pick.as_str() {
         "" => PickRule::Highest,
-        p => PickRule::parse(p).ok_or_else(|| invalid("spec.pick", format!("'{p}' is not highest or one_se")))?,
+        p => PickRule::parse(p).ok_or_else(|| invalid("spec.pick", format!("'{}' is not {}", echo(p), PickRule::CHOICES)))?,
     };
     Ok((SweepSpec {
         task,
@@ -443,6 +444,9 @@ pub fn run_info(r: &Run, outcome: Option<&RunOutcome>) -> pb::RunInfo {
         info.scores = o.scores.iter().enumerate().map(|(i, s)| score_to(i, s)).collect();
         info.picked = Some(o.picked);
         info.best = Some(o.best);
+        if let Some(metric) = r.spec.metric {
+            info.pareto_front = crate::sweep::pareto_front(&o.scores, metric).into_iter().map(|i| i as u32).collect();
+        }
         info.fold_assignment = o.fold_assignment.iter().map(|f| pb::FoldAssignment { folds: f.clone() }).collect();
         if let Some(m) = &o.model {
             info.model = Some(pb::ModelSummary { nodes: m.nodes.len() as u32, leaves: m.n_leaves() as u32, depth: m.depth(), classes: m.labels.clone() });
@@ -552,9 +556,9 @@ pub fn fire_to(f: &Fire) -> pb::Fire {
         scheduled_for: time(f.scheduled_for),
         handled_at: time(f.handled_at),
         outcome: fire_outcome_to(f.outcome) as i32,
-        run_id: f.run_id.clone(),
+        run_id: f.run_id.clone().unwrap_or_default(),
         missed: f.missed,
-        detail: f.detail.clone(),
+        detail: f.detail.clone().unwrap_or_default(),
     }
 }
 
@@ -588,6 +592,24 @@ fn kind_to(k: ColumnKind) -> pb::ColumnKind {
         ColumnKind::Numeric => pb::ColumnKind::Numeric,
         ColumnKind::Categorical => pb::ColumnKind::Categorical,
     }
+}
+
+/// A row's way to its leaf for the wire: each condition with its feature, test, outcome and
+/// the test in the text model's words.
+pub fn path_to(tree: &Tree, (leaf, steps): &RowPath) -> pb::RowPath {
+    let conditions = steps
+        .iter()
+        .filter_map(|step| {
+            let split = tree.nodes[step.node as usize].split.as_ref()?;
+            let column = &tree.columns[split.feature as usize];
+            let (threshold, categories) = match &split.rule {
+                SplitRule::Threshold(t) => (*t, Vec::new()),
+                SplitRule::Categories(bits) => (0.0, column.levels.iter().enumerate().filter(|(code, _)| SplitRule::category_left(bits, *code as u32)).map(|(_, l)| l.clone()).collect()),
+            };
+            Some(pb::PathCondition { node: step.node, feature: column.name.clone(), threshold, categories, holds: step.left, missing: step.missing, text: crate::export::text::describe_test(tree, split) })
+        })
+        .collect();
+    pb::RowPath { leaf: *leaf, conditions }
 }
 
 /// A tree as the native protobuf model.

@@ -28,8 +28,8 @@ pub struct ScheduleRequest {
     pub time_zone: String,
     /// A name (its latest version at each fire) or one dataset id; `None` is refused.
     pub dataset: Option<DatasetRef>,
-    /// Empty for the dataset's own target.
-    pub target: String,
+    /// `None` for the dataset's own target.
+    pub target: Option<String>,
     pub spec: SweepSpec,
     /// See [`super::RunRequest::default_fold_scheme`].
     pub default_fold_scheme: bool,
@@ -59,7 +59,7 @@ impl Service {
         // The template must fit the data it will sweep: check it against the latest version.
         let latest = self.resolve_dataset(Some(&dataset))?;
         check_labels(&self.config, &r.labels)?;
-        let (spec, target, _) = self.check_sweep(&latest, &r.target, r.spec, r.default_fold_scheme).await?;
+        let (spec, target, _) = self.check_sweep(&latest, r.target.as_deref(), r.spec, r.default_fold_scheme).await?;
         let now = self.now();
         let (dataset_name, dataset_id) = match dataset {
             DatasetRef::Id(id) => (latest.name.clone(), Some(id)),
@@ -148,9 +148,13 @@ impl Service {
         Ok(())
     }
 
-    /// A page of a schedule's fires after the sequence number `after`.
-    pub fn list_fires(&self, schedule_id: &str, after: Option<u64>, page_size: usize) -> Result<(Vec<Fire>, Option<String>)> {
+    /// A page of a schedule's fires, newest first, below the page token's fire.
+    pub fn list_fires(&self, schedule_id: &str, page_token: Option<&str>, page_size: usize) -> Result<(Vec<Fire>, Option<String>)> {
         self.schedule("schedule_id", schedule_id)?;
+        let after = match page_token {
+            None => None,
+            Some(t) => Some(crate::store::paging::fire_token(t).ok_or_else(|| ServiceError::invalid("page_token", format!("'{}' is not a token this listing gave out", t.chars().take(100).collect::<String>())))?),
+        };
         Ok(self.store.fires(schedule_id, after, page_size)?)
     }
 }

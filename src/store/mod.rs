@@ -17,6 +17,7 @@
 
 pub mod files;
 pub mod keys;
+pub mod paging;
 pub mod records;
 pub mod sled_store;
 
@@ -149,8 +150,8 @@ impl RunFilter {
 
 /// Every read and write of stored state. Each method that changes something is one
 /// transaction; reads of one record see whole changes, listings may see a change half done.
-/// Ids, page tokens and orders are the backend's promise to callers: runs and schedules
-/// newest first by id (ids are time-ordered), datasets newest first by `created_at`, then id.
+/// Ids, page tokens and orders are the backend's promise to callers, the same for every
+/// backend: see [`paging`].
 pub trait Storage: Send + Sync {
     // -- files and lifetime
 
@@ -254,6 +255,18 @@ pub trait Storage: Send + Sync {
     /// A finished work unit of a running run with the events it announces, in one change;
     /// the stored events (none when the unit was stored already or the run is not running).
     fn record_unit(&self, run_id: &str, unit: &UnitResult, events: Vec<EventKind>, now: i64) -> Result<Vec<Event>, StoreError>;
+
+    /// Several finished units of one run, in order, each with its events, as
+    /// [`Storage::record_unit`] stores one. A backend may store the whole batch in one change
+    /// (one flush for many units, so small units are not bound by the disk's sync time); each
+    /// unit with its events is whole or absent either way. The stored events of all units.
+    fn record_units(&self, run_id: &str, batch: Vec<(UnitResult, Vec<EventKind>)>, now: i64) -> Result<Vec<Event>, StoreError> {
+        let mut out = Vec::new();
+        for (unit, events) in batch {
+            out.extend(self.record_unit(run_id, &unit, events, now)?);
+        }
+        Ok(out)
+    }
 
     /// The stored work units of a run, by unit index.
     fn units(&self, run_id: &str) -> Result<Vec<UnitResult>, StoreError>;

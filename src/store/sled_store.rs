@@ -47,6 +47,7 @@ use std::sync::Arc;
 use sled::transaction::{ConflictableTransactionError, TransactionError, TransactionalTree, UnabortableTransactionError};
 use sled::{IVec, Transactional};
 
+use super::paging::{dataset_position, page};
 use super::records::{self, HoldsRecord};
 use super::{files, keys, same_version, Claim, CreateRun, DeleteDataset, PutDataset, Resumed, RunFilter, Storage, StoreError};
 use crate::drift::DriftReport;
@@ -234,9 +235,9 @@ impl Tx<'_> {
     /// Stores a queued run and enqueues it, unless its idempotency key or id names a stored
     /// run (that run is returned) or its dataset is not stored.
     fn insert_run(&self, run: &Run, queue_full: bool) -> TxResult<CreateRun> {
-        let idempotency = keys::idempotency(run.owner.as_deref(), &run.idempotency_key);
-        if !run.idempotency_key.is_empty() {
-            if let Some(id) = self.get(IDEMPOTENCY, &idempotency)? {
+        let idempotency = run.idempotency_key.as_deref().map(|key| keys::idempotency(run.owner.as_deref(), key));
+        if let Some(idempotency) = &idempotency {
+            if let Some(id) = self.get(IDEMPOTENCY, idempotency)? {
                 let id = read(String::from_utf8(id.to_vec()).map_err(|_| StoreError::Corrupt("idempotency entry is not UTF-8".into())))?;
                 if let Some(existing) = self.run(&id)? {
                     return Ok(CreateRun::Existing(existing));
@@ -254,7 +255,7 @@ impl Tx<'_> {
         }
         self.put_run(run)?;
         self.insert(QUEUE, &run.id, IVec::default())?;
-        if !run.idempotency_key.is_empty() {
+        if let Some(idempotency) = idempotency {
             self.insert(IDEMPOTENCY, idempotency, run.id.as_bytes())?;
         }
         self.hold(&run.dataset_id, &run.id)?;
@@ -789,27 +790,38 @@ impl Storage for SledStore {
     /// event then carries), numbers and stores each event, saves the run. Returns the stored events; none when the unit was already
     /// stored or the run is not running (nothing is stored then).
     fn record_unit(&self, run_id: &str, unit: &UnitResult, events: Vec<EventKind>, now: i64) -> Result<Vec<Event>, StoreError> {
-        let index = u32::try_from(unit.unit).map_err(|_| StoreError::Corrupt(format!("unit index {} does not fit a key", unit.unit)))?;
-        let key = keys::unit(run_id, index);
-        let bytes = records::encode_unit(unit);
+        self.record_units(run_id, vec![(unit.clone(), events)], now)
+    }
+
+    /// The whole batch in one transaction, flushed once.
+    fn record_units(&self, run_id: &str, batch: Vec<(UnitResult, Vec<EventKind>)>, now: i64) -> Result<Vec<Event>, StoreError> {
+        let mut encoded = Vec::with_capacity(batch.len());
+        for (unit, events) in &batch {
+            let index = u32::try_from(unit.unit).map_err(|_| StoreError::Corrupt(format!("unit index {} does not fit a key", unit.unit)))?;
+            encoded.push((keys::unit(run_id, index), records::encode_unit(unit), events));
+        }
         retrying(|| {
             self.transact(|tx| {
                 let Some(mut run) = tx.run(run_id)?.filter(|r| r.state == RunState::Running) else { return Ok(Vec::new()) };
-                if tx.get(UNITS, &key)?.is_some() {
-                    return Ok(Vec::new());
-                }
-                tx.insert(UNITS, &key, bytes.clone())?;
-                run.units_done += 1;
-                let mut out = Vec::with_capacity(events.len());
-                for kind in &events {
-                    let mut kind = kind.clone();
-                    // The store's count of stored units is the one announced.
-                    if let EventKind::Progress(p) = &mut kind {
-                        p.units_done = run.units_done as usize;
+                let (mut out, before) = (Vec::new(), run.units_done);
+                for (key, bytes, events) in &encoded {
+                    if tx.get(UNITS, key)?.is_some() {
+                        continue;
                     }
-                    out.push(tx.append(&mut run, kind, now)?);
+                    tx.insert(UNITS, key, bytes.clone())?;
+                    run.units_done += 1;
+                    for kind in events.iter() {
+                        let mut kind = kind.clone();
+                        // The store's count of stored units is the one announced.
+                        if let EventKind::Progress(p) = &mut kind {
+                            p.units_done = run.units_done as usize;
+                        }
+                        out.push(tx.append(&mut run, kind, now)?);
+                    }
                 }
-                tx.put_progress(&run)?;
+                if run.units_done != before {
+                    tx.put_progress(&run)?;
+                }
                 Ok(out)
             })
         })
@@ -972,9 +984,11 @@ impl Storage for SledStore {
                 for k in units.iter() {
                     tx.remove(UNITS, k)?;
                 }
-                let idempotency = keys::idempotency(run.owner.as_deref(), &run.idempotency_key);
-                if !run.idempotency_key.is_empty() && tx.get(IDEMPOTENCY, &idempotency)?.is_some_and(|v| v == run_id.as_bytes()) {
-                    tx.remove(IDEMPOTENCY, idempotency)?;
+                if let Some(key) = &run.idempotency_key {
+                    let idempotency = keys::idempotency(run.owner.as_deref(), key);
+                    if tx.get(IDEMPOTENCY, &idempotency)?.is_some_and(|v| v == run_id.as_bytes()) {
+                        tx.remove(IDEMPOTENCY, idempotency)?;
+                    }
                 }
                 tx.add_ref(&run.dataset_id, -1)?;
                 Ok(true)
@@ -1089,10 +1103,10 @@ impl Storage for SledStore {
                             CreateRun::Created(r) => {
                                 s.last_run_id = Some(r.id.clone());
                                 s.last_dataset_id = Some(r.dataset_id.clone());
-                                fire.run_id = r.id.clone();
+                                fire.run_id = Some(r.id.clone());
                                 created = Some(r);
                             }
-                            CreateRun::Existing(r) => fire.run_id = r.id,
+                            CreateRun::Existing(r) => fire.run_id = Some(r.id),
                             CreateRun::DatasetMissing => fire.fail(format!("dataset {} was deleted before the run could be queued", run.dataset_id)),
                             // Not returned here: the scheduler checks the queue cap before it records a fire.
                             CreateRun::QueueFull => fire.fail("the queue is full".into()),
@@ -1124,23 +1138,6 @@ impl Storage for SledStore {
         }
         Ok(page(found, limit, |f| f.sequence.to_string(), |f| f))
     }
-}
-
-/// Sort position of a dataset in listings: newest first, then by id.
-fn dataset_position(m: &DatasetMeta) -> String {
-    let newest_first = (i64::MAX as i128 - m.created_at as i128) as u64;
-    format!("{newest_first:020}:{}", m.id)
-}
-
-/// Cuts `items` (in listing order, possibly one more than fits) to a page; the token is the
-/// position of the last item on the page when more remain.
-fn page<I, T>(items: Vec<I>, limit: usize, position: impl Fn(&I) -> String, value: impl Fn(I) -> T) -> (Vec<T>, Option<String>) {
-    let limit = limit.max(1);
-    let more = items.len() > limit;
-    let mut kept: Vec<I> = items;
-    kept.truncate(limit);
-    let token = if more { kept.last().map(&position) } else { None };
-    (kept.into_iter().map(value).collect(), token)
 }
 
 /// The error of a store whose lock another process (or a database still open) holds.

@@ -71,7 +71,7 @@ fn meta(id: &str, name: &str, created_at: i64, bytes: u64) -> DatasetMeta {
             ColumnMeta { name: "box_temp".into(), kind: ColumnKind::Numeric, missing: 3, levels: 0 },
             ColumnMeta { name: "site".into(), kind: ColumnKind::Categorical, missing: 0, levels: 4 },
         ],
-        target: "spoiled".into(),
+        target: Some("spoiled".into()),
         task: Some(Task::Classify),
         created_at,
         bytes,
@@ -177,7 +177,7 @@ fn run_record_round_trips_every_spec_field() {
         spec.metric = Some(metrics[i]);
         let mut run = Run::queued(format!("run_{i}"), &meta("ds_1", "reefer", 10, 0), "spoiled".into(), spec, 1_700_000_000_000);
         run.labels.insert("team".into(), "cold chain".into());
-        run.idempotency_key = "k-1".into();
+        run.idempotency_key = Some("k-1".into());
         run.schedule_id = Some("nightly".into());
         run.state = RunState::Cancelled;
         run.started_at = Some(1);
@@ -469,7 +469,7 @@ fn concurrent_claims_take_each_run_once_in_order() {
 fn versions_follow_the_name() {
     let store = SledStore::open_temporary().unwrap();
     let put = |id: &str, name: &str, content: &str, target: &str| {
-        let m = DatasetMeta { content: content.into(), target: target.into(), ..meta(id, name, 1, 4) };
+        let m = DatasetMeta { content: content.into(), target: crate::job::given(target.into()), ..meta(id, name, 1, 4) };
         store.put_dataset(m, content.as_bytes()).unwrap()
     };
     let PutDataset::Created(first) = put("ds_1", "voyages", "abcd", "spoiled") else { panic!("not created") };
@@ -484,7 +484,7 @@ fn versions_follow_the_name() {
     assert_eq!((store.dataset("ds_3").unwrap(), store.tree(CHUNKS).len()), (None, chunks));
     // Another target for the same bytes: a new version.
     let PutDataset::Created(v2) = put("ds_4", "voyages", "abcd", "box_temp") else { panic!("not created") };
-    assert_eq!((v2.version, v2.target.as_str()), (2, "box_temp"));
+    assert_eq!((v2.version, v2.target.as_deref()), (2, Some("box_temp")));
     // Back to the first target: the newest version differs, so version 3.
     let PutDataset::Created(v3) = put("ds_5", "voyages", "abcd", "spoiled") else { panic!("not created") };
     assert_eq!(v3.version, 3);
@@ -592,7 +592,9 @@ enum Op {
     CreateRun { dataset: usize, key: Option<usize>, label: bool },
     Claim,
     Plan { run: usize },
-    RecordUnit { run: usize, unit: u32, events: usize },
+    /// One unit through `record_unit`, or several in one `record_units` batch (a unit may
+    /// repeat in a batch, as a stored one may be handed over again).
+    RecordUnits { run: usize, units: Vec<(u32, usize)>, batch: bool },
     Progress { run: usize },
     Finish { run: usize },
     End { run: usize, cancel: bool },
@@ -607,7 +609,8 @@ fn op() -> impl Strategy<Value = Op> {
         5 => (0..64usize, proptest::option::of(0..KEYS_USED), any::<bool>()).prop_map(|(dataset, key, label)| Op::CreateRun { dataset, key, label }),
         3 => Just(Op::Claim),
         2 => (0..64usize).prop_map(|run| Op::Plan { run }),
-        5 => (0..64usize, 0..4u32, 0..3usize).prop_map(|(run, unit, events)| Op::RecordUnit { run, unit, events }),
+        5 => (0..64usize, proptest::collection::vec((0..4u32, 0..3usize), 1..4), any::<bool>())
+            .prop_map(|(run, units, batch)| if batch { Op::RecordUnits { run, units, batch } } else { Op::RecordUnits { run, units: units[..1].to_vec(), batch } }),
         1 => (0..64usize).prop_map(|run| Op::Progress { run }),
         2 => (0..64usize).prop_map(|run| Op::Finish { run }),
         2 => (0..64usize, any::<bool>()).prop_map(|(run, cancel)| Op::End { run, cancel }),
@@ -722,12 +725,12 @@ fn step(store: &dyn Storage, model: &mut Model, op: &Op, now: i64) {
             let ds = model.datasets.get(&content_id(dataset)).map(|d| d.0.clone()).unwrap_or_else(|| meta(&content_id(dataset), "", 0, 0));
             let mut run = Run::queued(id.clone(), &ds, "spoiled".into(), full_spec(now as u64), now);
             if let Some(k) = key {
-                run.idempotency_key = format!("key-{k}");
+                run.idempotency_key = Some(format!("key-{k}"));
             }
             if *label {
                 run.labels.insert("team".into(), "cold-chain".into());
             }
-            let existing = key.and_then(|_| model.idempotency.get(&run.idempotency_key)).and_then(|id| model.runs.get(id));
+            let existing = run.idempotency_key.as_ref().and_then(|k| model.idempotency.get(k)).and_then(|id| model.runs.get(id));
             let want = if let Some(r) = existing {
                 CreateRun::Existing(r.clone())
             } else if !model.datasets.contains_key(&run.dataset_id) {
@@ -736,7 +739,7 @@ fn step(store: &dyn Storage, model: &mut Model, op: &Op, now: i64) {
                 model.runs.insert(id.clone(), run.clone());
                 model.queue.push(id.clone());
                 if key.is_some() {
-                    model.idempotency.insert(run.idempotency_key.clone(), id.clone());
+                    model.idempotency.insert(run.idempotency_key.clone().expect("a key"), id.clone());
                 }
                 CreateRun::Created(run.clone())
             };
@@ -760,24 +763,25 @@ fn step(store: &dyn Storage, model: &mut Model, op: &Op, now: i64) {
             }
             store.set_plan_size(&id, 3, 4).unwrap();
         }
-        Op::RecordUnit { run, unit, events } => {
+        Op::RecordUnits { run, units, batch } => {
             let id = model.pick(*run, is_running);
-            let u = unit_result(*unit, now);
-            let kinds = unit_events(*events, now);
-            let fresh = model.runs.get(&id).is_some_and(|r| r.state == RunState::Running) && !model.units.get(&id).is_some_and(|m| m.contains_key(&u.unit));
-            let want: Vec<Event> = if fresh {
-                model.units.entry(id.clone()).or_default().insert(u.unit, u.clone());
-                model.runs.get_mut(&id).unwrap().units_done += 1;
-                let done = model.runs[&id].units_done as usize;
-                let announced = |k: &EventKind| match k {
-                    EventKind::Progress(p) => EventKind::Progress(Progress { units_done: done, ..*p }),
-                    other => other.clone(),
-                };
-                kinds.iter().map(|k| model.append(&id, announced(k), now)).collect()
-            } else {
-                Vec::new()
-            };
-            assert_same!(store.record_unit(&id, &u, kinds, now).unwrap(), want);
+            let handed: Vec<(UnitResult, Vec<EventKind>)> = units.iter().map(|&(unit, events)| (unit_result(unit, now), unit_events(events, now))).collect();
+            let mut want: Vec<Event> = Vec::new();
+            for (u, kinds) in &handed {
+                let fresh = model.runs.get(&id).is_some_and(|r| r.state == RunState::Running) && !model.units.get(&id).is_some_and(|m| m.contains_key(&u.unit));
+                if fresh {
+                    model.units.entry(id.clone()).or_default().insert(u.unit, u.clone());
+                    model.runs.get_mut(&id).unwrap().units_done += 1;
+                    let done = model.runs[&id].units_done as usize;
+                    let announced = |k: &EventKind| match k {
+                        EventKind::Progress(p) => EventKind::Progress(Progress { units_done: done, ..*p }),
+                        other => other.clone(),
+                    };
+                    want.extend(kinds.iter().map(|k| model.append(&id, announced(k), now)));
+                }
+            }
+            let got = if *batch { store.record_units(&id, handed, now).unwrap() } else { store.record_unit(&id, &handed[0].0, handed[0].1.clone(), now).unwrap() };
+            assert_same!(got, want);
         }
         Op::Progress { run } => {
             let id = model.pick(*run, is_running);
@@ -975,7 +979,7 @@ fn crash_script(store: &dyn Storage) {
     let ds = store.dataset("ds_a").unwrap().unwrap();
     for i in 0..4 {
         let mut run = Run::queued(format!("run_{i}"), &ds, "spoiled".into(), full_spec(i), 10 + i as i64);
-        run.idempotency_key = format!("key-{i}");
+        run.idempotency_key = Some(format!("key-{i}"));
         assert!(matches!(store.create_run(run).unwrap(), CreateRun::Created(_)));
     }
     let first = store.claim_next(20).unwrap().unwrap();
@@ -1084,7 +1088,7 @@ fn fixture_store_of_017cda4_decodes() {
     let seen: Vec<(&str, u32, u64, Option<Task>)> = datasets.iter().map(|m| (m.name.as_str(), m.version, m.rows, m.task)).collect();
     assert_eq!(seen, [("iris", 3, 100, Some(Task::Classify)), ("iris", 2, 120, Some(Task::Classify)), ("diabetes", 1, 442, Some(Task::Regress)), ("iris", 1, 150, Some(Task::Classify))]);
     for m in &datasets {
-        assert_eq!(m.target, "target");
+        assert_eq!(m.target.as_deref(), Some("target"));
         assert!(m.columns.iter().all(|c| c.kind == ColumnKind::Numeric && c.missing == 0), "{:?}", m.columns);
         let bytes = store.dataset_bytes(&m.id).unwrap().unwrap();
         assert_eq!(bytes.len() as u64, m.bytes, "{}", m.id);
@@ -1114,7 +1118,7 @@ fn fixture_store_of_017cda4_decodes() {
     }
     let by_id = |id: &str| runs.iter().find(|r| r.id == id).unwrap();
     let first = by_id("run_01a23abf207e728d948ac5b8799386a4");
-    assert_eq!(first.idempotency_key, "fx-iris");
+    assert_eq!(first.idempotency_key.as_deref(), Some("fx-iris"));
     assert_eq!(first.labels.get("fixture").map(String::as_str), Some("classify"));
     assert_eq!(first.spec.seed, 7);
     assert_eq!((first.reason.as_deref(), first.schedule_id.as_deref(), first.owner.as_deref()), (None, None, None));
@@ -1146,7 +1150,7 @@ fn fixture_store_of_017cda4_decodes() {
     assert_eq!(store.all_schedules().unwrap().len(), 1);
     let (fires, more) = store.fires(FIXTURE_SCHEDULE, None, 10).unwrap();
     assert!(more.is_none());
-    let fired: Vec<(u64, FireOutcome, &str)> = fires.iter().map(|f| (f.sequence, f.outcome, f.run_id.as_str())).collect();
+    let fired: Vec<(u64, FireOutcome, &str)> = fires.iter().map(|f| (f.sequence, f.outcome, f.run_id.as_deref().unwrap_or(""))).collect();
     assert_eq!(fired, [(3, FireOutcome::Started, runs[0].id.as_str()), (2, FireOutcome::Started, runs[1].id.as_str()), (1, FireOutcome::Started, runs[2].id.as_str())]);
     assert!(fires.iter().all(|f| f.scheduled_for % 60_000 == 0 && f.missed == 0));
     assert_eq!(store.queued_count().unwrap(), 0);

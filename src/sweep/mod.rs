@@ -353,18 +353,53 @@ pub fn pick(scores: &[SettingScore], rule: PickRule, metric: Metric) -> usize {
     let best = (0..scores.len())
         .min_by(|&a, &b| good(&scores[b]).total_cmp(&good(&scores[a])).then(simpler(&scores[a], &scores[b])).then(a.cmp(&b)))
         .expect("at least one setting");
+    // The simplest setting scoring at least `floor`, ties to the better score.
+    let simplest_above = |floor: f64| {
+        (0..scores.len())
+            .filter(|&i| good(&scores[i]) >= floor)
+            .min_by(|&a, &b| simpler(&scores[a], &scores[b]).then(good(&scores[b]).total_cmp(&good(&scores[a]))).then(a.cmp(&b)))
+            .unwrap_or(best)
+    };
     match rule {
         PickRule::Highest => best,
         PickRule::OneSe => {
             let b = &scores[best];
             let se = b.valid_sd / (b.fold_scores.len() as f64).sqrt();
-            let floor = good(b) - se;
-            (0..scores.len())
-                .filter(|&i| good(&scores[i]) >= floor)
-                .min_by(|&a, &b| simpler(&scores[a], &scores[b]).then(good(&scores[b]).total_cmp(&good(&scores[a]))).then(a.cmp(&b)))
-                .unwrap_or(best)
+            simplest_above(good(b) - se)
+        }
+        PickRule::Within(tolerance) => simplest_above(good(&scores[best]) - tolerance),
+        PickRule::MaxLeavesBudget(n) => (0..scores.len())
+            .filter(|&i| scores[i].mean_leaves <= n as f64)
+            .min_by(|&a, &b| good(&scores[b]).total_cmp(&good(&scores[a])).then(simpler(&scores[a], &scores[b])).then(a.cmp(&b)))
+            .unwrap_or_else(|| simplest_above(f64::NEG_INFINITY)),
+    }
+}
+
+/// The settings no other setting beats on both validation score and mean leaves (at least
+/// as good on both and better on one), fewest leaves first: the choices a caller who trades
+/// score against size can make. Of settings equal on both, the first in grid order stands
+/// for them. NaN scores count as the worst.
+pub fn pareto_front(scores: &[SettingScore], metric: Metric) -> Vec<usize> {
+    let good = |s: &SettingScore| {
+        let v = if metric.higher_is_better() { s.valid_mean } else { -s.valid_mean };
+        if v.is_nan() {
+            f64::NEG_INFINITY
+        } else {
+            v
+        }
+    };
+    let mut order: Vec<usize> = (0..scores.len()).collect();
+    order.sort_by(|&a, &b| scores[a].mean_leaves.total_cmp(&scores[b].mean_leaves).then(good(&scores[b]).total_cmp(&good(&scores[a]))).then(a.cmp(&b)));
+    let mut front = Vec::new();
+    let mut best_so_far = f64::NEG_INFINITY;
+    for i in order {
+        // Fewer or equal leaves came first: this one stands only if it scores strictly better.
+        if front.is_empty() || good(&scores[i]) > best_so_far {
+            best_so_far = good(&scores[i]);
+            front.push(i);
         }
     }
+    front
 }
 
 /// Refits a setting on every row of the plan's dataset.
@@ -431,6 +466,44 @@ mod tests {
         let flipped: Vec<SettingScore> = table.iter().map(|&(splits, err, se)| score(1.0 - err, se, splits + 1.0)).collect();
         assert_eq!(pick(&flipped, PickRule::Highest, Metric::Accuracy), 9);
         assert_eq!(pick(&flipped, PickRule::OneSe, Metric::Accuracy), 6);
+
+        // The same table, worked by hand for the other rules.
+        // A budget of 5 leaves (4 splits): the best error among rows 0–4 is row 4's 0.7560.
+        assert_eq!(pick(&scores, PickRule::MaxLeavesBudget(5), Metric::LogLoss), 4);
+        // A budget every row fits: the best, row 9.
+        assert_eq!(pick(&scores, PickRule::MaxLeavesBudget(100), Metric::LogLoss), 9);
+        // Within 0.02 of 0.7248227: errors at most 0.7448227; the fewest splits among them
+        // is row 6 (0.7356289; row 5's 0.7466449 is over). Within 0.03: at most 0.7548227,
+        // so row 5. Within 0: only the best.
+        assert_eq!(pick(&scores, PickRule::Within(0.02), Metric::LogLoss), 6);
+        assert_eq!(pick(&scores, PickRule::Within(0.03), Metric::LogLoss), 5);
+        assert_eq!(pick(&scores, PickRule::Within(0.0), Metric::LogLoss), 9);
+        assert_eq!(pick(&flipped, PickRule::Within(0.03), Metric::Accuracy), 5);
+        // The Pareto front of (error, leaves): the error falls with every added split except
+        // at 8 splits (0.7388091 > 0.7356289 at 6), so every row but row 7.
+        assert_eq!(pareto_front(&scores, Metric::LogLoss), vec![0, 1, 2, 3, 4, 5, 6, 8, 9]);
+        assert_eq!(pareto_front(&flipped, Metric::Accuracy), vec![0, 1, 2, 3, 4, 5, 6, 8, 9]);
+    }
+
+    #[test]
+    fn a_leaf_budget_no_setting_fits_picks_the_smallest_tree() {
+        let scores = vec![score(0.9, 0.01, 8.0), score(0.7, 0.01, 3.0), score(0.8, 0.01, 3.0)];
+        assert_eq!(pick(&scores, PickRule::MaxLeavesBudget(2), Metric::Accuracy), 2);
+        assert_eq!(pick(&scores, PickRule::MaxLeavesBudget(3), Metric::Accuracy), 2);
+        assert_eq!(pick(&scores, PickRule::MaxLeavesBudget(8), Metric::Accuracy), 0);
+        // Equal on both: the first in grid order stands for both on the front.
+        let tied = vec![score(0.8, 0.01, 3.0), score(0.8, 0.01, 3.0), score(0.9, 0.01, 5.0)];
+        assert_eq!(pareto_front(&tied, Metric::Accuracy), vec![0, 2]);
+    }
+
+    #[test]
+    fn pick_rules_read_and_write_their_text() {
+        for rule in [PickRule::Highest, PickRule::OneSe, PickRule::MaxLeavesBudget(12), PickRule::Within(0.005)] {
+            assert_eq!(PickRule::parse(&rule.as_str()), Some(rule));
+        }
+        for bad in ["", "best", "max_leaves_budget:0", "max_leaves_budget:-1", "max_leaves_budget:x", "within:-0.1", "within:nan", "within:inf", "within", "one_se:1"] {
+            assert_eq!(PickRule::parse(bad), None, "{bad}");
+        }
     }
 
     #[test]

@@ -20,7 +20,7 @@ pub enum Range {
 }
 
 /// How the winning setting is chosen.
-#[derive(Clone, Copy, Debug, PartialEq, Eq, Hash, Default)]
+#[derive(Clone, Copy, Debug, PartialEq, Default)]
 pub enum PickRule {
     /// Best `valid_mean`; ties go to fewer mean leaves, then shallower, then grid order.
     #[default]
@@ -30,22 +30,44 @@ pub enum PickRule {
     /// *The Elements of Statistical Learning*, 2nd ed., §7.10); ties go shallower, then to
     /// the better `valid_mean`, then grid order.
     OneSe,
+    /// `max_leaves_budget:N`: the best `valid_mean` among the settings whose mean leaves are
+    /// at most N (a tree that must fit a rules engine or a review), ties as `Highest`. When
+    /// no setting fits the budget, the setting with the fewest mean leaves (then the better
+    /// score) is picked.
+    MaxLeavesBudget(u32),
+    /// `within:T`: the simplest setting (fewest mean leaves, then shallower) whose
+    /// `valid_mean` is within T, in the metric's units, of the best; ties go to the better
+    /// `valid_mean`, then grid order. `one_se` with a tolerance the caller chooses.
+    Within(f64),
 }
 
 impl PickRule {
-    pub fn as_str(self) -> &'static str {
+    /// The rule as written on the wire, in records and on the command line.
+    pub fn as_str(self) -> std::borrow::Cow<'static, str> {
         match self {
-            PickRule::Highest => "highest",
-            PickRule::OneSe => "one_se",
+            PickRule::Highest => "highest".into(),
+            PickRule::OneSe => "one_se".into(),
+            PickRule::MaxLeavesBudget(n) => format!("max_leaves_budget:{n}").into(),
+            PickRule::Within(t) => format!("within:{t}").into(),
         }
     }
+
+    /// `highest`, `one_se`, `max_leaves_budget:N` (N ≥ 1) or `within:T` (T finite, ≥ 0).
     pub fn parse(s: &str) -> Option<PickRule> {
-        match s {
-            "highest" => Some(PickRule::Highest),
-            "one_se" => Some(PickRule::OneSe),
-            _ => None,
+        match s.split_once(':') {
+            None => match s {
+                "highest" => Some(PickRule::Highest),
+                "one_se" => Some(PickRule::OneSe),
+                _ => None,
+            },
+            Some(("max_leaves_budget", n)) => n.parse::<u32>().ok().filter(|&n| n >= 1).map(PickRule::MaxLeavesBudget),
+            Some(("within", t)) => t.parse::<f64>().ok().filter(|t| t.is_finite() && *t >= 0.0).map(PickRule::Within),
+            Some(_) => None,
         }
     }
+
+    /// The words naming every rule, for error messages.
+    pub const CHOICES: &'static str = "highest, one_se, max_leaves_budget:N (N at least 1) or within:T (T a tolerance in the metric's units, at least 0)";
 }
 
 /// A request to score many settings by cross-validation.
