@@ -338,17 +338,19 @@ pub fn key_scores(plan: &Plan, units: &[UnitResult], key: usize) -> Option<Vec<(
     (!out.is_empty()).then_some(out)
 }
 
+/// A setting's validation score oriented so that larger is better, NaN lowest.
+fn oriented(s: &SettingScore, metric: Metric) -> f64 {
+    let v = if metric.higher_is_better() { s.valid_mean } else { -s.valid_mean };
+    if v.is_nan() {
+        f64::NEG_INFINITY
+    } else {
+        v
+    }
+}
+
 /// Applies a pick rule; NaN means count as the worst.
 pub fn pick(scores: &[SettingScore], rule: PickRule, metric: Metric) -> usize {
-    // Oriented so larger is better, NaN lowest.
-    let good = |s: &SettingScore| {
-        let v = if metric.higher_is_better() { s.valid_mean } else { -s.valid_mean };
-        if v.is_nan() {
-            f64::NEG_INFINITY
-        } else {
-            v
-        }
-    };
+    let good = |s: &SettingScore| oriented(s, metric);
     let simpler = |a: &SettingScore, b: &SettingScore| a.mean_leaves.total_cmp(&b.mean_leaves).then(a.mean_depth.total_cmp(&b.mean_depth));
     let best = (0..scores.len())
         .min_by(|&a, &b| good(&scores[b]).total_cmp(&good(&scores[a])).then(simpler(&scores[a], &scores[b])).then(a.cmp(&b)))
@@ -380,14 +382,7 @@ pub fn pick(scores: &[SettingScore], rule: PickRule, metric: Metric) -> usize {
 /// score against size can make. Of settings equal on both, the first in grid order stands
 /// for them. NaN scores count as the worst.
 pub fn pareto_front(scores: &[SettingScore], metric: Metric) -> Vec<usize> {
-    let good = |s: &SettingScore| {
-        let v = if metric.higher_is_better() { s.valid_mean } else { -s.valid_mean };
-        if v.is_nan() {
-            f64::NEG_INFINITY
-        } else {
-            v
-        }
-    };
+    let good = |s: &SettingScore| oriented(s, metric);
     let mut order: Vec<usize> = (0..scores.len()).collect();
     order.sort_by(|&a, &b| scores[a].mean_leaves.total_cmp(&scores[b].mean_leaves).then(good(&scores[b]).total_cmp(&good(&scores[a]))).then(a.cmp(&b)));
     let mut front = Vec::new();
