@@ -22,6 +22,10 @@ use crate::schedule::CatchUp;
 use crate::sweep::{FoldPlan, FoldScheme, FoldScore, Metric, PickRule, Progress, Range, Setting, SettingScore, SweepSpec};
 use crate::tree::{fit, ClassWeight, Criterion, FitOptions, Limits, TrainSet, Tree};
 
+/// The throwaway PostgreSQL clusters of the tests (shared with the integration targets).
+#[path = "../../tests/support/postgres.rs"]
+mod pg;
+
 // ---------------------------------------------------------------------------------------
 // Helpers
 
@@ -1149,4 +1153,21 @@ fn fixture_store_of_017cda4_decodes() {
     assert!(fires.iter().all(|f| f.scheduled_for % 60_000 == 0 && f.missed == 0));
     assert_eq!(store.queued_count().unwrap(), 0);
     assert!(store.running_runs().unwrap().is_empty());
+}
+
+// ---------------------------------------------------------------------------------------
+// The PostgreSQL test harness
+
+#[test]
+fn the_throwaway_cluster_serves_fresh_databases() {
+    let Ok(cluster) = pg::available().map_err(|why| eprintln!("skipped: {why}")) else { return };
+    let a = cluster.fresh_database("harness a");
+    let b = cluster.fresh_database("harness b");
+    assert_ne!(a, b);
+    let name = a.rsplit('/').next().unwrap();
+    assert_eq!(cluster.sql(name, "SELECT current_user").trim(), pg::ROLE);
+    // The server never runs as root.
+    let status = std::fs::read_to_string(format!("/proc/{}/status", cluster.pid)).unwrap();
+    let uid = status.lines().find_map(|l| l.strip_prefix("Uid:")).and_then(|l| l.split_whitespace().next()).unwrap();
+    assert_ne!(uid, "0", "the server runs as root");
 }
