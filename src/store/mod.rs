@@ -17,6 +17,7 @@
 
 pub mod files;
 pub mod keys;
+pub mod postgres;
 pub mod records;
 pub mod sled_store;
 
@@ -31,6 +32,7 @@ use crate::drift::DriftReport;
 use crate::job::{DatasetMeta, Event, EventKind, Fire, Run, RunOutcome, RunState, Schedule};
 use crate::sweep::UnitResult;
 
+pub use postgres::PostgresStore;
 pub use sled_store::{store_in_use, SledStore, CHUNK_BYTES, REFS_COUNTED, STAGING_DIR};
 
 /// Why the store could not do what it was asked.
@@ -92,6 +94,57 @@ pub enum PutDataset {
 /// Whether two datasets are one version: same bytes, read the same way.
 pub(crate) fn same_version(a: &DatasetMeta, b: &DatasetMeta) -> bool {
     a.content == b.content && a.target == b.target && a.categorical == b.categorical
+}
+
+/// Sort position of a dataset in listings: newest first, then by id.
+pub(crate) fn dataset_position(m: &DatasetMeta) -> String {
+    let newest_first = (i64::MAX as i128 - m.created_at as i128) as u64;
+    format!("{newest_first:020}:{}", m.id)
+}
+
+/// Cuts `items` (in listing order, possibly one more than fits) to a page; the token is the
+/// position of the last item on the page when more remain.
+pub(crate) fn page<I, T>(items: Vec<I>, limit: usize, position: impl Fn(&I) -> String, value: impl Fn(I) -> T) -> (Vec<T>, Option<String>) {
+    let limit = limit.max(1);
+    let more = items.len() > limit;
+    let mut kept: Vec<I> = items;
+    kept.truncate(limit);
+    let token = if more { kept.last().map(&position) } else { None };
+    (kept.into_iter().map(value).collect(), token)
+}
+
+/// What a fire's attempt to queue `run` means for the fire and its schedule (inside the
+/// fire's transaction); the run created, if any.
+pub(crate) fn fire_run(s: &mut Schedule, fire: &mut Fire, run: &Run, created: CreateRun) -> Option<Run> {
+    match created {
+        CreateRun::Created(r) => {
+            s.last_run_id = Some(r.id.clone());
+            s.last_dataset_id = Some(r.dataset_id.clone());
+            fire.run_id = r.id.clone();
+            return Some(r);
+        }
+        CreateRun::Existing(r) => fire.run_id = r.id,
+        CreateRun::DatasetMissing => fire.fail(format!("dataset {} was deleted before the run could be queued", run.dataset_id)),
+        // Not returned here: the scheduler checks the queue cap before it records a fire.
+        CreateRun::QueueFull => fire.fail("the queue is full".into()),
+    }
+    None
+}
+
+/// An event a unit announces, with the store's count of stored units in a progress event.
+pub(crate) fn announced(kind: &EventKind, units_done: u32) -> EventKind {
+    let mut kind = kind.clone();
+    if let EventKind::Progress(p) = &mut kind {
+        p.units_done = units_done as usize;
+    }
+    kind
+}
+
+/// Numbers a fire and moves its schedule past the instants it considered.
+pub(crate) fn number_fire(s: &mut Schedule, fire: &mut Fire, considered: i64) {
+    fire.sequence = s.next_fire_sequence;
+    s.next_fire_sequence += 1;
+    s.considered_until = considered;
 }
 
 /// What [`Storage::delete_dataset`] did.

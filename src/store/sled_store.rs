@@ -48,7 +48,7 @@ use sled::transaction::{ConflictableTransactionError, TransactionError, Transact
 use sled::{IVec, Transactional};
 
 use super::records::{self, HoldsRecord};
-use super::{files, keys, same_version, Claim, CreateRun, DeleteDataset, PutDataset, Resumed, RunFilter, Storage, StoreError};
+use super::{announced, dataset_position, files, fire_run, keys, number_fire, page, same_version, Claim, CreateRun, DeleteDataset, PutDataset, Resumed, RunFilter, Storage, StoreError};
 use crate::drift::DriftReport;
 use crate::job::{DatasetMeta, Event, EventKind, Fire, Run, RunOutcome, RunState, Schedule};
 use crate::sweep::UnitResult;
@@ -802,11 +802,7 @@ impl Storage for SledStore {
                 run.units_done += 1;
                 let mut out = Vec::with_capacity(events.len());
                 for kind in &events {
-                    let mut kind = kind.clone();
-                    // The store's count of stored units is the one announced.
-                    if let EventKind::Progress(p) = &mut kind {
-                        p.units_done = run.units_done as usize;
-                    }
+                    let kind = announced(kind, run.units_done);
                     out.push(tx.append(&mut run, kind, now)?);
                 }
                 tx.put_progress(&run)?;
@@ -1085,23 +1081,10 @@ impl Storage for SledStore {
                     if let Some(busy) = last.filter(|r| r.state.is_active()) {
                         fire.skip_busy(busy);
                     } else {
-                        match tx.insert_run(run, false)? {
-                            CreateRun::Created(r) => {
-                                s.last_run_id = Some(r.id.clone());
-                                s.last_dataset_id = Some(r.dataset_id.clone());
-                                fire.run_id = r.id.clone();
-                                created = Some(r);
-                            }
-                            CreateRun::Existing(r) => fire.run_id = r.id,
-                            CreateRun::DatasetMissing => fire.fail(format!("dataset {} was deleted before the run could be queued", run.dataset_id)),
-                            // Not returned here: the scheduler checks the queue cap before it records a fire.
-                            CreateRun::QueueFull => fire.fail("the queue is full".into()),
-                        }
+                        created = fire_run(&mut s, &mut fire, run, tx.insert_run(run, false)?);
                     }
                 }
-                fire.sequence = s.next_fire_sequence;
-                s.next_fire_sequence += 1;
-                s.considered_until = considered;
+                number_fire(&mut s, &mut fire, considered);
                 tx.insert(FIRES, keys::fire(id, fire.sequence), records::encode_fire(&fire))?;
                 tx.put_schedule(&s)?;
                 Ok(Some((s, fire, created.clone())))
@@ -1124,23 +1107,6 @@ impl Storage for SledStore {
         }
         Ok(page(found, limit, |f| f.sequence.to_string(), |f| f))
     }
-}
-
-/// Sort position of a dataset in listings: newest first, then by id.
-fn dataset_position(m: &DatasetMeta) -> String {
-    let newest_first = (i64::MAX as i128 - m.created_at as i128) as u64;
-    format!("{newest_first:020}:{}", m.id)
-}
-
-/// Cuts `items` (in listing order, possibly one more than fits) to a page; the token is the
-/// position of the last item on the page when more remain.
-fn page<I, T>(items: Vec<I>, limit: usize, position: impl Fn(&I) -> String, value: impl Fn(I) -> T) -> (Vec<T>, Option<String>) {
-    let limit = limit.max(1);
-    let more = items.len() > limit;
-    let mut kept: Vec<I> = items;
-    kept.truncate(limit);
-    let token = if more { kept.last().map(&position) } else { None };
-    (kept.into_iter().map(value).collect(), token)
 }
 
 /// The error of a store whose lock another process (or a database still open) holds.

@@ -934,9 +934,23 @@ fn all_datasets(store: &dyn Storage, name: Option<&str>) -> Vec<DatasetMeta> {
 }
 
 /// Every backend the model test checks: its name, and how to open it on a directory (again
-/// after a reopen, with what it held). A new backend adds one line here.
+/// after a reopen, with what it held). A new backend adds one line here. PostgreSQL joins
+/// when its programs are installed (see `pg`), each directory standing for a database of
+/// its own on the throwaway cluster.
 fn backends() -> Vec<(&'static str, fn(&Path) -> Box<dyn Storage>)> {
-    vec![("sled", |dir| Box::new(SledStore::open(dir).unwrap()))]
+    let mut out: Vec<(&'static str, fn(&Path) -> Box<dyn Storage>)> = vec![("sled", |dir| Box::new(SledStore::open(dir).unwrap()))];
+    match pg::available() {
+        Ok(_) => out.push(("postgres", |dir| Box::new(PostgresStore::open(&database_for(dir)).unwrap()))),
+        Err(why) => eprintln!("the model test skips the postgres backend: {why}"),
+    }
+    out
+}
+
+/// The database standing for a test directory: made on first use, the same one after.
+fn database_for(dir: &Path) -> String {
+    static MADE: std::sync::Mutex<BTreeMap<PathBuf, String>> = std::sync::Mutex::new(BTreeMap::new());
+    let mut made = MADE.lock().unwrap();
+    made.entry(dir.to_path_buf()).or_insert_with(|| pg::available().unwrap().fresh_database("model")).clone()
 }
 
 proptest! {
@@ -1170,4 +1184,23 @@ fn the_throwaway_cluster_serves_fresh_databases() {
     let status = std::fs::read_to_string(format!("/proc/{}/status", cluster.pid)).unwrap();
     let uid = status.lines().find_map(|l| l.strip_prefix("Uid:")).and_then(|l| l.split_whitespace().next()).unwrap();
     assert_ne!(uid, "0", "the server runs as root");
+}
+
+#[test]
+fn replicas_starting_together_migrate_once() {
+    let Ok(cluster) = pg::available().map_err(|why| eprintln!("skipped: {why}")) else { return };
+    let url = cluster.fresh_database("migrate");
+    let opened: Vec<PostgresStore> = std::thread::scope(|s| {
+        let handles: Vec<_> = (0..3).map(|_| s.spawn(|| PostgresStore::open(&url).unwrap())).collect();
+        handles.into_iter().map(|h| h.join().unwrap()).collect()
+    });
+    let name = url.rsplit('/').next().unwrap();
+    let versions = cluster.sql(name, "SELECT string_agg(version::text, ',' ORDER BY version) FROM pollard_migrations");
+    let want: Vec<String> = postgres::migrate::MIGRATIONS.iter().map(|m| m.0.to_string()).collect();
+    assert_eq!(versions.trim(), want.join(","));
+    // A database that a newer build migrated is refused, naming the versions.
+    cluster.sql(name, "INSERT INTO pollard_migrations (version, name) VALUES (9999, 'from the future')");
+    drop(opened);
+    let e = PostgresStore::open(&url).err().expect("a newer schema is refused");
+    assert!(matches!(&e, StoreError::Corrupt(m) if m.contains("9999")), "{e}");
 }
