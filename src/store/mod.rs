@@ -214,6 +214,14 @@ pub trait Storage: Send + Sync {
     /// Writes everything out (changes already are, when they return; this is for shutdown).
     fn flush(&self) -> Result<(), StoreError>;
 
+    /// Whether the store can be used now (health checks); a backend on a local disk always can.
+    fn check(&self) -> Result<(), StoreError> {
+        Ok(())
+    }
+
+    /// What the store is and where, for the log (no secrets).
+    fn describe(&self) -> String;
+
     // -- datasets
 
     /// Stores a dataset as the next version of its name, unless nothing changed

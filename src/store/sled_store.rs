@@ -579,6 +579,10 @@ impl SledStore {
 
 impl Storage for SledStore {
 
+    fn describe(&self) -> String {
+        format!("sled in {}", self.files.dir().parent().map_or_else(|| self.files.dir().display().to_string(), |d| d.display().to_string()))
+    }
+
     /// Writes everything to disk (changes already are, when they return; this is for shutdown).
     fn flush(&self) -> Result<(), StoreError> {
         self.db.flush()?;

@@ -311,7 +311,7 @@ mod support;
 use support::{start_with_clock, POLL};
 
 async fn start(store: SledStore, clock: Arc<TestClock>) -> support::Server {
-    start_with_clock(store, config(), clock).await
+    start_with_clock(Arc::new(store), config(), clock).await
 }
 
 async fn upload(ch: &Channel, bytes: Vec<u8>) -> pb::DatasetInfo {

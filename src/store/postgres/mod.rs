@@ -70,6 +70,8 @@ struct Inner {
     staging: PathBuf,
     /// Who computes units here: recorded with each unit this process stores.
     worker: String,
+    /// The database's host, port and name, for the log.
+    place: String,
 }
 
 impl Drop for Inner {
@@ -261,7 +263,7 @@ impl PostgresStore {
             .enable_all()
             .build()
             .map_err(|e| StoreError::Io(format!("cannot start the store's runtime: {e}")))?;
-        let manager = Manager::from_config(config, NoTls, ManagerConfig { recycling_method: RecyclingMethod::Fast });
+        let manager = Manager::from_config(config.clone(), NoTls, ManagerConfig { recycling_method: RecyclingMethod::Fast });
         let pool = Pool::builder(manager)
             .max_size(POOL_SIZE)
             .runtime(Runtime::Tokio1)
@@ -274,7 +276,12 @@ impl PostgresStore {
         std::fs::create_dir_all(&staging).map_err(|e| StoreError::Io(format!("cannot create the upload folder {}: {e}", staging.display())))?;
         let host = std::fs::read_to_string("/proc/sys/kernel/hostname").map(|h| h.trim().to_string()).unwrap_or_default();
         let worker = format!("{host}:{}", std::process::id());
-        let store = PostgresStore { inner: std::sync::Arc::new(Inner { rt: Some(rt), pool, staging, worker }) };
+        let hosts: Vec<String> = config.get_hosts().iter().map(|h| match h {
+            tokio_postgres::config::Host::Tcp(name) => name.clone(),
+            tokio_postgres::config::Host::Unix(path) => path.display().to_string(),
+        }).collect();
+        let place = format!("{}:{}/{}", hosts.join(","), config.get_ports().first().copied().unwrap_or(5432), config.get_dbname().unwrap_or(""));
+        let store = PostgresStore { inner: std::sync::Arc::new(Inner { rt: Some(rt), pool, staging, worker, place }) };
         store.block(async {
             let mut client = store.inner.pool.get().await.map_err(unreachable)?;
             migrate::migrate(&mut client).await
@@ -442,6 +449,14 @@ fn unreachable(e: deadpool_postgres::PoolError) -> StoreError {
 impl Storage for PostgresStore {
     fn staging_dir(&self) -> &Path {
         &self.inner.staging
+    }
+
+    fn check(&self) -> Result<(), StoreError> {
+        self.ping()
+    }
+
+    fn describe(&self) -> String {
+        format!("postgres at {}", self.inner.place)
     }
 
     /// Every change is committed before it returns: nothing to write out.
