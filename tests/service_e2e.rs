@@ -1015,3 +1015,54 @@ async fn progress_rises_with_the_sequence_on_two_threads_on(place: &Place) {
     assert!(matches!(events.last().and_then(|e| e.kind.as_ref()), Some(pb::run_event::Kind::Finished(_))), "the run finished");
     server.stop().await;
 }
+
+// ------------------------------------------------------------------ an unreachable database
+
+/// The database stops under a running server: health turns NOT_SERVING and calls fail at
+/// once with UNAVAILABLE naming the database; once it is back, the server serves again
+/// with nothing lost.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_database_that_goes_away_is_reported_not_hung_on() {
+    use tonic_health::pb::health_check_response::ServingStatus;
+    use tonic_health::pb::health_client::HealthClient;
+    use tonic_health::pb::HealthCheckRequest;
+
+    let mut cluster = match pg::Cluster::start() {
+        Ok(c) => c,
+        Err(why) => {
+            assert!(std::env::var(pg::REQUIRE).as_deref() != Ok("1"), "{}=1 and PostgreSQL is not usable: {why}", pg::REQUIRE);
+            eprintln!("skipped: {why}");
+            return;
+        }
+    };
+    let url = cluster.fresh_database("gone");
+    let server = start(Arc::new(PostgresStore::open(&url).unwrap()), test_config()).await;
+    let ch = server.channel().await;
+    let mut health = HealthClient::new(ch.clone());
+    let mut datasets = DatasetsClient::new(ch.clone());
+    let status_of = |h: &mut HealthClient<Channel>| {
+        let mut h = h.clone();
+        async move { h.check(HealthCheckRequest { service: "pollard.v1.Runs".into() }).await.unwrap().into_inner().status() }
+    };
+    assert_eq!(status_of(&mut health).await, ServingStatus::Serving);
+    upload(&mut datasets, "iris", "target", data_file("iris.csv")).await.unwrap();
+
+    cluster.stop();
+    let deadline = Instant::now() + PATIENCE;
+    while status_of(&mut health).await != ServingStatus::NotServing {
+        assert!(Instant::now() < deadline, "health still says SERVING with the database stopped");
+        tokio::time::sleep(POLL).await;
+    }
+    let listed = tokio::time::timeout(PATIENCE, datasets.list_datasets(pb::ListDatasetsRequest::default())).await.expect("a call hung on the stopped database");
+    expect_status("ListDatasets with the database stopped", listed, Code::Unavailable, &["database"]);
+
+    cluster.restart();
+    while status_of(&mut health).await != ServingStatus::Serving {
+        assert!(Instant::now() < deadline, "health did not come back after the database did");
+        tokio::time::sleep(POLL).await;
+    }
+    let names: Vec<String> = all_datasets(&mut datasets).await.into_iter().map(|d| d.name).collect();
+    assert_eq!(names, ["iris"]);
+    drop((health, datasets, ch));
+    server.stop().await;
+}

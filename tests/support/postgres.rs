@@ -181,8 +181,20 @@ impl Cluster {
         String::from_utf8_lossy(&out.stdout).into_owned()
     }
 
+    /// Starts the stopped server again, on the same port and data.
+    pub fn restart(&mut self) {
+        assert!(self.keeper.is_none(), "the server is running");
+        let owner = unprivileged_owner().expect("the owner found at start");
+        let again = Cluster::serve(&self.bindir, &self.base, owner, self.port).unwrap_or_else(|e| panic!("restarting postgres: {e}"));
+        self.pid = again.pid;
+        // The new handle's keeper now belongs to this one; its folder is this one's.
+        let mut again = again;
+        self.keeper = again.keeper.take();
+        again.base = PathBuf::new();
+    }
+
     /// Stops the server (fast shutdown) and waits for it to end.
-    fn stop(&mut self) {
+    pub fn stop(&mut self) {
         if let Some(keeper) = self.keeper.take() {
             // SAFETY: a plain signal to our own child.
             unsafe { libc::kill(self.pid as libc::pid_t, libc::SIGINT) };
@@ -194,7 +206,9 @@ impl Cluster {
 impl Drop for Cluster {
     fn drop(&mut self) {
         self.stop();
-        let _ = std::fs::remove_dir_all(&self.base);
+        if !self.base.as_os_str().is_empty() {
+            let _ = std::fs::remove_dir_all(&self.base);
+        }
     }
 }
 
