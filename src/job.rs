@@ -84,6 +84,12 @@ impl IdKind {
     }
 }
 
+/// `text`, or `None` when it is empty: for wire and record fields where an empty string
+/// stands for "none".
+pub fn given(text: String) -> Option<String> {
+    Some(text).filter(|t| !t.is_empty())
+}
+
 /// An uploaded table as stored: its bytes live apart, chunked.
 #[derive(Clone, Debug, PartialEq)]
 pub struct DatasetMeta {
@@ -96,8 +102,8 @@ pub struct DatasetMeta {
     pub version: u32,
     pub rows: u64,
     pub columns: Vec<ColumnMeta>,
-    /// Default target column ("" when none was named).
-    pub target: String,
+    /// Default target column; `None` when none was named.
+    pub target: Option<String>,
     /// The task of the default target; `None` without a target.
     pub task: Option<Task>,
     pub created_at: i64,
@@ -129,13 +135,14 @@ pub struct Run {
     pub target: String,
     pub spec: SweepSpec,
     pub labels: BTreeMap<String, String>,
-    pub idempotency_key: String,
+    /// The caller's key for retries; `None` when the request gave none.
+    pub idempotency_key: Option<String>,
     /// The name of the token that started the run; `None` for a run started without
     /// tokens, by a schedule, or stored before owners were recorded.
     pub owner: Option<String>,
-    /// A digest of the request that started the run (for idempotency key reuse); empty when
+    /// A digest of the request that started the run (for idempotency key reuse); `None` when
     /// not recorded.
-    pub request_digest: String,
+    pub request_digest: Option<String>,
     /// The schedule that started the run; `None` for a run started by a call.
     pub schedule_id: Option<String>,
     pub created_at: i64,
@@ -186,9 +193,9 @@ impl Run {
             target,
             spec,
             labels: BTreeMap::new(),
-            idempotency_key: String::new(),
+            idempotency_key: None,
             owner: None,
-            request_digest: String::new(),
+            request_digest: None,
             schedule_id: None,
             created_at,
             started_at: None,
@@ -342,6 +349,7 @@ pub struct Schedule {
     pub dataset_name: String,
     /// When set, every run sweeps this one dataset instead of the latest version of the name.
     pub dataset_id: Option<String>,
+    /// The column to predict (the dataset's default target made explicit at creation).
     pub target: String,
     pub spec: SweepSpec,
     /// Labels every run of the schedule carries.
@@ -408,31 +416,32 @@ pub struct Fire {
     /// When the scheduler handled it.
     pub handled_at: i64,
     pub outcome: FireOutcome,
-    /// The run started, or the busy run that caused a skip.
-    pub run_id: String,
+    /// The run started, or the busy run that caused a skip; `None` when the fire names no run.
+    pub run_id: Option<String>,
     /// Scheduled instants passed over during downtime and covered by this fire.
     pub missed: u64,
-    pub detail: String,
+    /// Why the fire started no run, in words; `None` when it started one.
+    pub detail: Option<String>,
 }
 
 impl Fire {
     /// Turns the fire into a skip because `busy`, the schedule's previous run, is still active.
     pub fn skip_busy(&mut self, busy: Run) {
         self.outcome = FireOutcome::SkippedBusy;
-        self.detail = format!("the previous run {} is still {}", busy.id, busy.state.as_str());
-        self.run_id = busy.id;
+        self.detail = Some(format!("the previous run {} is still {}", busy.id, busy.state.as_str()));
+        self.run_id = Some(busy.id);
     }
 
     /// Turns the fire into a skip: the queue is full.
     pub fn skip_queue_full(&mut self, queued: usize, cap: usize) {
         self.outcome = FireOutcome::SkippedQueueFull;
-        self.detail = format!("{queued} runs are queued, the cap max_queued_runs = {cap}; this fire starts no run");
+        self.detail = Some(format!("{queued} runs are queued, the cap max_queued_runs = {cap}; this fire starts no run"));
     }
 
     /// Turns the fire into a failure: no run could be queued.
     pub fn fail(&mut self, detail: String) {
         self.outcome = FireOutcome::Failed;
-        self.detail = detail;
+        self.detail = Some(detail);
     }
 }
 
@@ -441,7 +450,7 @@ mod tests {
     use super::*;
 
     fn run(id: &str, state: RunState, created_at: i64) -> Run {
-        let meta = DatasetMeta { id: "ds_a".into(), content: "a".into(), name: "a".into(), version: 1, rows: 3, columns: vec![], target: "y".into(), task: Some(Task::Classify), created_at: 0, bytes: 0, categorical: vec![] };
+        let meta = DatasetMeta { id: "ds_a".into(), content: "a".into(), name: "a".into(), version: 1, rows: 3, columns: vec![], target: Some("y".into()), task: Some(Task::Classify), created_at: 0, bytes: 0, categorical: vec![] };
         Run { state, ..Run::queued(id.into(), &meta, "y".into(), SweepSpec::default(), created_at) }
     }
 

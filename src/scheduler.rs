@@ -85,19 +85,19 @@ async fn handle(shared: &Arc<Shared>, s: &Schedule, due: &Due, now: i64) -> Resu
         scheduled_for: due.fire_for.or(due.last_missed).unwrap_or(now),
         handled_at: now,
         outcome: FireOutcome::Started,
-        run_id: String::new(),
+        run_id: None,
         missed: due.missed,
-        detail: String::new(),
+        detail: None,
     };
     let run = match due.fire_for {
         None => {
             fire.outcome = FireOutcome::SkippedMissed;
-            fire.detail = format!("{} fire(s) passed while the server was down; the catch-up rule is skip", count(due));
+            fire.detail = Some(format!("{} fire(s) passed while the server was down; the catch-up rule is skip", count(due)));
             None
         }
         Some(at) => {
             if !due.on_time {
-                fire.detail = format!("catching up {} fire(s) missed while the server was down", count(due));
+                fire.detail = Some(format!("catching up {} fire(s) missed while the server was down", count(due)));
             }
             run_for(shared, s, at, &mut fire).await?
         }
@@ -122,7 +122,7 @@ async fn handle(shared: &Arc<Shared>, s: &Schedule, due: &Due, now: i64) -> Resu
                 shared.queued.notify_one();
                 shared.announce();
             } else {
-                info!(schedule_id = %s.id, outcome = fire.outcome.as_str(), "{}", fire.detail);
+                info!(schedule_id = %s.id, outcome = fire.outcome.as_str(), "{}", fire.detail.as_deref().unwrap_or(""));
             }
         }
     }
@@ -155,15 +155,15 @@ async fn run_for(shared: &Arc<Shared>, s: &Schedule, at: i64, fire: &mut Fire) -
     };
     if s.skip_unchanged && s.last_dataset_id.as_ref() == Some(&latest.id) {
         fire.outcome = FireOutcome::SkippedUnchanged;
-        fire.detail = format!("dataset '{}' has no version newer than {} (version {})", s.dataset_name, latest.id, latest.version);
+        fire.detail = Some(format!("dataset '{}' has no version newer than {} (version {})", s.dataset_name, latest.id, latest.version));
         return Ok(None);
     }
     let request = RunRequest {
         dataset: Some(DatasetRef::Id(latest.id.clone())),
-        target: s.target.clone(),
+        target: Some(s.target.clone()),
         spec: s.spec.clone(),
         default_fold_scheme: false,
-        idempotency_key: format!("{}@{at}", s.id),
+        idempotency_key: Some(format!("{}@{at}", s.id)),
         labels: s.labels.clone(),
     };
     // The same admission as StartRun's.

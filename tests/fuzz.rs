@@ -182,7 +182,7 @@ fn fitted() -> &'static Fitted {
             version: 1,
             rows: 150,
             columns: vec![ColumnMeta { name: "petal_width_cm".into(), kind: pollard::data::ColumnKind::Categorical, missing: 0, levels: 22 }],
-            target: "target".into(),
+            target: Some("target".into()),
             task: Some(pollard::data::Task::Classify),
             created_at: 1_700_000_000_000,
             bytes: bytes.len() as u64,

@@ -5,7 +5,7 @@ use tonic::Status;
 
 use crate::data::{Column, ColumnKind, Feature, Frame, Task, MISSING_CODE};
 use crate::drift::{DriftReport, DriftThresholds};
-use crate::job::{DatasetMeta, Event, EventKind, Fire, FireOutcome, Retention, Run, RunOutcome, RunState, Schedule};
+use crate::job::{given, DatasetMeta, Event, EventKind, Fire, FireOutcome, Retention, Run, RunOutcome, RunState, Schedule};
 use crate::schedule::CatchUp;
 use crate::pb;
 use crate::rpc::error::{echo, ServiceError};
@@ -54,7 +54,7 @@ pub fn dataset_info(m: &DatasetMeta) -> pb::DatasetInfo {
                 levels: c.levels,
             })
             .collect(),
-        target: m.target.clone(),
+        target: m.target.clone().unwrap_or_default(),
         task: m.task.map(|t| t.as_str().to_string()).unwrap_or_default(),
         created_at: time(m.created_at),
         bytes: m.bytes,
@@ -242,10 +242,10 @@ pub fn run_request(r: pb::StartRunRequest) -> Result<RunRequest, Status> {
     let (spec, default_fold_scheme) = spec_request(&wire)?;
     Ok(RunRequest {
         dataset: DatasetRef::of(&r.dataset_id, &r.dataset_name),
-        target: wire.target,
+        target: given(wire.target),
         spec,
         default_fold_scheme,
-        idempotency_key: r.idempotency_key,
+        idempotency_key: given(r.idempotency_key),
         labels: r.labels.into_iter().collect(),
     })
 }
@@ -543,9 +543,9 @@ pub fn fire_to(f: &Fire) -> pb::Fire {
         scheduled_for: time(f.scheduled_for),
         handled_at: time(f.handled_at),
         outcome: fire_outcome_to(f.outcome) as i32,
-        run_id: f.run_id.clone(),
+        run_id: f.run_id.clone().unwrap_or_default(),
         missed: f.missed,
-        detail: f.detail.clone(),
+        detail: f.detail.clone().unwrap_or_default(),
     }
 }
 

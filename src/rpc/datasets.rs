@@ -91,7 +91,7 @@ impl Api {
             Bytes::Memory(b) => (CsvBytes::Memory(b), None),
             Bytes::Staged(s) => (CsvBytes::File { path: s.path.clone(), content: hex(s.hasher.clone().finalize().as_slice()), len: s.len }, Some(s)),
         };
-        let put = self.shared.put_dataset(PutRequest { name, target, categorical, bytes }).await?;
+        let put = self.shared.put_dataset(PutRequest { name, target: crate::job::given(target), categorical, bytes }).await?;
         Ok(pb::DatasetInfo { unchanged: put.unchanged, ..convert::dataset_info(&put.meta) })
     }
 }

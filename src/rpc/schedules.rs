@@ -28,7 +28,7 @@ impl pb::schedules_server::Schedules for Api {
             cron: r.cron,
             time_zone: r.time_zone,
             dataset: DatasetRef::of(&r.dataset_id, &r.dataset_name),
-            target: wire.target,
+            target: crate::job::given(wire.target),
             spec,
             default_fold_scheme,
             labels: r.labels.into_iter().collect(),

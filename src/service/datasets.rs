@@ -85,8 +85,8 @@ pub struct PutOutcome {
 /// A dataset to put.
 pub struct PutRequest {
     pub name: String,
-    /// Empty: no default target (the table is checked as features only).
-    pub target: String,
+    /// `None`: no default target (the table is checked as features only).
+    pub target: Option<String>,
     pub categorical: Vec<String>,
     pub bytes: CsvBytes,
 }
@@ -120,13 +120,13 @@ impl Service {
         cpu(self, move || {
             let PutRequest { name, target, categorical, bytes } = r;
             let cfg = &service.config;
-            let mut options = CsvOptions::new(target.clone());
+            let mut options = CsvOptions::new(target.clone().unwrap_or_default());
             options.categorical = categorical.clone();
             options.max_rows = Some(cfg.max_rows);
             options.max_columns = Some(cfg.max_columns);
             let reader = || bytes.reader().map_err(staging);
             let data_error = |e: &crate::data::csv::DataError| ServiceError::data(e, cfg.max_rows, cfg.max_columns);
-            let (frame, task) = if target.is_empty() {
+            let (frame, task) = if target.is_none() {
                 (read_frame(reader()?, &options).map_err(|e| data_error(&e))?, None)
             } else {
                 let d = read_dataset(reader()?, &options).map_err(|e| data_error(&e))?;
@@ -135,7 +135,7 @@ impl Service {
             };
             let content = bytes.content();
             let meta = DatasetMeta {
-                id: new_dataset_id(&content, &name, &target, &categorical),
+                id: new_dataset_id(&content, &name, target.as_deref().unwrap_or(""), &categorical),
                 content,
                 name,
                 version: 0,

@@ -46,14 +46,14 @@ impl DatasetRef {
 pub struct RunRequest {
     /// `None` is refused (the caller named no dataset).
     pub dataset: Option<DatasetRef>,
-    /// The column to predict; empty for the dataset's own target.
-    pub target: String,
+    /// The column to predict; `None` for the dataset's own target.
+    pub target: Option<String>,
     pub spec: SweepSpec,
     /// The caller gave fold counts but no scheme: the scheme is the default of the data's
     /// task, known once the data is read.
     pub default_fold_scheme: bool,
-    /// Empty for none; scoped to the caller's token.
-    pub idempotency_key: String,
+    /// Scoped to the caller's token.
+    pub idempotency_key: Option<String>,
     pub labels: BTreeMap<String, String>,
 }
 
@@ -62,7 +62,9 @@ impl RunRequest {
     /// reused for another request is told apart from a retry.
     pub fn digest(&self) -> String {
         use sha2::{Digest, Sha256};
-        let what = format!("{:?}", (&self.dataset, &self.target, &self.spec, self.default_fold_scheme, &self.labels));
+        // The target as the text digests were first taken of ("" for none), so a retry
+        // matches runs stored before the field was optional.
+        let what = format!("{:?}", (&self.dataset, self.target.as_deref().unwrap_or(""), &self.spec, self.default_fold_scheme, &self.labels));
         crate::access::tokens::hex(&Sha256::digest(what.as_bytes()))
     }
 }
@@ -114,11 +116,10 @@ impl Service {
     /// metric, folds), so a run reads the same later, the target column, and the memory
     /// estimate in bytes. The dataset is parsed through the frame cache, so the run that
     /// follows does not parse it again.
-    pub async fn check_sweep(self: &Arc<Self>, meta: &DatasetMeta, target: &str, spec: SweepSpec, default_fold_scheme: bool) -> Result<(SweepSpec, String, u64)> {
-        let target = if target.is_empty() { meta.target.clone() } else { target.to_string() };
-        if target.is_empty() {
+    pub async fn check_sweep(self: &Arc<Self>, meta: &DatasetMeta, target: Option<&str>, spec: SweepSpec, default_fold_scheme: bool) -> Result<(SweepSpec, String, u64)> {
+        let Some(target) = target.or(meta.target.as_deref()).map(str::to_string) else {
             return Err(ServiceError::invalid("spec.target", format!("dataset '{}' has no default target; name the column to predict", meta.id)));
-        }
+        };
         let service = self.clone();
         let (meta, target2) = (meta.clone(), target.clone());
         let threads = self.pool.current_num_threads();
@@ -154,7 +155,7 @@ impl Service {
         self.admissions.fetch_add(1, Ordering::SeqCst);
         check_labels(&self.config, &request.labels)?;
         let meta = self.resolve_dataset(request.dataset.as_ref())?;
-        let (spec, target, estimate) = self.check_sweep(&meta, &request.target, request.spec, request.default_fold_scheme).await?;
+        let (spec, target, estimate) = self.check_sweep(&meta, request.target.as_deref(), request.spec, request.default_fold_scheme).await?;
         let mut run = Run::queued(new_run_id(), &meta, target, spec, self.now());
         run.labels = request.labels;
         run.idempotency_key = request.idempotency_key;
@@ -171,20 +172,20 @@ impl Service {
         let digest = request.digest();
         let key = request.idempotency_key.clone();
         let same = |run: Run| -> Result<Run> {
-            if run.request_digest.is_empty() || run.request_digest == digest {
+            if run.request_digest.as_ref().is_none_or(|d| *d == digest) {
                 Ok(run)
             } else {
-                Err(ServiceError::Conflict(format!("idempotency_key '{}' was used for a different request (run {}); use a new key", key.chars().take(100).collect::<String>(), run.id)))
+                Err(ServiceError::Conflict(format!("idempotency_key '{}' was used for a different request (run {}); use a new key", key.as_deref().unwrap_or("").chars().take(100).collect::<String>(), run.id)))
             }
         };
-        if !key.is_empty() {
-            if let Some(run) = self.store.run_by_idempotency(caller.name.as_deref(), &key)? {
+        if let Some(key) = &key {
+            if let Some(run) = self.store.run_by_idempotency(caller.name.as_deref(), key)? {
                 return same(run);
             }
         }
         let mut run = self.admit_run(request, None).await?;
         run.owner = caller.name.clone();
-        run.request_digest = digest.clone();
+        run.request_digest = Some(digest.clone());
         let dataset_id = run.dataset_id.clone();
         let cap = self.config.max_queued_runs;
         let created = {

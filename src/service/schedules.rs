@@ -28,8 +28,8 @@ pub struct ScheduleRequest {
     pub time_zone: String,
     /// A name (its latest version at each fire) or one dataset id; `None` is refused.
     pub dataset: Option<DatasetRef>,
-    /// Empty for the dataset's own target.
-    pub target: String,
+    /// `None` for the dataset's own target.
+    pub target: Option<String>,
     pub spec: SweepSpec,
     /// See [`super::RunRequest::default_fold_scheme`].
     pub default_fold_scheme: bool,
@@ -59,7 +59,7 @@ impl Service {
         // The template must fit the data it will sweep: check it against the latest version.
         let latest = self.resolve_dataset(Some(&dataset))?;
         check_labels(&self.config, &r.labels)?;
-        let (spec, target, _) = self.check_sweep(&latest, &r.target, r.spec, r.default_fold_scheme).await?;
+        let (spec, target, _) = self.check_sweep(&latest, r.target.as_deref(), r.spec, r.default_fold_scheme).await?;
         let now = self.now();
         let (dataset_name, dataset_id) = match dataset {
             DatasetRef::Id(id) => (latest.name.clone(), Some(id)),

@@ -120,10 +120,10 @@ pub(crate) fn fire_run(s: &mut Schedule, fire: &mut Fire, run: &Run, created: Cr
         CreateRun::Created(r) => {
             s.last_run_id = Some(r.id.clone());
             s.last_dataset_id = Some(r.dataset_id.clone());
-            fire.run_id = r.id.clone();
+            fire.run_id = Some(r.id.clone());
             return Some(r);
         }
-        CreateRun::Existing(r) => fire.run_id = r.id,
+        CreateRun::Existing(r) => fire.run_id = Some(r.id),
         CreateRun::DatasetMissing => fire.fail(format!("dataset {} was deleted before the run could be queued", run.dataset_id)),
         // Not returned here: the scheduler checks the queue cap before it records a fire.
         CreateRun::QueueFull => fire.fail("the queue is full".into()),

@@ -91,9 +91,7 @@ fn parse_name<T>(what: &str, field: &str, text: &str, parse: impl Fn(&str) -> Op
 }
 
 /// A stored string where "" stands for none (the record formats have always written it so).
-fn some(text: String) -> Option<String> {
-    Some(text).filter(|t| !t.is_empty())
-}
+use crate::job::given as some;
 
 fn to_usize(what: &str, field: &str, x: u64) -> Result<usize, StoreError> {
     usize::try_from(x).map_err(|_| corrupt(what, format!("{field} {x} does not fit this machine")))
@@ -137,7 +135,7 @@ impl From<&DatasetMeta> for DatasetRecord {
             version: m.version,
             rows: m.rows,
             columns: m.columns.iter().map(|c| ColumnRecord { name: c.name.clone(), kind: c.kind.as_str().to_string(), missing: c.missing, levels: c.levels }).collect(),
-            target: m.target.clone(),
+            target: m.target.clone().unwrap_or_default(),
             task: m.task.map(|t| t.as_str().to_string()).unwrap_or_default(),
             created_at: m.created_at,
             bytes: m.bytes,
@@ -162,7 +160,8 @@ impl TryFrom<DatasetRecord> for DatasetMeta {
                 .into_iter()
                 .map(|c| Ok(ColumnMeta { kind: parse_name(w, "column kind", &c.kind, ColumnKind::parse)?, name: c.name, missing: c.missing, levels: c.levels }))
                 .collect::<Result<_, StoreError>>()?,
-            target: r.target,
+            // "" stands for none in the stored record, as it always did.
+            target: some(r.target),
             task: if r.task.is_empty() { None } else { Some(parse_name(w, "task", &r.task, Task::parse)?) },
             created_at: r.created_at,
             bytes: r.bytes,
@@ -359,9 +358,9 @@ impl From<&Run> for RunRecord {
             target: r.target.clone(),
             spec: SpecRecord::from(&r.spec),
             labels: r.labels.clone(),
-            idempotency_key: r.idempotency_key.clone(),
+            idempotency_key: r.idempotency_key.clone().unwrap_or_default(),
             owner: r.owner.clone(),
-            request_digest: r.request_digest.clone(),
+            request_digest: r.request_digest.clone().unwrap_or_default(),
             schedule_id: r.schedule_id.clone().unwrap_or_default(),
             created_at: r.created_at,
             started_at: r.started_at,
@@ -392,10 +391,10 @@ impl TryFrom<RunRecord> for Run {
             dataset_rows: r.dataset_rows,
             target: r.target,
             labels: r.labels,
-            idempotency_key: r.idempotency_key,
-            owner: r.owner,
-            request_digest: r.request_digest,
             // "" stands for none in the stored record, as it always did.
+            idempotency_key: some(r.idempotency_key),
+            owner: r.owner,
+            request_digest: some(r.request_digest),
             schedule_id: some(r.schedule_id),
             created_at: r.created_at,
             started_at: r.started_at,
@@ -597,9 +596,9 @@ impl From<&Fire> for FireRecord {
             scheduled_for: f.scheduled_for,
             handled_at: f.handled_at,
             outcome: f.outcome.as_str().to_string(),
-            run_id: f.run_id.clone(),
+            run_id: f.run_id.clone().unwrap_or_default(),
             missed: f.missed,
-            detail: f.detail.clone(),
+            detail: f.detail.clone().unwrap_or_default(),
         }
     }
 }
@@ -612,9 +611,10 @@ impl TryFrom<FireRecord> for Fire {
             sequence: r.sequence,
             scheduled_for: r.scheduled_for,
             handled_at: r.handled_at,
-            run_id: r.run_id,
+            // "" stands for none in the stored record, as it always did.
+            run_id: some(r.run_id),
             missed: r.missed,
-            detail: r.detail,
+            detail: some(r.detail),
         })
     }
 }

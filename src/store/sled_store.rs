@@ -234,9 +234,9 @@ impl Tx<'_> {
     /// Stores a queued run and enqueues it, unless its idempotency key or id names a stored
     /// run (that run is returned) or its dataset is not stored.
     fn insert_run(&self, run: &Run, queue_full: bool) -> TxResult<CreateRun> {
-        let idempotency = keys::idempotency(run.owner.as_deref(), &run.idempotency_key);
-        if !run.idempotency_key.is_empty() {
-            if let Some(id) = self.get(IDEMPOTENCY, &idempotency)? {
+        let idempotency = run.idempotency_key.as_deref().map(|key| keys::idempotency(run.owner.as_deref(), key));
+        if let Some(idempotency) = &idempotency {
+            if let Some(id) = self.get(IDEMPOTENCY, idempotency)? {
                 let id = read(String::from_utf8(id.to_vec()).map_err(|_| StoreError::Corrupt("idempotency entry is not UTF-8".into())))?;
                 if let Some(existing) = self.run(&id)? {
                     return Ok(CreateRun::Existing(existing));
@@ -254,7 +254,7 @@ impl Tx<'_> {
         }
         self.put_run(run)?;
         self.insert(QUEUE, &run.id, IVec::default())?;
-        if !run.idempotency_key.is_empty() {
+        if let Some(idempotency) = idempotency {
             self.insert(IDEMPOTENCY, idempotency, run.id.as_bytes())?;
         }
         self.hold(&run.dataset_id, &run.id)?;
@@ -972,9 +972,11 @@ impl Storage for SledStore {
                 for k in units.iter() {
                     tx.remove(UNITS, k)?;
                 }
-                let idempotency = keys::idempotency(run.owner.as_deref(), &run.idempotency_key);
-                if !run.idempotency_key.is_empty() && tx.get(IDEMPOTENCY, &idempotency)?.is_some_and(|v| v == run_id.as_bytes()) {
-                    tx.remove(IDEMPOTENCY, idempotency)?;
+                if let Some(key) = &run.idempotency_key {
+                    let idempotency = keys::idempotency(run.owner.as_deref(), key);
+                    if tx.get(IDEMPOTENCY, &idempotency)?.is_some_and(|v| v == run_id.as_bytes()) {
+                        tx.remove(IDEMPOTENCY, idempotency)?;
+                    }
                 }
                 tx.add_ref(&run.dataset_id, -1)?;
                 Ok(true)

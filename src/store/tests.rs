@@ -75,7 +75,7 @@ fn meta(id: &str, name: &str, created_at: i64, bytes: u64) -> DatasetMeta {
             ColumnMeta { name: "box_temp".into(), kind: ColumnKind::Numeric, missing: 3, levels: 0 },
             ColumnMeta { name: "site".into(), kind: ColumnKind::Categorical, missing: 0, levels: 4 },
         ],
-        target: "spoiled".into(),
+        target: Some("spoiled".into()),
         task: Some(Task::Classify),
         created_at,
         bytes,
@@ -179,7 +179,7 @@ fn run_record_round_trips_every_spec_field() {
         spec.metric = Some(metrics[i]);
         let mut run = Run::queued(format!("run_{i}"), &meta("ds_1", "reefer", 10, 0), "spoiled".into(), spec, 1_700_000_000_000);
         run.labels.insert("team".into(), "cold chain".into());
-        run.idempotency_key = "k-1".into();
+        run.idempotency_key = Some("k-1".into());
         run.schedule_id = Some("nightly".into());
         run.state = RunState::Cancelled;
         run.started_at = Some(1);
@@ -471,7 +471,7 @@ fn concurrent_claims_take_each_run_once_in_order() {
 fn versions_follow_the_name() {
     let store = SledStore::open_temporary().unwrap();
     let put = |id: &str, name: &str, content: &str, target: &str| {
-        let m = DatasetMeta { content: content.into(), target: target.into(), ..meta(id, name, 1, 4) };
+        let m = DatasetMeta { content: content.into(), target: crate::job::given(target.into()), ..meta(id, name, 1, 4) };
         store.put_dataset(m, content.as_bytes()).unwrap()
     };
     let PutDataset::Created(first) = put("ds_1", "voyages", "abcd", "spoiled") else { panic!("not created") };
@@ -486,7 +486,7 @@ fn versions_follow_the_name() {
     assert_eq!((store.dataset("ds_3").unwrap(), store.tree(CHUNKS).len()), (None, chunks));
     // Another target for the same bytes: a new version.
     let PutDataset::Created(v2) = put("ds_4", "voyages", "abcd", "box_temp") else { panic!("not created") };
-    assert_eq!((v2.version, v2.target.as_str()), (2, "box_temp"));
+    assert_eq!((v2.version, v2.target.as_deref()), (2, Some("box_temp")));
     // Back to the first target: the newest version differs, so version 3.
     let PutDataset::Created(v3) = put("ds_5", "voyages", "abcd", "spoiled") else { panic!("not created") };
     assert_eq!(v3.version, 3);
@@ -724,12 +724,12 @@ fn step(store: &dyn Storage, model: &mut Model, op: &Op, now: i64) {
             let ds = model.datasets.get(&content_id(dataset)).map(|d| d.0.clone()).unwrap_or_else(|| meta(&content_id(dataset), "", 0, 0));
             let mut run = Run::queued(id.clone(), &ds, "spoiled".into(), full_spec(now as u64), now);
             if let Some(k) = key {
-                run.idempotency_key = format!("key-{k}");
+                run.idempotency_key = Some(format!("key-{k}"));
             }
             if *label {
                 run.labels.insert("team".into(), "cold-chain".into());
             }
-            let existing = key.and_then(|_| model.idempotency.get(&run.idempotency_key)).and_then(|id| model.runs.get(id));
+            let existing = run.idempotency_key.as_ref().and_then(|k| model.idempotency.get(k)).and_then(|id| model.runs.get(id));
             let want = if let Some(r) = existing {
                 CreateRun::Existing(r.clone())
             } else if !model.datasets.contains_key(&run.dataset_id) {
@@ -738,7 +738,7 @@ fn step(store: &dyn Storage, model: &mut Model, op: &Op, now: i64) {
                 model.runs.insert(id.clone(), run.clone());
                 model.queue.push(id.clone());
                 if key.is_some() {
-                    model.idempotency.insert(run.idempotency_key.clone(), id.clone());
+                    model.idempotency.insert(run.idempotency_key.clone().expect("a key"), id.clone());
                 }
                 CreateRun::Created(run.clone())
             };
@@ -991,7 +991,7 @@ fn crash_script(store: &dyn Storage) {
     let ds = store.dataset("ds_a").unwrap().unwrap();
     for i in 0..4 {
         let mut run = Run::queued(format!("run_{i}"), &ds, "spoiled".into(), full_spec(i), 10 + i as i64);
-        run.idempotency_key = format!("key-{i}");
+        run.idempotency_key = Some(format!("key-{i}"));
         assert!(matches!(store.create_run(run).unwrap(), CreateRun::Created(_)));
     }
     let first = store.claim_next(20).unwrap().unwrap();
@@ -1100,7 +1100,7 @@ fn fixture_store_of_017cda4_decodes() {
     let seen: Vec<(&str, u32, u64, Option<Task>)> = datasets.iter().map(|m| (m.name.as_str(), m.version, m.rows, m.task)).collect();
     assert_eq!(seen, [("iris", 3, 100, Some(Task::Classify)), ("iris", 2, 120, Some(Task::Classify)), ("diabetes", 1, 442, Some(Task::Regress)), ("iris", 1, 150, Some(Task::Classify))]);
     for m in &datasets {
-        assert_eq!(m.target, "target");
+        assert_eq!(m.target.as_deref(), Some("target"));
         assert!(m.columns.iter().all(|c| c.kind == ColumnKind::Numeric && c.missing == 0), "{:?}", m.columns);
         let bytes = store.dataset_bytes(&m.id).unwrap().unwrap();
         assert_eq!(bytes.len() as u64, m.bytes, "{}", m.id);
@@ -1130,7 +1130,7 @@ fn fixture_store_of_017cda4_decodes() {
     }
     let by_id = |id: &str| runs.iter().find(|r| r.id == id).unwrap();
     let first = by_id("run_01a23abf207e728d948ac5b8799386a4");
-    assert_eq!(first.idempotency_key, "fx-iris");
+    assert_eq!(first.idempotency_key.as_deref(), Some("fx-iris"));
     assert_eq!(first.labels.get("fixture").map(String::as_str), Some("classify"));
     assert_eq!(first.spec.seed, 7);
     assert_eq!((first.reason.as_deref(), first.schedule_id.as_deref(), first.owner.as_deref()), (None, None, None));
@@ -1162,7 +1162,7 @@ fn fixture_store_of_017cda4_decodes() {
     assert_eq!(store.all_schedules().unwrap().len(), 1);
     let (fires, more) = store.fires(FIXTURE_SCHEDULE, None, 10).unwrap();
     assert!(more.is_none());
-    let fired: Vec<(u64, FireOutcome, &str)> = fires.iter().map(|f| (f.sequence, f.outcome, f.run_id.as_str())).collect();
+    let fired: Vec<(u64, FireOutcome, &str)> = fires.iter().map(|f| (f.sequence, f.outcome, f.run_id.as_deref().unwrap_or(""))).collect();
     assert_eq!(fired, [(3, FireOutcome::Started, runs[0].id.as_str()), (2, FireOutcome::Started, runs[1].id.as_str()), (1, FireOutcome::Started, runs[2].id.as_str())]);
     assert!(fires.iter().all(|f| f.scheduled_for % 60_000 == 0 && f.missed == 0));
     assert_eq!(store.queued_count().unwrap(), 0);
@@ -1256,7 +1256,7 @@ fn schedule_script(store: &dyn Storage) -> Vec<String> {
     let run = |n: u32, at: i64| {
         let mut r = Run::queued(format!("run_{n:06}"), &ds, "spoiled".into(), full_spec(4), at);
         r.schedule_id = Some("sch_000".into());
-        r.idempotency_key = format!("sch_000@{at}");
+        r.idempotency_key = Some(format!("sch_000@{at}"));
         r
     };
     // A fire that starts a run; one whose considered_until is stale; one while the run is busy.

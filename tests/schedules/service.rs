@@ -569,10 +569,10 @@ async fn a_store_failure_is_not_the_callers_fault() {
     assert!(e.message().starts_with("storage: "), "{e:?}");
     let request = pollard::service::RunRequest {
         dataset: Some(pollard::service::DatasetRef::Id(iris.id.clone())),
-        target: "target".into(),
+        target: Some("target".into()),
         spec: pollard::sweep::SweepSpec::default(),
         default_fold_scheme: false,
-        idempotency_key: String::new(),
+        idempotency_key: None,
         labels: Default::default(),
     };
     let e = api.shared.admit_run(request, None).await.unwrap_err();

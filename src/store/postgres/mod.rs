@@ -196,9 +196,9 @@ async fn end(tx: &Tx<'_>, run: &mut Run, state: RunState, reason: &str, now: i64
 /// Stores a queued run unless its idempotency key or id names a stored run (returned) or
 /// its dataset is not stored (the dataset row is locked against deletion meanwhile).
 async fn insert_run(tx: &Tx<'_>, run: &Run, queue_full: bool) -> Result<CreateRun, Fail> {
-    let idempotency = keys::idempotency(run.owner.as_deref(), &run.idempotency_key);
-    if !run.idempotency_key.is_empty() {
-        if let Some(row) = query_opt(tx, "SELECT run_id FROM idempotency_keys WHERE key = $1", &[&idempotency]).await? {
+    let idempotency = run.idempotency_key.as_deref().map(|key| keys::idempotency(run.owner.as_deref(), key));
+    if let Some(idempotency) = &idempotency {
+        if let Some(row) = query_opt(tx, "SELECT run_id FROM idempotency_keys WHERE key = $1", &[idempotency]).await? {
             if let Some(existing) = run_of(tx, row.get(0), false).await? {
                 return Ok(CreateRun::Existing(existing));
             }
@@ -214,8 +214,8 @@ async fn insert_run(tx: &Tx<'_>, run: &Run, queue_full: bool) -> Result<CreateRu
         return Ok(CreateRun::DatasetMissing);
     }
     execute(tx, "INSERT INTO runs (id, state, dataset_id, owner, record) VALUES ($1, $2, $3, $4, $5)", &[&run.id, &run.state.as_str(), &run.dataset_id, &run.owner, &records::encode_run(run)]).await?;
-    if !run.idempotency_key.is_empty() {
-        execute(tx, "INSERT INTO idempotency_keys (key, run_id) VALUES ($1, $2)", &[&idempotency, &run.id]).await?;
+    if let Some(idempotency) = &idempotency {
+        execute(tx, "INSERT INTO idempotency_keys (key, run_id) VALUES ($1, $2)", &[idempotency, &run.id]).await?;
     }
     Ok(CreateRun::Created(run.clone()))
 }
@@ -695,8 +695,8 @@ impl Storage for PostgresStore {
             for sql in ["DELETE FROM events WHERE run_id = $1", "DELETE FROM units WHERE run_id = $1", "DELETE FROM outcomes WHERE run_id = $1", "DELETE FROM runs WHERE id = $1"] {
                 execute(tx, sql, &[&run_id]).await?;
             }
-            if !run.idempotency_key.is_empty() {
-                let key = keys::idempotency(run.owner.as_deref(), &run.idempotency_key);
+            if let Some(key) = &run.idempotency_key {
+                let key = keys::idempotency(run.owner.as_deref(), key);
                 execute(tx, "DELETE FROM idempotency_keys WHERE key = $1 AND run_id = $2", &[&key, &run_id]).await?;
             }
             Ok(true)
