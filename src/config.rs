@@ -63,6 +63,9 @@ pub struct Config {
     pub data_dir: PathBuf,
     /// The store's backend (`store`, `database_url`).
     pub store: StoreChoice,
+    /// How long a replica's lease on a running run lasts without renewal (shared store
+    /// only): a replica that dies costs its runs this long before another takes them.
+    pub lease_secs: u64,
     /// Runs executed at the same time; more wait in the queue.
     pub concurrent_runs: usize,
     /// Threads of the CPU pool that fits trees (0: one per core).
@@ -187,6 +190,7 @@ impl Default for Config {
             listen: "127.0.0.1:7311".parse().unwrap(),
             data_dir: PathBuf::from("pollard-data"),
             store: StoreChoice::Sled,
+            lease_secs: 15,
             concurrent_runs: 1,
             cpu_threads: 0,
             max_upload_bytes: 256 << 20,
@@ -273,6 +277,7 @@ struct FileConfig {
     data_dir: Option<String>,
     store: Option<String>,
     database_url: Option<String>,
+    lease_secs: Option<u64>,
     concurrent_runs: Option<usize>,
     cpu_threads: Option<usize>,
     max_upload_bytes: Option<u64>,
@@ -371,6 +376,7 @@ impl Config {
             };
         }
         num!(concurrent_runs, "concurrent_runs", "POLLARD_CONCURRENT_RUNS", usize);
+        num!(lease_secs, "lease_secs", "POLLARD_LEASE_SECS", u64);
         num!(cpu_threads, "cpu_threads", "POLLARD_CPU_THREADS", usize);
         num!(max_upload_bytes, "max_upload_bytes", "POLLARD_MAX_UPLOAD_BYTES", u64);
         num!(max_rows, "max_rows", "POLLARD_MAX_ROWS", usize);
@@ -421,6 +427,9 @@ impl Config {
         }
         if c.concurrent_runs == 0 {
             return Err("concurrent_runs must be at least 1".into());
+        }
+        if c.lease_secs < 2 {
+            return Err("lease_secs must be at least 2 (leases are renewed every third of it)".into());
         }
         let caps: [(&str, u64); 14] = [
             ("max_upload_bytes", c.max_upload_bytes),

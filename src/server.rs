@@ -51,6 +51,16 @@ pub async fn run_with_clock(listener: TcpListener, config: Config, store: Arc<dy
         false => None,
     };
     spawn_store_health(&shared, health_reporter.clone());
+    if shared.store.shared() {
+        spawn_leases(&shared);
+        let woken = Arc::downgrade(&shared);
+        shared.store.watch_changes(Arc::new(move || {
+            if let Some(s) = woken.upgrade() {
+                s.announce();
+                s.queued.notify_waiters();
+            }
+        }));
+    }
     info!(%addr, store = %shared.store.describe(), tls = access.tls.is_some(), tokens = access.gate.needs_tokens(), "pollard serving");
     let stop = {
         let shared = shared.clone();
@@ -123,6 +133,40 @@ fn spawn_store_health(shared: &Arc<Shared>, reporter: tonic_health::server::Heal
             tokio::select! {
                 _ = tokio::time::sleep(STORE_HEALTH_EVERY) => {}
                 _ = stop.changed() => return,
+            }
+        }
+    });
+}
+
+/// A shared store's heartbeat: renews this replica's leases every third of `lease_secs`,
+/// and lines up the running runs whose replica is gone for the workers to resume.
+fn spawn_leases(shared: &Arc<Shared>) {
+    let shared = shared.clone();
+    tokio::spawn(async move {
+        let mut stop = shared.shutdown.subscribe();
+        let every = std::time::Duration::from_millis(shared.config.lease_secs * 1000 / 3);
+        loop {
+            tokio::select! {
+                _ = tokio::time::sleep(every) => {}
+                _ = stop.changed() => return,
+            }
+            let s = shared.clone();
+            let turn = tokio::task::spawn_blocking(move || {
+                s.store.renew_leases()?;
+                if s.stopping.load(Ordering::SeqCst) {
+                    return Ok(Vec::new());
+                }
+                s.store.take_abandoned()
+            });
+            match turn.await {
+                Ok(Ok(runs)) if !runs.is_empty() => {
+                    info!(runs = runs.len(), "taking over runs whose replica stopped renewing its lease");
+                    shared.resumable.lock().unwrap().extend(runs.into_iter().map(|r| r.id));
+                    shared.queued.notify_waiters();
+                }
+                Ok(Ok(_)) => {}
+                Ok(Err(e)) => tracing::warn!(error = %e, "cannot renew the run leases"),
+                Err(e) => tracing::warn!(error = %e, "the lease turn failed"),
             }
         }
     });

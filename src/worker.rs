@@ -88,7 +88,9 @@ pub async fn worker_loop(shared: Arc<Shared>) {
 
 /// Lines up the runs a previous process left running, for the workers to take first.
 pub fn queue_resumes(shared: &Shared) {
-    match shared.store.running_runs() {
+    // A shared store's running runs may be other replicas' work: only the abandoned ones.
+    let left = if shared.store.shared() { shared.store.take_abandoned() } else { shared.store.running_runs() };
+    match left {
         Ok(runs) => shared.resumable.lock().unwrap().extend(runs.into_iter().map(|r| r.id)),
         Err(e) => error!("cannot list running runs: {e}"),
     }
@@ -177,6 +179,7 @@ fn execute_blocking(shared: &Shared, run: &Run, cancel: &AtomicBool) -> Ending {
     // Units so far, to score a shaping key's settings once all its splits are in.
     let so_far: Mutex<Vec<sweep::UnitResult>> = Mutex::new(done.clone());
     let store_failed: Mutex<Option<String>> = Mutex::new(None);
+    let ended_elsewhere = Mutex::new(false);
     let hooks = &cfg.test_hooks;
     let sink = |unit: &sweep::UnitResult, progress: sweep::Progress| {
         if hooks.unit_delay_ms > 0 {
@@ -201,6 +204,12 @@ fn execute_blocking(shared: &Shared, run: &Run, cancel: &AtomicBool) -> Ending {
         }
         // The unit and its events are stored in one transaction before anyone hears of them.
         match shared.store.record_unit(&run.id, unit, events, shared.now()) {
+            // Nothing stored: the unit was stored already, or the run ended meanwhile (on a
+            // shared store, perhaps cancelled through another replica): then stop.
+            Ok(stored) if stored.is_empty() && shared.store.run(&run.id).is_ok_and(|r| r.is_none_or(|r| r.state != RunState::Running)) => {
+                *ended_elsewhere.lock().unwrap() = true;
+                Flow::Stop
+            }
             Ok(_) => {
                 shared.announce();
                 Flow::Continue
@@ -214,6 +223,10 @@ fn execute_blocking(shared: &Shared, run: &Run, cancel: &AtomicBool) -> Ending {
     let units = shared.pool.install(|| sweep::run(&plan, done, &sink, cancel));
     if let Some(e) = store_failed.lock().unwrap().take() {
         return Ending::Failed(format!("cannot store a finished unit: {e}"));
+    }
+    if *ended_elsewhere.lock().unwrap() {
+        // Its end is stored already; recording another changes nothing.
+        return Ending::Cancelled;
     }
     let units = match units {
         Ok(u) => u,

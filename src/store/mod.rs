@@ -222,6 +222,32 @@ pub trait Storage: Send + Sync {
     /// What the store is and where, for the log (no secrets).
     fn describe(&self) -> String;
 
+    // -- several processes on one store
+
+    /// Whether other processes may share this store (then runs are leased, see below).
+    fn shared(&self) -> bool {
+        false
+    }
+
+    /// Renews the leases of the running runs this process executes; a shared backend's
+    /// heartbeat. Nothing for a backend that one process owns.
+    fn renew_leases(&self) -> Result<(), StoreError> {
+        Ok(())
+    }
+
+    /// Running runs whose process is gone (their lease expired, or was never taken), now
+    /// leased to this process, oldest first: to resume. Nothing for a backend that one
+    /// process owns (its running runs at start are [`Storage::running_runs`]).
+    fn take_abandoned(&self) -> Result<Vec<Run>, StoreError> {
+        Ok(Vec::new())
+    }
+
+    /// Calls `wake` whenever another process may have changed runs or events (a shared
+    /// backend's notifications); nothing for a backend that one process owns.
+    fn watch_changes(&self, wake: std::sync::Arc<dyn Fn() + Send + Sync>) {
+        let _ = wake;
+    }
+
     // -- datasets
 
     /// Stores a dataset as the next version of its name, unless nothing changed

@@ -10,7 +10,10 @@ use crate::store::StoreError;
 
 /// Every migration, in order: (version, name, SQL). Versions start at 1 without gaps; a
 /// released file never changes (a change is a new file).
-pub const MIGRATIONS: &[(i32, &str, &str)] = &[(1, "init", include_str!("migrations/0001_init.sql"))];
+pub const MIGRATIONS: &[(i32, &str, &str)] = &[
+    (1, "init", include_str!("migrations/0001_init.sql")),
+    (2, "run_leases", include_str!("migrations/0002_run_leases.sql")),
+];
 
 /// The advisory lock key of migrations ("pollard" in ASCII).
 const LOCK: i64 = 0x706f_6c6c_6172_64;

@@ -48,6 +48,13 @@ use crate::sweep::UnitResult;
 pub const CONNECT_TIMEOUT: Duration = Duration::from_secs(5);
 /// How long a call waits for a free connection of the pool.
 pub const POOL_WAIT: Duration = Duration::from_secs(10);
+/// How long a run's lease lasts without renewal, unless configured (`lease_secs`).
+pub const DEFAULT_LEASE: Duration = Duration::from_secs(15);
+/// The channel of change notifications (payload: a run id).
+const CHANGES: &str = "pollard_changes";
+/// The database's clock in milliseconds since the epoch: leases never depend on the
+/// replicas' clocks agreeing.
+const DB_NOW_MS: &str = "(extract(epoch from clock_timestamp()) * 1000)::bigint";
 /// Connections per process.
 const POOL_SIZE: usize = 16;
 /// Times a transaction that lost a race is run again before the loss is an error.
@@ -72,6 +79,10 @@ struct Inner {
     worker: String,
     /// The database's host, port and name, for the log.
     place: String,
+    /// How long a run's lease lasts without renewal, in milliseconds.
+    lease_ms: i64,
+    /// The connection settings (the change watcher connects on its own).
+    config: tokio_postgres::Config,
 }
 
 impl Drop for Inner {
@@ -184,12 +195,26 @@ async fn append(tx: &Tx<'_>, run: &mut Run, kind: EventKind, now: i64) -> Result
     Ok(event)
 }
 
+/// Tells every replica's followers and workers, at commit, that `run_id` changed.
+async fn notify(tx: &Tx<'_>, run_id: &str) -> Result<(), Fail> {
+    execute(tx, "SELECT pg_notify($1, $2)", &[&CHANGES, &run_id]).await?;
+    Ok(())
+}
+
+/// Leases a running run to `owner` for `lease_ms` from now (by the database's clock).
+async fn lease(tx: &Tx<'_>, run_id: &str, owner: &str, lease_ms: i64) -> Result<(), Fail> {
+    let sql = format!("UPDATE runs SET lease_owner = $2, lease_expires = {DB_NOW_MS} + $3 WHERE id = $1");
+    execute(tx, &sql, &[&run_id, &owner, &lease_ms]).await?;
+    Ok(())
+}
+
 /// A queued or running run → failed or cancelled, with its event; returns the event.
 async fn end(tx: &Tx<'_>, run: &mut Run, state: RunState, reason: &str, now: i64) -> Result<Event, Fail> {
     let kind = if state == RunState::Cancelled { EventKind::Cancelled(reason.to_string()) } else { EventKind::Failed(reason.to_string()) };
     let event = append(tx, run, kind, now).await?;
     run.end(state, now, Some(reason));
     put_run(tx, run).await?;
+    notify(tx, &run.id).await?;
     Ok(event)
 }
 
@@ -217,6 +242,7 @@ async fn insert_run(tx: &Tx<'_>, run: &Run, queue_full: bool) -> Result<CreateRu
     if let Some(idempotency) = &idempotency {
         execute(tx, "INSERT INTO idempotency_keys (key, run_id) VALUES ($1, $2)", &[idempotency, &run.id]).await?;
     }
+    notify(tx, &run.id).await?;
     Ok(CreateRun::Created(run.clone()))
 }
 
@@ -255,6 +281,12 @@ impl PostgresStore {
     /// date ([`migrate`]). Fails as [`StoreError::Unavailable`] when the database cannot be
     /// reached.
     pub fn open(url: &str) -> Result<PostgresStore, StoreError> {
+        PostgresStore::open_with_lease(url, DEFAULT_LEASE)
+    }
+
+    /// [`PostgresStore::open`] with runs leased for `lease` at a time (see
+    /// [`Storage::renew_leases`]).
+    pub fn open_with_lease(url: &str, lease: Duration) -> Result<PostgresStore, StoreError> {
         let mut config: tokio_postgres::Config = url.parse().map_err(|e| StoreError::Io(format!("database_url does not parse: {e}")))?;
         config.connect_timeout(CONNECT_TIMEOUT).keepalives(true).keepalives_idle(Duration::from_secs(30)).application_name("pollard");
         let rt = tokio::runtime::Builder::new_multi_thread()
@@ -281,7 +313,7 @@ impl PostgresStore {
             tokio_postgres::config::Host::Unix(path) => path.display().to_string(),
         }).collect();
         let place = format!("{}:{}/{}", hosts.join(","), config.get_ports().first().copied().unwrap_or(5432), config.get_dbname().unwrap_or(""));
-        let store = PostgresStore { inner: std::sync::Arc::new(Inner { rt: Some(rt), pool, staging, worker, place }) };
+        let store = PostgresStore { inner: std::sync::Arc::new(Inner { rt: Some(rt), pool, staging, worker, place, lease_ms: lease.as_millis().min(i64::MAX as u128) as i64, config }) };
         store.block(async {
             let mut client = store.inner.pool.get().await.map_err(unreachable)?;
             migrate::migrate(&mut client).await
@@ -459,6 +491,65 @@ impl Storage for PostgresStore {
         format!("postgres at {}", self.inner.place)
     }
 
+    fn shared(&self) -> bool {
+        true
+    }
+
+    fn renew_leases(&self) -> Result<(), StoreError> {
+        let sql = format!("UPDATE runs SET lease_expires = {DB_NOW_MS} + $2 WHERE state = 'running' AND lease_owner = $1");
+        self.transact(async |tx| {
+            execute(tx, &sql, &[&self.inner.worker, &self.inner.lease_ms]).await?;
+            Ok(())
+        })
+    }
+
+    fn take_abandoned(&self) -> Result<Vec<Run>, StoreError> {
+        let sql = format!("SELECT record FROM runs WHERE state = 'running' AND (lease_expires IS NULL OR lease_expires < {DB_NOW_MS}) ORDER BY id FOR UPDATE SKIP LOCKED");
+        self.transact(async |tx| {
+            let runs = decoded(&query(tx, &sql, &[]).await?, records::decode_run)?;
+            for run in &runs {
+                lease(tx, &run.id, &self.inner.worker, self.inner.lease_ms).await?;
+            }
+            Ok(runs)
+        })
+    }
+
+    fn watch_changes(&self, wake: std::sync::Arc<dyn Fn() + Send + Sync>) {
+        let config = self.inner.config.clone();
+        let rt = self.inner.rt.as_ref().expect("the runtime lives as long as the store");
+        rt.spawn(async move {
+            loop {
+                match config.connect(NoTls).await {
+                    Ok((client, mut connection)) => {
+                        let listening = async {
+                            client.batch_execute(&format!("LISTEN {CHANGES}")).await?;
+                            // Changes made while no one listened: look once.
+                            wake();
+                            std::future::pending::<Result<(), tokio_postgres::Error>>().await
+                        };
+                        let messages = async {
+                            while let Some(m) = std::future::poll_fn(|cx| connection.poll_message(cx)).await {
+                                match m {
+                                    Ok(tokio_postgres::AsyncMessage::Notification(_)) => wake(),
+                                    Ok(_) => {}
+                                    Err(e) => return e.to_string(),
+                                }
+                            }
+                            "the connection closed".to_string()
+                        };
+                        tokio::select! {
+                            r = listening => if let Err(e) = r { tracing::warn!(error = %e, "listening for changes failed; listening again") },
+                            e = messages => tracing::warn!(error = %e, "the change notifications stopped; listening again"),
+                        }
+                    }
+                    Err(e) => tracing::warn!(error = %e, "cannot listen for changes; trying again"),
+                }
+                // Followers poll meanwhile (the safety net), so nothing is lost while away.
+                tokio::time::sleep(Duration::from_secs(1)).await;
+            }
+        });
+    }
+
     /// Every change is committed before it returns: nothing to write out.
     fn flush(&self) -> Result<(), StoreError> {
         Ok(())
@@ -570,6 +661,8 @@ impl Storage for PostgresStore {
             }
             run.start(now, 0, 0);
             put_run(tx, &run).await?;
+            lease(tx, &run.id, &self.inner.worker, self.inner.lease_ms).await?;
+            notify(tx, &run.id).await?;
             Ok(Claim::Claimed(run))
         })
     }
@@ -607,6 +700,7 @@ impl Storage for PostgresStore {
                 out.push(append(tx, &mut run, kind, now).await?);
             }
             put_run(tx, &run).await?;
+            notify(tx, run_id).await?;
             Ok(out)
         })
     }
@@ -624,6 +718,7 @@ impl Storage for PostgresStore {
             let event = append(tx, &mut run, EventKind::Finished { picked: outcome.picked, best: outcome.best }, now).await?;
             run.end(RunState::Finished, now, None);
             put_run(tx, &run).await?;
+            notify(tx, run_id).await?;
             Ok(Some(event))
         })
     }
@@ -646,6 +741,7 @@ impl Storage for PostgresStore {
             match run.resume() {
                 crate::job::Resume::Again => {
                     put_run(tx, &run).await?;
+                    lease(tx, run_id, &self.inner.worker, self.inner.lease_ms).await?;
                     Ok(Resumed::Again(run))
                 }
                 crate::job::Resume::GiveUp(reason) => {
@@ -662,6 +758,8 @@ impl Storage for PostgresStore {
                 run.units_at_start = None;
                 run.crash_strikes = 0;
                 put_run(tx, &run).await?;
+                // Another replica may take it at once.
+                execute(tx, "UPDATE runs SET lease_expires = 0 WHERE id = $1 AND lease_owner = $2", &[&run_id, &self.inner.worker]).await?;
             }
             Ok(())
         })
@@ -676,6 +774,7 @@ impl Storage for PostgresStore {
             let Some(mut run) = run_of(tx, run_id, true).await?.filter(|r| r.state == RunState::Running) else { return Ok(None) };
             let event = append(tx, &mut run, kind.clone(), now).await?;
             put_run(tx, &run).await?;
+            notify(tx, run_id).await?;
             Ok(Some(event))
         })
     }
