@@ -9,7 +9,7 @@
 //! sweep. A std `Mutex` guards the cancel flags, since no `.await` is held while it is locked.
 
 use std::sync::atomic::{AtomicBool, Ordering};
-use std::sync::{Arc, Mutex};
+use std::sync::{mpsc, Arc, Condvar, Mutex};
 use std::time::Duration;
 
 use tracing::{error, info, info_span, warn};
@@ -179,52 +179,54 @@ fn execute_blocking(shared: &Shared, run: &Run, cancel: &AtomicBool) -> Ending {
     // Units so far, to score a shaping key's settings once all its splits are in.
     let so_far: Mutex<Vec<sweep::UnitResult>> = Mutex::new(done.clone());
     let store_failed: Mutex<Option<String>> = Mutex::new(None);
-    let ended_elsewhere = Mutex::new(false);
+    let stored = Stored::default();
+    // Set when a batch stored nothing because the run ended meanwhile (on a shared store,
+    // perhaps cancelled through another replica): the sweep stops.
+    let ended_elsewhere = AtomicBool::new(false);
     let hooks = &cfg.test_hooks;
-    let sink = |unit: &sweep::UnitResult, progress: sweep::Progress| {
-        if hooks.unit_delay_ms > 0 {
-            std::thread::sleep(Duration::from_millis(hooks.unit_delay_ms));
-        }
-        if hooks.abort_unit.is_some_and(|h| h.matches(unit.unit)) {
-            error!(unit = unit.unit, "POLLARD_TEST_ABORT_UNIT: aborting the process on purpose");
-            std::process::abort();
-        }
-        if hooks.panic_unit.is_some_and(|h| h.matches(unit.unit)) {
-            panic!("POLLARD_TEST_PANIC_UNIT: work unit {} panics on purpose", unit.unit);
-        }
-        let key = plan.units[unit.unit].1;
-        let scored = {
-            let mut all = so_far.lock().unwrap();
-            all.push(unit.clone());
-            sweep::key_scores(&plan, &all, key)
+    let units = std::thread::scope(|scope| {
+        // Owned here, so a panic out of the sweep drops it and the committer ends.
+        let (hand_over, handed) = mpsc::channel::<(sweep::UnitResult, Vec<EventKind>)>();
+        scope.spawn(|| commit(shared, &run.id, handed, &store_failed, &stored, &ended_elsewhere));
+        let sink = |unit: &sweep::UnitResult, progress: sweep::Progress| {
+            if store_failed.lock().unwrap().is_some() || ended_elsewhere.load(Ordering::SeqCst) {
+                return Flow::Stop;
+            }
+            if hooks.unit_delay_ms > 0 {
+                std::thread::sleep(Duration::from_millis(hooks.unit_delay_ms));
+            }
+            if hooks.abort_unit.is_some_and(|h| h.matches(unit.unit)) {
+                // Every unit handed over before this one is stored first, as if units were
+                // stored one by one.
+                stored.wait_for(progress.units_done - 1 - done.len());
+                error!(unit = unit.unit, "POLLARD_TEST_ABORT_UNIT: aborting the process on purpose");
+                std::process::abort();
+            }
+            if hooks.panic_unit.is_some_and(|h| h.matches(unit.unit)) {
+                panic!("POLLARD_TEST_PANIC_UNIT: work unit {} panics on purpose", unit.unit);
+            }
+            let key = plan.units[unit.unit].1;
+            let scored = {
+                let mut all = so_far.lock().unwrap();
+                all.push(unit.clone());
+                sweep::key_scores(&plan, &all, key)
+            };
+            let mut events = vec![EventKind::Progress(progress)];
+            for (index, score) in scored.into_iter().flatten() {
+                events.push(EventKind::Scored { index: index as u32, score: Box::new(score) });
+            }
+            // Stored by the committer, in this order, before anyone hears of it.
+            match hand_over.send((unit.clone(), events)) {
+                Ok(()) => Flow::Continue,
+                Err(_) => Flow::Stop,
+            }
         };
-        let mut events = vec![EventKind::Progress(progress)];
-        for (index, score) in scored.into_iter().flatten() {
-            events.push(EventKind::Scored { index: index as u32, score: Box::new(score) });
-        }
-        // The unit and its events are stored in one transaction before anyone hears of them.
-        match shared.store.record_unit(&run.id, unit, events, shared.now()) {
-            // Nothing stored: the unit was stored already, or the run ended meanwhile (on a
-            // shared store, perhaps cancelled through another replica): then stop.
-            Ok(stored) if stored.is_empty() && shared.store.run(&run.id).is_ok_and(|r| r.is_none_or(|r| r.state != RunState::Running)) => {
-                *ended_elsewhere.lock().unwrap() = true;
-                Flow::Stop
-            }
-            Ok(_) => {
-                shared.announce();
-                Flow::Continue
-            }
-            Err(e) => {
-                *store_failed.lock().unwrap() = Some(e.to_string());
-                Flow::Stop
-            }
-        }
-    };
-    let units = shared.pool.install(|| sweep::run(&plan, done, &sink, cancel));
+        shared.pool.install(|| sweep::run(&plan, done.clone(), &sink, cancel))
+    });
     if let Some(e) = store_failed.lock().unwrap().take() {
         return Ending::Failed(format!("cannot store a finished unit: {e}"));
     }
-    if *ended_elsewhere.lock().unwrap() {
+    if ended_elsewhere.load(Ordering::SeqCst) {
         // Its end is stored already; recording another changes nothing.
         return Ending::Cancelled;
     }
@@ -251,6 +253,53 @@ fn execute_blocking(shared: &Shared, run: &Run, cancel: &AtomicBool) -> Ending {
         model,
         fold_assignment: plan.folds.assignment.clone(),
     })
+}
+
+/// How many units the committer has stored (or given up on) in this execution.
+#[derive(Default)]
+struct Stored {
+    count: Mutex<usize>,
+    changed: Condvar,
+}
+
+impl Stored {
+    fn add(&self, n: usize) {
+        *self.count.lock().unwrap() += n;
+        self.changed.notify_all();
+    }
+
+    /// Waits until at least `n` units are stored.
+    fn wait_for(&self, n: usize) {
+        let mut count = self.count.lock().unwrap();
+        while *count < n {
+            count = self.changed.wait(count).unwrap();
+        }
+    }
+}
+
+/// Most units stored in one change.
+const MAX_BATCH: usize = 256;
+
+/// Stores the units a sweep hands over, off the sweep's threads: everything handed over
+/// since the last write goes into one change (one flush for many units, so a sweep of small
+/// units is not paced by the disk's sync time), then followers are woken. Order is kept,
+/// and no one hears of a unit before it is stored. After a store failure nothing more is
+/// written and the sweep is told to stop.
+fn commit(shared: &Shared, run_id: &str, handed: mpsc::Receiver<(sweep::UnitResult, Vec<EventKind>)>, failed: &Mutex<Option<String>>, stored: &Stored, ended: &AtomicBool) {
+    while let Ok(first) = handed.recv() {
+        let mut batch = vec![first];
+        batch.extend(handed.try_iter().take(MAX_BATCH - 1));
+        let n = batch.len();
+        if failed.lock().unwrap().is_none() {
+            match shared.store.record_units(run_id, batch, shared.now()) {
+                // Nothing stored: the units were stored already, or the run ended meanwhile.
+                Ok(events) if events.is_empty() && shared.store.run(run_id).is_ok_and(|r| r.is_none_or(|r| r.state != RunState::Running)) => ended.store(true, Ordering::SeqCst),
+                Ok(_) => shared.announce(),
+                Err(e) => *failed.lock().unwrap() = Some(e.to_string()),
+            }
+        }
+        stored.add(n);
+    }
 }
 
 /// What a finished run used and picked, for a drift report; `None` for a run without a

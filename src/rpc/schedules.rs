@@ -6,7 +6,7 @@ use tonic::{Request, Response, Status};
 use super::{convert, page_size, token, Api};
 use crate::pb;
 use crate::service::schedules::{ScheduleRequest, ScheduleView};
-use crate::service::{DatasetRef, ServiceError};
+use crate::service::DatasetRef;
 
 pub use crate::service::schedules::new_schedule_id;
 
@@ -66,12 +66,7 @@ impl pb::schedules_server::Schedules for Api {
 
     async fn list_fires(&self, request: Request<pb::ListFiresRequest>) -> Result<Response<pb::ListFiresReply>, Status> {
         let r = request.into_inner();
-        self.shared.schedule("schedule_id", &r.schedule_id)?;
-        let after = match token(&r.page_token) {
-            None => None,
-            Some(t) => Some(t.parse::<u64>().map_err(|_| ServiceError::invalid("page_token", format!("'{t}' is not a token this listing gave out")))?),
-        };
-        let (fires, next) = self.shared.list_fires(&r.schedule_id, after, page_size(r.page_size))?;
+        let (fires, next) = self.shared.list_fires(&r.schedule_id, token(&r.page_token), page_size(r.page_size))?;
         Ok(Response::new(pb::ListFiresReply { fires: fires.iter().map(convert::fire_to).collect(), next_page_token: next.unwrap_or_default() }))
     }
 }

@@ -148,9 +148,13 @@ impl Service {
         Ok(())
     }
 
-    /// A page of a schedule's fires after the sequence number `after`.
-    pub fn list_fires(&self, schedule_id: &str, after: Option<u64>, page_size: usize) -> Result<(Vec<Fire>, Option<String>)> {
+    /// A page of a schedule's fires, newest first, below the page token's fire.
+    pub fn list_fires(&self, schedule_id: &str, page_token: Option<&str>, page_size: usize) -> Result<(Vec<Fire>, Option<String>)> {
         self.schedule("schedule_id", schedule_id)?;
+        let after = match page_token {
+            None => None,
+            Some(t) => Some(crate::store::paging::fire_token(t).ok_or_else(|| ServiceError::invalid("page_token", format!("'{}' is not a token this listing gave out", t.chars().take(100).collect::<String>())))?),
+        };
         Ok(self.store.fires(schedule_id, after, page_size)?)
     }
 }

@@ -17,6 +17,7 @@
 
 pub mod files;
 pub mod keys;
+pub mod paging;
 pub mod postgres;
 pub mod records;
 pub mod sled_store;
@@ -94,23 +95,6 @@ pub enum PutDataset {
 /// Whether two datasets are one version: same bytes, read the same way.
 pub(crate) fn same_version(a: &DatasetMeta, b: &DatasetMeta) -> bool {
     a.content == b.content && a.target == b.target && a.categorical == b.categorical
-}
-
-/// Sort position of a dataset in listings: newest first, then by id.
-pub(crate) fn dataset_position(m: &DatasetMeta) -> String {
-    let newest_first = (i64::MAX as i128 - m.created_at as i128) as u64;
-    format!("{newest_first:020}:{}", m.id)
-}
-
-/// Cuts `items` (in listing order, possibly one more than fits) to a page; the token is the
-/// position of the last item on the page when more remain.
-pub(crate) fn page<I, T>(items: Vec<I>, limit: usize, position: impl Fn(&I) -> String, value: impl Fn(I) -> T) -> (Vec<T>, Option<String>) {
-    let limit = limit.max(1);
-    let more = items.len() > limit;
-    let mut kept: Vec<I> = items;
-    kept.truncate(limit);
-    let token = if more { kept.last().map(&position) } else { None };
-    (kept.into_iter().map(value).collect(), token)
 }
 
 /// What a fire's attempt to queue `run` means for the fire and its schedule (inside the
@@ -202,8 +186,8 @@ impl RunFilter {
 
 /// Every read and write of stored state. Each method that changes something is one
 /// transaction; reads of one record see whole changes, listings may see a change half done.
-/// Ids, page tokens and orders are the backend's promise to callers: runs and schedules
-/// newest first by id (ids are time-ordered), datasets newest first by `created_at`, then id.
+/// Ids, page tokens and orders are the backend's promise to callers, the same for every
+/// backend: see [`paging`].
 pub trait Storage: Send + Sync {
     // -- files and lifetime
 
@@ -341,6 +325,18 @@ pub trait Storage: Send + Sync {
     /// A finished work unit of a running run with the events it announces, in one change;
     /// the stored events (none when the unit was stored already or the run is not running).
     fn record_unit(&self, run_id: &str, unit: &UnitResult, events: Vec<EventKind>, now: i64) -> Result<Vec<Event>, StoreError>;
+
+    /// Several finished units of one run, in order, each with its events, as
+    /// [`Storage::record_unit`] stores one. A backend may store the whole batch in one change
+    /// (one flush for many units, so small units are not bound by the disk's sync time); each
+    /// unit with its events is whole or absent either way. The stored events of all units.
+    fn record_units(&self, run_id: &str, batch: Vec<(UnitResult, Vec<EventKind>)>, now: i64) -> Result<Vec<Event>, StoreError> {
+        let mut out = Vec::new();
+        for (unit, events) in batch {
+            out.extend(self.record_unit(run_id, &unit, events, now)?);
+        }
+        Ok(out)
+    }
 
     /// The stored work units of a run, by unit index.
     fn units(&self, run_id: &str) -> Result<Vec<UnitResult>, StoreError>;

@@ -47,8 +47,9 @@ use std::sync::Arc;
 use sled::transaction::{ConflictableTransactionError, TransactionError, TransactionalTree, UnabortableTransactionError};
 use sled::{IVec, Transactional};
 
+use super::paging::{dataset_position, page};
 use super::records::{self, HoldsRecord};
-use super::{announced, dataset_position, files, fire_run, keys, number_fire, page, same_version, Claim, CreateRun, DeleteDataset, PutDataset, Resumed, RunFilter, Storage, StoreError};
+use super::{announced, files, fire_run, keys, number_fire, same_version, Claim, CreateRun, DeleteDataset, PutDataset, Resumed, RunFilter, Storage, StoreError};
 use crate::drift::DriftReport;
 use crate::job::{DatasetMeta, Event, EventKind, Fire, Run, RunOutcome, RunState, Schedule};
 use crate::sweep::UnitResult;
@@ -793,23 +794,34 @@ impl Storage for SledStore {
     /// event then carries), numbers and stores each event, saves the run. Returns the stored events; none when the unit was already
     /// stored or the run is not running (nothing is stored then).
     fn record_unit(&self, run_id: &str, unit: &UnitResult, events: Vec<EventKind>, now: i64) -> Result<Vec<Event>, StoreError> {
-        let index = u32::try_from(unit.unit).map_err(|_| StoreError::Corrupt(format!("unit index {} does not fit a key", unit.unit)))?;
-        let key = keys::unit(run_id, index);
-        let bytes = records::encode_unit(unit);
+        self.record_units(run_id, vec![(unit.clone(), events)], now)
+    }
+
+    /// The whole batch in one transaction, flushed once.
+    fn record_units(&self, run_id: &str, batch: Vec<(UnitResult, Vec<EventKind>)>, now: i64) -> Result<Vec<Event>, StoreError> {
+        let mut encoded = Vec::with_capacity(batch.len());
+        for (unit, events) in &batch {
+            let index = u32::try_from(unit.unit).map_err(|_| StoreError::Corrupt(format!("unit index {} does not fit a key", unit.unit)))?;
+            encoded.push((keys::unit(run_id, index), records::encode_unit(unit), events));
+        }
         retrying(|| {
             self.transact(|tx| {
                 let Some(mut run) = tx.run(run_id)?.filter(|r| r.state == RunState::Running) else { return Ok(Vec::new()) };
-                if tx.get(UNITS, &key)?.is_some() {
-                    return Ok(Vec::new());
+                let (mut out, before) = (Vec::new(), run.units_done);
+                for (key, bytes, events) in &encoded {
+                    if tx.get(UNITS, key)?.is_some() {
+                        continue;
+                    }
+                    tx.insert(UNITS, key, bytes.clone())?;
+                    run.units_done += 1;
+                    for kind in events.iter() {
+                        let kind = announced(kind, run.units_done);
+                        out.push(tx.append(&mut run, kind, now)?);
+                    }
                 }
-                tx.insert(UNITS, &key, bytes.clone())?;
-                run.units_done += 1;
-                let mut out = Vec::with_capacity(events.len());
-                for kind in &events {
-                    let kind = announced(kind, run.units_done);
-                    out.push(tx.append(&mut run, kind, now)?);
+                if run.units_done != before {
+                    tx.put_progress(&run)?;
                 }
-                tx.put_progress(&run)?;
                 Ok(out)
             })
         })

@@ -594,7 +594,9 @@ enum Op {
     CreateRun { dataset: usize, key: Option<usize>, label: bool },
     Claim,
     Plan { run: usize },
-    RecordUnit { run: usize, unit: u32, events: usize },
+    /// One unit through `record_unit`, or several in one `record_units` batch (a unit may
+    /// repeat in a batch, as a stored one may be handed over again).
+    RecordUnits { run: usize, units: Vec<(u32, usize)>, batch: bool },
     Progress { run: usize },
     Finish { run: usize },
     End { run: usize, cancel: bool },
@@ -609,7 +611,8 @@ fn op() -> impl Strategy<Value = Op> {
         5 => (0..64usize, proptest::option::of(0..KEYS_USED), any::<bool>()).prop_map(|(dataset, key, label)| Op::CreateRun { dataset, key, label }),
         3 => Just(Op::Claim),
         2 => (0..64usize).prop_map(|run| Op::Plan { run }),
-        5 => (0..64usize, 0..4u32, 0..3usize).prop_map(|(run, unit, events)| Op::RecordUnit { run, unit, events }),
+        5 => (0..64usize, proptest::collection::vec((0..4u32, 0..3usize), 1..4), any::<bool>())
+            .prop_map(|(run, units, batch)| if batch { Op::RecordUnits { run, units, batch } } else { Op::RecordUnits { run, units: units[..1].to_vec(), batch } }),
         1 => (0..64usize).prop_map(|run| Op::Progress { run }),
         2 => (0..64usize).prop_map(|run| Op::Finish { run }),
         2 => (0..64usize, any::<bool>()).prop_map(|(run, cancel)| Op::End { run, cancel }),
@@ -762,24 +765,25 @@ fn step(store: &dyn Storage, model: &mut Model, op: &Op, now: i64) {
             }
             store.set_plan_size(&id, 3, 4).unwrap();
         }
-        Op::RecordUnit { run, unit, events } => {
+        Op::RecordUnits { run, units, batch } => {
             let id = model.pick(*run, is_running);
-            let u = unit_result(*unit, now);
-            let kinds = unit_events(*events, now);
-            let fresh = model.runs.get(&id).is_some_and(|r| r.state == RunState::Running) && !model.units.get(&id).is_some_and(|m| m.contains_key(&u.unit));
-            let want: Vec<Event> = if fresh {
-                model.units.entry(id.clone()).or_default().insert(u.unit, u.clone());
-                model.runs.get_mut(&id).unwrap().units_done += 1;
-                let done = model.runs[&id].units_done as usize;
-                let announced = |k: &EventKind| match k {
-                    EventKind::Progress(p) => EventKind::Progress(Progress { units_done: done, ..*p }),
-                    other => other.clone(),
-                };
-                kinds.iter().map(|k| model.append(&id, announced(k), now)).collect()
-            } else {
-                Vec::new()
-            };
-            assert_same!(store.record_unit(&id, &u, kinds, now).unwrap(), want);
+            let handed: Vec<(UnitResult, Vec<EventKind>)> = units.iter().map(|&(unit, events)| (unit_result(unit, now), unit_events(events, now))).collect();
+            let mut want: Vec<Event> = Vec::new();
+            for (u, kinds) in &handed {
+                let fresh = model.runs.get(&id).is_some_and(|r| r.state == RunState::Running) && !model.units.get(&id).is_some_and(|m| m.contains_key(&u.unit));
+                if fresh {
+                    model.units.entry(id.clone()).or_default().insert(u.unit, u.clone());
+                    model.runs.get_mut(&id).unwrap().units_done += 1;
+                    let done = model.runs[&id].units_done as usize;
+                    let announced = |k: &EventKind| match k {
+                        EventKind::Progress(p) => EventKind::Progress(Progress { units_done: done, ..*p }),
+                        other => other.clone(),
+                    };
+                    want.extend(kinds.iter().map(|k| model.append(&id, announced(k), now)));
+                }
+            }
+            let got = if *batch { store.record_units(&id, handed, now).unwrap() } else { store.record_unit(&id, &handed[0].0, handed[0].1.clone(), now).unwrap() };
+            assert_same!(got, want);
         }
         Op::Progress { run } => {
             let id = model.pick(*run, is_running);

@@ -39,7 +39,8 @@ use tokio_postgres::error::SqlState;
 use tokio_postgres::types::ToSql;
 use tokio_postgres::{NoTls, Row};
 
-use super::{announced, dataset_position, fire_run, keys, number_fire, page, records, same_version, Claim, CreateRun, DeleteDataset, PutDataset, Resumed, RunFilter, Storage, StoreError, CHUNK_BYTES};
+use super::paging::{dataset_position, page};
+use super::{announced, fire_run, keys, number_fire, records, same_version, Claim, CreateRun, DeleteDataset, PutDataset, Resumed, RunFilter, Storage, StoreError, CHUNK_BYTES};
 use crate::drift::DriftReport;
 use crate::job::{DatasetMeta, Event, EventKind, Fire, Run, RunOutcome, RunState, Schedule};
 use crate::sweep::UnitResult;
@@ -682,25 +683,36 @@ impl Storage for PostgresStore {
         self.read_records("SELECT record FROM runs WHERE state = 'running' ORDER BY id", &[], records::decode_run)
     }
 
-    /// The unit's row is written once: a second writer of the same unit finds it stored and
-    /// stores nothing.
     fn record_unit(&self, run_id: &str, unit: &UnitResult, events: Vec<EventKind>, now: i64) -> Result<Vec<Event>, StoreError> {
-        let index = i64::try_from(unit.unit).map_err(|_| StoreError::Corrupt(format!("unit index {} does not fit the database", unit.unit)))?;
-        let bytes = records::encode_unit(unit);
+        self.record_units(run_id, vec![(unit.clone(), events)], now)
+    }
+
+    /// The whole batch in one transaction. A unit's row is written once: a second writer of
+    /// the same unit (another replica) finds it stored and stores nothing for it.
+    fn record_units(&self, run_id: &str, batch: Vec<(UnitResult, Vec<EventKind>)>, now: i64) -> Result<Vec<Event>, StoreError> {
+        let mut encoded = Vec::with_capacity(batch.len());
+        for (unit, events) in &batch {
+            let index = i64::try_from(unit.unit).map_err(|_| StoreError::Corrupt(format!("unit index {} does not fit the database", unit.unit)))?;
+            encoded.push((index, records::encode_unit(unit), events));
+        }
         self.transact(async |tx| {
             let Some(mut run) = run_of(tx, run_id, true).await?.filter(|r| r.state == RunState::Running) else { return Ok(Vec::new()) };
-            let stored = execute(tx, "INSERT INTO units (run_id, unit, worker, record) VALUES ($1, $2, $3, $4) ON CONFLICT DO NOTHING", &[&run_id, &index, &self.inner.worker, &bytes]).await?;
-            if stored == 0 {
-                return Ok(Vec::new());
+            let (mut out, before) = (Vec::new(), run.units_done);
+            for (index, bytes, events) in &encoded {
+                let stored = execute(tx, "INSERT INTO units (run_id, unit, worker, record) VALUES ($1, $2, $3, $4) ON CONFLICT DO NOTHING", &[&run_id, index, &self.inner.worker, bytes]).await?;
+                if stored == 0 {
+                    continue;
+                }
+                run.units_done += 1;
+                for kind in events.iter() {
+                    let kind = announced(kind, run.units_done);
+                    out.push(append(tx, &mut run, kind, now).await?);
+                }
             }
-            run.units_done += 1;
-            let mut out = Vec::with_capacity(events.len());
-            for kind in &events {
-                let kind = announced(kind, run.units_done);
-                out.push(append(tx, &mut run, kind, now).await?);
+            if run.units_done != before {
+                put_run(tx, &run).await?;
+                notify(tx, run_id).await?;
             }
-            put_run(tx, &run).await?;
-            notify(tx, run_id).await?;
             Ok(out)
         })
     }
