@@ -134,7 +134,7 @@ async fn call(kind: Call, ch: &Channel, f: &Fixture) -> Result<(), Status> {
             while s.message().await?.is_some() {}
             Ok(())
         }
-        Call::Predict => ModelsClient::new(ch.clone()).predict(pb::PredictRequest { run_id: f.run.clone(), rows: Some(f.rows.clone()) }).await.map(drop),
+        Call::Predict => ModelsClient::new(ch.clone()).predict(pb::PredictRequest { run_id: f.run.clone(), rows: Some(f.rows.clone()), ..Default::default() }).await.map(drop),
         Call::ListDatasets => DatasetsClient::new(ch.clone()).list_datasets(pb::ListDatasetsRequest { page_size: 20, ..Default::default() }).await.map(drop),
     }
 }

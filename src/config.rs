@@ -74,6 +74,8 @@ pub struct Config {
     pub max_upload_bytes: u64,
     pub max_rows: usize,
     pub max_columns: usize,
+    /// Most rows one Predict call may ask to explain (each row's path is sent back).
+    pub max_explained_rows: usize,
     /// Most settings in one sweep.
     pub max_settings: usize,
     /// Most values one limit's range may give (counted before any is made).
@@ -196,6 +198,7 @@ impl Default for Config {
             max_upload_bytes: 256 << 20,
             max_rows: 5_000_000,
             max_columns: 2_000,
+            max_explained_rows: 10_000,
             max_settings: 100_000,
             max_values_per_range: 1_000,
             max_folds: 100,
@@ -283,6 +286,7 @@ struct FileConfig {
     max_upload_bytes: Option<u64>,
     max_rows: Option<usize>,
     max_columns: Option<usize>,
+    max_explained_rows: Option<usize>,
     max_settings: Option<usize>,
     max_values_per_range: Option<usize>,
     max_folds: Option<u64>,
@@ -381,6 +385,7 @@ impl Config {
         num!(max_upload_bytes, "max_upload_bytes", "POLLARD_MAX_UPLOAD_BYTES", u64);
         num!(max_rows, "max_rows", "POLLARD_MAX_ROWS", usize);
         num!(max_columns, "max_columns", "POLLARD_MAX_COLUMNS", usize);
+        num!(max_explained_rows, "max_explained_rows", "POLLARD_MAX_EXPLAINED_ROWS", usize);
         num!(max_settings, "max_settings", "POLLARD_MAX_SETTINGS", usize);
         num!(max_values_per_range, "max_values_per_range", "POLLARD_MAX_VALUES_PER_RANGE", usize);
         num!(max_folds, "max_folds", "POLLARD_MAX_FOLDS", u32);
@@ -431,10 +436,11 @@ impl Config {
         if c.lease_secs < 2 {
             return Err("lease_secs must be at least 2 (leases are renewed every third of it)".into());
         }
-        let caps: [(&str, u64); 14] = [
+        let caps: [(&str, u64); 15] = [
             ("max_upload_bytes", c.max_upload_bytes),
             ("max_rows", c.max_rows as u64),
             ("max_columns", c.max_columns as u64),
+            ("max_explained_rows", c.max_explained_rows as u64),
             ("max_settings", c.max_settings as u64),
             ("max_values_per_range", c.max_values_per_range as u64),
             ("max_folds", c.max_folds as u64),

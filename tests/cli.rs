@@ -376,6 +376,25 @@ fn put_sweep_follow_show_runs_model_predict() {
         let p = &probabilities[i * 3..i * 3 + 3];
         assert_eq!(*l, format!("{},{},{:.4},{:.4},{:.4}", i + 1, want_labels[i], p[0], p[1], p[2]));
     }
+    // --explain: per row, its class, leaf and the conditions on the way, in the words of the
+    // text model, one per level of the leaf.
+    let model_text = s(&server.run(&["model", &r1, "--json"]).json(), "text").to_string();
+    let explained = server.run(&["predict", &r1, few.to_str().unwrap(), "--explain"]).ok();
+    let mut blocks = explained.split("row ").skip(1);
+    for i in 0..20 {
+        let block = blocks.next().unwrap_or_else(|| panic!("no block for row {}: {explained}", i + 1));
+        let leaf = tree.apply_row(&ds.frame, i);
+        let head = format!("{}: {} (", i + 1, want_labels[i]);
+        assert!(block.starts_with(&head) && block.lines().next().unwrap().ends_with(&format!(", leaf {leaf}")), "{block}");
+        let conditions: Vec<&str> = block.lines().skip(1).map(str::trim).collect();
+        assert_eq!(conditions.len() as u32, tree.nodes[leaf as usize].depth, "{block}");
+        for c in conditions {
+            let (test, side) = c.rsplit_once(": ").unwrap();
+            assert!(side == "holds" || side == "fails", "{c}");
+            assert!(model_text.contains(test), "the text model says {test:?} too: {c}");
+        }
+    }
+    assert!(blocks.next().is_none());
 }
 
 #[test]

@@ -794,3 +794,58 @@ fn json_round_trip_keeps_ten_elevenths() {
     assert_eq!(back.value(0), tree.value(0));
     assert_eq!(back, tree);
 }
+
+proptest! {
+    #![proptest_config(config(256))]
+
+    /// Decision paths: a row's path starts at the root, each step goes to the child its test
+    /// sends the row to (the threshold or category set read off the split, a missing cell or
+    /// unseen category to the split's blank-cell side, and flagged so), and the last step ends
+    /// in the leaf that prediction uses. Probed on the training rows and on the same rows
+    /// with blank cells and unseen categories.
+    #[test]
+    fn decision_paths_follow_the_tree(case in case()) {
+        let tree = case.fit();
+        // The training rows with cells blanked, and categories the tree never saw, in a
+        // pattern that reaches every feature.
+        let blanked = Frame::new(
+            case.data.frame.features.iter().enumerate().map(|(f, feature)| {
+                let column = match &feature.column {
+                    Column::Numeric(v) => Column::Numeric(v.iter().enumerate().map(|(r, &x)| if (r + f) % 3 == 0 { f32::NAN } else { x }).collect()),
+                    Column::Categorical { codes, levels } => Column::Categorical {
+                        codes: codes.iter().enumerate().map(|(r, &c)| match (r + f) % 3 { 0 => MISSING_CODE, 1 => levels.len() as u32 + 1, _ => c }).collect(),
+                        levels: levels.clone(),
+                    },
+                };
+                Feature { name: feature.name.clone(), column }
+            }).collect(),
+        ).unwrap();
+        for frame in [&case.data.frame, &blanked] {
+            prop_assert!(tree.check_frame(frame).is_ok());
+            for row in 0..frame.rows {
+                let (leaf, steps) = tree.path_row(frame, row);
+                prop_assert_eq!(leaf, tree.apply_row(frame, row));
+                prop_assert!(tree.nodes[leaf as usize].is_leaf());
+                let mut at = 0u32;
+                for step in &steps {
+                    prop_assert_eq!(step.node, at, "the path skips a node");
+                    let node = &tree.nodes[at as usize];
+                    let split = node.split.as_ref().expect("a path step is at a split");
+                    let (missing, left) = match (&split.rule, &frame.features[split.feature as usize].column) {
+                        (SplitRule::Threshold(t), Column::Numeric(v)) => (v[row].is_nan(), !v[row].is_nan() && (v[row] as f64) <= *t),
+                        (SplitRule::Categories(bits), Column::Categorical { codes, .. }) => {
+                            let c = codes[row];
+                            let unseen = c == MISSING_CODE || c as usize >= tree.columns[split.feature as usize].levels.len();
+                            (unseen, !unseen && SplitRule::category_left(bits, c))
+                        }
+                        _ => unreachable!("check_frame passed"),
+                    };
+                    prop_assert_eq!(step.missing, missing, "row {} node {}", row, at);
+                    prop_assert_eq!(step.left, if missing { split.missing_left } else { left }, "row {} node {}", row, at);
+                    at = if step.left { node.left } else { node.right };
+                }
+                prop_assert_eq!(at, leaf, "the path does not end in the leaf");
+            }
+        }
+    }
+}

@@ -188,6 +188,45 @@ fn csv_cells(bytes: &[u8]) -> (Vec<String>, Vec<Vec<String>>) {
     (header, rows)
 }
 
+/// Checks every row's decision path in a Predict reply against the tree and the request's
+/// own cells: the path walks from the root through each condition to its leaf; a blank
+/// cell (or a category the tree never saw) is flagged and takes the split's blank-cell side;
+/// any other cell holds exactly when its number is at most the threshold (as the f32 the
+/// table is read into) or its text is one of the listed categories; the leaf gives the
+/// reply's prediction.
+fn check_paths(tree: &Tree, table: &pb::Table, reply: &pb::PredictReply) {
+    let rows = reply.predicted.len().max(reply.values.len());
+    assert_eq!(reply.paths.len(), rows, "one path per row");
+    let column = |name: &str| table.columns.iter().find(|c| c.name == name).unwrap_or_else(|| panic!("no column {name}"));
+    for (r, path) in reply.paths.iter().enumerate() {
+        let mut at = 0u32;
+        for c in &path.conditions {
+            assert_eq!(c.node, at, "row {r}: the path skips a node");
+            let node = &tree.nodes[at as usize];
+            let split = node.split.as_ref().expect("a condition is at a split");
+            let info = &tree.columns[split.feature as usize];
+            assert_eq!(c.feature, info.name);
+            assert!(c.text.starts_with(&info.name), "{c:?}");
+            let (blank, holds) = match column(&c.feature).cells.as_ref().unwrap() {
+                pb::table_column::Cells::Numbers(n) => (n.missing[r], !n.missing[r] && (n.values[r] as f32 as f64) <= c.threshold),
+                pb::table_column::Cells::Texts(t) => {
+                    let unseen = t.missing[r] || !info.levels.contains(&t.values[r]);
+                    (unseen, !unseen && c.categories.contains(&t.values[r]))
+                }
+            };
+            assert_eq!(c.missing, blank, "row {r} at node {at}: {c:?}");
+            assert_eq!(c.holds, if blank { split.missing_left } else { holds }, "row {r} at node {at}: {c:?}");
+            at = if c.holds { node.left } else { node.right };
+        }
+        assert_eq!(at, path.leaf, "row {r}: the path ends at its leaf");
+        assert!(tree.nodes[at as usize].is_leaf());
+        match reply.predicted.get(r) {
+            Some(p) => assert_eq!(p, &tree.labels[tree.leaf_class(at) as usize]),
+            None => assert_eq!(reply.values[r], tree.value(at as usize)[0]),
+        }
+    }
+}
+
 /// A CSV file as a columnar table: columns whose every cell parses as a number become
 /// number columns (empty cells missing), the rest text columns.
 fn csv_table(bytes: &[u8]) -> pb::Table {
@@ -533,13 +572,18 @@ async fn sweep_follow_inspect_export_and_predict_on(place: &Place) {
     assert_eq!(local, tree, "served model = local refit of the picked setting");
 
     // Predicting every iris row from a table matches the tree's own predictions.
-    let reply = models.predict(pb::PredictRequest { run_id: first.id.clone(), rows: Some(csv_table(&iris)) }).await.unwrap().into_inner();
+    let reply = models.predict(pb::PredictRequest { run_id: first.id.clone(), rows: Some(csv_table(&iris)), ..Default::default() }).await.unwrap().into_inner();
     let Predictions::Classes { classes, probabilities } = tree.predict(&data.frame) else { panic!("a classify tree") };
     assert_eq!(reply.classes, tree.labels);
     assert_eq!(reply.predicted, classes.iter().map(|&c| tree.labels[c as usize].clone()).collect::<Vec<_>>());
     assert_eq!(reply.probabilities, probabilities);
     assert_eq!(reply.probabilities.len(), 150 * 3);
-    assert!(reply.values.is_empty());
+    assert!(reply.values.is_empty() && reply.paths.is_empty());
+    // Explained: the same predictions, and every row's path checked against its cells.
+    let explained = models.predict(pb::PredictRequest { run_id: first.id.clone(), rows: Some(csv_table(&iris)), explain: true }).await.unwrap().into_inner();
+    assert_eq!((&explained.predicted, &explained.probabilities), (&reply.predicted, &reply.probabilities));
+    check_paths(&tree, &csv_table(&iris), &explained);
+    assert!(explained.paths.iter().any(|p| p.conditions.iter().any(|c| c.holds)) && explained.paths.iter().any(|p| p.conditions.iter().any(|c| !c.holds)));
 
     // By name: the latest version of "iris"; the same spec and seed give the same scores.
     let by_name = pb::StartRunRequest { dataset_name: "iris".into(), spec: Some(spec.clone()), ..Default::default() };
@@ -557,10 +601,12 @@ async fn sweep_follow_inspect_export_and_predict_on(place: &Place) {
     assert!(reg.model.as_ref().unwrap().classes.is_empty());
     let reg_tree = model_tree(&mut models, &reg.id).await;
     let reg_data = read_dataset(&diabetes[..], &CsvOptions::new("target")).unwrap();
-    let reply = models.predict(pb::PredictRequest { run_id: reg.id.clone(), rows: Some(csv_table(&diabetes)) }).await.unwrap().into_inner();
+    let reply = models.predict(pb::PredictRequest { run_id: reg.id.clone(), rows: Some(csv_table(&diabetes)), ..Default::default() }).await.unwrap().into_inner();
     assert_eq!(reg_tree.predict(&reg_data.frame), Predictions::Values(reply.values.clone()));
     assert_eq!(reply.values.len(), 442);
     assert!(reply.predicted.is_empty() && reply.probabilities.is_empty() && reply.classes.is_empty());
+    let explained = models.predict(pb::PredictRequest { run_id: reg.id.clone(), rows: Some(csv_table(&diabetes)), explain: true }).await.unwrap().into_inner();
+    check_paths(&reg_tree, &csv_table(&diabetes), &explained);
 
     // A table with a text column: unseen categories and missing cells are predicted, the
     // unseen category taking the missing cells' way at every split.
@@ -582,7 +628,12 @@ async fn sweep_follow_inspect_export_and_predict_on(place: &Place) {
             pb::TableColumn { name: "sepal_width_cm".into(), cells: Some(pb::table_column::Cells::Numbers(pb::NumberCells { values: vec![3.0, 3.0, 3.0, 0.0], missing: vec![false, false, false, true] })) },
         ],
     };
-    let reply = models.predict(pb::PredictRequest { run_id: bands.id.clone(), rows: Some(band_rows) }).await.unwrap().into_inner();
+    let reply = models.predict(pb::PredictRequest { run_id: bands.id.clone(), rows: Some(band_rows.clone()), explain: true }).await.unwrap().into_inner();
+    check_paths(&band_tree, &band_rows, &reply);
+    // The unseen category and the blank cell are both flagged at the band split.
+    for r in [0, 1] {
+        assert!(reply.paths[r].conditions.iter().any(|c| c.feature == "petal_band" && c.missing && !c.categories.is_empty()), "row {r}: {:?}", reply.paths[r]);
+    }
     assert_eq!(reply.predicted.len(), 4);
     assert_eq!(reply.predicted[0], reply.predicted[1]);
     assert_eq!(reply.probabilities[0..3], reply.probabilities[3..6]);
@@ -692,7 +743,7 @@ async fn queue_cancel_list_and_refuse_on(place: &Place) {
     assert!(r2_end.reason.contains("cancel") && !r2_end.finished_at.is_empty());
     assert!(r2_end.units_done >= 1 && r2_end.units_done < r2_end.units_total, "{}/{}", r2_end.units_done, r2_end.units_total);
     assert!(r2_end.scores.is_empty() && r2_end.model.is_none());
-    expect_status("model of a cancelled run", models.predict(pb::PredictRequest { run_id: r2.id.clone(), rows: Some(csv_table(&data_file("breast_cancer.csv"))) }).await, Code::FailedPrecondition, &[&r2.id, "cancelled"]);
+    expect_status("model of a cancelled run", models.predict(pb::PredictRequest { run_id: r2.id.clone(), rows: Some(csv_table(&data_file("breast_cancer.csv"))), ..Default::default() }).await, Code::FailedPrecondition, &[&r2.id, "cancelled"]);
     datasets.delete_dataset(pb::DeleteDatasetRequest { id: cancer.id.clone() }).await.expect("a cancelled run no longer holds its dataset");
     let again = runs.cancel_run(pb::CancelRunRequest { id: r2.id.clone() }).await.unwrap().into_inner();
     assert_eq!(again.state(), pb::RunState::Cancelled, "cancelling twice is harmless");

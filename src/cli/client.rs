@@ -159,7 +159,7 @@ pub fn run(command: Command, remote: &Remote, json_out: bool) -> Res {
             Command::Runs(a) => runs(ch, a, json_out).await,
             Command::Cancel { run } => cancel(ch, run, json_out).await,
             Command::Model { run, format, out } => model(ch, &run, &format, out, json_out).await,
-            Command::Predict { run, file } => predict(ch, &run, &file, json_out).await,
+            Command::Predict { run, file, explain } => predict(ch, &run, &file, explain, json_out).await,
             Command::Report(a) => super::report::command(ch, a, json_out).await,
             Command::Schedule { action } => super::schedules::run(ch, action, json_out).await,
             _ => unreachable!("handled by the caller"),
@@ -461,23 +461,46 @@ async fn model(ch: Conn, id: &str, format: &str, out: Option<std::path::PathBuf>
     Ok(())
 }
 
-async fn predict(ch: Conn, id: &str, file: &std::path::Path, json_out: bool) -> Res {
+async fn predict(ch: Conn, id: &str, file: &std::path::Path, explain: bool, json_out: bool) -> Res {
     let bytes = std::fs::read(file).map_err(|e| format!("{}: {e}", file.display()))?;
     let table = csv_table(&bytes).map_err(|e| format!("{}: {e}", file.display()))?;
-    let r = ModelsClient::new(ch).predict(pb::PredictRequest { run_id: id.into(), rows: Some(table) }).await.map_err(CliError::status)?.into_inner();
+    let r = ModelsClient::new(ch).predict(pb::PredictRequest { run_id: id.into(), rows: Some(table), explain }).await.map_err(CliError::status)?.into_inner();
     if json_out {
-        // One object per row: the class and each class's probability, or the value.
+        // One object per row: the class and each class's probability, or the value; with
+        // --explain, the leaf and the path's conditions too.
         let k = r.classes.len();
         let mut out = std::io::BufWriter::new(std::io::stdout().lock());
         let w = |e: std::io::Error| e.to_string();
+        let with_path = |i: usize, mut row: serde_json::Value| {
+            if let Some(p) = r.paths.get(i) {
+                row["leaf"] = json!(p.leaf);
+                row["path"] = p.conditions.iter().map(output::condition_json).collect();
+            }
+            row
+        };
         for (i, p) in r.predicted.iter().enumerate() {
             let probs: serde_json::Map<String, serde_json::Value> = r.classes.iter().cloned().zip(r.probabilities[i * k..(i + 1) * k].iter().map(|&x| output::num(x))).collect();
-            writeln!(out, "{}", json!({"row": i + 1, "predicted": p, "probabilities": probs})).map_err(w)?;
+            writeln!(out, "{}", with_path(i, json!({"row": i + 1, "predicted": p, "probabilities": probs}))).map_err(w)?;
         }
         for (i, v) in r.values.iter().enumerate() {
-            writeln!(out, "{}", json!({"row": i + 1, "value": output::num(*v)})).map_err(w)?;
+            writeln!(out, "{}", with_path(i, json!({"row": i + 1, "value": output::num(*v)}))).map_err(w)?;
         }
         out.flush().map_err(w)?;
+    } else if explain {
+        let outcome = |i: usize| match r.predicted.get(i) {
+            Some(p) => {
+                let k = r.classes.len();
+                let share = r.classes.iter().position(|c| c == p).map_or(f64::NAN, |c| r.probabilities[i * k + c]);
+                format!("{p} ({:.1}% of the leaf)", share * 100.0)
+            }
+            None => format!("{}", r.values.get(i).copied().unwrap_or(f64::NAN)),
+        };
+        for (i, p) in r.paths.iter().enumerate() {
+            println!("row {}: {}, leaf {}", i + 1, outcome(i), p.leaf);
+            for c in &p.conditions {
+                println!("  {}", output::condition_words(c));
+            }
+        }
     } else if !r.predicted.is_empty() {
         println!("row,predicted,{}", r.classes.iter().map(|c| format!("p_{c}")).collect::<Vec<_>>().join(","));
         let k = r.classes.len();

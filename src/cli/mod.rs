@@ -109,6 +109,10 @@ pub enum Command {
         run: String,
         /// CSV file with a header row and the model's feature columns.
         file: PathBuf,
+        /// Also show, for each row, the conditions that led to its leaf (in words; as fields
+        /// with --json).
+        #[arg(long)]
+        explain: bool,
     },
     /// Write a stored run's results to a folder: scores CSV, plots, the model in every format, summary.txt.
     Report(ReportArgs),

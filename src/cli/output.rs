@@ -4,6 +4,28 @@ use serde_json::{json, Value};
 
 use crate::pb;
 
+/// One condition of a row's path in words: `petal_length_cm <= 2.45: holds`, and for a
+/// blank cell (or a category the training rows did not have) the side it was sent to.
+pub fn condition_words(c: &pb::PathCondition) -> String {
+    let side = if c.holds { "holds" } else { "fails" };
+    if c.missing {
+        format!("{}: blank cell, sent to the {side} side", c.text)
+    } else {
+        format!("{}: {side}", c.text)
+    }
+}
+
+/// One condition of a row's path as JSON fields.
+pub fn condition_json(c: &pb::PathCondition) -> serde_json::Value {
+    let mut v = json!({"node": c.node, "feature": c.feature, "test": c.text, "holds": c.holds, "missing": c.missing});
+    if c.categories.is_empty() {
+        v["threshold"] = num(c.threshold);
+    } else {
+        v["categories"] = json!(c.categories);
+    }
+    v
+}
+
 fn limit(v: Option<u32>) -> String {
     v.map_or("none".into(), |x| x.to_string())
 }

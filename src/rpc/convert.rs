@@ -9,6 +9,7 @@ use crate::job::{given, DatasetMeta, Event, EventKind, Fire, FireOutcome, Retent
 use crate::schedule::CatchUp;
 use crate::pb;
 use crate::rpc::error::{echo, ServiceError};
+use crate::service::models::RowPath;
 use crate::service::{DatasetRef, RunRequest};
 use crate::sweep::{FoldPlan, FoldScheme, Metric, PickRule, Range, SettingScore, SweepSpec};
 use crate::tree::{ClassWeight, ColumnInfo, Criterion, FitOptions, Limits, Node, Split, SplitRule, Tree, NO_NODE};
@@ -579,6 +580,24 @@ fn kind_to(k: ColumnKind) -> pb::ColumnKind {
         ColumnKind::Numeric => pb::ColumnKind::Numeric,
         ColumnKind::Categorical => pb::ColumnKind::Categorical,
     }
+}
+
+/// A row's way to its leaf for the wire: each condition with its feature, test, outcome and
+/// the test in the text model's words.
+pub fn path_to(tree: &Tree, (leaf, steps): &RowPath) -> pb::RowPath {
+    let conditions = steps
+        .iter()
+        .filter_map(|step| {
+            let split = tree.nodes[step.node as usize].split.as_ref()?;
+            let column = &tree.columns[split.feature as usize];
+            let (threshold, categories) = match &split.rule {
+                SplitRule::Threshold(t) => (*t, Vec::new()),
+                SplitRule::Categories(bits) => (0.0, column.levels.iter().enumerate().filter(|(code, _)| SplitRule::category_left(bits, *code as u32)).map(|(_, l)| l.clone()).collect()),
+            };
+            Some(pb::PathCondition { node: step.node, feature: column.name.clone(), threshold, categories, holds: step.left, missing: step.missing, text: crate::export::text::describe_test(tree, split) })
+        })
+        .collect();
+    pb::RowPath { leaf: *leaf, conditions }
 }
 
 /// A tree as the native protobuf model.

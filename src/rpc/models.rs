@@ -40,14 +40,17 @@ impl pb::models_server::Models for Api {
         let tree = Arc::new(self.shared.model(&r.run_id)?);
         let rows = r.rows.ok_or_else(|| Status::invalid_argument("rows: missing"))?;
         let frame = convert::table_to_frame(&rows, &tree.columns)?;
-        let reply = match self.shared.predict(tree.clone(), frame).await? {
+        let (predictions, paths) = self.shared.predict(tree.clone(), frame, r.explain).await?;
+        let paths = paths.iter().map(|p| convert::path_to(&tree, p)).collect();
+        let reply = match predictions {
             Predictions::Classes { classes, probabilities } => pb::PredictReply {
                 predicted: classes.iter().map(|&c| tree.labels[c as usize].clone()).collect(),
                 classes: tree.labels.clone(),
                 probabilities,
                 values: Vec::new(),
+                paths,
             },
-            Predictions::Values(values) => pb::PredictReply { values, ..Default::default() },
+            Predictions::Values(values) => pb::PredictReply { values, paths, ..Default::default() },
         };
         Ok(Response::new(reply))
     }

@@ -6,7 +6,10 @@ use super::error::{Result, ServiceError};
 use super::{cpu, Service};
 use crate::data::Frame;
 use crate::export;
-use crate::tree::{Predictions, Tree};
+use crate::tree::{PathStep, Predictions, Tree};
+
+/// A row's leaf and, root first, the conditions on its way there.
+pub type RowPath = (u32, Vec<PathStep>);
 
 /// The formats a model is served in.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
@@ -45,13 +48,22 @@ impl Service {
     }
 
     /// Predictions of `tree` for the rows of `frame` (its columns in the tree's order), on
-    /// the CPU pool for calls, within `max_rows`.
-    pub async fn predict(self: &Arc<Self>, tree: Arc<Tree>, frame: Frame) -> Result<Predictions> {
+    /// the CPU pool for calls, within `max_rows`; with `explain`, also each row's leaf and
+    /// the conditions on its way there, within `max_explained_rows` (checked first).
+    pub async fn predict(self: &Arc<Self>, tree: Arc<Tree>, frame: Frame, explain: bool) -> Result<(Predictions, Vec<RowPath>)> {
         let max = self.config.max_rows;
         if frame.rows as u64 > max as u64 {
             return Err(ServiceError::TooLarge { what: "rows".into(), limit: max as u64, message: format!("{} rows is more than the limit of {max}", frame.rows) });
         }
-        cpu(self, move || tree.predict(&frame)).await
+        let max = self.config.max_explained_rows;
+        if explain && frame.rows > max {
+            return Err(ServiceError::cap("explain", &format!("{} rows asked to be explained", frame.rows), "max_explained_rows", max as u64));
+        }
+        cpu(self, move || {
+            let paths = if explain { (0..frame.rows).map(|row| tree.path_row(&frame, row)).collect() } else { Vec::new() };
+            (tree.predict(&frame), paths)
+        })
+        .await
     }
 }
 

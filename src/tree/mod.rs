@@ -17,7 +17,7 @@ mod split;
 pub use criterion::Criterion;
 pub use grow::{fit, TrainSet};
 pub use limits::{CheckedOptions, ClassWeight, FitError, FitOptions, Limits};
-pub use predict::Predictions;
+pub use predict::{PathStep, Predictions};
 pub use prune::{prune, pruning_path, pruning_path_of, PruneStep, PruningPath};
 
 use crate::data::{ColumnKind, Task};

@@ -2,7 +2,7 @@
 
 use rayon::prelude::*;
 
-use super::{SplitRule, Tree};
+use super::{Split, SplitRule, Tree};
 use crate::data::{Column, Frame, MISSING_CODE};
 
 /// Predictions for a batch of rows.
@@ -12,6 +12,16 @@ pub enum Predictions {
     /// class probabilities (`n_classes` values each, row after row).
     Classes { classes: Vec<u32>, probabilities: Vec<f64> },
     Values(Vec<f64>),
+}
+
+/// One condition a row met on its way to its leaf: the node whose split it is, which way
+/// the row went (`left`: the split's test holds), and whether it went that way because its
+/// cell was missing (or held a category the training data did not have).
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub struct PathStep {
+    pub node: u32,
+    pub left: bool,
+    pub missing: bool,
 }
 
 /// Rows per parallel chunk in batch prediction.
@@ -45,28 +55,47 @@ impl Tree {
         loop {
             let node = &self.nodes[i];
             let Some(split) = &node.split else { return i as u32 };
-            let col = &frame.features[split.feature as usize].column;
-            let left = match (&split.rule, col) {
-                (SplitRule::Threshold(t), Column::Numeric(v)) => {
-                    let x = v[row];
-                    if x.is_nan() {
-                        split.missing_left
-                    } else {
-                        (x as f64) <= *t
-                    }
-                }
-                (SplitRule::Categories(bits), Column::Categorical { codes, .. }) => {
-                    let c = codes[row];
-                    if c == MISSING_CODE || c as usize >= self.columns[split.feature as usize].levels.len() {
-                        split.missing_left
-                    } else {
-                        SplitRule::category_left(bits, c)
-                    }
-                }
-                // A frame that passed `check_frame` never gets here; send the row with missing cells.
-                _ => split.missing_left,
-            };
+            i = if self.takes_left(split, frame, row).0 { node.left } else { node.right } as usize;
+        }
+    }
+
+    /// The leaf row `row` of `frame` reaches and, root first, every condition it met on the
+    /// way: the same walk as [`Tree::apply_row`], written down.
+    pub fn path_row(&self, frame: &Frame, row: usize) -> (u32, Vec<PathStep>) {
+        let mut steps = Vec::new();
+        let mut i = 0usize;
+        loop {
+            let node = &self.nodes[i];
+            let Some(split) = &node.split else { return (i as u32, steps) };
+            let (left, missing) = self.takes_left(split, frame, row);
+            steps.push(PathStep { node: i as u32, left, missing });
             i = if left { node.left } else { node.right } as usize;
+        }
+    }
+
+    /// Whether row `row` goes left at `split`, and whether it went there as a missing cell
+    /// (or a category the training data did not have) following the split's missing side.
+    fn takes_left(&self, split: &Split, frame: &Frame, row: usize) -> (bool, bool) {
+        let col = &frame.features[split.feature as usize].column;
+        match (&split.rule, col) {
+            (SplitRule::Threshold(t), Column::Numeric(v)) => {
+                let x = v[row];
+                if x.is_nan() {
+                    (split.missing_left, true)
+                } else {
+                    ((x as f64) <= *t, false)
+                }
+            }
+            (SplitRule::Categories(bits), Column::Categorical { codes, .. }) => {
+                let c = codes[row];
+                if c == MISSING_CODE || c as usize >= self.columns[split.feature as usize].levels.len() {
+                    (split.missing_left, true)
+                } else {
+                    (SplitRule::category_left(bits, c), false)
+                }
+            }
+            // A frame that passed `check_frame` never gets here; send the row with missing cells.
+            _ => (split.missing_left, true),
         }
     }
 

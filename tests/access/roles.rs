@@ -61,7 +61,7 @@ async fn call(rpc: Rpc, ch: Authed, ids: &Ids) -> Result<(), Status> {
         Rpc::DeleteSchedule => s.delete_schedule(pb::DeleteScheduleRequest { id: missing }).await.map(drop),
         Rpc::ListFires => s.list_fires(pb::ListFiresRequest { schedule_id: ids.schedule.clone(), ..Default::default() }).await.map(drop),
         Rpc::GetModel => m.get_model(pb::GetModelRequest { run_id: ids.run.clone(), format: pb::ModelFormat::Json as i32 }).await.map(drop),
-        Rpc::Predict => m.predict(pb::PredictRequest { run_id: ids.run.clone(), rows: None }).await.map(drop),
+        Rpc::Predict => m.predict(pb::PredictRequest { run_id: ids.run.clone(), rows: None, ..Default::default() }).await.map(drop),
     }
 }
 

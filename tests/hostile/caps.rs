@@ -478,3 +478,23 @@ fn caps_of_zero_are_refused_at_start() {
         assert!(e.contains(key), "{key}: {e}");
     }
 }
+
+/// Explaining predictions sends a path per row back, so the rows one call may explain are
+/// capped; predicting the same rows without paths is not.
+#[test]
+fn explained_rows_at_the_cap_pass_and_above_are_refused() {
+    let mut s = server_with("max_explained_rows = 150\n", &[]);
+    let id = started(&s, &["--max-depth", "1,3"]);
+    assert_eq!(wait_terminal(&s, &id)["state"], "finished");
+    let iris = data("iris.csv");
+    let lines = s.run(&["predict", &id, iris.to_str().unwrap(), "--explain", "--json"]).json_lines();
+    assert_eq!(lines.len(), 150);
+    assert!(lines.iter().all(|l| l["path"].as_array().is_some_and(|p| !p.is_empty()) && l["leaf"].is_u64()), "{:?}", lines[0]);
+    let dir = TempDir::new("explain-cap");
+    let bigger = dir.join("iris151.csv");
+    let text = std::fs::read_to_string(&iris).unwrap();
+    let last = text.lines().last().unwrap().to_string();
+    std::fs::write(&bigger, format!("{}\n{last}\n", text.trim_end())).unwrap();
+    refused(&mut s, &["predict", &id, bigger.to_str().unwrap(), "--explain"], "ResourceExhausted", &["explain", "151 rows", "max_explained_rows = 150"]);
+    assert_eq!(s.run(&["predict", &id, bigger.to_str().unwrap(), "--json"]).json_lines().len(), 151);
+}

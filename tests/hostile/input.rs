@@ -231,7 +231,7 @@ fn unknown_ids_are_not_found_for_every_call() {
     f.refused("FollowRun", r, Code::NotFound, &[ghost_run]);
     let r = f.rt.block_on(f.models().get_model(pb::GetModelRequest { run_id: ghost_run.into(), format: pb::ModelFormat::Json as i32 }));
     f.refused("GetModel", r, Code::NotFound, &[ghost_run]);
-    let r = f.rt.block_on(f.models().predict(pb::PredictRequest { run_id: ghost_run.into(), rows: Some(pb::Table::default()) }));
+    let r = f.rt.block_on(f.models().predict(pb::PredictRequest { run_id: ghost_run.into(), rows: Some(pb::Table::default()), ..Default::default() }));
     f.refused("Predict", r, Code::NotFound, &[ghost_run]);
     let start = pb::StartRunRequest { dataset_id: ghost_ds.into(), ..Default::default() };
     let r = f.rt.block_on(f.runs().start_run(start));
@@ -260,7 +260,7 @@ fn unknown_ids_are_not_found_for_every_call() {
 fn predict_with_the_wrong_columns_is_refused_by_column() {
     let mut f = fixture();
     let run = f.run.clone();
-    let predict = |f: &Fixture, columns: Vec<pb::TableColumn>| f.rt.block_on(f.models().predict(pb::PredictRequest { run_id: run.clone(), rows: Some(pb::Table { columns }) }));
+    let predict = |f: &Fixture, columns: Vec<pb::TableColumn>| f.rt.block_on(f.models().predict(pb::PredictRequest { run_id: run.clone(), rows: Some(pb::Table { columns }), ..Default::default() }));
     let r = predict(&f, vec![numbers("sepal_length_cm", &[5.1]), numbers("sepal_width_cm", &[3.5])]);
     f.refused("a missing feature column", r, Code::InvalidArgument, &["rows.columns", "petal_length_cm"]);
     let four = |w: pb::TableColumn| vec![numbers("sepal_length_cm", &[5.1]), numbers("sepal_width_cm", &[3.5]), numbers("petal_length_cm", &[1.4]), w];
@@ -268,7 +268,7 @@ fn predict_with_the_wrong_columns_is_refused_by_column() {
     f.refused("text for a numeric column", r, Code::InvalidArgument, &["petal_width_cm", "number"]);
     let r = predict(&f, four(numbers("petal_width_cm", &[0.2, 0.3])));
     f.refused("columns of different lengths", r, Code::InvalidArgument, &["petal_width_cm"]);
-    let r = f.rt.block_on(f.models().predict(pb::PredictRequest { run_id: f.run.clone(), rows: None }));
+    let r = f.rt.block_on(f.models().predict(pb::PredictRequest { run_id: f.run.clone(), rows: None, ..Default::default() }));
     f.refused("no rows", r, Code::InvalidArgument, &["rows"]);
     let r = f.rt.block_on(f.models().get_model(pb::GetModelRequest { run_id: f.run.clone(), format: 99 }));
     f.refused("an unknown model format", r, Code::InvalidArgument, &["format", "99"]);

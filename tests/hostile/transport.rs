@@ -217,7 +217,7 @@ fn predict_over_the_models_request_limit_is_resource_exhausted() {
     let rt = runtime();
     let ch = rt.block_on(channel(&server));
     // Refused before the handler looks for the run.
-    let r = rt.block_on(models(&ch).predict(pb::PredictRequest { run_id: "run_none".into(), rows: Some(table(20_000)) }));
+    let r = rt.block_on(models(&ch).predict(pb::PredictRequest { run_id: "run_none".into(), rows: Some(table(20_000)), ..Default::default() }));
     expect("Predict of 160 kB", r, Code::ResourceExhausted, &["65536 bytes", "pollard.v1.Models", "models_max_request_bytes"]);
     assert_alive(&mut server);
     assert_eq!(snapshot(&server), before);
