@@ -12,7 +12,8 @@
 //! - [`onnx_pb`] prost messages of the vendored ONNX schema, which [`export::onnx`] builds
 //!
 //! The shell:
-//! - [`store`]  the `Storage` interface (datasets, runs, events, the queue, schedules) and its sled backend
+//! - [`store`]  the `Storage` interface (datasets, runs, events, the queue, schedules) and its
+//!   backends: sled (one process) and PostgreSQL (replicas sharing one database)
 //! - [`service`] the operations with core types (datasets, runs, models, schedules), one
 //!   error enum; `rpc` converts and calls them, the scheduler calls them directly
 //! - [`access`] tokens and roles, the role each RPC needs, TLS, reloads, owner-only data

@@ -50,7 +50,18 @@ pub async fn run_with_clock(listener: TcpListener, config: Config, store: Arc<dy
         true => Some(tonic_reflection::server::Builder::configure().register_encoded_file_descriptor_set(pb::DESCRIPTOR).build_v1().map_err(|e| format!("reflection: {e}"))?),
         false => None,
     };
-    info!(%addr, data = %shared.config.data_dir.display(), tls = access.tls.is_some(), tokens = access.gate.needs_tokens(), "pollard serving");
+    spawn_store_health(&shared, health_reporter.clone());
+    if shared.store.shared() {
+        spawn_leases(&shared);
+        let woken = Arc::downgrade(&shared);
+        shared.store.watch_changes(Arc::new(move || {
+            if let Some(s) = woken.upgrade() {
+                s.announce();
+                s.queued.notify_waiters();
+            }
+        }));
+    }
+    info!(%addr, store = %shared.store.describe(), tls = access.tls.is_some(), tokens = access.gate.needs_tokens(), "pollard serving");
     let stop = {
         let shared = shared.clone();
         async move {
@@ -93,6 +104,72 @@ pub async fn run_with_clock(listener: TcpListener, config: Config, store: Arc<dy
     .map_err(|e| format!("server: {e}"));
     drain(&shared, workers).await;
     served
+}
+
+/// How often the store's health is looked at.
+const STORE_HEALTH_EVERY: std::time::Duration = std::time::Duration::from_secs(2);
+
+/// Reports every service NOT_SERVING while the store cannot be used (a database that cannot
+/// be reached), and SERVING again once it can; calls meanwhile fail with UNAVAILABLE.
+fn spawn_store_health(shared: &Arc<Shared>, reporter: tonic_health::server::HealthReporter) {
+    let shared = shared.clone();
+    tokio::spawn(async move {
+        let mut stop = shared.shutdown.subscribe();
+        let mut serving = true;
+        loop {
+            let store = shared.store.clone();
+            let checked = tokio::task::spawn_blocking(move || store.check()).await.unwrap_or_else(|e| Err(crate::store::StoreError::Io(e.to_string())));
+            if checked.is_ok() != serving {
+                serving = checked.is_ok();
+                let status = if serving { tonic_health::ServingStatus::Serving } else { tonic_health::ServingStatus::NotServing };
+                match &checked {
+                    Ok(()) => info!("the store can be used again: serving"),
+                    Err(e) => tracing::warn!(error = %e, "the store cannot be used: not serving"),
+                }
+                for name in SERVICES.into_iter().chain([""]) {
+                    reporter.set_service_status(name, status).await;
+                }
+            }
+            tokio::select! {
+                _ = tokio::time::sleep(STORE_HEALTH_EVERY) => {}
+                _ = stop.changed() => return,
+            }
+        }
+    });
+}
+
+/// A shared store's heartbeat: renews this replica's leases every third of `lease_secs`,
+/// and lines up the running runs whose replica is gone for the workers to resume.
+fn spawn_leases(shared: &Arc<Shared>) {
+    let shared = shared.clone();
+    tokio::spawn(async move {
+        let mut stop = shared.shutdown.subscribe();
+        let every = std::time::Duration::from_millis(shared.config.lease_secs * 1000 / 3);
+        loop {
+            tokio::select! {
+                _ = tokio::time::sleep(every) => {}
+                _ = stop.changed() => return,
+            }
+            let s = shared.clone();
+            let turn = tokio::task::spawn_blocking(move || {
+                s.store.renew_leases()?;
+                if s.stopping.load(Ordering::SeqCst) {
+                    return Ok(Vec::new());
+                }
+                s.store.take_abandoned()
+            });
+            match turn.await {
+                Ok(Ok(runs)) if !runs.is_empty() => {
+                    info!(runs = runs.len(), "taking over runs whose replica stopped renewing its lease");
+                    shared.resumable.lock().unwrap().extend(runs.into_iter().map(|r| r.id));
+                    shared.queued.notify_waiters();
+                }
+                Ok(Ok(_)) => {}
+                Ok(Err(e)) => tracing::warn!(error = %e, "cannot renew the run leases"),
+                Err(e) => tracing::warn!(error = %e, "the lease turn failed"),
+            }
+        }
+    });
 }
 
 /// Sends small writes at once: with Nagle's algorithm on, a reply written in pieces waits for

@@ -88,7 +88,9 @@ pub async fn worker_loop(shared: Arc<Shared>) {
 
 /// Lines up the runs a previous process left running, for the workers to take first.
 pub fn queue_resumes(shared: &Shared) {
-    match shared.store.running_runs() {
+    // A shared store's running runs may be other replicas' work: only the abandoned ones.
+    let left = if shared.store.shared() { shared.store.take_abandoned() } else { shared.store.running_runs() };
+    match left {
         Ok(runs) => shared.resumable.lock().unwrap().extend(runs.into_iter().map(|r| r.id)),
         Err(e) => error!("cannot list running runs: {e}"),
     }
@@ -178,13 +180,16 @@ fn execute_blocking(shared: &Shared, run: &Run, cancel: &AtomicBool) -> Ending {
     let so_far: Mutex<Vec<sweep::UnitResult>> = Mutex::new(done.clone());
     let store_failed: Mutex<Option<String>> = Mutex::new(None);
     let stored = Stored::default();
+    // Set when a batch stored nothing because the run ended meanwhile (on a shared store,
+    // perhaps cancelled through another replica): the sweep stops.
+    let ended_elsewhere = AtomicBool::new(false);
     let hooks = &cfg.test_hooks;
     let units = std::thread::scope(|scope| {
         // Owned here, so a panic out of the sweep drops it and the committer ends.
         let (hand_over, handed) = mpsc::channel::<(sweep::UnitResult, Vec<EventKind>)>();
-        scope.spawn(|| commit(shared, &run.id, handed, &store_failed, &stored));
+        scope.spawn(|| commit(shared, &run.id, handed, &store_failed, &stored, &ended_elsewhere));
         let sink = |unit: &sweep::UnitResult, progress: sweep::Progress| {
-            if store_failed.lock().unwrap().is_some() {
+            if store_failed.lock().unwrap().is_some() || ended_elsewhere.load(Ordering::SeqCst) {
                 return Flow::Stop;
             }
             if hooks.unit_delay_ms > 0 {
@@ -220,6 +225,10 @@ fn execute_blocking(shared: &Shared, run: &Run, cancel: &AtomicBool) -> Ending {
     });
     if let Some(e) = store_failed.lock().unwrap().take() {
         return Ending::Failed(format!("cannot store a finished unit: {e}"));
+    }
+    if ended_elsewhere.load(Ordering::SeqCst) {
+        // Its end is stored already; recording another changes nothing.
+        return Ending::Cancelled;
     }
     let units = match units {
         Ok(u) => u,
@@ -276,13 +285,15 @@ const MAX_BATCH: usize = 256;
 /// units is not paced by the disk's sync time), then followers are woken. Order is kept,
 /// and no one hears of a unit before it is stored. After a store failure nothing more is
 /// written and the sweep is told to stop.
-fn commit(shared: &Shared, run_id: &str, handed: mpsc::Receiver<(sweep::UnitResult, Vec<EventKind>)>, failed: &Mutex<Option<String>>, stored: &Stored) {
+fn commit(shared: &Shared, run_id: &str, handed: mpsc::Receiver<(sweep::UnitResult, Vec<EventKind>)>, failed: &Mutex<Option<String>>, stored: &Stored, ended: &AtomicBool) {
     while let Ok(first) = handed.recv() {
         let mut batch = vec![first];
         batch.extend(handed.try_iter().take(MAX_BATCH - 1));
         let n = batch.len();
         if failed.lock().unwrap().is_none() {
             match shared.store.record_units(run_id, batch, shared.now()) {
+                // Nothing stored: the units were stored already, or the run ended meanwhile.
+                Ok(events) if events.is_empty() && shared.store.run(run_id).is_ok_and(|r| r.is_none_or(|r| r.state != RunState::Running)) => ended.store(true, Ordering::SeqCst),
                 Ok(_) => shared.announce(),
                 Err(e) => *failed.lock().unwrap() = Some(e.to_string()),
             }

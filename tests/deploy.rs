@@ -51,9 +51,19 @@ fn yaml_docs(p: &Path) -> Vec<Value> {
     docs
 }
 
+/// The compose file (deploy/compose/): YAML, but not Kubernetes objects.
+fn compose_file() -> PathBuf {
+    deploy_dir().join("compose/compose.yaml")
+}
+
+/// The Kubernetes manifests: every YAML file under deploy/ but the compose file.
+fn kubernetes_files() -> Vec<PathBuf> {
+    deploy_files(&["yaml", "yml"]).into_iter().filter(|p| *p != compose_file()).collect()
+}
+
 /// Every Kubernetes object in deploy/, with the file it came from.
 fn manifests() -> Vec<(PathBuf, Value)> {
-    deploy_files(&["yaml", "yml"]).into_iter().flat_map(|p| yaml_docs(&p).into_iter().map(move |d| (p.clone(), d))).collect()
+    kubernetes_files().into_iter().flat_map(|p| yaml_docs(&p).into_iter().map(move |d| (p.clone(), d))).collect()
 }
 
 fn of_kind(kind: &str) -> Vec<Value> {
@@ -107,7 +117,7 @@ fn config_keys() -> Vec<String> {
 
 #[test]
 fn every_yaml_file_parses_into_kubernetes_objects() {
-    let files = deploy_files(&["yaml", "yml"]);
+    let files = kubernetes_files();
     assert!(files.len() >= 4, "expected the Kubernetes manifests under deploy/, found {files:?}");
     for f in &files {
         let docs = yaml_docs(f);
@@ -118,13 +128,13 @@ fn every_yaml_file_parses_into_kubernetes_objects() {
     }
     // service.yaml holds two documents; the multi-document reading must see both.
     let services = of_kind("Service");
-    assert_eq!(services.len(), 2, "expected the headless and the ClusterIP Service");
+    assert_eq!(services.len(), 3, "expected the headless and the ClusterIP Service, and the replicas' Service");
     // A kustomization lists exactly the other manifests beside it.
     for (path, d) in manifests() {
         if d["kind"].as_str() == Some("Kustomization") {
             let dir = path.parent().unwrap();
             let mut listed: Vec<String> = d["resources"].as_sequence().expect("resources").iter().map(|r| r.as_str().unwrap().to_string()).collect();
-            let mut beside: Vec<String> = deploy_files(&["yaml", "yml"]).iter().filter(|p| p.parent() == Some(dir) && *p != &path).map(|p| p.file_name().unwrap().to_string_lossy().into_owned()).collect();
+            let mut beside: Vec<String> = kubernetes_files().iter().filter(|p| p.parent() == Some(dir) && *p != &path).map(|p| p.file_name().unwrap().to_string_lossy().into_owned()).collect();
             listed.sort();
             beside.sort();
             assert_eq!(listed, beside, "{}: resources should list the manifests beside it", path.display());
@@ -346,8 +356,10 @@ fn ports_and_paths_agree_with_the_config() {
         }
     }
 
-    // Services send port 7311 to the container port, by number or by its name.
-    let services = of_kind("Service");
+    // Services send port 7311 to the container port, by number or by its name (the
+    // StatefulSet's; deploy/replicas has a Service of its own).
+    let replicas: Vec<String> = of_kind("Deployment").iter().map(|d| d["metadata"]["name"].as_str().unwrap().to_string()).collect();
+    let services: Vec<Value> = of_kind("Service").into_iter().filter(|s| !replicas.iter().any(|r| s["metadata"]["name"].as_str() == Some(r))).collect();
     let cluster_ip: Vec<&Value> = services.iter().filter(|s| s["spec"]["clusterIP"].as_str() != Some("None")).collect();
     assert_eq!(cluster_ip.len(), 1, "one ClusterIP Service");
     assert!(matches!(cluster_ip[0]["spec"]["type"].as_str(), None | Some("ClusterIP")));
@@ -585,4 +597,78 @@ fn systemd_analyze_verify_when_available() {
     // Lines about the unit itself; anything else is about this machine's own units.
     let ours: Vec<&str> = stderr.lines().filter(|l| l.contains("pollard.service")).collect();
     assert!(ours.is_empty(), "systemd-analyze verify:\n{}", ours.join("\n"));
+}
+
+// ---------------------------------------------------------------------------------------
+// Replicas on one PostgreSQL database
+
+/// The environment a container sets with plain values, and the names it takes from Secrets.
+fn container_env(container: &Value) -> (BTreeMap<String, String>, Vec<String>) {
+    let mut plain = BTreeMap::new();
+    let mut secret = Vec::new();
+    for e in container["env"].as_sequence().into_iter().flatten() {
+        let name = e["name"].as_str().expect("an env name").to_string();
+        match e["value"].as_str() {
+            Some(v) => {
+                plain.insert(name, v.to_string());
+            }
+            None => {
+                assert!(e["valueFrom"]["secretKeyRef"]["name"].is_string(), "{name} comes from a Secret");
+                secret.push(name);
+            }
+        }
+    }
+    (plain, secret)
+}
+
+#[test]
+fn the_replicas_share_a_database_and_keep_nothing_on_disk() {
+    let deployments = of_kind("Deployment");
+    assert_eq!(deployments.len(), 1, "one Deployment (deploy/replicas)");
+    let d = &deployments[0];
+    assert_eq!(d["spec"]["replicas"].as_u64(), Some(3));
+    let container = pollard_container(d);
+    let (plain, secret) = container_env(&container);
+    assert_eq!(plain.get("POLLARD_STORE").map(String::as_str), Some("postgres"));
+    assert_eq!(secret, ["POLLARD_DATABASE_URL"], "the database URL (and its password) comes from a Secret");
+    // The pods' config, with that environment, chooses the postgres store.
+    let cm = of_kind("ConfigMap").into_iter().next().expect("a ConfigMap");
+    let local = scratch("replicas-pollard.toml");
+    std::fs::write(&local, cm["data"]["pollard.toml"].as_str().unwrap()).unwrap();
+    let env = |k: &str| plain.get(k).cloned().or_else(|| (k == "POLLARD_DATABASE_URL").then(|| "postgres://pollard@db.internal:5432/pollard".to_string()));
+    let config = Config::load(&Flags { config_file: Some(local), ..Flags::default() }, &env).unwrap();
+    assert!(matches!(config.store, pollard::config::StoreChoice::Postgres(_)), "{:?}", config.store);
+    // No volume claim; a writable /tmp for uploads under a read-only root filesystem.
+    assert!(d["spec"]["volumeClaimTemplates"].is_null());
+    let mounts = container["volumeMounts"].as_sequence().expect("volumeMounts");
+    let tmp = mounts.iter().find(|m| m["mountPath"].as_str() == Some("/tmp")).expect("/tmp is mounted");
+    let volumes = d["spec"]["template"]["spec"]["volumes"].as_sequence().expect("volumes");
+    assert!(volumes.iter().any(|v| v["name"] == tmp["name"] && v["emptyDir"].is_mapping()), "/tmp is an emptyDir");
+    // A Service selects the replicas.
+    let labels = &d["spec"]["template"]["metadata"]["labels"];
+    assert!(of_kind("Service").iter().any(|s| s["spec"]["selector"].as_mapping().is_some_and(|sel| sel.iter().all(|(k, v)| &labels[k] == v))), "no Service selects the replicas");
+}
+
+#[test]
+fn the_compose_example_runs_two_replicas_on_one_database() {
+    let docs = yaml_docs(&compose_file());
+    let services = docs[0]["services"].as_mapping().expect("services");
+    let mut replicas = 0;
+    for (name, svc) in services {
+        let env = &svc["environment"];
+        if env["POLLARD_STORE"].as_str() == Some("postgres") {
+            replicas += 1;
+            let url = env["POLLARD_DATABASE_URL"].as_str().expect("a database URL");
+            let vars = |k: &str| match k {
+                "POLLARD_STORE" => Some("postgres".to_string()),
+                "POLLARD_DATABASE_URL" => Some(url.to_string()),
+                _ => None,
+            };
+            let config = Config::load(&Flags::default(), &vars).unwrap_or_else(|e| panic!("{name:?}: {e}"));
+            assert!(matches!(config.store, pollard::config::StoreChoice::Postgres(_)));
+            let host = url.split('@').nth(1).and_then(|h| h.split(':').next()).expect("a host in the URL");
+            assert!(services.contains_key(host), "{name:?}: the database host {host} is a service of the file");
+        }
+    }
+    assert_eq!(replicas, 2);
 }

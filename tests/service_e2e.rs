@@ -9,6 +9,7 @@
 
 use std::collections::{BTreeSet, HashMap};
 use std::path::PathBuf;
+use std::sync::Arc;
 use std::time::{Duration, Instant};
 
 use pollard::config::Config;
@@ -18,7 +19,7 @@ use pollard::pb;
 use pollard::pb::datasets_client::DatasetsClient;
 use pollard::pb::models_client::ModelsClient;
 use pollard::pb::runs_client::RunsClient;
-use pollard::store::{SledStore, Storage};
+use pollard::store::{PostgresStore, SledStore, Storage};
 use pollard::tree::{Predictions, SplitRule, Tree};
 use tonic::transport::Channel;
 use tonic::{Code, Status};
@@ -29,9 +30,43 @@ use tonic::{Code, Status};
 mod support;
 #[path = "support/process.rs"]
 mod process;
+#[path = "support/postgres.rs"]
+mod pg;
 use process::expect_status;
 use support::{start, POLL};
 
+
+/// Where a test's store lives: every test here runs once on each backend.
+enum Place {
+    Sled(TempDir),
+    /// A fresh database on the throwaway cluster (tests/support/postgres.rs).
+    Postgres(String),
+}
+
+impl Place {
+    /// A fresh place on each backend: sled always, PostgreSQL when its programs are
+    /// installed (always in CI, which sets POLLARD_REQUIRE_POSTGRES=1).
+    fn each(test: &str) -> Vec<Place> {
+        let mut out = vec![Place::Sled(TempDir::new(test))];
+        out.extend(pg::fresh_database(test).map(Place::Postgres));
+        out
+    }
+
+    fn name(&self) -> &'static str {
+        match self {
+            Place::Sled(_) => "sled",
+            Place::Postgres(_) => "postgres",
+        }
+    }
+
+    /// Opens the store, waiting until a previous server has let go of a sled directory.
+    async fn open(&self) -> Arc<dyn Storage> {
+        match self {
+            Place::Sled(dir) => Arc::new(reopen(&dir.0).await),
+            Place::Postgres(url) => Arc::new(PostgresStore::open(url).unwrap()),
+        }
+    }
+}
 
 /// How long any one condition may take before the test fails.
 const PATIENCE: Duration = Duration::from_secs(45);
@@ -294,8 +329,15 @@ async fn sweep_to_end(runs: &mut RunsClient<Channel>, request: pb::StartRunReque
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn datasets_upload_version_list_delete_and_refuse() {
+    for place in Place::each("datasets_upload_version_list_delete_and_refuse") {
+        eprintln!("datasets_upload_version_list_delete_and_refuse on {}", place.name());
+        datasets_upload_version_list_delete_and_refuse_on(&place).await;
+    }
+}
+
+async fn datasets_upload_version_list_delete_and_refuse_on(place: &Place) {
     let config = Config { max_upload_bytes: 10_000, max_rows: 160, ..test_config() };
-    let server = start(SledStore::open_temporary().unwrap(), config).await;
+    let server = start(place.open().await, config).await;
     let mut datasets = DatasetsClient::new(server.channel().await);
     let iris = data_file("iris.csv");
     assert!(iris.len() > 3 * CHUNK, "the upload goes in several chunks");
@@ -418,7 +460,14 @@ async fn datasets_upload_version_list_delete_and_refuse() {
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn sweep_follow_inspect_export_and_predict() {
-    let server = start(SledStore::open_temporary().unwrap(), test_config()).await;
+    for place in Place::each("sweep_follow_inspect_export_and_predict") {
+        eprintln!("sweep_follow_inspect_export_and_predict on {}", place.name());
+        sweep_follow_inspect_export_and_predict_on(&place).await;
+    }
+}
+
+async fn sweep_follow_inspect_export_and_predict_on(place: &Place) {
+    let server = start(place.open().await, test_config()).await;
     let ch = server.channel().await;
     let mut datasets = DatasetsClient::new(ch.clone());
     let mut runs = RunsClient::new(ch.clone());
@@ -659,9 +708,16 @@ fn long_spec() -> pb::SweepSpec {
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn queue_cancel_list_and_refuse() {
+    for place in Place::each("queue_cancel_list_and_refuse") {
+        eprintln!("queue_cancel_list_and_refuse on {}", place.name());
+        queue_cancel_list_and_refuse_on(&place).await;
+    }
+}
+
+async fn queue_cancel_list_and_refuse_on(place: &Place) {
     // long_spec's 30 repeats are above the default cap of 20.
     let config = Config { concurrent_runs: 1, max_settings: 500, max_repeats: 30, ..test_config() };
-    let server = start(SledStore::open_temporary().unwrap(), config).await;
+    let server = start(place.open().await, config).await;
     let ch = server.channel().await;
     let mut datasets = DatasetsClient::new(ch.clone());
     let mut runs = RunsClient::new(ch.clone());
@@ -854,12 +910,19 @@ fn restart_spec(repeats: u32) -> pb::SweepSpec {
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn restart_resumes_a_run_without_repeating_units() {
-    let dir = TempDir::new("restart");
+    for backend in 0..Place::each("restart").len() {
+        restart_on(backend).await;
+    }
+}
+
+/// The restart test on the backend at `backend` in [`Place::each`].
+async fn restart_on(backend: usize) {
     // If the run ends before the stop takes effect, the attempt proves nothing: try again
-    // with a bigger run.
+    // with a bigger run, on a fresh store.
     for repeats in [10, 40, 160] {
-        let _ = std::fs::remove_dir_all(&dir.0);
-        let mut server = start(SledStore::open(&dir.0).unwrap(), test_config()).await;
+        let place = Place::each("restart").swap_remove(backend);
+        eprintln!("restart on {}, {repeats} repeats", place.name());
+        let mut server = start(place.open().await, test_config()).await;
         let ch = server.channel().await;
         let mut datasets = DatasetsClient::new(ch.clone());
         let mut runs = RunsClient::new(ch.clone());
@@ -895,7 +958,7 @@ async fn restart_resumes_a_run_without_repeating_units() {
         }
 
         // The stopped server left the run running, with its finished units stored.
-        let store = reopen(&dir.0).await;
+        let store = place.open().await;
         let stored = store.run(&run.id).unwrap().unwrap();
         if stored.state == pollard::job::RunState::Finished {
             eprintln!("the run of {repeats} repeats finished before the stop; trying a bigger one");
@@ -951,6 +1014,13 @@ async fn restart_resumes_a_run_without_repeating_units() {
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn health_and_reflection() {
+    for place in Place::each("health_and_reflection") {
+        eprintln!("health_and_reflection on {}", place.name());
+        health_and_reflection_on(&place).await;
+    }
+}
+
+async fn health_and_reflection_on(place: &Place) {
     use tonic_health::pb::health_check_response::ServingStatus;
     use tonic_health::pb::health_client::HealthClient;
     use tonic_health::pb::HealthCheckRequest;
@@ -959,7 +1029,7 @@ async fn health_and_reflection() {
     use tonic_reflection::pb::v1::server_reflection_response::MessageResponse;
     use tonic_reflection::pb::v1::ServerReflectionRequest;
 
-    let server = start(SledStore::open_temporary().unwrap(), test_config()).await;
+    let server = start(place.open().await, test_config()).await;
     let ch = server.channel().await;
     let mut health = HealthClient::new(ch.clone());
     for service in pollard::server::SERVICES {
@@ -994,7 +1064,14 @@ async fn health_and_reflection() {
 /// falls), and event times never go backwards within the run.
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn progress_rises_with_the_sequence_on_two_threads() {
-    let server = start(SledStore::open_temporary().unwrap(), test_config()).await;
+    for place in Place::each("progress_rises_with_the_sequence_on_two_threads") {
+        eprintln!("progress_rises_with_the_sequence_on_two_threads on {}", place.name());
+        progress_rises_with_the_sequence_on_two_threads_on(&place).await;
+    }
+}
+
+async fn progress_rises_with_the_sequence_on_two_threads_on(place: &Place) {
+    let server = start(place.open().await, test_config()).await;
     let ch = server.channel().await;
     let mut datasets = DatasetsClient::new(ch.clone());
     let mut runs = RunsClient::new(ch.clone());
@@ -1019,5 +1096,56 @@ async fn progress_rises_with_the_sequence_on_two_threads() {
     }
     assert_eq!(units, 240, "every unit announced its progress once");
     assert!(matches!(events.last().and_then(|e| e.kind.as_ref()), Some(pb::run_event::Kind::Finished(_))), "the run finished");
+    server.stop().await;
+}
+
+// ------------------------------------------------------------------ an unreachable database
+
+/// The database stops under a running server: health turns NOT_SERVING and calls fail at
+/// once with UNAVAILABLE naming the database; once it is back, the server serves again
+/// with nothing lost.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_database_that_goes_away_is_reported_not_hung_on() {
+    use tonic_health::pb::health_check_response::ServingStatus;
+    use tonic_health::pb::health_client::HealthClient;
+    use tonic_health::pb::HealthCheckRequest;
+
+    let mut cluster = match pg::Cluster::start() {
+        Ok(c) => c,
+        Err(why) => {
+            assert!(std::env::var(pg::REQUIRE).as_deref() != Ok("1"), "{}=1 and PostgreSQL is not usable: {why}", pg::REQUIRE);
+            eprintln!("skipped: {why}");
+            return;
+        }
+    };
+    let url = cluster.fresh_database("gone");
+    let server = start(Arc::new(PostgresStore::open(&url).unwrap()), test_config()).await;
+    let ch = server.channel().await;
+    let mut health = HealthClient::new(ch.clone());
+    let mut datasets = DatasetsClient::new(ch.clone());
+    let status_of = |h: &mut HealthClient<Channel>| {
+        let mut h = h.clone();
+        async move { h.check(HealthCheckRequest { service: "pollard.v1.Runs".into() }).await.unwrap().into_inner().status() }
+    };
+    assert_eq!(status_of(&mut health).await, ServingStatus::Serving);
+    upload(&mut datasets, "iris", "target", data_file("iris.csv")).await.unwrap();
+
+    cluster.stop();
+    let deadline = Instant::now() + PATIENCE;
+    while status_of(&mut health).await != ServingStatus::NotServing {
+        assert!(Instant::now() < deadline, "health still says SERVING with the database stopped");
+        tokio::time::sleep(POLL).await;
+    }
+    let listed = tokio::time::timeout(PATIENCE, datasets.list_datasets(pb::ListDatasetsRequest::default())).await.expect("a call hung on the stopped database");
+    expect_status("ListDatasets with the database stopped", listed, Code::Unavailable, &["database"]);
+
+    cluster.restart();
+    while status_of(&mut health).await != ServingStatus::Serving {
+        assert!(Instant::now() < deadline, "health did not come back after the database did");
+        tokio::time::sleep(POLL).await;
+    }
+    let names: Vec<String> = all_datasets(&mut datasets).await.into_iter().map(|d| d.name).collect();
+    assert_eq!(names, ["iris"]);
+    drop((health, datasets, ch));
     server.stop().await;
 }

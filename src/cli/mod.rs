@@ -424,10 +424,15 @@ fn serve(a: ServeArgs) -> Result<(), String> {
     unsafe {
         libc::umask(0o077);
     }
-    crate::access::secure_dir(&config.data_dir)?;
+    if config.store == crate::config::StoreChoice::Sled {
+        crate::access::secure_dir(&config.data_dir)?;
+    }
     let runtime = tokio::runtime::Builder::new_multi_thread().enable_all().build().map_err(|e| e.to_string())?;
     runtime.block_on(async move {
-        let store = std::sync::Arc::new(crate::store::SledStore::open(&config.data_dir).map_err(|e| format!("{}: {e}", config.data_dir.display()))?);
+        let store: std::sync::Arc<dyn crate::store::Storage> = match &config.store {
+            crate::config::StoreChoice::Sled => std::sync::Arc::new(crate::store::SledStore::open(&config.data_dir).map_err(|e| format!("{}: {e}", config.data_dir.display()))?),
+            crate::config::StoreChoice::Postgres(url) => std::sync::Arc::new(crate::store::PostgresStore::open_with_lease(&url.0, std::time::Duration::from_secs(config.lease_secs)).map_err(|e| format!("database {}: {e}", url.redacted()))?),
+        };
         let listener = tokio::net::TcpListener::bind(config.listen).await.map_err(|e| format!("cannot listen on {}: {e}", config.listen))?;
         crate::server::run(listener, config, store, shutdown_signal()).await
     })

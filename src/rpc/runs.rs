@@ -23,6 +23,9 @@ pub async fn prepare_run(shared: &Arc<Service>, r: pb::StartRunRequest, schedule
     Ok(shared.admit_run(convert::run_request(r)?, schedule_id).await?)
 }
 
+/// How often a follower looks for events of a shared store with no notification.
+const SHARED_STORE_POLL: std::time::Duration = std::time::Duration::from_secs(1);
+
 impl Api {
     /// StartRun in core terms: see [`Service::queue_run`].
     pub async fn queue_run(&self, caller: &Caller, r: pb::StartRunRequest) -> Result<Run, Status> {
@@ -84,6 +87,8 @@ impl pb::runs_server::Runs for Api {
                 }
                 tokio::select! {
                     _ = changed.changed() => {}
+                    // Another replica's events arrive by notification; this is the safety net.
+                    _ = tokio::time::sleep(SHARED_STORE_POLL), if shared.store.shared() => {}
                     _ = shutdown.changed() => {
                         let _ = tx.send(Err(error::shutting_down("follow again with after_sequence to resume"))).await;
                         return;

@@ -18,6 +18,7 @@
 pub mod files;
 pub mod keys;
 pub mod paging;
+pub mod postgres;
 pub mod records;
 pub mod sled_store;
 
@@ -32,6 +33,7 @@ use crate::drift::DriftReport;
 use crate::job::{DatasetMeta, Event, EventKind, Fire, Run, RunOutcome, RunState, Schedule};
 use crate::sweep::UnitResult;
 
+pub use postgres::PostgresStore;
 pub use sled_store::{store_in_use, SledStore, CHUNK_BYTES, REFS_COUNTED, STAGING_DIR};
 
 /// Why the store could not do what it was asked.
@@ -93,6 +95,40 @@ pub enum PutDataset {
 /// Whether two datasets are one version: same bytes, read the same way.
 pub(crate) fn same_version(a: &DatasetMeta, b: &DatasetMeta) -> bool {
     a.content == b.content && a.target == b.target && a.categorical == b.categorical
+}
+
+/// What a fire's attempt to queue `run` means for the fire and its schedule (inside the
+/// fire's transaction); the run created, if any.
+pub(crate) fn fire_run(s: &mut Schedule, fire: &mut Fire, run: &Run, created: CreateRun) -> Option<Run> {
+    match created {
+        CreateRun::Created(r) => {
+            s.last_run_id = Some(r.id.clone());
+            s.last_dataset_id = Some(r.dataset_id.clone());
+            fire.run_id = Some(r.id.clone());
+            return Some(r);
+        }
+        CreateRun::Existing(r) => fire.run_id = Some(r.id),
+        CreateRun::DatasetMissing => fire.fail(format!("dataset {} was deleted before the run could be queued", run.dataset_id)),
+        // Not returned here: the scheduler checks the queue cap before it records a fire.
+        CreateRun::QueueFull => fire.fail("the queue is full".into()),
+    }
+    None
+}
+
+/// An event a unit announces, with the store's count of stored units in a progress event.
+pub(crate) fn announced(kind: &EventKind, units_done: u32) -> EventKind {
+    let mut kind = kind.clone();
+    if let EventKind::Progress(p) = &mut kind {
+        p.units_done = units_done as usize;
+    }
+    kind
+}
+
+/// Numbers a fire and moves its schedule past the instants it considered.
+pub(crate) fn number_fire(s: &mut Schedule, fire: &mut Fire, considered: i64) {
+    fire.sequence = s.next_fire_sequence;
+    s.next_fire_sequence += 1;
+    s.considered_until = considered;
 }
 
 /// What [`Storage::delete_dataset`] did.
@@ -161,6 +197,40 @@ pub trait Storage: Send + Sync {
 
     /// Writes everything out (changes already are, when they return; this is for shutdown).
     fn flush(&self) -> Result<(), StoreError>;
+
+    /// Whether the store can be used now (health checks); a backend on a local disk always can.
+    fn check(&self) -> Result<(), StoreError> {
+        Ok(())
+    }
+
+    /// What the store is and where, for the log (no secrets).
+    fn describe(&self) -> String;
+
+    // -- several processes on one store
+
+    /// Whether other processes may share this store (then runs are leased, see below).
+    fn shared(&self) -> bool {
+        false
+    }
+
+    /// Renews the leases of the running runs this process executes; a shared backend's
+    /// heartbeat. Nothing for a backend that one process owns.
+    fn renew_leases(&self) -> Result<(), StoreError> {
+        Ok(())
+    }
+
+    /// Running runs whose process is gone (their lease expired, or was never taken), now
+    /// leased to this process, oldest first: to resume. Nothing for a backend that one
+    /// process owns (its running runs at start are [`Storage::running_runs`]).
+    fn take_abandoned(&self) -> Result<Vec<Run>, StoreError> {
+        Ok(Vec::new())
+    }
+
+    /// Calls `wake` whenever another process may have changed runs or events (a shared
+    /// backend's notifications); nothing for a backend that one process owns.
+    fn watch_changes(&self, wake: std::sync::Arc<dyn Fn() + Send + Sync>) {
+        let _ = wake;
+    }
 
     // -- datasets
 

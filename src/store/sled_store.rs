@@ -49,7 +49,7 @@ use sled::{IVec, Transactional};
 
 use super::paging::{dataset_position, page};
 use super::records::{self, HoldsRecord};
-use super::{files, keys, same_version, Claim, CreateRun, DeleteDataset, PutDataset, Resumed, RunFilter, Storage, StoreError};
+use super::{announced, files, fire_run, keys, number_fire, same_version, Claim, CreateRun, DeleteDataset, PutDataset, Resumed, RunFilter, Storage, StoreError};
 use crate::drift::DriftReport;
 use crate::job::{DatasetMeta, Event, EventKind, Fire, Run, RunOutcome, RunState, Schedule};
 use crate::sweep::UnitResult;
@@ -580,6 +580,10 @@ impl SledStore {
 
 impl Storage for SledStore {
 
+    fn describe(&self) -> String {
+        format!("sled in {}", self.files.dir().parent().map_or_else(|| self.files.dir().display().to_string(), |d| d.display().to_string()))
+    }
+
     /// Writes everything to disk (changes already are, when they return; this is for shutdown).
     fn flush(&self) -> Result<(), StoreError> {
         self.db.flush()?;
@@ -811,11 +815,7 @@ impl Storage for SledStore {
                     tx.insert(UNITS, key, bytes.clone())?;
                     run.units_done += 1;
                     for kind in events.iter() {
-                        let mut kind = kind.clone();
-                        // The store's count of stored units is the one announced.
-                        if let EventKind::Progress(p) = &mut kind {
-                            p.units_done = run.units_done as usize;
-                        }
+                        let kind = announced(kind, run.units_done);
                         out.push(tx.append(&mut run, kind, now)?);
                     }
                 }
@@ -1099,23 +1099,10 @@ impl Storage for SledStore {
                     if let Some(busy) = last.filter(|r| r.state.is_active()) {
                         fire.skip_busy(busy);
                     } else {
-                        match tx.insert_run(run, false)? {
-                            CreateRun::Created(r) => {
-                                s.last_run_id = Some(r.id.clone());
-                                s.last_dataset_id = Some(r.dataset_id.clone());
-                                fire.run_id = Some(r.id.clone());
-                                created = Some(r);
-                            }
-                            CreateRun::Existing(r) => fire.run_id = Some(r.id),
-                            CreateRun::DatasetMissing => fire.fail(format!("dataset {} was deleted before the run could be queued", run.dataset_id)),
-                            // Not returned here: the scheduler checks the queue cap before it records a fire.
-                            CreateRun::QueueFull => fire.fail("the queue is full".into()),
-                        }
+                        created = fire_run(&mut s, &mut fire, run, tx.insert_run(run, false)?);
                     }
                 }
-                fire.sequence = s.next_fire_sequence;
-                s.next_fire_sequence += 1;
-                s.considered_until = considered;
+                number_fire(&mut s, &mut fire, considered);
                 tx.insert(FIRES, keys::fire(id, fire.sequence), records::encode_fire(&fire))?;
                 tx.put_schedule(&s)?;
                 Ok(Some((s, fire, created.clone())))

@@ -22,6 +22,10 @@ use crate::schedule::CatchUp;
 use crate::sweep::{FoldPlan, FoldScheme, FoldScore, Metric, PickRule, Progress, Range, Setting, SettingScore, SweepSpec};
 use crate::tree::{fit, ClassWeight, Criterion, FitOptions, Limits, Splitter, TrainSet, Tree};
 
+/// The throwaway PostgreSQL clusters of the tests (shared with the integration targets).
+#[path = "../../tests/support/postgres.rs"]
+mod pg;
+
 // ---------------------------------------------------------------------------------------
 // Helpers
 
@@ -936,9 +940,23 @@ fn all_datasets(store: &dyn Storage, name: Option<&str>) -> Vec<DatasetMeta> {
 }
 
 /// Every backend the model test checks: its name, and how to open it on a directory (again
-/// after a reopen, with what it held). A new backend adds one line here.
+/// after a reopen, with what it held). A new backend adds one line here. PostgreSQL joins
+/// when its programs are installed (see `pg`), each directory standing for a database of
+/// its own on the throwaway cluster.
 fn backends() -> Vec<(&'static str, fn(&Path) -> Box<dyn Storage>)> {
-    vec![("sled", |dir| Box::new(SledStore::open(dir).unwrap()))]
+    let mut out: Vec<(&'static str, fn(&Path) -> Box<dyn Storage>)> = vec![("sled", |dir| Box::new(SledStore::open(dir).unwrap()))];
+    match pg::available() {
+        Ok(_) => out.push(("postgres", |dir| Box::new(PostgresStore::open(&database_for(dir)).unwrap()))),
+        Err(why) => eprintln!("the model test skips the postgres backend: {why}"),
+    }
+    out
+}
+
+/// The database standing for a test directory: made on first use, the same one after.
+fn database_for(dir: &Path) -> String {
+    static MADE: std::sync::Mutex<BTreeMap<PathBuf, String>> = std::sync::Mutex::new(BTreeMap::new());
+    let mut made = MADE.lock().unwrap();
+    made.entry(dir.to_path_buf()).or_insert_with(|| pg::available().unwrap().fresh_database("model")).clone()
 }
 
 proptest! {
@@ -1155,4 +1173,143 @@ fn fixture_store_of_017cda4_decodes() {
     assert!(fires.iter().all(|f| f.scheduled_for % 60_000 == 0 && f.missed == 0));
     assert_eq!(store.queued_count().unwrap(), 0);
     assert!(store.running_runs().unwrap().is_empty());
+}
+
+// ---------------------------------------------------------------------------------------
+// The PostgreSQL test harness
+
+#[test]
+fn the_throwaway_cluster_serves_fresh_databases() {
+    let Ok(cluster) = pg::available().map_err(|why| eprintln!("skipped: {why}")) else { return };
+    let a = cluster.fresh_database("harness a");
+    let b = cluster.fresh_database("harness b");
+    assert_ne!(a, b);
+    let name = a.rsplit('/').next().unwrap();
+    assert_eq!(cluster.sql(name, "SELECT current_user").trim(), pg::ROLE);
+    // The server never runs as root.
+    let status = std::fs::read_to_string(format!("/proc/{}/status", cluster.pid)).unwrap();
+    let uid = status.lines().find_map(|l| l.strip_prefix("Uid:")).and_then(|l| l.split_whitespace().next()).unwrap();
+    assert_ne!(uid, "0", "the server runs as root");
+}
+
+#[test]
+fn replicas_starting_together_migrate_once() {
+    let Ok(cluster) = pg::available().map_err(|why| eprintln!("skipped: {why}")) else { return };
+    let url = cluster.fresh_database("migrate");
+    let opened: Vec<PostgresStore> = std::thread::scope(|s| {
+        let handles: Vec<_> = (0..3).map(|_| s.spawn(|| PostgresStore::open(&url).unwrap())).collect();
+        handles.into_iter().map(|h| h.join().unwrap()).collect()
+    });
+    let name = url.rsplit('/').next().unwrap();
+    let versions = cluster.sql(name, "SELECT string_agg(version::text, ',' ORDER BY version) FROM pollard_migrations");
+    let want: Vec<String> = postgres::migrate::MIGRATIONS.iter().map(|m| m.0.to_string()).collect();
+    assert_eq!(versions.trim(), want.join(","));
+    // A database that a newer build migrated is refused, naming the versions.
+    cluster.sql(name, "INSERT INTO pollard_migrations (version, name) VALUES (9999, 'from the future')");
+    drop(opened);
+    let e = PostgresStore::open(&url).err().expect("a newer schema is refused");
+    assert!(matches!(&e, StoreError::Corrupt(m) if m.contains("9999")), "{e}");
+}
+
+/// A schedule as the scheduler's tests make it: nightly at 03:00 UTC on `reefer`.
+fn schedule(id: &str, created_at: i64) -> Schedule {
+    Schedule {
+        id: id.into(),
+        name: "nightly".into(),
+        cron: "0 3 * * *".into(),
+        time_zone: "UTC".into(),
+        dataset_name: "reefer".into(),
+        dataset_id: None,
+        target: "spoiled".into(),
+        spec: full_spec(3),
+        labels: BTreeMap::from([("team".to_string(), "cold-chain".to_string())]),
+        retention: Retention { keep_last: Some(2), keep_days: None },
+        catch_up: CatchUp::Once,
+        skip_unchanged: false,
+        drift: crate::drift::DriftThresholds::default(),
+        paused: false,
+        created_at,
+        considered_until: created_at,
+        last_run_id: None,
+        last_dataset_id: None,
+        next_fire_sequence: 1,
+    }
+}
+
+/// A fire as the scheduler drafts it before the store numbers it.
+fn draft_fire(at: i64) -> Fire {
+    Fire { sequence: 0, scheduled_for: at, handled_at: at + 1, outcome: FireOutcome::Started, run_id: Default::default(), missed: 0, detail: Default::default() }
+}
+
+/// Schedules and fires through every operation; returns each answer, to compare backends.
+fn schedule_script(store: &dyn Storage) -> Vec<String> {
+    let mut out = Vec::new();
+    let mut say = |what: &str, answer: String| out.push(format!("{what}: {answer}"));
+    let ds = match store.put_dataset(meta("ds_sched", "reefer", 1, 24), &content(0)).unwrap() {
+        PutDataset::Created(m) => m,
+        other => panic!("{other:?}"),
+    };
+    for i in 0..3 {
+        say("create", format!("{:?}", store.create_schedule(&schedule(&format!("sch_{i:03}"), 10 + i)).unwrap()));
+    }
+    say("create again", format!("{:?}", store.create_schedule(&schedule("sch_001", 99)).unwrap()));
+    say("get", format!("{:?}", store.schedule("sch_001").unwrap()));
+    say("get unknown", format!("{:?}", store.schedule("sch_999").unwrap()));
+    let (page1, token) = store.list_schedules(None, 2).unwrap();
+    say("page 1", format!("{:?} {token:?}", page1.iter().map(|s| &s.id).collect::<Vec<_>>()));
+    say("page 2", format!("{:?}", store.list_schedules(token.as_deref(), 2).unwrap().0.iter().map(|s| &s.id).collect::<Vec<_>>()));
+    say("all", format!("{:?}", store.all_schedules().unwrap().iter().map(|s| &s.id).collect::<Vec<_>>()));
+    let run = |n: u32, at: i64| {
+        let mut r = Run::queued(format!("run_{n:06}"), &ds, "spoiled".into(), full_spec(4), at);
+        r.schedule_id = Some("sch_000".into());
+        r.idempotency_key = Some(format!("sch_000@{at}"));
+        r
+    };
+    // A fire that starts a run; one whose considered_until is stale; one while the run is busy.
+    say("fire 1", format!("{:?}", store.record_fire("sch_000", 10, 100, &draft_fire(100), Some(&run(1, 100))).unwrap()));
+    say("fire stale", format!("{:?}", store.record_fire("sch_000", 10, 200, &draft_fire(200), Some(&run(2, 200))).unwrap()));
+    say("fire busy", format!("{:?}", store.record_fire("sch_000", 100, 200, &draft_fire(200), Some(&run(2, 200))).unwrap()));
+    say("claim", format!("{:?}", store.claim_next(201).unwrap().map(|r| r.id)));
+    say("finish", format!("{:?}", store.finish_run("run_000001", &outcome(None), None, 202).unwrap()));
+    // The same fire instant again (a second scheduler): the idempotency key names the run.
+    say("fire again", format!("{:?}", store.record_fire("sch_000", 200, 300, &draft_fire(100), Some(&run(1, 100))).unwrap()));
+    say("fire new", format!("{:?}", store.record_fire("sch_000", 300, 400, &draft_fire(400), Some(&run(3, 400))).unwrap()));
+    say("fire without run", format!("{:?}", store.record_fire("sch_000", 400, 500, &draft_fire(500), None).unwrap()));
+    say("paused", format!("{:?}", store.update_schedule("sch_000", &|s| s.paused = true).unwrap()));
+    say("fire paused", format!("{:?}", store.record_fire("sch_000", 500, 600, &draft_fire(600), None).unwrap()));
+    say("update unknown", format!("{:?}", store.update_schedule("sch_999", &|s| s.paused = true).unwrap()));
+    let (fires, token) = store.fires("sch_000", None, 2).unwrap();
+    say("fires 1", format!("{fires:?} {token:?}"));
+    let token: Option<u64> = token.map(|t| t.parse().unwrap());
+    say("fires 2", format!("{:?}", store.fires("sch_000", token, 2).unwrap()));
+    say("fires of another", format!("{:?}", store.fires("sch_001", None, 5).unwrap()));
+    // A fire whose dataset was deleted meanwhile fails, and says so.
+    say("delete run", format!("{:?}", store.delete_run("run_000001").unwrap()));
+    say("fire on sch_002", format!("{:?}", store.record_fire("sch_002", 12, 700, &draft_fire(700), Some(&Run::queued("run_000009".into(), &meta("ds_gone", "", 1, 1), "spoiled".into(), full_spec(4), 700))).unwrap()));
+    say("delete", format!("{:?}", store.delete_schedule("sch_000").unwrap()));
+    say("delete again", format!("{:?}", store.delete_schedule("sch_000").unwrap()));
+    say("fires of deleted", format!("{:?}", store.fires("sch_000", None, 5).unwrap()));
+    say("runs stay", format!("{:?}", store.list_runs(&RunFilter::default(), None, 10).unwrap().0.iter().map(|r| (&r.id, r.state)).collect::<Vec<_>>()));
+    out
+}
+
+#[test]
+fn schedules_and_fires_answer_alike_on_every_backend() {
+    let mut answers: Vec<(&str, Vec<String>)> = Vec::new();
+    for (name, open) in backends() {
+        let dir = TempDir::new(&format!("schedules-{name}"));
+        let store = open(dir.path());
+        answers.push((name, schedule_script(&*store)));
+    }
+    let (first, want) = &answers[0];
+    // The script checks itself on the first backend: the changes happened as intended.
+    assert!(want.iter().any(|a| a.starts_with("fire busy") && a.contains("SkippedBusy")), "{want:#?}");
+    assert!(want.iter().any(|a| a.starts_with("fire stale: None")));
+    assert!(want.iter().any(|a| a.starts_with("fire on sch_002") && a.contains("Failed")), "{want:#?}");
+    for (name, got) in &answers[1..] {
+        for (w, g) in want.iter().zip(got) {
+            assert_eq!(g, w, "{name} answers unlike {first}");
+        }
+        assert_eq!(got.len(), want.len());
+    }
 }

@@ -311,7 +311,7 @@ mod support;
 use support::{start_with_clock, POLL};
 
 async fn start(store: SledStore, clock: Arc<TestClock>) -> support::Server {
-    start_with_clock(store, config(), clock).await
+    start_with_clock(Arc::new(store), config(), clock).await
 }
 
 async fn upload(ch: &Channel, bytes: Vec<u8>) -> pb::DatasetInfo {
@@ -577,4 +577,65 @@ async fn a_store_failure_is_not_the_callers_fault() {
     };
     let e = api.shared.admit_run(request, None).await.unwrap_err();
     assert!(matches!(e, pollard::service::ServiceError::Storage(_)), "{e:?}");
+}
+
+// ------------------------------------------------------------------ replicas
+
+#[path = "../support/postgres.rs"]
+mod pg;
+
+/// Three servers share one PostgreSQL database and one test clock, like three replicas:
+/// over a simulated week of a schedule every six hours, each instant fires exactly once
+/// (one fire record per instant, whichever replica's scheduler got there first).
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_schedule_on_three_replicas_fires_once_per_instant_over_a_week() {
+    let Some(url) = pg::fresh_database("replica_fires") else { return };
+    let clock = TestClock::new(ms("2027-05-02T23:00:00Z"));
+    let mut servers = Vec::new();
+    for _ in 0..3 {
+        let store = pollard::store::PostgresStore::open(&url).unwrap();
+        servers.push(start_with_clock(Arc::new(store), config(), clock.clone()).await);
+    }
+    let mut ch = Vec::new();
+    for s in &servers {
+        ch.push(s.channel().await);
+    }
+    upload(&ch[0], iris_head(60)).await;
+    let s = SchedulesClient::new(ch[1].clone()).create_schedule(request("0 */6 * * *", "UTC")).await.unwrap().into_inner();
+    let mut instants = Vec::new();
+    let mut at = ms("2027-05-03T00:00:00Z");
+    while at < ms("2027-05-10T00:00:00Z") {
+        instants.push(at);
+        at += 6 * 3_600_000;
+    }
+    for (i, &instant) in instants.iter().enumerate() {
+        clock.set(instant);
+        // Read through a different replica each time.
+        let fires = wait_fires(&ch[i % 3], &s.id, i + 1).await;
+        assert_eq!(fires.len(), i + 1, "instant {i}: {fires:?}");
+        let last = &fires[i];
+        assert_eq!(ms(&last.scheduled_for), instant, "{last:?}");
+        assert!(matches!(outcome(last), pb::FireOutcome::Started | pb::FireOutcome::SkippedBusy), "{last:?}");
+    }
+    // Every replica's scheduler has handled the last instant once this holds on each.
+    let deadline = Instant::now() + PATIENCE;
+    for c in &ch {
+        loop {
+            let got = SchedulesClient::new(c.clone()).get_schedule(pb::GetScheduleRequest { id: s.id.clone() }).await.unwrap().into_inner();
+            if got.next_fire_at.as_str() > "2027-05-09T18:00:00.000Z" {
+                break;
+            }
+            assert!(Instant::now() < deadline, "the schedule was not considered past the week: {got:?}");
+            tokio::time::sleep(POLL).await;
+        }
+    }
+    let fires = wait_fires(&ch[0], &s.id, instants.len()).await;
+    assert_eq!(fires.len(), instants.len(), "one fire per instant, no more");
+    let distinct: BTreeSet<&str> = fires.iter().map(|f| f.scheduled_for.as_str()).collect();
+    assert_eq!(distinct.len(), instants.len());
+    let started: BTreeSet<&str> = fires.iter().filter(|f| outcome(f) == pb::FireOutcome::Started).map(|f| f.run_id.as_str()).collect();
+    assert_eq!(started.len(), fires.iter().filter(|f| outcome(f) == pb::FireOutcome::Started).count(), "no run started twice");
+    for s in servers {
+        s.stop().await;
+    }
 }

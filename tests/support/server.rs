@@ -6,7 +6,7 @@ use std::time::{Duration, Instant};
 
 use pollard::clock::{Clock, SystemClock};
 use pollard::config::Config;
-use pollard::store::SledStore;
+use pollard::store::Storage;
 use tokio::sync::oneshot;
 use tonic::transport::Channel;
 
@@ -21,15 +21,15 @@ pub struct Server {
 
 /// A server on the system clock.
 #[allow(dead_code)]
-pub async fn start(store: SledStore, config: Config) -> Server {
+pub async fn start(store: Arc<dyn Storage>, config: Config) -> Server {
     start_with_clock(store, config, Arc::new(SystemClock)).await
 }
 
-pub async fn start_with_clock(store: SledStore, config: Config, clock: Arc<dyn Clock>) -> Server {
+pub async fn start_with_clock(store: Arc<dyn Storage>, config: Config, clock: Arc<dyn Clock>) -> Server {
     let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap();
     let addr = listener.local_addr().unwrap();
     let (tx, rx) = oneshot::channel();
-    let done = tokio::spawn(pollard::server::run_with_clock(listener, config, Arc::new(store), clock, async move {
+    let done = tokio::spawn(pollard::server::run_with_clock(listener, config, store, clock, async move {
         let _ = rx.await;
     }));
     Server { addr, stop: Some(tx), done }
