@@ -18,6 +18,7 @@
 //! - [`access`] tokens and roles, the role each RPC needs, TLS, reloads, owner-only data
 //! - [`clock`]  the system clock, or a test clock moved by hand
 //! - [`scheduler`] the task that starts schedules' runs at their fire times
+//! - [`web`]    the web view: HTML pages of runs, datasets and schedules, live progress
 //! - [`cli`]    command-line entry point
 //! - [`pb`]     generated protobuf types (only the shell sees them)
 
@@ -38,6 +39,7 @@ pub mod service;
 pub mod store;
 pub mod sweep;
 pub mod tree;
+pub mod web;
 pub mod worker;
 
 /// Generated protobuf and gRPC code for `proto/pollard/v1`.
