@@ -105,6 +105,15 @@ async fn text_of(c: &Client, css: &str) -> String {
     c.find(Locator::Css(css)).await.unwrap_or_else(|e| panic!("no {css} on the page: {e}")).text().await.unwrap()
 }
 
+/// The text of `css` as the page is now, "" while it is missing or the page changes under it
+/// (for polling).
+async fn text_now(c: &Client, css: &str) -> String {
+    match c.find(Locator::Css(css)).await {
+        Ok(e) => e.text().await.unwrap_or_default(),
+        Err(_) => String::new(),
+    }
+}
+
 fn s<'a>(v: &'a Value, key: &str) -> &'a str {
     v[key].as_str().unwrap_or_else(|| panic!("'{key}' is not a string in {v}"))
 }
@@ -198,4 +207,85 @@ async fn the_web_view_in_a_browser() {
     shot(&c, "runs-no-javascript").await;
     c.close().await.unwrap();
     eprintln!("screenshots in {}", screens().display());
+}
+
+/// With tokens on: the sign-in page, a cookie pages cannot read, the role table (a reader
+/// reads but may not cancel; the run's writer cancels it), and signing out.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn signing_in_with_tokens_and_the_role_table() {
+    use pollard::access::tokens::{file_line, new_token};
+    use pollard::access::Role;
+    let (reader, writer) = (new_token().unwrap(), new_token().unwrap());
+    let dir = TempDir::new("web-tokens");
+    let path = dir.join("tokens");
+    std::fs::write(&path, format!("{}\n{}\n", file_line("ro", Role::Reader, &reader), file_line("writer-a", Role::Writer, &writer))).unwrap();
+    let options = ServeOptions {
+        config: Some(format!("tokens_file = {:?}\ncpu_threads = 1\n", path.to_str().unwrap())),
+        env: vec![("POLLARD_TEST_UNIT_DELAY_MS".into(), "500".into())],
+        ..ServeOptions::default()
+    };
+    let server = Serve::start_with(options);
+    let web = server.web_url().unwrap();
+    let as_writer = |args: &[&str]| {
+        let mut all = vec!["--token", writer.as_str()];
+        all.extend_from_slice(args);
+        server.run(&all)
+    };
+    as_writer(&["put", data("iris.csv").to_str().unwrap(), "--name", "iris", "--target", "target"]).ok();
+    let run = as_writer(&["sweep", "--dataset", "iris", "--max-depth", "1,2,3", "--k", "10", "--repeats", "5", "--json"]).json();
+    let id = s(&run, "id").to_string();
+
+    let (_driver, driver_url) = chromedriver();
+    let profile = TempDir::new("chromium-tokens");
+    let c = browser(&driver_url, &profile.join("p"), true).await;
+    let path_is = |want: String| {
+        let c = &c;
+        async move { c.current_url().await.map(|u| u.path() == want).unwrap_or(false) }
+    };
+    let sign_in = |token: String| {
+        let c = &c;
+        let web = web.clone();
+        async move {
+            c.goto(&format!("{web}/sign-in")).await.unwrap();
+            c.find(Locator::Css("#token")).await.unwrap().send_keys(&token).await.unwrap();
+            c.find(Locator::Css("main button[type=submit]")).await.unwrap().click().await.unwrap();
+        }
+    };
+
+    // No cookie: every page sends the browser to sign in.
+    c.goto(&format!("{web}/runs/{id}")).await.unwrap();
+    until("the sign-in page", || path_is("/sign-in".into())).await;
+    shot(&c, "sign-in").await;
+    sign_in("pollard_not_a_known_token".into()).await;
+    until("the refusal of an unknown token", || async { text_now(&c, "main").await.contains("not one this server knows") }).await;
+
+    // A reader reads, sees no cancel button, and a cancel it posts anyway is refused.
+    sign_in(reader.clone()).await;
+    until("the runs page after signing in", || path_is("/runs".into())).await;
+    assert!(text_of(&c, "header").await.contains("signed in as ro (reader)"));
+    assert_eq!(c.execute("return document.cookie.indexOf('pollard_token');", vec![]).await.unwrap(), json!(-1), "the cookie is HttpOnly");
+    c.goto(&format!("{web}/runs/{id}")).await.unwrap();
+    assert!(c.find_all(Locator::Css("form[action$='/cancel']")).await.unwrap().is_empty(), "a reader gets no cancel button");
+    let status = c.execute_async("var done = arguments[arguments.length - 1]; fetch(arguments[0], {method: 'POST'}).then(r => done(r.status), e => done('FAILED ' + e));", vec![json!(format!("/runs/{id}/cancel"))]).await.unwrap();
+    assert_eq!(status, json!(403));
+
+    // Signing out forgets the token.
+    c.find(Locator::Css("header button[type=submit]")).await.unwrap().click().await.unwrap();
+    until("the sign-in page after signing out", || path_is("/sign-in".into())).await;
+    c.goto(&format!("{web}/runs")).await.unwrap();
+    until("the sign-in page again", || path_is("/sign-in".into())).await;
+
+    // The writer who started the run cancels it from its page.
+    sign_in(writer.clone()).await;
+    until("the runs page after signing in as the writer", || path_is("/runs".into())).await;
+    c.goto(&format!("{web}/runs/{id}")).await.unwrap();
+    c.find(Locator::Css("form[action$='/cancel'] button")).await.unwrap().click().await.unwrap();
+    until("the run to read cancelled", || async {
+        let _ = c.refresh().await;
+        text_now(&c, "dl.facts").await.contains("cancelled")
+    })
+    .await;
+    c.close().await.unwrap();
+    let shown = as_writer(&["show", &id, "--json"]).json();
+    assert_eq!(s(&shown, "state"), "cancelled");
 }
