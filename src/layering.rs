@@ -365,7 +365,7 @@ impl Rule {
 /// The core names none of these. `clock` and `pb` are shell modules too (lib.rs code map).
 const CORE: Rule = Rule {
     crates: &["tokio", "tonic", "sled", "tracing"],
-    modules: &["rpc", "cli", "server", "worker", "scheduler", "store", "service", "access", "config", "clock", "pb", "web"],
+    modules: &["rpc", "cli", "server", "worker", "scheduler", "store", "service", "access", "config", "clock", "pb", "web", "metrics"],
     bare: &[],
 };
 

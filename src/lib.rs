@@ -17,6 +17,7 @@
 //!   error enum; `rpc` converts and calls them, the scheduler calls them directly
 //! - [`access`] tokens and roles, the role each RPC needs, TLS, reloads, owner-only data
 //! - [`clock`]  the system clock, or a test clock moved by hand
+//! - [`metrics`] the Prometheus metrics the server counts, served by [`web`] as `/metrics`
 //! - [`scheduler`] the task that starts schedules' runs at their fire times
 //! - [`web`]    the web view: HTML pages of runs, datasets and schedules, live progress
 //! - [`cli`]    command-line entry point
@@ -30,6 +31,7 @@ pub mod data;
 pub mod drift;
 pub mod export;
 pub mod job;
+pub mod metrics;
 pub mod reefer;
 pub mod rpc;
 pub mod schedule;

@@ -289,3 +289,46 @@ async fn signing_in_with_tokens_and_the_role_table() {
     let shown = as_writer(&["show", &id, "--json"]).json();
     assert_eq!(s(&shown, "state"), "cancelled");
 }
+
+/// `/metrics` (this target needs Debian packages anyway: it also holds the `promtool` check,
+/// from the `prometheus` package, which `.ci/run` installs): the counters move by what a
+/// sweep did, and promtool accepts the text.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn metrics_count_a_sweep_and_promtool_accepts_them() {
+    let server = Serve::start();
+    let web = server.web_url().unwrap();
+    let get = |path: &str| -> String {
+        use std::io::{Read, Write};
+        let addr = web.trim_start_matches("http://");
+        let mut stream = TcpStream::connect(addr).unwrap();
+        write!(stream, "GET {path} HTTP/1.0\r\nHost: {addr}\r\n\r\n").unwrap();
+        let mut reply = String::new();
+        stream.read_to_string(&mut reply).unwrap();
+        let (head, body) = reply.split_once("\r\n\r\n").expect("an HTTP reply");
+        assert!(head.starts_with("HTTP/1.0 200") || head.starts_with("HTTP/1.1 200"), "{head}");
+        assert!(head.to_lowercase().contains("content-type: text/plain; version=0.0.4"), "{head}");
+        body.to_string()
+    };
+    let value = |text: &str, series: &str| -> f64 {
+        text.lines().find_map(|l| l.strip_prefix(series).and_then(|rest| rest.strip_prefix(' '))).unwrap_or_else(|| panic!("no {series} in:\n{text}")).trim().parse().unwrap()
+    };
+    let before = get("/metrics");
+    server.run(&["put", data("iris.csv").to_str().unwrap(), "--name", "iris", "--target", "target"]).ok();
+    let started = server.run(&["sweep", "--dataset", "iris", "--max-depth", "1,2,3", "--k", "4", "--json"]).json();
+    let events = server.run(&["follow", s(&started, "id"), "--json"]).json_lines();
+    assert_eq!(events.last().map(|e| s(e, "kind")), Some("finished"));
+    let after = get("/metrics");
+    // 4 folds of one shaping key: 4 units; one finished run; the follow saw every event.
+    assert_eq!(value(&after, "pollard_units_computed_total") - value(&before, "pollard_units_computed_total"), 4.0);
+    assert_eq!(value(&after, "pollard_runs_ended_total{state=\"finished\"}") - value(&before, "pollard_runs_ended_total{state=\"finished\"}"), 1.0);
+    assert_eq!(value(&after, "pollard_run_seconds_count{state=\"finished\"}"), 1.0);
+    assert!(value(&after, "pollard_events_streamed_total") >= events.len() as f64);
+    assert_eq!(value(&after, "pollard_runs{state=\"queued\"}"), 0.0);
+    assert!(value(&after, "pollard_store_bytes") > value(&before, "pollard_store_bytes"), "the upload is on disk");
+
+    let file = TempDir::new("metrics");
+    let path = file.join("metrics.txt");
+    std::fs::write(&path, &after).unwrap();
+    let out = Command::new("promtool").args(["check", "metrics"]).stdin(std::fs::File::open(&path).unwrap()).output().expect("promtool (Debian's prometheus package; .ci/run installs it)");
+    assert!(out.status.success(), "promtool check metrics:\n{}{}", String::from_utf8_lossy(&out.stdout), String::from_utf8_lossy(&out.stderr));
+}

@@ -44,6 +44,7 @@ async fn follow(service: std::sync::Arc<Service>, id: String, mut after: u64, tx
         let ended = page.ended || page.events.iter().any(|e| e.is_terminal());
         if let Some(last) = page.events.last() {
             after = last.sequence;
+            service.metrics.events_streamed.inc_by(page.events.len() as u64);
             let Ok(run) = service.run("id", &id) else { return };
             let data = serde_json::json!({"state": run.state.as_str(), "done": run.units_done, "total": run.units_total}).to_string();
             if tx.send(Ok(Sse::default().event("progress").id(after.to_string()).data(data))).await.is_err() {

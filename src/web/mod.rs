@@ -72,6 +72,7 @@ pub fn router(web: Web) -> Router {
         .route("/datasets", get(datasets))
         .route("/schedules", get(schedules))
         .route("/schedules/{id}", get(schedule))
+        .route("/metrics", get(metrics))
         .fallback(|| async { failure(StatusCode::NOT_FOUND, "no such page") })
         .with_state(web)
 }
@@ -118,10 +119,16 @@ fn cookie_token(headers: &HeaderMap) -> Option<String> {
     })
 }
 
+/// The token of a request: `authorization: Bearer` (scrapers, scripts), else the cookie.
+fn request_token(headers: &HeaderMap) -> Option<String> {
+    let bearer = headers.get(header::AUTHORIZATION).and_then(|v| v.to_str().ok()).and_then(|v| v.strip_prefix("Bearer ")).map(|t| t.trim().to_string());
+    bearer.or_else(|| cookie_token(headers))
+}
+
 /// The caller of a request that needs what `rpc` needs: without a known token, the sign-in
 /// page; with too small a role, 403.
 fn admit(web: &Web, headers: &HeaderMap, rpc: Rpc) -> Result<Caller, Failure> {
-    let Some(caller) = web.gate.caller(cookie_token(headers).as_deref()) else {
+    let Some(caller) = web.gate.caller(request_token(headers).as_deref()) else {
         return Err(Failure(Redirect::to("/sign-in").into_response()));
     };
     let needed = rpc.needs();
@@ -256,4 +263,16 @@ async fn schedule(State(web): State<Web>, headers: HeaderMap, Path(id): Path<Str
         history.push(pages::NightScore { valid: s.valid_mean, se, leaves: s.mean_leaves, run });
     }
     Ok(pages::schedule(&caller, &view, &fires, next.as_deref(), &history).into_response())
+}
+
+/// `/metrics` in the Prometheus text format; with tokens on, it needs a reader's token (as
+/// `authorization: Bearer`, the way scrapers send one).
+async fn metrics(State(web): State<Web>, headers: HeaderMap) -> Page {
+    admit(&web, &headers, Rpc::ListRuns)?;
+    let service = web.service.clone();
+    let queued = service.store.queued_count().map_err(ServiceError::from)?;
+    let running = service.cancels.lock().unwrap_or_else(|e| e.into_inner()).len();
+    // Walking the data directory is disk work: off the runtime's threads.
+    let text = crate::service::cpu(&web.service, move || service.metrics.render(queued, running, &service.config.data_dir)).await?;
+    Ok(([(header::CONTENT_TYPE, "text/plain; version=0.0.4; charset=utf-8")], text).into_response())
 }
