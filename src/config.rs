@@ -124,7 +124,14 @@ pub struct Config {
     pub test_hooks: TestHooks,
     /// Access: tokens, TLS, reflection (see [`AccessConfig`]).
     pub access: AccessConfig,
+    /// The web view's HTTP address (`crate::web`); `None`: no web view. `Config::load`
+    /// defaults it to [`DEFAULT_WEB_LISTEN`]; `Config::default()` (embedded servers, tests)
+    /// serves none, so servers on port 0 never contend for the fixed port.
+    pub web_listen: Option<SocketAddr>,
 }
+
+/// Where `pollard serve` serves the web view unless told otherwise.
+pub const DEFAULT_WEB_LISTEN: &str = "127.0.0.1:7312";
 
 /// Who may call, and over what (see `crate::access`).
 #[derive(Clone, Debug, PartialEq)]
@@ -222,6 +229,7 @@ impl Default for Config {
             log_filter: "info".into(),
             test_hooks: TestHooks::default(),
             access: AccessConfig::default(),
+            web_listen: None,
         }
     }
 }
@@ -323,6 +331,7 @@ struct FileConfig {
     tls_client_ca_file: Option<String>,
     max_queued_per_token: Option<usize>,
     health_listen: Option<String>,
+    web_listen: Option<String>,
 }
 
 /// Values given on the command line.
@@ -419,6 +428,12 @@ impl Config {
                 _ => return Err(format!("{from}: '{v}' is not plain or json")),
             };
         }
+        // An empty value turns the web view off.
+        let web = set("web_listen", file.web_listen, "POLLARD_WEB_LISTEN", None).unwrap_or_else(|| ("the default".into(), DEFAULT_WEB_LISTEN.into()));
+        c.web_listen = match web {
+            (_, v) if v.trim().is_empty() => None,
+            (from, v) => Some(v.parse().map_err(|e| format!("{from}: '{v}' is not an address such as 127.0.0.1:7312, or empty for no web view ({e})"))?),
+        };
         if let Some((_, v)) = set("log_filter", file.log_filter, "POLLARD_LOG", None) {
             c.log_filter = v;
         }
@@ -557,6 +572,13 @@ mod tests {
         std::fs::write(&path, "max_repeats = 7\nrun_memory_bytes = 1000\n").unwrap();
         let c = Config::load(&flags, &|_| None).unwrap();
         assert_eq!((c.max_repeats, c.run_memory_bytes), (7, 1000));
+        assert_eq!(c.web_listen, Some(DEFAULT_WEB_LISTEN.parse().unwrap()));
+        std::fs::write(&path, "web_listen = \"127.0.0.1:9300\"\n").unwrap();
+        assert_eq!(Config::load(&flags, &|_| None).unwrap().web_listen.map(|a| a.port()), Some(9300));
+        let off = |k: &str| (k == "POLLARD_WEB_LISTEN").then(String::new);
+        assert_eq!(Config::load(&flags, &off).unwrap().web_listen, None);
+        let bad = |k: &str| (k == "POLLARD_WEB_LISTEN").then(|| "nowhere".to_string());
+        assert!(Config::load(&flags, &bad).unwrap_err().contains("POLLARD_WEB_LISTEN"));
         std::fs::remove_dir_all(&dir).ok();
     }
 

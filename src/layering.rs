@@ -365,12 +365,12 @@ impl Rule {
 /// The core names none of these. `clock` and `pb` are shell modules too (lib.rs code map).
 const CORE: Rule = Rule {
     crates: &["tokio", "tonic", "sled", "tracing"],
-    modules: &["rpc", "cli", "server", "worker", "scheduler", "store", "service", "access", "config", "clock", "pb"],
+    modules: &["rpc", "cli", "server", "worker", "scheduler", "store", "service", "access", "config", "clock", "pb", "web", "metrics"],
     bare: &[],
 };
 
 /// The service side of the shell names no protobuf or transport type.
-const SERVICE: Rule = Rule { crates: &["tonic", "prost"], modules: &["rpc", "pb"], bare: &["pb"] };
+const SERVICE: Rule = Rule { crates: &["tonic", "prost"], modules: &["rpc", "pb", "web"], bare: &["pb"] };
 
 /// The module path of a file below `src/`: `export/onnx.rs` -> `export::onnx`.
 fn module_of(root: &Path, file: &Path) -> Vec<String> {

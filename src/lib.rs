@@ -18,7 +18,9 @@
 //!   error enum; `rpc` converts and calls them, the scheduler calls them directly
 //! - [`access`] tokens and roles, the role each RPC needs, TLS, reloads, owner-only data
 //! - [`clock`]  the system clock, or a test clock moved by hand
+//! - [`metrics`] the Prometheus metrics the server counts, served by [`web`] as `/metrics`
 //! - [`scheduler`] the task that starts schedules' runs at their fire times
+//! - [`web`]    the web view: HTML pages of runs, datasets and schedules, live progress
 //! - [`cli`]    command-line entry point
 //! - [`pb`]     generated protobuf types (only the shell sees them)
 
@@ -30,6 +32,7 @@ pub mod data;
 pub mod drift;
 pub mod export;
 pub mod job;
+pub mod metrics;
 pub mod reefer;
 pub mod rpc;
 pub mod schedule;
@@ -39,6 +42,7 @@ pub mod service;
 pub mod store;
 pub mod sweep;
 pub mod tree;
+pub mod web;
 pub mod worker;
 
 /// Generated protobuf and gRPC code for `proto/pollard/v1`.

@@ -117,6 +117,7 @@ async fn handle(shared: &Arc<Shared>, s: &Schedule, due: &Due, now: i64) -> Resu
     match recorded {
         None => warn!(schedule_id = %s.id, "the schedule changed while its fire was handled; it is looked at again"),
         Some((_, fire, created)) => {
+            shared.metrics.fires.with_label_values(&[fire.outcome.as_str()]).inc();
             if let Some(r) = created {
                 info!(schedule_id = %s.id, run_id = %r.id, dataset = %r.dataset_id, "scheduled run queued");
                 shared.queued.notify_one();

@@ -83,6 +83,21 @@ pub async fn run_with_clock(listener: TcpListener, config: Config, store: Arc<dy
             let _ = stop.changed().await;
         }));
     }
+    // The web view on its own address, with the same gate; it stops when the shutdown flag
+    // flips, and its live streams end themselves then.
+    let web = match shared.config.web_listen {
+        None => None,
+        Some(at) => {
+            access::check_open(&shared.config.access, at)?;
+            let listener = TcpListener::bind(at).await.map_err(|e| format!("cannot listen on {at} (web_listen): {e}"))?;
+            let web_addr = listener.local_addr().map_err(|e| e.to_string())?;
+            if access.tls.is_some() && !web_addr.ip().is_loopback() {
+                tracing::warn!(addr = %web_addr, "the web view speaks plain HTTP: put it behind a TLS proxy, or keep web_listen on loopback");
+            }
+            info!(addr = %web_addr, "web view serving");
+            Some(tokio::spawn(crate::web::serve(listener, shared.clone(), access.gate.clone())))
+        }
+    };
     let m = shared.config.messages;
     // The caller is checked first (a refused caller takes no upload slot), then the transport
     // guard counts the bytes.
@@ -102,6 +117,12 @@ pub async fn run_with_clock(listener: TcpListener, config: Config, store: Arc<dy
         None => until_drained(&shared, router.serve_with_incoming_shutdown(TcpListenerStream::new(listener).map(no_delay), stop)).await,
     }
     .map_err(|e| format!("server: {e}"));
+    if let Some(web) = web {
+        let ended = until_drained(&shared, async { web.await.map_err(|e| e.to_string()).and_then(|r| r) }).await;
+        if let Err(e) = ended {
+            tracing::error!("{e}");
+        }
+    }
     drain(&shared, workers).await;
     served
 }

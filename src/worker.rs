@@ -107,6 +107,7 @@ pub async fn execute(shared: &Arc<Shared>, run: Run) {
     let id = run.id.clone();
     let schedule_id = run.schedule_id.clone();
     let memory = run.memory_estimate;
+    let began = std::time::Instant::now();
     let end = on_pool(&shared.pool, move || {
         let span = info_span!("run", run_id = %run.id);
         span.in_scope(|| execute_blocking(&s, &run, &flag))
@@ -121,6 +122,16 @@ pub async fn execute(shared: &Arc<Shared>, run: Run) {
     // A queued run may have waited for this memory.
     shared.queued.notify_one();
     let now = shared.now();
+    let state = match &end {
+        Ending::Finished(_) => Some("finished"),
+        Ending::Failed(_) => Some("failed"),
+        Ending::Cancelled => Some("cancelled"),
+        Ending::Checkpointed => None,
+    };
+    if let Some(state) = state {
+        shared.metrics.runs_ended.with_label_values(&[state]).inc();
+        shared.metrics.run_seconds.with_label_values(&[state]).observe(began.elapsed().as_secs_f64());
+    }
     let ended = match end {
         Ending::Finished(outcome) => {
             let drift = schedule_id.and_then(|schedule_id| drift_report(shared, &id, &schedule_id, &outcome));
@@ -294,7 +305,10 @@ fn commit(shared: &Shared, run_id: &str, handed: mpsc::Receiver<(sweep::UnitResu
             match shared.store.record_units(run_id, batch, shared.now()) {
                 // Nothing stored: the units were stored already, or the run ended meanwhile.
                 Ok(events) if events.is_empty() && shared.store.run(run_id).is_ok_and(|r| r.is_none_or(|r| r.state != RunState::Running)) => ended.store(true, Ordering::SeqCst),
-                Ok(_) => shared.announce(),
+                Ok(_) => {
+                    shared.metrics.units_computed.inc_by(n as u64);
+                    shared.announce();
+                }
                 Err(e) => *failed.lock().unwrap() = Some(e.to_string()),
             }
         }

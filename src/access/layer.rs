@@ -41,6 +41,15 @@ impl Gate {
         }
     }
 
+    /// The caller a token names under the current table: an anonymous admin on an open gate
+    /// (whatever the token), `None` for a token the table does not know. For transports
+    /// that carry the token otherwise than in a header (the web view's cookie).
+    pub fn caller(&self, token: Option<&str>) -> Option<Caller> {
+        let Some(tokens) = &self.tokens else { return Some(Caller::anonymous()) };
+        let table = tokens.read().unwrap_or_else(|e| e.into_inner()).clone();
+        table.caller(token?.trim())
+    }
+
     /// The caller of a call to `path` with these headers, or the status that refuses it.
     pub fn admit(&self, path: &str, headers: &http::HeaderMap) -> Result<Caller, Status> {
         let Need::Role(needed) = need(path) else { return Ok(Caller { name: None, role: Role::Reader }) };

@@ -34,22 +34,31 @@ pub const LIMITS: [&str; 6] = ["max_depth", "min_split_rows", "min_leaf_rows", "
 /// `picked` is the index in `scores` of the pick rule's setting, marked on every plot.
 pub fn limit_plots(scores: &[SettingScore], metric: Metric, picked: Option<usize>, out_dir: &Path) -> Result<Vec<PathBuf>, String> {
     let mut written = Vec::new();
-    for (i, name) in LIMITS.iter().enumerate() {
-        let points = profile(scores, i, metric);
-        if points.len() < 2 {
-            continue;
-        }
+    for (name, svg) in limit_svgs(scores, metric, picked) {
         if written.is_empty() {
             std::fs::create_dir_all(out_dir).map_err(|e| format!("{}: {e}", out_dir.display()))?;
         }
-        let folds = scores.iter().map(|s| s.fold_scores.len()).max().unwrap_or(0);
-        let mark = picked.and_then(|p| scores.get(p)).map(|p| Picked { x: limit_value(p, i), valid: p.valid_mean });
-        let svg = draw(name, metric, &points, folds, mark);
         let path = out_dir.join(format!("{name}.svg"));
         std::fs::write(&path, svg).map_err(|e| format!("{}: {e}", path.display()))?;
         written.push(path);
     }
     Ok(written)
+}
+
+/// The plots of [`limit_plots`] as (limit, SVG text), for callers that show them rather
+/// than write them (the web view inlines them in its run page).
+pub fn limit_svgs(scores: &[SettingScore], metric: Metric, picked: Option<usize>) -> Vec<(&'static str, String)> {
+    let folds = scores.iter().map(|s| s.fold_scores.len()).max().unwrap_or(0);
+    let mut out = Vec::new();
+    for (i, name) in LIMITS.iter().enumerate() {
+        let points = profile(scores, i, metric);
+        if points.len() < 2 {
+            continue;
+        }
+        let mark = picked.and_then(|p| scores.get(p)).map(|p| Picked { x: limit_value(p, i), valid: p.valid_mean });
+        out.push((*name, draw(name, metric, &points, folds, mark)));
+    }
+    out
 }
 
 /// A limit's value: a number, or no limit at all.

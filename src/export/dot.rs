@@ -22,13 +22,13 @@ use crate::data::Task;
 use crate::tree::Tree;
 
 /// Fill and outline of conditions.
-const CONDITION_FILL: &str = "#eef0e6";
-const OUTLINE: &str = "#55604a";
+pub(crate) const CONDITION_FILL: &str = "#eef0e6";
+pub(crate) const OUTLINE: &str = "#55604a";
 /// Fill of regress leaves.
-const VALUE_FILL: &str = "#e2ead9";
+pub(crate) const VALUE_FILL: &str = "#e2ead9";
 /// Leaf fills by predicted class code, reused in turn when there are more classes: muted
 /// sage, mauve, straw, sea-glass, clay, lavender, moss and rose.
-const CLASS_FILLS: [&str; 8] = ["#d8e8c8", "#e8d3ea", "#f3ecc2", "#cfe3df", "#eadbcf", "#dcdcef", "#e3e8b8", "#f0d6d6"];
+pub(crate) const CLASS_FILLS: [&str; 8] = ["#d8e8c8", "#e8d3ea", "#f3ecc2", "#cfe3df", "#eadbcf", "#dcdcef", "#e3e8b8", "#f0d6d6"];
 /// Most classes a leaf's mix names before summing up the rest.
 const MIX_LISTED: usize = 3;
 

@@ -77,6 +77,7 @@ impl pb::runs_server::Runs for Api {
                     if tx.send(Ok(msg)).await.is_err() {
                         return;
                     }
+                    shared.metrics.events_streamed.inc();
                     if e.is_terminal() {
                         return;
                     }

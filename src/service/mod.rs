@@ -69,6 +69,8 @@ pub struct Service {
     pub admit: Mutex<()>,
     /// Parsed datasets by id, within `frame_cache_bytes`.
     pub frames: frames::FrameCache,
+    /// What `/metrics` reports (see [`crate::metrics`]).
+    pub metrics: crate::metrics::Metrics,
     /// Runs checked for admission ([`Service::admit_run`]), StartRun and scheduled fires
     /// alike: read by tests.
     pub admissions: AtomicU64,
@@ -103,6 +105,7 @@ impl Service {
             memory_in_use: Mutex::new(0),
             admit: Mutex::new(()),
             frames,
+            metrics: crate::metrics::Metrics::new(),
             admissions: AtomicU64::new(0),
         }))
     }

@@ -76,6 +76,9 @@ pub fn command(args: &[&str]) -> Command {
         }
     }
     c.env("NO_COLOR", "1");
+    // The web view on a free port, so servers of tests running at once never contend for
+    // its fixed default; a test that wants another sets POLLARD_WEB_LISTEN itself.
+    c.env("POLLARD_WEB_LISTEN", "127.0.0.1:0");
     c
 }
 
@@ -282,6 +285,14 @@ impl Serve {
             None => false,
             Some(c) => c.0.try_wait().unwrap().is_none(),
         }
+    }
+
+    /// The web view's base URL (`http://127.0.0.1:PORT`), from the address the server
+    /// logged; `None` when it serves none.
+    pub fn web_url(&self) -> Option<String> {
+        let log = self.log();
+        let at = log.lines().rev().find_map(|l| l.split("web view serving addr=").nth(1))?;
+        Some(format!("http://{}", at.split_whitespace().next()?))
     }
 
     /// What the server logged so far.
