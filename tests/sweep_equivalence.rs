@@ -2,9 +2,13 @@
 //! own and scoring row by row gives: exactly for metrics that count rows, to 1e-12 relative
 //! for metrics that sum floating-point terms. Random datasets (both tasks, missing cells,
 //! categorical columns) and random grids, over every fold plan; seeded, so a failure repeats.
+//! And the open datasets of tests/data (see SOURCES.md there) with many `min_leaf_rows`
+//! values, whose envelopes grow together (one scan per node and feature for all values).
 
+use std::path::PathBuf;
 use std::sync::atomic::AtomicBool;
 
+use pollard::data::csv::{read_dataset, CsvOptions};
 use pollard::data::{Column, Dataset, Feature, Frame, Target, Task, MISSING_CODE};
 use pollard::sweep::metrics::rows;
 use pollard::sweep::{self, FoldPlan, FoldScheme, Flow, Metric, PickRule, Range, SweepSpec};
@@ -133,6 +137,84 @@ fn row_score(metric: Metric, tree: &pollard::tree::Tree, data: &Dataset, rows_: 
     }
 }
 
+/// Runs the plan and checks every setting × split score against a refit of that setting on
+/// the split's training rows, scored row by row; returns how many were compared.
+fn sweep_equals_refits(plan: &sweep::Plan, label: &str) -> usize {
+    let cancel = AtomicBool::new(false);
+    let units = sweep::run(plan, Vec::new(), &|_, _| Flow::Continue, &cancel).unwrap();
+    let result = sweep::summarize(plan, &units);
+    let metric = plan.spec.metric;
+    let task = plan.data.task();
+    let mut compared = 0;
+    for score in &result.scores {
+        let options = score.setting.options.check(task).unwrap();
+        for (si, split) in plan.folds.splits.iter().enumerate() {
+            let set = TrainSet { frame: &plan.data.frame, target: &plan.data.target, target_name: "y", rows: Some(&split.train), weights: None };
+            let tree = fit(&set, &options).unwrap();
+            let valid = row_score(metric, &tree, &plan.data, &split.valid);
+            let train = row_score(metric, &tree, &plan.data, &split.train);
+            let ctx = || format!("{label}, metric {metric}, split {si}, setting {:?}", score.setting.options);
+            assert!(close(metric, score.fold_scores[si], valid), "validation {} vs refit {valid}: {}", score.fold_scores[si], ctx());
+            let unit = units.iter().find(|u| plan.units[u.unit].0 == si && u.scores.iter().any(|(s, _)| plan.settings[*s] == score.setting)).unwrap();
+            let fs = &unit.scores.iter().find(|(s, _)| plan.settings[*s] == score.setting).unwrap().1;
+            assert!(close(metric, fs.train, train), "training {} vs refit {train}: {}", fs.train, ctx());
+            assert_eq!(fs.leaves as usize, tree.n_leaves(), "leaves: {}", ctx());
+            assert_eq!(fs.depth, tree.depth(), "depth: {}", ctx());
+            compared += 1;
+        }
+    }
+    compared
+}
+
+/// The open datasets (and our two synthetic sets with missing cells, once with some columns
+/// read as categorical), eight `min_leaf_rows` values from 1 to 50, both criteria and both
+/// class weightings: every unit of a split and criterion × weighting grows in one group of
+/// eight, and every setting still scores exactly as its refit does.
+#[test]
+fn many_min_leaf_rows_values_grow_together_on_open_datasets() {
+    let data_dir = PathBuf::from(env!("CARGO_MANIFEST_DIR")).join("tests/data");
+    let msl = [1.0, 2.0, 3.0, 5.0, 8.0, 13.0, 20.0, 50.0];
+    let cases: [(&str, &[&str], Metric); 8] = [
+        ("iris.csv", &[], Metric::Accuracy),
+        ("wine.csv", &[], Metric::LogLoss),
+        ("breast_cancer.csv", &[], Metric::BalancedAccuracy),
+        ("diabetes.csv", &[], Metric::Rmse),
+        ("synthetic_missing.csv", &[], Metric::Accuracy),
+        ("synthetic_missing.csv", &["grade", "flag", "n_events"], Metric::Brier),
+        ("synthetic_missing_reg.csv", &[], Metric::Mae),
+        ("synthetic_missing_reg.csv", &["grade", "n_events"], Metric::R2),
+    ];
+    let mut compared = 0;
+    for (file, categorical, metric) in cases {
+        let mut options = CsvOptions::new("target");
+        options.categorical = categorical.iter().map(|c| c.to_string()).collect();
+        let data = read_dataset(std::fs::File::open(data_dir.join(file)).unwrap(), &options).unwrap();
+        let classify = data.task() == Task::Classify;
+        let spec = SweepSpec {
+            criteria: if classify { vec![Criterion::Gini, Criterion::Entropy] } else { vec![] },
+            class_weights: if classify { vec![ClassWeight::None, ClassWeight::Balanced] } else { vec![] },
+            max_depth: Some(Range::Values(vec![None, Some(2.0), Some(4.0)])),
+            min_split_rows: Some(Range::Values(vec![Some(2.0), Some(30.0)])),
+            min_leaf_rows: Some(Range::Values(msl.iter().map(|&m| Some(m)).collect())),
+            max_leaves: Some(Range::Values(vec![None, Some(6.0)])),
+            min_gain: Some(Range::Values(vec![Some(0.0)])),
+            prune_alpha: Some(Range::Values(vec![Some(0.0), Some(0.01)])),
+            folds: Some(FoldPlan { scheme: FoldScheme::Shuffled, k: 3, repeats: 1 }),
+            metric: Some(metric),
+            seed: 7,
+            fit_final: false,
+            ..SweepSpec::default()
+        };
+        let plan = sweep::plan(&data, &spec).unwrap();
+        let all: Vec<usize> = (0..plan.units.len()).collect();
+        let groups = plan.growth_groups(&all);
+        assert_eq!(groups.len(), plan.units.len() / msl.len(), "{file}: units grow in groups of eight");
+        assert!(groups.iter().all(|g| g.len() == msl.len()), "{file}: {groups:?}");
+        compared += sweep_equals_refits(&plan, &format!("{file} {categorical:?}"));
+    }
+    eprintln!("sweep_equivalence: {compared} setting × split scores compared on the open datasets");
+}
+
 #[test]
 fn shared_growth_equals_fitting_each_setting() {
     let mut g = Gen(0x5EED_2026_1202);
@@ -162,27 +244,7 @@ fn shared_growth_equals_fitting_each_setting() {
             Err(sweep::SweepError::Spec(_)) => continue,
             Err(e) => panic!("{e}"),
         };
-        let cancel = AtomicBool::new(false);
-        let units = sweep::run(&plan, Vec::new(), &|_, _| Flow::Continue, &cancel).unwrap();
-        let result = sweep::summarize(&plan, &units);
-        let metric = plan.spec.metric;
-        for score in &result.scores {
-            let options = score.setting.options.check(task).unwrap();
-            for (si, split) in plan.folds.splits.iter().enumerate() {
-                let set = TrainSet { frame: &plan.data.frame, target: &plan.data.target, target_name: "y", rows: Some(&split.train), weights: None };
-                let tree = fit(&set, &options).unwrap();
-                let valid = row_score(metric, &tree, &plan.data, &split.valid);
-                let train = row_score(metric, &tree, &plan.data, &split.train);
-                let ctx = || format!("case {cases}, {name}, metric {metric}, split {si}, setting {:?}", score.setting.options);
-                assert!(close(metric, score.fold_scores[si], valid), "validation {} vs refit {valid}: {}", score.fold_scores[si], ctx());
-                let unit = units.iter().find(|u| plan.units[u.unit].0 == si && u.scores.iter().any(|(s, _)| plan.settings[*s] == score.setting)).unwrap();
-                let fs = &unit.scores.iter().find(|(s, _)| plan.settings[*s] == score.setting).unwrap().1;
-                assert!(close(metric, fs.train, train), "training {} vs refit {train}: {}", fs.train, ctx());
-                assert_eq!(fs.leaves as usize, tree.n_leaves(), "leaves: {}", ctx());
-                assert_eq!(fs.depth, tree.depth(), "depth: {}", ctx());
-                compared += 1;
-            }
-        }
+        compared += sweep_equals_refits(&plan, &format!("case {cases}, {name}"));
         *per_scheme.entry(name).or_insert(0) += 1;
         cases += 1;
     }

@@ -186,9 +186,40 @@ impl Plan {
 
     /// Scores one work unit.
     pub fn run_unit(&self, unit: usize) -> Result<UnitResult, FitError> {
-        let (split, key) = self.units[unit];
+        Ok(self.run_units(&[unit])?.remove(0))
+    }
+
+    /// Scores work units of one split whose shaping keys differ only in `min_leaf_rows`
+    /// (see [`Plan::growth_groups`]), their envelopes grown together.
+    pub fn run_units(&self, units: &[usize]) -> Result<Vec<UnitResult>, FitError> {
+        let (split, key) = self.units[units[0]];
         let fold = &self.folds.splits[split];
-        let env = Envelope::grow(&self.data, &envelope_options(&self.spec, &self.spec.keys[key]), &fold.train, &fold.valid)?;
+        let msl: Vec<u32> = units.iter().map(|&u| self.spec.keys[self.units[u].1].min_leaf_rows).collect();
+        let envelopes = Envelope::grow_shared(&self.data, &envelope_options(&self.spec, &self.spec.keys[key]), &msl, &fold.train, &fold.valid)?;
+        Ok(units.iter().zip(envelopes).map(|(&u, env)| self.score_unit(u, &env)).collect())
+    }
+
+    /// Groups units to grow together: those of one split whose shaping keys share the
+    /// criterion and class weighting (and so differ only in `min_leaf_rows`), in the order
+    /// of their first unit.
+    pub fn growth_groups(&self, units: &[usize]) -> Vec<Vec<usize>> {
+        let mut index = std::collections::HashMap::new();
+        let mut groups: Vec<Vec<usize>> = Vec::new();
+        for &u in units {
+            let (split, key) = self.units[u];
+            let k = &self.spec.keys[key];
+            let g = *index.entry((split, k.criterion, k.class_weight)).or_insert_with(|| {
+                groups.push(Vec::new());
+                groups.len() - 1
+            });
+            groups[g].push(u);
+        }
+        groups
+    }
+
+    /// Scores every setting of a unit from its envelope.
+    fn score_unit(&self, unit: usize, env: &Envelope) -> UnitResult {
+        let key = self.units[unit].1;
         let mut scores = Vec::new();
         let mine: Vec<usize> = (0..self.settings.len()).filter(|&i| self.settings[i].key == key).collect();
         // α varies fastest in grid order: settings that differ only in α are consecutive.
@@ -206,7 +237,7 @@ impl Plan {
             }
             i = j;
         }
-        Ok(UnitResult { unit, scores })
+        UnitResult { unit, scores }
     }
 }
 
@@ -215,8 +246,10 @@ fn same_stopping(a: &crate::tree::Limits, b: &crate::tree::Limits) -> bool {
 }
 
 /// Scores every unit not in `done`, in parallel, calling `sink` after each (from the worker
-/// thread that finished it, one call at a time, with progress numbers in call order). The cancel flag is checked before each unit starts; a raised
-/// flag or a `Stop` from the sink ends the run with [`SweepError::Cancelled`].
+/// thread that finished it, one call at a time, with progress numbers in call order). Units
+/// whose envelopes grow together ([`Plan::growth_groups`]) finish together. The cancel flag
+/// is checked before each group of units starts; a raised flag or a `Stop` from the sink
+/// ends the run with [`SweepError::Cancelled`].
 pub fn run(
     plan: &Plan,
     done: Vec<UnitResult>,
@@ -233,32 +266,33 @@ pub fn run(
     let already_scores: usize = done.iter().map(|r| sizes[r.unit]).sum();
     let progress = std::sync::Mutex::new((already_units, already_scores));
     let todo: Vec<usize> = (0..plan.units.len()).filter(|&u| !finished[u]).collect();
-    let fresh: Vec<Result<Option<UnitResult>, FitError>> = todo
+    let fresh: Vec<Result<Vec<UnitResult>, FitError>> = plan
+        .growth_groups(&todo)
         .par_iter()
-        .map(|&u| {
+        .map(|group| {
             if cancel.load(Ordering::Relaxed) {
-                return Ok(None);
+                return Ok(Vec::new());
             }
-            let r = plan.run_unit(u)?;
+            let results = plan.run_units(group)?;
             // The sink runs under the lock that numbers the progress, so units reach it one
             // at a time in the order of their numbers (a sink that stores them stores them in
             // that order). A panicking sink fails the run; it does not poison the others.
             let mut g = progress.lock().unwrap_or_else(|e| e.into_inner());
-            g.0 += 1;
-            g.1 += sizes[u];
-            let p = Progress { units_done: g.0, units_total: plan.units.len(), scores_done: g.1, scores_total: total_scores };
-            if sink(&r, p) == Flow::Stop {
-                cancel.store(true, Ordering::Relaxed);
+            for r in &results {
+                g.0 += 1;
+                g.1 += sizes[r.unit];
+                let p = Progress { units_done: g.0, units_total: plan.units.len(), scores_done: g.1, scores_total: total_scores };
+                if sink(r, p) == Flow::Stop {
+                    cancel.store(true, Ordering::Relaxed);
+                }
             }
             drop(g);
-            Ok(Some(r))
+            Ok(results)
         })
         .collect();
     let mut all = done;
     for r in fresh {
-        if let Some(r) = r? {
-            all.push(r);
-        }
+        all.extend(r?);
     }
     if cancel.load(Ordering::Relaxed) {
         return Err(SweepError::Cancelled);
