@@ -25,7 +25,7 @@ pub use metrics::Metric;
 pub use spec::{CheckedSpec, PickRule, Range, Setting, ShapingKey, SpecCaps, SpecError, SpecErrorKind, SweepSpec};
 
 use crate::data::{Dataset, Frame};
-use crate::tree::{fit, pruning_path, FitError, FitOptions, TrainSet, Tree};
+use crate::tree::{fit, fit_shared, pruning_path, FitError, FitOptions, TrainSet, Tree};
 
 /// A sweep ready to run: the checked spec, its folds, its settings and its work units.
 #[derive(Clone, Debug)]
@@ -141,11 +141,7 @@ pub fn plan_with(data: &Dataset, spec: &SweepSpec, caps: &SpecCaps) -> Result<Pl
     let frame = Frame::new(features).expect("a subset of valid columns");
     let data = Dataset { frame, target_name: data.target_name.clone(), target: data.target.clone() };
     let alphas_per_key: Vec<Vec<f64>> = if spec.prune_path {
-        checked
-            .keys
-            .iter()
-            .map(|key| path_alphas(&data, &checked, key))
-            .collect::<Result<_, FitError>>()?
+        path_alphas(&data, &checked)?
     } else {
         vec![checked.prune_alpha.clone(); checked.keys.len()]
     };
@@ -160,16 +156,30 @@ pub fn plan_with(data: &Dataset, spec: &SweepSpec, caps: &SpecCaps) -> Result<Pl
     Ok(Plan { spec: checked, folds, settings, units, data })
 }
 
-/// The α values a path-mode sweep scores for a key: geometric means of consecutive α on the
-/// pruning path of the tree grown on all rows (the cross-validation of Breiman et al., 1984,
-/// §3.4.2), and the last α, which leaves the root alone.
-fn path_alphas(data: &Dataset, spec: &CheckedSpec, key: &ShapingKey) -> Result<Vec<f64>, FitError> {
-    let options = envelope_options(spec, key);
-    let tree = fit(&TrainSet::of(data), &options.check(data.task())?)?;
-    let a = pruning_path(&tree).alphas();
-    let mut out: Vec<f64> = a.windows(2).map(|w| (w[0] * w[1]).sqrt()).collect();
-    out.push(*a.last().unwrap());
-    out.dedup();
+/// The α values a path-mode sweep scores for each key: geometric means of consecutive α on
+/// the pruning path of the tree grown on all rows (the cross-validation of Breiman et al.,
+/// 1984, §3.4.2), and the last α, which leaves the root alone. The trees of keys that differ
+/// only in `min_leaf_rows` grow together.
+fn path_alphas(data: &Dataset, spec: &CheckedSpec) -> Result<Vec<Vec<f64>>, FitError> {
+    let keys = &spec.keys;
+    let mut out = vec![Vec::new(); keys.len()];
+    let mut done = vec![false; keys.len()];
+    for i in 0..keys.len() {
+        if done[i] {
+            continue;
+        }
+        let group: Vec<usize> = (i..keys.len()).filter(|&j| keys[j].criterion == keys[i].criterion && keys[j].class_weight == keys[i].class_weight).collect();
+        let options = envelope_options(spec, &keys[i]).check(data.task())?;
+        let msl: Vec<u32> = group.iter().map(|&j| keys[j].min_leaf_rows).collect();
+        for (&j, (tree, _)) in group.iter().zip(fit_shared(&TrainSet::of(data), &options, &msl)?) {
+            let a = pruning_path(&tree).alphas();
+            let mut alphas: Vec<f64> = a.windows(2).map(|w| (w[0] * w[1]).sqrt()).collect();
+            alphas.push(*a.last().unwrap());
+            alphas.dedup();
+            out[j] = alphas;
+            done[j] = true;
+        }
+    }
     Ok(out)
 }
 
