@@ -14,9 +14,9 @@ use std::ops::RangeInclusive;
 
 use pollard::data::{Column, Feature, Frame, Target, Task, MISSING_CODE};
 use pollard::export::{from_json, to_json};
-use pollard::tree::grow::fit_with;
+use pollard::tree::grow::{fit_shared_with, fit_with};
 use pollard::tree::{
-    fit, fit_shared, fit_with_leaves, prune, pruning_path, ClassWeight, Criterion, FitOptions, Limits, Predictions, SplitRule, Splitter, TrainSet, Tree,
+    fit, fit_with_leaves, prune, pruning_path, ClassWeight, Criterion, FitOptions, Limits, Predictions, SplitRule, Splitter, TrainSet, Tree,
 };
 use proptest::collection::vec;
 use proptest::option;
@@ -947,7 +947,8 @@ proptest! {
     /// for all of them, sharing nodes while their splits agree) are each exactly the tree, and
     /// the training rows' leaves, of a fit under that value alone: every split, threshold,
     /// gain, rank and value, so ties are broken the same way. Values in any order, repeats
-    /// included; sometimes sample weights, the binned splitter, a row subset, up to 200 rows.
+    /// included; sometimes sample weights, the binned splitter, a row subset, up to 200 rows;
+    /// parting trees copy the node's sorted rows, or take turns on them and restore their order.
     #[test]
     fn growing_together_equals_growing_each_alone(
         case in case_from(data_in(1..=200, 1..=4), limits(), true),
@@ -955,6 +956,7 @@ proptest! {
         binned in any::<bool>(),
         subset in any::<bool>(),
         caps in prop::bool::weighted(0.2),
+        copy_entries in prop_oneof![Just(usize::MAX), Just(0usize), 0usize..400],
     ) {
         let mut options = FitOptions { splitter: if binned { Splitter::Binned } else { Splitter::Exact }, ..case.options.clone() };
         if !caps {
@@ -970,7 +972,8 @@ proptest! {
         if rows.is_empty() {
             return Ok(());
         }
-        let together = match fit_shared(&set, &checked, &values) {
+        // Parts copy a node's sorted rows, or (copy_entries 0) take turns on them in place.
+        let together = match fit_shared_with(&set, &checked, &values, copy_entries) {
             Ok(t) => t,
             // Only when every row has weight 0: each alone fails the same way.
             Err(e) => {

@@ -151,12 +151,13 @@ impl Envelope {
     /// The envelopes of one fold for each of several `min_leaf_rows` values (in their
     /// order), the other options as `options` gives them: grown together, so that one scan
     /// per node and feature serves every value, and each equal to [`Envelope::grow`] under
-    /// its value.
-    pub fn grow_shared(data: &Dataset, options: &FitOptions, min_leaf_rows: &[u32], train: &[u32], valid: &[u32]) -> Result<Vec<Envelope>, FitError> {
+    /// its value. Each envelope's rows are aggregated when the iterator reaches it, so a
+    /// caller that scores and drops them one by one holds one set of aggregates at a time.
+    pub fn grow_shared<'a>(data: &'a Dataset, options: &FitOptions, min_leaf_rows: &[u32], train: &'a [u32], valid: &'a [u32]) -> Result<impl Iterator<Item = Envelope> + 'a, FitError> {
         let checked = options.check(data.task())?;
         let set = TrainSet { frame: &data.frame, target: &data.target, target_name: &data.target_name, rows: Some(train), weights: None };
         let grown = fit_shared(&set, &checked, min_leaf_rows)?;
-        Ok(grown.into_iter().map(|(tree, train_leaves)| Envelope::of(tree, &train_leaves, data, train, valid)).collect())
+        Ok(grown.into_iter().map(move |(tree, train_leaves)| Envelope::of(tree, &train_leaves, data, train, valid)))
     }
 
     /// The envelope of a grown tree T*, given the leaf of each training row.

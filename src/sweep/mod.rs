@@ -206,6 +206,7 @@ impl Plan {
         let fold = &self.folds.splits[split];
         let msl: Vec<u32> = units.iter().map(|&u| self.spec.keys[self.units[u].1].min_leaf_rows).collect();
         let envelopes = Envelope::grow_shared(&self.data, &envelope_options(&self.spec, &self.spec.keys[key]), &msl, &fold.train, &fold.valid)?;
+        // Scored one by one: each envelope's aggregates are dropped before the next is made.
         Ok(units.iter().zip(envelopes).map(|(&u, env)| self.score_unit(u, &env)).collect())
     }
 

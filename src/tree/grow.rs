@@ -23,6 +23,12 @@ use crate::data::{Column, Frame, Target, Task, MISSING_CODE};
 /// parallel; below it the thread hand-off costs more than it saves.
 const PARALLEL_WORK: usize = 1 << 17;
 
+/// Trees grown together that part at a node of at most this many (rows × features) sorted
+/// entries give each part but the last its own copy of them (8 MiB at most); at a bigger
+/// node the parts take turns on the rows in place, and the sorted order is restored after
+/// each. So a shared growth holds at most one copy of this size per further tree.
+pub(crate) const COPY_ENTRIES: usize = 1 << 20;
+
 /// What one fit reads: a frame, its target, and optionally a row subset and weights.
 #[derive(Clone, Copy)]
 pub struct TrainSet<'a> {
@@ -88,6 +94,12 @@ pub fn fit_with_leaves(set: &TrainSet, options: &CheckedOptions) -> Result<(Tree
 /// its own (on its own copy of the node's sorted rows). Growth with a leaf cap or pruning fits
 /// each value alone.
 pub fn fit_shared(set: &TrainSet, options: &CheckedOptions, min_leaf_rows: &[u32]) -> Result<Vec<(Tree, Vec<u32>)>, FitError> {
+    fit_shared_with(set, options, min_leaf_rows, COPY_ENTRIES)
+}
+
+/// As [`fit_shared`], with parts copying the sorted rows of nodes of at most `copy_entries`
+/// entries (see [`COPY_ENTRIES`]); for the test that copying and restoring give the same trees.
+pub fn fit_shared_with(set: &TrainSet, options: &CheckedOptions, min_leaf_rows: &[u32], copy_entries: usize) -> Result<Vec<(Tree, Vec<u32>)>, FitError> {
     let per_value = |m: u32| {
         let mut o = options.to_options();
         o.limits.min_leaf_rows = m;
@@ -101,7 +113,7 @@ pub fn fit_shared(set: &TrainSet, options: &CheckedOptions, min_leaf_rows: &[u32
     }
     let checked = values.iter().map(|&m| per_value(m)).collect::<Result<Vec<_>, _>>()?;
     let prepared = Prepared::new(set, options)?;
-    let grown = Grower::new(&prepared, options, true).grow_shared(&checked);
+    let grown = Grower::new(&prepared, options, true).grow_shared(&checked, copy_entries);
     let grown: Vec<(Tree, Vec<u32>)> = grown.into_iter().map(|(tree, leaf_of)| (tree, prepared.by_position(set, &leaf_of))).collect();
     Ok(min_leaf_rows.iter().map(|m| grown[values.binary_search(m).expect("every value grown")].clone()).collect())
 }
@@ -364,6 +376,8 @@ struct Grower<'p> {
     /// Logical position of `sorted`'s first entry: 0, except while trees grown together
     /// work on their own copy of one node's rows.
     offset: u32,
+    /// See [`COPY_ENTRIES`].
+    copy_entries: usize,
     arena: Arena,
 }
 
@@ -431,6 +445,7 @@ impl<'p> Grower<'p> {
             width,
             levels,
             offset: 0,
+            copy_entries: COPY_ENTRIES,
             arena: Arena::default(),
         }
     }
@@ -831,7 +846,8 @@ impl Grower<'_> {
     /// Grows one tree per checked options (ascending `min_leaf_rows`, otherwise equal) from
     /// one set of sorted columns; see [`fit_shared`]. Each tree, with the leaf of every
     /// fit-local row.
-    fn grow_shared(mut self, per_value: &[CheckedOptions]) -> Vec<(Tree, Vec<u32>)> {
+    fn grow_shared(mut self, per_value: &[CheckedOptions], copy_entries: usize) -> Vec<(Tree, Vec<u32>)> {
+        self.copy_entries = copy_entries;
         let n = self.prep.frame_rows.len() as u32;
         let root = self.stats_of(0..n);
         self.total_weight = root.totals.w;
@@ -849,16 +865,21 @@ impl Grower<'_> {
     }
 
     /// Grows the nodes of `stack` and everything below them, depth-first. Where the trees of
-    /// a node part, every part but the last grows on its own copy of the node's rows (a
-    /// recursive call, at most one per parting, so as deep as there are trees), and the
-    /// last keeps the rows in place.
+    /// a node part, every part but the last grows first, in a recursive call (at most one per
+    /// parting, so as deep as there are trees): on its own copy of the node's rows, or on
+    /// the rows in place for a node bigger than [`COPY_ENTRIES`], whose order is then
+    /// restored. The last part keeps the rows in place.
     fn grow_together(&mut self, trees: &mut [KeyTree], mut stack: Vec<SharedNode>) {
         while let Some(node) = stack.pop() {
             let (a, b) = ((node.start - self.offset) as usize, (node.end - self.offset) as usize);
             let parts = self.evaluate_together(trees, &node, a, b);
             let last = parts.len().saturating_sub(1);
             for (i, (members, p)) in parts.into_iter().enumerate() {
-                if i < last {
+                if i < last && (b - a) * self.sorted.len() > self.copy_entries {
+                    let children = self.split_together(trees, &members, &node, a, b, p);
+                    self.grow_together(trees, children.into());
+                    self.restore_order(a, b);
+                } else if i < last {
                     let copy = self.sorted.iter().map(|col| col[a..b].to_vec()).collect();
                     let sorted = std::mem::replace(&mut self.sorted, copy);
                     let offset = std::mem::replace(&mut self.offset, node.start);
@@ -870,6 +891,17 @@ impl Grower<'_> {
                     stack.extend(self.split_together(trees, &members, &node, a, b, p));
                 }
             }
+        }
+    }
+
+    /// Sorts rows `[a, b)` of every feature back into the presort's order (by value, ties by
+    /// row), as they were before the node's rows were partitioned.
+    fn restore_order(&mut self, a: usize, b: usize) {
+        let sort = |col: &mut Vec<Entry>| radsort::sort_by_key(&mut col[a..b], |e| (order_bits(e.v) as u64) << 32 | e.row() as u64);
+        if self.parallel && self.sorted.len() > 1 {
+            self.sorted.par_iter_mut().for_each(sort);
+        } else {
+            self.sorted.iter_mut().for_each(sort);
         }
     }
 
