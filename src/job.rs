@@ -293,6 +293,8 @@ pub struct RunOutcome {
     pub model: Option<Tree>,
     /// Per repeat, per row: the fold the row validates in (−1: none).
     pub fold_assignment: Vec<Vec<i32>>,
+    /// The outer loop's scores, for a nested sweep.
+    pub nested: Option<crate::sweep::NestedResult>,
 }
 
 /// A stored work unit of a run.

@@ -164,6 +164,7 @@ async fn run_for(shared: &Arc<Shared>, s: &Schedule, at: i64, fire: &mut Fire) -
         target: Some(s.target.clone()),
         spec: s.spec.clone(),
         default_fold_scheme: false,
+        default_outer_scheme: false,
         idempotency_key: Some(format!("{}@{at}", s.id)),
         labels: s.labels.clone(),
     };

@@ -263,6 +263,7 @@ fn execute_blocking(shared: &Shared, run: &Run, cancel: &AtomicBool) -> Ending {
         best: result.best as u32,
         model,
         fold_assignment: plan.folds.assignment.clone(),
+        nested: result.nested,
     })
 }
 

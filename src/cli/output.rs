@@ -92,6 +92,55 @@ pub fn pareto_lines(scores: &[pb::SettingScore], front: &[u32], metric: &str) ->
     wrap(&format!("no setting beats these on both {metric} and mean leaves: "), &points, 120)
 }
 
+/// What nested cross-validation measured, in words: the outer estimate, the optimism of the
+/// inner best, how often each setting was picked, and one line per outer split.
+pub fn nested_lines(n: &pb::NestedEstimate, metric: &str) -> String {
+    let better = if higher_is_better(metric) { "higher" } else { "lower" };
+    let k = n.folds.len().max(1) as f64;
+    let inner_best = n.folds.iter().map(|f| f.inner_best).sum::<f64>() / k;
+    let mut out = format!(
+        "nested cross-validation, {} outer splits ({better} {metric} is better): outer {} ± {} sd\n  inner best {}, optimism {} (inner best minus outer, larger means more optimistic)\n",
+        n.folds.len(),
+        short(n.outer_mean),
+        short(n.outer_sd),
+        short(inner_best),
+        short(n.optimism),
+    );
+    let mut counts: Vec<(u32, usize)> = Vec::new();
+    for f in &n.folds {
+        match counts.iter_mut().find(|(p, _)| *p == f.picked) {
+            Some(c) => c.1 += 1,
+            None => counts.push((f.picked, 1)),
+        }
+    }
+    counts.sort_by(|a, b| b.1.cmp(&a.1).then(a.0.cmp(&b.0)));
+    let picks: Vec<String> = counts.iter().map(|(p, c)| format!("grid# {p} ({c}×)")).collect();
+    out.push_str(&wrap("  picked by the outer splits: ", &picks, 120));
+    for f in &n.folds {
+        out.push_str(&format!(
+            "  outer split {}.{}: grid# {}, inner best {}, inner picked {}, outer {}, {} leaves\n",
+            f.repeat,
+            f.fold,
+            f.picked,
+            short(f.inner_best),
+            short(f.inner_picked),
+            short(f.outer_score),
+            f.leaves
+        ));
+    }
+    out
+}
+
+pub fn nested_json(n: &pb::NestedEstimate) -> Value {
+    json!({
+        "outer_mean": n.outer_mean, "outer_sd": n.outer_sd, "optimism": n.optimism,
+        "folds": n.folds.iter().map(|f| json!({
+            "repeat": f.repeat, "fold": f.fold, "picked": f.picked, "inner_best": f.inner_best,
+            "inner_picked": f.inner_picked, "outer_score": f.outer_score, "leaves": f.leaves,
+        })).collect::<Vec<_>>(),
+    })
+}
+
 pub fn run_json(r: &pb::RunInfo) -> Value {
     json!({
         "id": r.id, "state": state_name(r.state), "dataset_id": r.dataset_id, "dataset_name": r.dataset_name,
@@ -103,6 +152,7 @@ pub fn run_json(r: &pb::RunInfo) -> Value {
         "model": r.model.as_ref().map(|m| json!({"nodes": m.nodes, "leaves": m.leaves, "depth": m.depth, "classes": m.classes})),
         "dataset_rows": r.dataset_rows,
         "drift": r.drift.as_ref().map(super::schedules::drift_json),
+        "nested": r.nested.as_ref().map(nested_json),
     })
 }
 

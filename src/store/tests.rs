@@ -103,6 +103,7 @@ fn full_spec(seed: u64) -> SweepSpec {
         fit_final: false,
         max_settings: Some(5000),
         splitter: Splitter::Binned,
+        outer: Some(FoldPlan { scheme: FoldScheme::Forward { column: "day".into() }, k: 3, repeats: 1 }),
     }
 }
 
@@ -145,6 +146,7 @@ fn outcome(model: Option<Tree>) -> RunOutcome {
         best: 0,
         model,
         fold_assignment: vec![vec![0, 1, -1, 2], vec![2, 1, 0, 0]],
+        nested: None,
     }
 }
 
@@ -263,6 +265,14 @@ fn outcome_record_round_trips_with_models() {
         assert_eq!(back.fold_assignment, o.fold_assignment);
         assert_eq!((back.picked, back.best), (1, 0));
     }
+    // A nested sweep's outer results, NaN included, survive the round trip; plain outcomes
+    // (and records written before nested sweeps) have none.
+    let mut o = outcome(None);
+    let fold = |fold: u32, score: f64| crate::sweep::OuterFold { repeat: 0, fold, picked: 1, inner_best: 0.93, inner_picked: 0.91, outer_score: score, leaves: 7 };
+    o.nested = Some(crate::sweep::NestedResult { folds: vec![fold(0, 0.88), fold(1, f64::NAN)], outer_mean: f64::NAN, outer_sd: f64::NAN, optimism: f64::NAN });
+    let back = records::decode_outcome(&records::encode_outcome(&o)).unwrap();
+    assert_eq!(format!("{:?}", back.nested), format!("{:?}", o.nested));
+    assert!(records::decode_outcome(&records::encode_outcome(&outcome(None))).unwrap().nested.is_none());
 }
 
 #[test]

@@ -297,12 +297,36 @@ pub fn run(caller: &Caller, run: &Run, outcome: Option<&RunOutcome>) -> Markup {
             }
             @if let (Some(o), Some(m)) = (outcome, metric) {
                 (scores(run, o, m))
+                @if let Some(n) = &o.nested { (nested(n, m)) }
                 (plots(o, m))
                 (tree(run, o))
                 (downloads(run, o))
             }
         },
     )
+}
+
+/// What nested cross-validation measured: the outer estimate and the optimism of the inner
+/// best, then one row per outer split.
+fn nested(n: &crate::sweep::NestedResult, m: Metric) -> Markup {
+    html! {
+        section #nested {
+            h2 { "Nested cross-validation" }
+            p {
+                "Outer " (m.as_str()) " " (score(n.outer_mean)) " ± " (score(n.outer_sd)) " (sd over " (n.folds.len()) " outer splits); "
+                "optimism of the inner best " (score(n.optimism)) " (inner best minus outer, larger means more optimistic; "
+                (if m.higher_is_better() { "higher" } else { "lower" }) " " (m.as_str()) " is better)."
+            }
+            table {
+                thead { tr { th { "outer split" } th { "picked grid#" } th { "inner best" } th { "inner picked" } th { "outer" } th { "leaves" } } }
+                tbody {
+                    @for f in &n.folds {
+                        tr { td { (f.repeat) "." (f.fold) } td { (f.picked) } td { (score(f.inner_best)) } td { (score(f.inner_picked)) } td { (score(f.outer_score)) } td { (f.leaves) } }
+                    }
+                }
+            }
+        }
+    }
 }
 
 fn scores(run: &Run, o: &RunOutcome, m: Metric) -> Markup {

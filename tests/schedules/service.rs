@@ -572,6 +572,7 @@ async fn a_store_failure_is_not_the_callers_fault() {
         target: Some("target".into()),
         spec: pollard::sweep::SweepSpec::default(),
         default_fold_scheme: false,
+        default_outer_scheme: false,
         idempotency_key: None,
         labels: Default::default(),
     };
