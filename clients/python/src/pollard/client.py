@@ -5,7 +5,7 @@ from __future__ import annotations
 import os
 import sys
 from pathlib import Path
-from typing import Any, Callable, Dict, Iterable, Iterator, List, Mapping, Optional, Sequence, Tuple, Union, overload
+from typing import Any, Callable, Dict, Iterator, List, Literal, Mapping, Optional, Sequence, Tuple, Union, overload
 
 import grpc
 
@@ -100,9 +100,11 @@ class Client:
     def __exit__(self, *exc: Any) -> None:
         self.close()
 
-    def _call(self, method: Callable[..., Any], request: Any, *, timeout: Optional[float] = -1.0) -> Any:
+    def _call(self, method: Callable[..., Any], request: Any, *, bounded: bool = True) -> Any:
+        """One call with the token, bounded by the client's timeout unless `bounded` is
+        False; a failure becomes our `CallError` (`errors.from_rpc_error`)."""
         try:
-            return method(request, metadata=self._metadata, timeout=self._timeout if timeout == -1.0 else timeout)
+            return method(request, metadata=self._metadata, timeout=self._timeout if bounded else None)
         except grpc.RpcError as e:
             raise from_rpc_error(e) from None
 
@@ -128,7 +130,7 @@ class Client:
                     while block := f.read(CHUNK_BYTES):
                         yield pb.UploadChunk(data=block)
 
-            return convert.dataset(self._call(self._datasets.Upload, chunks(), timeout=None))
+            return convert.dataset(self._call(self._datasets.Upload, chunks(), bounded=False))
         if not name:
             raise UsageError("upload: a table held in memory needs a name")
         if categorical:
@@ -309,10 +311,10 @@ class Client:
     # ------------------------------------------------------------------ models
 
     @overload
-    def model(self, run: RunRef, format: "str") -> Union[str, bytes]: ...
+    def model(self, run: RunRef, format: Literal["json", "dot", "text", ModelFormat.JSON, ModelFormat.DOT, ModelFormat.TEXT] = ...) -> str: ...
 
     @overload
-    def model(self, run: RunRef, format: ModelFormat = ModelFormat.JSON) -> Union[str, bytes]: ...
+    def model(self, run: RunRef, format: Literal["onnx", ModelFormat.ONNX]) -> bytes: ...
 
     def model(self, run: RunRef, format: Union[ModelFormat, str] = ModelFormat.JSON) -> Union[str, bytes]:
         """The finished run's model as a file: text for "json", "dot" and "text", bytes for
