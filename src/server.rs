@@ -14,6 +14,7 @@ use crate::clock::{Clock, SystemClock};
 use crate::config::Config;
 use crate::scheduler;
 use crate::pb;
+use crate::rpc::calls::CallsLayer;
 use crate::rpc::limits::GuardLayer;
 use crate::rpc::Api;
 use crate::store::Storage;
@@ -99,9 +100,10 @@ pub async fn run_with_clock(listener: TcpListener, config: Config, store: Arc<dy
         }
     };
     let m = shared.config.messages;
-    // The caller is checked first (a refused caller takes no upload slot), then the transport
-    // guard counts the bytes.
+    // Every call is counted for /metrics, refused ones too; the caller is checked first (a
+    // refused caller takes no upload slot), then the transport guard counts the bytes.
     let router = tonic::transport::Server::builder()
+        .layer(CallsLayer::new(shared.clone()))
         .layer(AuthLayer::new(access.gate.clone()))
         .layer(GuardLayer::new(&shared.config))
         .add_service(health)

@@ -199,7 +199,10 @@ fn execute_blocking(shared: &Shared, run: &Run, cancel: &AtomicBool) -> Ending {
         // Owned here, so a panic out of the sweep drops it and the committer ends.
         let (hand_over, handed) = mpsc::channel::<(sweep::UnitResult, Vec<EventKind>)>();
         scope.spawn(|| commit(shared, &run.id, handed, &store_failed, &stored, &ended_elsewhere));
-        let sink = |unit: &sweep::UnitResult, progress: sweep::Progress| {
+        let sink = |unit: &sweep::UnitResult, progress: sweep::Progress, took: Option<Duration>| {
+            if let Some(t) = took {
+                shared.metrics.unit_seconds.observe(t.as_secs_f64());
+            }
             if store_failed.lock().unwrap().is_some() || ended_elsewhere.load(Ordering::SeqCst) {
                 return Flow::Stop;
             }
@@ -232,7 +235,7 @@ fn execute_blocking(shared: &Shared, run: &Run, cancel: &AtomicBool) -> Ending {
                 Err(_) => Flow::Stop,
             }
         };
-        shared.pool.install(|| sweep::run(&plan, done.clone(), &sink, cancel))
+        shared.pool.install(|| sweep::run_timed(&plan, done.clone(), &sink, cancel, &|| Some(std::time::Instant::now())))
     });
     if let Some(e) = store_failed.lock().unwrap().take() {
         return Ending::Failed(format!("cannot store a finished unit: {e}"));

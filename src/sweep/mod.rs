@@ -356,6 +356,19 @@ pub fn run(
     sink: &(dyn Fn(&UnitResult, Progress) -> Flow + Sync),
     cancel: &AtomicBool,
 ) -> Result<Vec<UnitResult>, SweepError> {
+    let no_clock = || None;
+    run_timed(plan, done, &|r, p, _| sink(r, p), cancel, &no_clock)
+}
+
+/// [`run`], also telling the sink how long each unit took by the caller's monotonic clock
+/// `now` (the core reads no clock itself; `None` from `now`: no durations).
+pub fn run_timed(
+    plan: &Plan,
+    done: Vec<UnitResult>,
+    sink: &(dyn Fn(&UnitResult, Progress, Option<std::time::Duration>) -> Flow + Sync),
+    cancel: &AtomicBool,
+    now: &(dyn Fn() -> Option<std::time::Instant> + Sync),
+) -> Result<Vec<UnitResult>, SweepError> {
     let sizes: Vec<usize> = (0..plan.units.len()).map(|u| plan.unit_size(u)).collect();
     let total_scores: usize = sizes.iter().sum();
     let mut finished = vec![false; plan.units.len()];
@@ -372,7 +385,9 @@ pub fn run(
             if cancel.load(Ordering::Relaxed) {
                 return Ok(None);
             }
+            let began = now();
             let r = plan.run_unit(u)?;
+            let took = began.zip(now()).map(|(a, b)| b.saturating_duration_since(a));
             // The sink runs under the lock that numbers the progress, so units reach it one
             // at a time in the order of their numbers (a sink that stores them stores them in
             // that order). A panicking sink fails the run; it does not poison the others.
@@ -380,7 +395,7 @@ pub fn run(
             g.0 += 1;
             g.1 += sizes[u];
             let p = Progress { units_done: g.0, units_total: plan.units.len(), scores_done: g.1, scores_total: total_scores };
-            if sink(&r, p) == Flow::Stop {
+            if sink(&r, p, took) == Flow::Stop {
                 cancel.store(true, Ordering::Relaxed);
             }
             drop(g);
