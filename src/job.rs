@@ -293,6 +293,9 @@ pub struct RunOutcome {
     pub model: Option<Tree>,
     /// Per repeat, per row: the fold the row validates in (−1: none).
     pub fold_assignment: Vec<Vec<i32>>,
+    /// Permutation importance of the picked setting on the validation folds; `None` for runs
+    /// finished before it was computed.
+    pub permutation: Option<crate::sweep::PermutationImportance>,
 }
 
 /// A stored work unit of a run.

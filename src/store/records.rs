@@ -28,7 +28,7 @@ use crate::export::json::{from_json, to_json};
 use crate::drift::{DriftReport, DriftThresholds, Knob, LimitMove};
 use crate::job::{ColumnMeta, DatasetMeta, Event, EventKind, Fire, FireOutcome, Retention, Run, RunOutcome, RunState, Schedule};
 use crate::schedule::CatchUp;
-use crate::sweep::{FoldPlan, FoldScheme, FoldScore, Metric, PickRule, Progress, Range, Setting, SettingScore, SweepSpec, UnitResult};
+use crate::sweep::{FoldPlan, FoldScheme, FoldScore, Metric, PermutationImportance, PickRule, Progress, Range, Setting, SettingScore, SweepSpec, UnitResult};
 use crate::tree::{ClassWeight, Criterion, FitOptions, Limits, Splitter};
 
 /// The format byte this build writes (and the only one it reads).
@@ -739,6 +739,17 @@ pub struct OutcomeRecord {
     /// The `pollard.model` JSON text of the refit tree.
     model: Option<String>,
     fold_assignment: Vec<Vec<i32>>,
+    /// Permutation importance (absent in records written before it was computed).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    permutation: Option<PermutationRecord>,
+}
+
+#[derive(Serialize, Deserialize)]
+struct PermutationRecord {
+    features: Vec<String>,
+    repeats: u32,
+    /// Per split, per feature column: the mean drop over the repeats.
+    per_fold: Vec<Vec<Real>>,
 }
 
 #[derive(Serialize, Deserialize)]
@@ -859,6 +870,7 @@ impl From<&RunOutcome> for OutcomeRecord {
             best: o.best,
             model: o.model.as_ref().map(to_json),
             fold_assignment: o.fold_assignment.clone(),
+            permutation: o.permutation.as_ref().map(|p| PermutationRecord { features: p.features.clone(), repeats: p.repeats, per_fold: p.per_fold.iter().map(|f| reals(f)).collect() }),
         }
     }
 }
@@ -868,7 +880,11 @@ impl TryFrom<OutcomeRecord> for RunOutcome {
     fn try_from(r: OutcomeRecord) -> Result<Self, StoreError> {
         let scores = r.scores.into_iter().map(SettingScore::try_from).collect::<Result<_, StoreError>>()?;
         let model = r.model.map(|text| from_json(&text).map_err(|e| corrupt("outcome", format!("model: {e}")))).transpose()?;
-        Ok(RunOutcome { scores, picked: r.picked, best: r.best, model, fold_assignment: r.fold_assignment })
+        if let Some(p) = r.permutation.as_ref().filter(|p| p.per_fold.iter().any(|f| f.len() != p.features.len())) {
+            return Err(corrupt("outcome", format!("permutation importance has a fold without one value per feature ({} features)", p.features.len())));
+        }
+        let permutation = r.permutation.map(|p| PermutationImportance { features: p.features, repeats: p.repeats, per_fold: p.per_fold.iter().map(|f| unreal(f)).collect() });
+        Ok(RunOutcome { scores, picked: r.picked, best: r.best, model, fold_assignment: r.fold_assignment, permutation })
     }
 }
 
