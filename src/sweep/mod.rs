@@ -8,6 +8,7 @@
 //!
 //! `valid_sd` is the sample standard deviation of the fold scores (ddof = 1; 0 with one fold).
 
+pub mod costs;
 pub mod envelope;
 pub mod importance;
 pub mod folds;
