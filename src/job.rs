@@ -295,6 +295,9 @@ pub struct RunOutcome {
     pub fold_assignment: Vec<Vec<i32>>,
     /// The outer loop's scores, for a nested sweep.
     pub nested: Option<crate::sweep::NestedResult>,
+    /// Permutation importance of the picked setting on the validation folds; `None` for runs
+    /// finished before it was computed.
+    pub permutation: Option<crate::sweep::PermutationImportance>,
 }
 
 /// A stored work unit of a run.

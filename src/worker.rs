@@ -259,6 +259,11 @@ fn execute_blocking(shared: &Shared, run: &Run, cancel: &AtomicBool) -> Ending {
     } else {
         None
     };
+    // Permutation importance of the picked setting on the validation folds (k more fits).
+    let permutation = match shared.pool.install(|| sweep::permutation_importance(&plan, &result.scores[result.picked].setting, spec.seed, sweep::PERMUTATION_REPEATS)) {
+        Ok(p) => Some(p),
+        Err(e) => return Ending::Failed(e.to_string()),
+    };
     info!(picked = result.picked, valid_mean = result.scores[result.picked].valid_mean, "sweep finished");
     Ending::Finished(RunOutcome {
         scores: result.scores,
@@ -267,6 +272,7 @@ fn execute_blocking(shared: &Shared, run: &Run, cancel: &AtomicBool) -> Ending {
         model,
         fold_assignment: plan.folds.assignment.clone(),
         nested: result.nested,
+        permutation,
     })
 }
 

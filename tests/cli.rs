@@ -237,6 +237,18 @@ fn put_sweep_follow_show_runs_model_predict() {
     assert_fits(&text);
     assert!(text.contains(&format!("pick rule highest: grid# {picked}")), "{text}");
     assert!(text.contains(&format!("model: {model_nodes} nodes")), "{text}");
+    // What the picked setting leans on: every iris feature, the shuffled drops and shares of
+    // --json in the table, most first.
+    let imps = arr(&shown, "importances");
+    assert_eq!(imps.len(), 4, "{shown}");
+    assert_eq!(u(&shown, "permutation_repeats"), 5);
+    let share_sum: f64 = imps.iter().map(|f| f["impurity"].as_f64().unwrap()).sum();
+    assert!((share_sum - 1.0).abs() < 1e-9, "{shown}");
+    let mut by_drop: Vec<(f64, &str)> = imps.iter().map(|f| (f["permutation_mean"].as_f64().unwrap(), f["feature"].as_str().unwrap())).collect();
+    by_drop.sort_by(|a, b| b.0.total_cmp(&a.0).then(a.1.cmp(b.1)));
+    let listed: Vec<&str> = text.lines().skip_while(|l| !l.starts_with("what the picked setting leans on")).filter_map(|l| l.strip_prefix("  ")).filter(|l| by_drop.iter().any(|(_, n)| l.starts_with(n))).map(|l| l.split_whitespace().next().unwrap()).collect();
+    assert_eq!(listed, by_drop.iter().take(3).map(|(_, n)| *n).collect::<Vec<_>>(), "--top 3 features, most first:\n{text}");
+    assert!(text.contains("  … 1 more features (--top)"), "{text}");
 
     // local, with the same flags, scores the same folds the same way as the server.
     let mut args = vec!["local", iris_path, "--target", "target", "--json"];

@@ -190,7 +190,7 @@ fn fitted() -> &'static Fitted {
         };
         let mut run = Run::queued("run_0123".into(), &meta, "target".into(), spec, 1_700_000_000_000);
         run.labels.insert("team".into(), "reefer".into());
-        let outcome = RunOutcome { scores: result.scores, picked: result.picked as u32, best: result.best as u32, model: result.model, fold_assignment: vec![vec![0, 1, -1]], nested: result.nested };
+        let outcome = RunOutcome { scores: result.scores, picked: result.picked as u32, best: result.best as u32, model: result.model, fold_assignment: vec![vec![0, 1, -1]], nested: result.nested, permutation: None };
         Fitted { meta, run, units: units.into_inner().unwrap(), outcome }
     })
 }

@@ -390,6 +390,7 @@ pub async fn show(ch: Conn, id: &str, top: usize, json_out: bool) -> Res {
     if let Some(m) = &r.model {
         println!("model: {} nodes, {} leaves, depth {}", m.nodes, m.leaves, m.depth);
     }
+    print!("{}", output::importance_lines(&r, if r.metric.is_empty() { "score" } else { &r.metric }, top));
     if let Some(d) = &r.drift {
         print!("{}", super::schedules::drift_lines(d, if r.metric.is_empty() { "score" } else { &r.metric }));
     }

@@ -131,6 +131,36 @@ pub fn nested_lines(n: &pb::NestedEstimate, metric: &str) -> String {
     out
 }
 
+/// Width of the feature column in the importance table; longer names are cut with `…`.
+const FEATURE_WIDTH: usize = 40;
+
+/// What the picked setting leans on, most first (by permutation drop, else impurity share),
+/// at most `top` features and a count of the rest. Every line fits in 120 characters.
+pub fn importance_lines(r: &pb::RunInfo, metric: &str, top: usize) -> String {
+    if r.importances.is_empty() {
+        return String::new();
+    }
+    let mut order: Vec<&pb::FeatureImportance> = r.importances.iter().collect();
+    let key = |f: &pb::FeatureImportance| f.permutation_mean.or(f.impurity).unwrap_or(0.0);
+    order.sort_by(|a, b| key(b).total_cmp(&key(a)).then(a.feature.cmp(&b.feature)));
+    let folds = r.scores.first().map_or(0, |s| s.fold_scores.len());
+    let mut out = String::from("what the picked setting leans on, most first:\n");
+    if r.permutation_repeats > 0 {
+        out += &format!("  shuffled, sd: drop in {metric} when the feature is shuffled ({} shuffles in each of {folds} validation folds)\n", r.permutation_repeats);
+    }
+    out += "  share: the feature's share of the model's impurity decrease\n";
+    out += &format!("  {:<FEATURE_WIDTH$} {:>12} {:>10} {:>8}\n", "feature", "shuffled", "sd", "share");
+    let cell = |x: Option<f64>| x.map_or("-".to_string(), |v| format!("{v:.4}"));
+    for f in order.iter().take(top) {
+        let name: String = if f.feature.chars().count() > FEATURE_WIDTH { f.feature.chars().take(FEATURE_WIDTH - 1).chain(['…']).collect() } else { f.feature.clone() };
+        out += &format!("  {name:<FEATURE_WIDTH$} {:>12} {:>10} {:>8}\n", cell(f.permutation_mean), cell(f.permutation_sd), cell(f.impurity));
+    }
+    if order.len() > top {
+        out += &format!("  … {} more features (--top)\n", order.len() - top);
+    }
+    out
+}
+
 pub fn nested_json(n: &pb::NestedEstimate) -> Value {
     json!({
         "outer_mean": n.outer_mean, "outer_sd": n.outer_sd, "optimism": n.optimism,
@@ -139,6 +169,10 @@ pub fn nested_json(n: &pb::NestedEstimate) -> Value {
             "inner_picked": f.inner_picked, "outer_score": f.outer_score, "leaves": f.leaves,
         })).collect::<Vec<_>>(),
     })
+}
+
+pub fn importance_json(f: &pb::FeatureImportance) -> Value {
+    json!({"feature": f.feature, "impurity": f.impurity.map(num), "permutation_mean": f.permutation_mean.map(num), "permutation_sd": f.permutation_sd.map(num)})
 }
 
 pub fn run_json(r: &pb::RunInfo) -> Value {
@@ -153,6 +187,8 @@ pub fn run_json(r: &pb::RunInfo) -> Value {
         "dataset_rows": r.dataset_rows,
         "drift": r.drift.as_ref().map(super::schedules::drift_json),
         "nested": r.nested.as_ref().map(nested_json),
+        "importances": r.importances.iter().map(importance_json).collect::<Vec<_>>(),
+        "permutation_repeats": r.permutation_repeats,
     })
 }
 

@@ -488,8 +488,26 @@ pub fn run_info(r: &Run, outcome: Option<&RunOutcome>) -> pb::RunInfo {
         if let Some(m) = &o.model {
             info.model = Some(pb::ModelSummary { nodes: m.nodes.len() as u32, leaves: m.n_leaves() as u32, depth: m.depth(), classes: m.labels.clone() });
         }
+        info.importances = importances_to(o);
+        info.permutation_repeats = o.permutation.as_ref().map_or(0, |p| p.repeats);
     }
     info
+}
+
+/// Per feature column of a finished run: impurity importance in the refit model and
+/// permutation importance over the validation folds, whichever the run has.
+fn importances_to(o: &RunOutcome) -> Vec<pb::FeatureImportance> {
+    let impurity = o.model.as_ref().map(|m| m.impurity_importances());
+    let (mean, sd) = o.permutation.as_ref().map(|p| (p.mean(), p.sd())).unzip();
+    let n = impurity.as_ref().map(Vec::len).or(mean.as_ref().map(Vec::len)).unwrap_or(0);
+    (0..n)
+        .map(|j| pb::FeatureImportance {
+            feature: o.permutation.as_ref().and_then(|p| p.features.get(j).cloned()).or_else(|| o.model.as_ref().and_then(|m| m.columns.get(j)).map(|c| c.name.clone())).unwrap_or_default(),
+            impurity: impurity.as_ref().and_then(|v| v.get(j).copied()),
+            permutation_mean: mean.as_ref().and_then(|v| v.get(j).copied()),
+            permutation_sd: sd.as_ref().and_then(|v| v.get(j).copied()),
+        })
+        .collect()
 }
 
 /// An event for the wire; a finished event takes its scores and model from `outcome`.
@@ -697,6 +715,7 @@ pub fn model_to(t: &Tree) -> pb::Model {
             prune_alpha: l.prune_alpha,
         }),
         total_weight: t.total_weight,
+        importances: t.impurity_importances(),
     }
 }
 

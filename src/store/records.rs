@@ -28,7 +28,7 @@ use crate::export::json::{from_json, to_json};
 use crate::drift::{DriftReport, DriftThresholds, Knob, LimitMove};
 use crate::job::{ColumnMeta, DatasetMeta, Event, EventKind, Fire, FireOutcome, Retention, Run, RunOutcome, RunState, Schedule};
 use crate::schedule::CatchUp;
-use crate::sweep::{FoldPlan, FoldScheme, FoldScore, Metric, NestedResult, OuterFold, PickRule, Progress, Range, Setting, SettingScore, SweepSpec, UnitResult};
+use crate::sweep::{FoldPlan, FoldScheme, FoldScore, Metric, NestedResult, OuterFold, PermutationImportance, PickRule, Progress, Range, Setting, SettingScore, SweepSpec, UnitResult};
 use crate::tree::{ClassWeight, Criterion, FitOptions, Limits, Splitter};
 
 /// The format byte this build writes (and the only one it reads).
@@ -747,6 +747,9 @@ pub struct OutcomeRecord {
     /// Absent in records written before nested sweeps, and for plain sweeps.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     nested: Option<NestedRecord>,
+    /// Permutation importance (absent in records written before it was computed).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    permutation: Option<PermutationRecord>,
 }
 
 #[derive(Serialize, Deserialize)]
@@ -811,6 +814,14 @@ impl TryFrom<NestedRecord> for NestedResult {
             .collect::<Result<_, StoreError>>()?;
         Ok(NestedResult { folds, outer_mean: r.outer_mean.0, outer_sd: r.outer_sd.0, optimism: r.optimism.0 })
     }
+}
+
+#[derive(Serialize, Deserialize)]
+struct PermutationRecord {
+    features: Vec<String>,
+    repeats: u32,
+    /// Per split, per feature column: the mean drop over the repeats.
+    per_fold: Vec<Vec<Real>>,
 }
 
 #[derive(Serialize, Deserialize)]
@@ -932,6 +943,7 @@ impl From<&RunOutcome> for OutcomeRecord {
             model: o.model.as_ref().map(to_json),
             fold_assignment: o.fold_assignment.clone(),
             nested: o.nested.as_ref().map(NestedRecord::from),
+            permutation: o.permutation.as_ref().map(|p| PermutationRecord { features: p.features.clone(), repeats: p.repeats, per_fold: p.per_fold.iter().map(|f| reals(f)).collect() }),
         }
     }
 }
@@ -942,7 +954,11 @@ impl TryFrom<OutcomeRecord> for RunOutcome {
         let scores = r.scores.into_iter().map(SettingScore::try_from).collect::<Result<_, StoreError>>()?;
         let model = r.model.map(|text| from_json(&text).map_err(|e| corrupt("outcome", format!("model: {e}")))).transpose()?;
         let nested = r.nested.map(NestedResult::try_from).transpose()?;
-        Ok(RunOutcome { scores, picked: r.picked, best: r.best, model, fold_assignment: r.fold_assignment, nested })
+        if let Some(p) = r.permutation.as_ref().filter(|p| p.per_fold.iter().any(|f| f.len() != p.features.len())) {
+            return Err(corrupt("outcome", format!("permutation importance has a fold without one value per feature ({} features)", p.features.len())));
+        }
+        let permutation = r.permutation.map(|p| PermutationImportance { features: p.features, repeats: p.repeats, per_fold: p.per_fold.iter().map(|f| unreal(f)).collect() });
+        Ok(RunOutcome { scores, picked: r.picked, best: r.best, model, fold_assignment: r.fold_assignment, nested, permutation })
     }
 }
 

@@ -147,6 +147,7 @@ fn outcome(model: Option<Tree>) -> RunOutcome {
         model,
         fold_assignment: vec![vec![0, 1, -1, 2], vec![2, 1, 0, 0]],
         nested: None,
+        permutation: Some(crate::sweep::PermutationImportance { features: vec!["a".into(), "b".into(), "c".into()], repeats: 5, per_fold: vec![vec![0.25, 0.0, -0.01], vec![0.1, f64::MIN_POSITIVE, 1.0 / 3.0]] }),
     }
 }
 

@@ -8,7 +8,9 @@
 //!
 //! `valid_sd` is the sample standard deviation of the fold scores (ddof = 1; 0 with one fold).
 
+pub mod costs;
 pub mod envelope;
+pub mod importance;
 pub mod folds;
 pub mod memory;
 pub mod metrics;
@@ -19,6 +21,7 @@ use std::sync::atomic::{AtomicBool, Ordering};
 use rayon::prelude::*;
 
 pub use envelope::{Envelope, FoldScore, Stopping};
+pub use importance::{permutation_importance, PermutationImportance, PERMUTATION_REPEATS};
 pub use folds::{FoldPlan, FoldScheme, FoldSplit, Folds};
 pub use memory::RunSize;
 pub use metrics::Metric;
