@@ -179,7 +179,7 @@ fn envelope_options(spec: &CheckedSpec, key: &ShapingKey) -> FitOptions {
 
 impl Plan {
     /// Setting × split scores per unit.
-    fn unit_size(&self, unit: usize) -> usize {
+    pub fn unit_size(&self, unit: usize) -> usize {
         let key = self.units[unit].1;
         self.settings.iter().filter(|s| s.key == key).count()
     }
@@ -223,16 +223,32 @@ pub fn run(
     sink: &(dyn Fn(&UnitResult, Progress) -> Flow + Sync),
     cancel: &AtomicBool,
 ) -> Result<Vec<UnitResult>, SweepError> {
-    let sizes: Vec<usize> = (0..plan.units.len()).map(|u| plan.unit_size(u)).collect();
-    let total_scores: usize = sizes.iter().sum();
     let mut finished = vec![false; plan.units.len()];
     for r in &done {
         finished[r.unit] = true;
     }
+    let todo: Vec<usize> = (0..plan.units.len()).filter(|&u| !finished[u]).collect();
+    let fresh = run_some(plan, &todo, &done, sink, cancel)?;
+    let mut all = done;
+    all.extend(fresh);
+    all.sort_by_key(|r| r.unit);
+    Ok(all)
+}
+
+/// Scores the units `todo` (indices into [`Plan::units`]) as [`run`] scores the units not
+/// done, counting progress on from `done`; only the fresh results, in `todo`'s order.
+pub fn run_some(
+    plan: &Plan,
+    todo: &[usize],
+    done: &[UnitResult],
+    sink: &(dyn Fn(&UnitResult, Progress) -> Flow + Sync),
+    cancel: &AtomicBool,
+) -> Result<Vec<UnitResult>, SweepError> {
+    let sizes: Vec<usize> = (0..plan.units.len()).map(|u| plan.unit_size(u)).collect();
+    let total_scores: usize = sizes.iter().sum();
     let already_units = done.len();
     let already_scores: usize = done.iter().map(|r| sizes[r.unit]).sum();
     let progress = std::sync::Mutex::new((already_units, already_scores));
-    let todo: Vec<usize> = (0..plan.units.len()).filter(|&u| !finished[u]).collect();
     let fresh: Vec<Result<Option<UnitResult>, FitError>> = todo
         .par_iter()
         .map(|&u| {
@@ -254,7 +270,7 @@ pub fn run(
             Ok(Some(r))
         })
         .collect();
-    let mut all = done;
+    let mut all = Vec::with_capacity(todo.len());
     for r in fresh {
         if let Some(r) = r? {
             all.push(r);
@@ -263,7 +279,6 @@ pub fn run(
     if cancel.load(Ordering::Relaxed) {
         return Err(SweepError::Cancelled);
     }
-    all.sort_by_key(|r| r.unit);
     Ok(all)
 }
 
