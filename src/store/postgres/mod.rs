@@ -37,7 +37,9 @@ use std::time::Duration;
 use deadpool_postgres::{Manager, ManagerConfig, Pool, RecyclingMethod, Runtime, Transaction};
 use tokio_postgres::error::SqlState;
 use tokio_postgres::types::ToSql;
+use tokio_postgres::config::SslMode;
 use tokio_postgres::{NoTls, Row};
+use tokio_postgres_rustls::MakeRustlsConnect;
 
 use super::paging::{dataset_position, page};
 use super::{announced, fire_run, keys, number_fire, records, same_version, Change, Claim, CreateRun, DeleteDataset, PutDataset, Recorded, Resumed, RunFilter, Storage, StoreError, UnitLog, CHUNK_BYTES};
@@ -84,6 +86,70 @@ struct Inner {
     lease_ms: i64,
     /// The connection settings (the change watcher connects on its own).
     config: tokio_postgres::Config,
+    /// TLS to the database, when the URL asks for it.
+    tls: Option<MakeRustlsConnect>,
+}
+
+/// The TLS connector a URL asks for: none unless `sslmode=require`, which needs the PEM file
+/// of the certificate authority that signed the database's certificate (`ca_file`); the
+/// certificate and the host name are then verified.
+fn tls_for(config: &tokio_postgres::Config, ca_file: Option<&Path>) -> Result<Option<MakeRustlsConnect>, StoreError> {
+    match (config.get_ssl_mode(), ca_file) {
+        (SslMode::Require, Some(ca)) => {
+            let mut roots = tokio_rustls::rustls::RootCertStore::empty();
+            for cert in crate::access::tls::certs(&ca.to_path_buf()).map_err(StoreError::Io)? {
+                roots.add(cert).map_err(|e| StoreError::Io(format!("{}: {e}", ca.display())))?;
+            }
+            let provider = std::sync::Arc::new(tokio_rustls::rustls::crypto::ring::default_provider());
+            let tls = tokio_rustls::rustls::ClientConfig::builder_with_provider(provider)
+                .with_safe_default_protocol_versions()
+                .map_err(|e| StoreError::Io(format!("TLS to the database: {e}")))?
+                .with_root_certificates(roots)
+                .with_no_client_auth();
+            Ok(Some(MakeRustlsConnect::new(tls)))
+        }
+        (SslMode::Require, None) => Err(StoreError::Io("database_url asks for TLS (sslmode=require): set database_ca_file to the PEM file of the certificate authority that signed the database's certificate".into())),
+        (_, Some(_)) => Err(StoreError::Io("database_ca_file is set but database_url does not ask for TLS: add sslmode=require to it".into())),
+        (_, None) => Ok(None),
+    }
+}
+
+/// Listens for change notifications on one connection until it fails.
+async fn listen<T>(config: &tokio_postgres::Config, tls: T, wake: &(dyn Fn(Change) + Send + Sync)) -> String
+where
+    T: tokio_postgres::tls::MakeTlsConnect<tokio_postgres::Socket>,
+    T::Stream: Send + 'static,
+{
+    let (client, mut connection) = match config.connect(tls).await {
+        Ok(c) => c,
+        Err(e) => return format!("cannot listen for changes: {e}"),
+    };
+    let listening = async {
+        client.batch_execute(&format!("LISTEN {CHANGES}")).await?;
+        // Changes made while no one listened: look once.
+        wake(Change::Runs);
+        wake(Change::Schedules);
+        std::future::pending::<()>().await;
+        Ok::<(), tokio_postgres::Error>(())
+    };
+    let messages = async {
+        while let Some(m) = std::future::poll_fn(|cx| connection.poll_message(cx)).await {
+            match m {
+                Ok(tokio_postgres::AsyncMessage::Notification(n)) if n.payload().starts_with(SCHEDULE_CHANGE) => wake(Change::Schedules),
+                Ok(tokio_postgres::AsyncMessage::Notification(_)) => wake(Change::Runs),
+                Ok(_) => {}
+                Err(e) => return e.to_string(),
+            }
+        }
+        "the connection closed".to_string()
+    };
+    tokio::select! {
+        r = listening => match r {
+            Err(e) => format!("listening for changes failed: {e}"),
+            Ok(()) => "listening for changes ended".to_string(),
+        },
+        e = messages => format!("the change notifications stopped: {e}"),
+    }
 }
 
 impl Drop for Inner {
@@ -322,7 +388,14 @@ impl PostgresStore {
     /// [`PostgresStore::open`] with runs leased for `lease` at a time (see
     /// [`Storage::renew_leases`]).
     pub fn open_with_lease(url: &str, lease: Duration) -> Result<PostgresStore, StoreError> {
+        PostgresStore::open_with(url, lease, None)
+    }
+
+    /// [`PostgresStore::open_with_lease`], over TLS when the URL says `sslmode=require`,
+    /// trusting the certificate authority in the PEM file `ca_file`.
+    pub fn open_with(url: &str, lease: Duration, ca_file: Option<&Path>) -> Result<PostgresStore, StoreError> {
         let mut config: tokio_postgres::Config = url.parse().map_err(|e| StoreError::Io(format!("database_url does not parse: {e}")))?;
+        let tls = tls_for(&config, ca_file)?;
         config.connect_timeout(CONNECT_TIMEOUT).keepalives(true).keepalives_idle(Duration::from_secs(30)).application_name("pollard");
         let rt = tokio::runtime::Builder::new_multi_thread()
             .worker_threads(2)
@@ -330,7 +403,11 @@ impl PostgresStore {
             .enable_all()
             .build()
             .map_err(|e| StoreError::Io(format!("cannot start the store's runtime: {e}")))?;
-        let manager = Manager::from_config(config.clone(), NoTls, ManagerConfig { recycling_method: RecyclingMethod::Fast });
+        let manager_config = ManagerConfig { recycling_method: RecyclingMethod::Fast };
+        let manager = match &tls {
+            Some(tls) => Manager::from_config(config.clone(), tls.clone(), manager_config),
+            None => Manager::from_config(config.clone(), NoTls, manager_config),
+        };
         let pool = Pool::builder(manager)
             .max_size(POOL_SIZE)
             .runtime(Runtime::Tokio1)
@@ -354,7 +431,7 @@ impl PostgresStore {
             tokio_postgres::config::Host::Unix(path) => path.display().to_string(),
         }).collect();
         let place = format!("{}:{}/{}", hosts.join(","), config.get_ports().first().copied().unwrap_or(5432), config.get_dbname().unwrap_or(""));
-        let store = PostgresStore { inner: std::sync::Arc::new(Inner { rt: Some(rt), pool, staging, worker, place, lease_ms: lease.as_millis().min(i64::MAX as u128) as i64, config }) };
+        let store = PostgresStore { inner: std::sync::Arc::new(Inner { rt: Some(rt), pool, staging, worker, place, lease_ms: lease.as_millis().min(i64::MAX as u128) as i64, config, tls }) };
         store.block(async {
             let mut client = store.inner.pool.get().await.map_err(unreachable)?;
             migrate::migrate(&mut client).await
@@ -559,36 +636,15 @@ impl Storage for PostgresStore {
 
     fn watch_changes(&self, wake: std::sync::Arc<dyn Fn(Change) + Send + Sync>) {
         let config = self.inner.config.clone();
+        let tls = self.inner.tls.clone();
         let rt = self.inner.rt.as_ref().expect("the runtime lives as long as the store");
         rt.spawn(async move {
             loop {
-                match config.connect(NoTls).await {
-                    Ok((client, mut connection)) => {
-                        let listening = async {
-                            client.batch_execute(&format!("LISTEN {CHANGES}")).await?;
-                            // Changes made while no one listened: look once.
-                            wake(Change::Runs);
-                            wake(Change::Schedules);
-                            std::future::pending::<Result<(), tokio_postgres::Error>>().await
-                        };
-                        let messages = async {
-                            while let Some(m) = std::future::poll_fn(|cx| connection.poll_message(cx)).await {
-                                match m {
-                                    Ok(tokio_postgres::AsyncMessage::Notification(n)) if n.payload().starts_with(SCHEDULE_CHANGE) => wake(Change::Schedules),
-                                    Ok(tokio_postgres::AsyncMessage::Notification(_)) => wake(Change::Runs),
-                                    Ok(_) => {}
-                                    Err(e) => return e.to_string(),
-                                }
-                            }
-                            "the connection closed".to_string()
-                        };
-                        tokio::select! {
-                            r = listening => if let Err(e) = r { tracing::warn!(error = %e, "listening for changes failed; listening again") },
-                            e = messages => tracing::warn!(error = %e, "the change notifications stopped; listening again"),
-                        }
-                    }
-                    Err(e) => tracing::warn!(error = %e, "cannot listen for changes; trying again"),
-                }
+                let why = match &tls {
+                    Some(tls) => listen(&config, tls.clone(), wake.as_ref()).await,
+                    None => listen(&config, NoTls, wake.as_ref()).await,
+                };
+                tracing::warn!(error = %why, "listening for changes again");
                 // Followers poll meanwhile (the safety net), so nothing is lost while away.
                 tokio::time::sleep(Duration::from_secs(1)).await;
             }
