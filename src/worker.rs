@@ -227,10 +227,12 @@ fn execute_blocking(shared: &Shared, run: &Run, resumed: bool, cancel: &AtomicBo
     let mut summarise = resumed && done.len() == plan.units.len();
     let known = Known::new(&plan, done);
     let since = AtomicU32::new(0);
-    // Units claimed at a time on a shared store: enough to keep the pool busy, few enough
-    // that a replica's death costs little.
-    let claim = shared.pool.current_num_threads().max(1) * 2;
+    // Units claimed at a time on a shared store: at first enough to keep the pool busy,
+    // then doubled while a claim's units take less than CLAIM_WORK (small units cost a
+    // round trip each otherwise), so a replica's death still costs about that much work.
+    let mut claim = shared.pool.current_num_threads().max(1) * 2;
     loop {
+        let began = std::time::Instant::now();
         let todo = match shared.store.claim_units(&run.id, total, claim) {
             Ok(t) => t,
             Err(e) => return Ending::Failed(format!("cannot claim work units: {e}")),
@@ -241,6 +243,9 @@ fn execute_blocking(shared: &Shared, run: &Run, resumed: bool, cancel: &AtomicBo
         match compute(shared, run, &plan, &todo, &known, &since, cancel) {
             Ok(last) => summarise |= last,
             Err(ending) => return ending,
+        }
+        if began.elapsed() < CLAIM_WORK {
+            claim = (claim * 2).min(MAX_BATCH);
         }
     }
     if !summarise {
@@ -409,8 +414,11 @@ impl Stored {
     }
 }
 
-/// Most units stored in one change.
+/// Most units stored in one change (and claimed at once).
 const MAX_BATCH: usize = 256;
+
+/// About how much work a replica claims at once, once it knows how long its units take.
+const CLAIM_WORK: Duration = Duration::from_secs(1);
 
 /// Stores the units a sweep hands over, off the sweep's threads: everything handed over
 /// since the last write goes into one change (one flush for many units, so a sweep of small

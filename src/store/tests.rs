@@ -1412,3 +1412,56 @@ fn replicas_claim_units_apart_and_take_over_expired_claims() {
     let rows = cluster.sql(name, &format!("SELECT string_agg(unit::text || ':' || (CASE worker WHEN '{}' THEN 'a' WHEN '{}' THEN 'b' ELSE '?' END) || ':' || stored_seq::text, ',' ORDER BY unit) FROM units", a.worker(), b.worker()));
     assert_eq!(rows.trim(), "0:a:1,1:b:3,2:b:4,3:b:5,4:b:2,5:b:6", "each unit's worker and stored order");
 }
+
+// ---------------------------------------------------------------------------------------
+// TLS to the database
+
+/// A certificate authority (PEM) and a server certificate with its key (PEM) for
+/// 127.0.0.1 that it signed.
+fn test_ca(name: &str) -> (String, String, String) {
+    use rcgen::{BasicConstraints, CertificateParams, DnType, IsCa, Issuer, KeyPair};
+    let ca_key = KeyPair::generate().unwrap();
+    let mut ca = CertificateParams::new(Vec::<String>::new()).unwrap();
+    ca.is_ca = IsCa::Ca(BasicConstraints::Unconstrained);
+    ca.distinguished_name.push(DnType::CommonName, name);
+    let ca_pem = ca.self_signed(&ca_key).unwrap().pem();
+    let issuer = Issuer::new(ca, ca_key);
+    let key = KeyPair::generate().unwrap();
+    let server = CertificateParams::new(vec!["127.0.0.1".to_string()]).unwrap().signed_by(&key, &issuer).unwrap();
+    (ca_pem, server.pem(), key.serialize_pem())
+}
+
+/// `sslmode=require` connects over TLS, verifying the database's certificate against
+/// `database_ca_file`: the server sees only TLS connections from the store, a CA that did
+/// not sign the certificate is refused, and a URL asking for TLS without a CA file (or a
+/// CA file without TLS) is refused with a message naming the setting.
+#[test]
+fn sslmode_require_connects_over_verified_tls() {
+    let Some(cluster) = pg::own_cluster() else { return };
+    let (ca, cert, key) = test_ca("database test CA");
+    cluster.serve_tls(&cert, &key);
+    let dir = TempDir::new("db-tls");
+    std::fs::create_dir_all(dir.path()).unwrap();
+    let (ca_file, other_file) = (dir.path().join("ca.pem"), dir.path().join("other.pem"));
+    std::fs::write(&ca_file, &ca).unwrap();
+    std::fs::write(&other_file, test_ca("another CA").0).unwrap();
+    let url = format!("{}?sslmode=require", cluster.fresh_database("tls"));
+    let lease = std::time::Duration::from_secs(15);
+
+    let store = PostgresStore::open_with(&url, lease, Some(&ca_file)).unwrap();
+    store.put_dataset(meta("ds_1", "reefer", 0, 5), b"hello").unwrap();
+    assert_eq!(store.dataset_bytes("ds_1").unwrap().unwrap(), b"hello");
+    let name = url.rsplit('/').next().unwrap().split('?').next().unwrap();
+    let seen = cluster.sql(name, "SELECT count(*) FILTER (WHERE s.ssl), count(*) FROM pg_stat_ssl s JOIN pg_stat_activity a USING (pid) WHERE a.application_name = 'pollard'");
+    let (tls, all) = seen.trim().split_once('|').unwrap();
+    assert!(all.parse::<u32>().unwrap() > 0 && tls == all, "store connections over TLS / all: {seen}");
+    drop(store);
+
+    let wrong = PostgresStore::open_with(&url, lease, Some(&other_file)).err().expect("a CA that did not sign the certificate is refused");
+    assert!(matches!(&wrong, StoreError::Unavailable(m) if m.contains("TLS")), "{wrong}");
+    let no_ca = PostgresStore::open_with(&url, lease, None).err().expect("sslmode=require needs a CA file");
+    assert!(matches!(&no_ca, StoreError::Io(m) if m.contains("database_ca_file")), "{no_ca}");
+    let plain = url.trim_end_matches("?sslmode=require");
+    let stray = PostgresStore::open_with(plain, lease, Some(&ca_file)).err().expect("a CA file without sslmode=require is refused");
+    assert!(matches!(&stray, StoreError::Io(m) if m.contains("sslmode=require")), "{stray}");
+}

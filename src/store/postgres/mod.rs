@@ -938,8 +938,9 @@ impl Storage for PostgresStore {
                 run.units_at_start = None;
                 run.crash_strikes = 0;
                 put_run(tx, &run).await?;
-                // Another replica may take it at once.
+                // Another replica may take it, and the units this one had claimed, at once.
                 execute(tx, "UPDATE runs SET lease_expires = 0 WHERE id = $1 AND lease_owner = $2", &[&run_id, &self.inner.worker]).await?;
+                execute(tx, "UPDATE unit_claims SET owner = NULL, expires_at = 0 WHERE run_id = $1 AND owner = $2", &[&run_id, &self.inner.worker]).await?;
             }
             Ok(())
         })
