@@ -232,11 +232,12 @@ impl Run {
         }
     }
 
-    /// Queued → running.
+    /// Queued → running; it never starts before it was created (a claimer may read its
+    /// clock before the run's creation is committed).
     pub fn start(&mut self, now: i64, settings: u32, units_total: u32) {
         debug_assert_eq!(self.state, RunState::Queued);
         self.state = RunState::Running;
-        self.started_at = Some(now);
+        self.started_at = Some(now.max(self.created_at));
         self.units_at_start = Some(self.units_done);
         self.settings = settings;
         self.units_total = units_total;

@@ -17,7 +17,7 @@ use crate::pb;
 use crate::rpc::calls::CallsLayer;
 use crate::rpc::limits::GuardLayer;
 use crate::rpc::Api;
-use crate::store::Storage;
+use crate::store::{Change, Storage};
 use crate::worker::{self, Shared};
 
 /// The gRPC services the server registers, by full name (also what health checks name).
@@ -55,10 +55,14 @@ pub async fn run_with_clock(listener: TcpListener, config: Config, store: Arc<dy
     if shared.store.shared() {
         spawn_leases(&shared);
         let woken = Arc::downgrade(&shared);
-        shared.store.watch_changes(Arc::new(move || {
-            if let Some(s) = woken.upgrade() {
-                s.announce();
-                s.queued.notify_waiters();
+        shared.store.watch_changes(Arc::new(move |change| {
+            let Some(s) = woken.upgrade() else { return };
+            match change {
+                Change::Runs => {
+                    s.announce();
+                    s.queued.notify_waiters();
+                }
+                Change::Schedules => s.schedules_changed.notify_one(),
             }
         }));
     }

@@ -461,7 +461,7 @@ fn serve(a: ServeArgs) -> Result<(), String> {
     runtime.block_on(async move {
         let store: std::sync::Arc<dyn crate::store::Storage> = match &config.store {
             crate::config::StoreChoice::Sled => std::sync::Arc::new(crate::store::SledStore::open(&config.data_dir).map_err(|e| format!("{}: {e}", config.data_dir.display()))?),
-            crate::config::StoreChoice::Postgres(url) => std::sync::Arc::new(crate::store::PostgresStore::open_with_lease(&url.0, std::time::Duration::from_secs(config.lease_secs)).map_err(|e| format!("database {}: {e}", url.redacted()))?),
+            crate::config::StoreChoice::Postgres(url) => std::sync::Arc::new(crate::store::PostgresStore::open_with(&url.0, std::time::Duration::from_secs(config.lease_secs), config.database_ca_file.as_deref()).map_err(|e| format!("database {}: {e}", url.redacted()))?),
         };
         let listener = tokio::net::TcpListener::bind(config.listen).await.map_err(|e| format!("cannot listen on {}: {e}", config.listen))?;
         crate::server::run(listener, config, store, shutdown_signal()).await

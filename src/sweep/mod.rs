@@ -315,7 +315,7 @@ impl Plan {
     }
 
     /// Setting × split scores per unit.
-    fn unit_size(&self, unit: usize) -> usize {
+    pub fn unit_size(&self, unit: usize) -> usize {
         let key = self.units[unit].1;
         self.settings.iter().filter(|s| s.key == key).count()
     }
@@ -351,8 +351,9 @@ fn same_stopping(a: &crate::tree::Limits, b: &crate::tree::Limits) -> bool {
 }
 
 /// Scores every unit not in `done`, in parallel, calling `sink` after each (from the worker
-/// thread that finished it, one call at a time, with progress numbers in call order). The cancel flag is checked before each unit starts; a raised
-/// flag or a `Stop` from the sink ends the run with [`SweepError::Cancelled`].
+/// thread that finished it, one call at a time, with progress numbers in call order). The
+/// cancel flag is checked before each unit starts; a raised flag or a `Stop` from the sink
+/// ends the run with [`SweepError::Cancelled`].
 pub fn run(
     plan: &Plan,
     done: Vec<UnitResult>,
@@ -363,25 +364,46 @@ pub fn run(
     run_timed(plan, done, &|r, p, _| sink(r, p), cancel, &no_clock)
 }
 
-/// [`run`], also telling the sink how long each unit took by the caller's monotonic clock
-/// `now` (the core reads no clock itself; `None` from `now`: no durations).
-pub fn run_timed(
-    plan: &Plan,
-    done: Vec<UnitResult>,
-    sink: &(dyn Fn(&UnitResult, Progress, Option<std::time::Duration>) -> Flow + Sync),
-    cancel: &AtomicBool,
-    now: &(dyn Fn() -> Option<std::time::Instant> + Sync),
-) -> Result<Vec<UnitResult>, SweepError> {
-    let sizes: Vec<usize> = (0..plan.units.len()).map(|u| plan.unit_size(u)).collect();
-    let total_scores: usize = sizes.iter().sum();
+/// A sink that is also told how long each unit took.
+pub type TimedSink<'a> = dyn Fn(&UnitResult, Progress, Option<std::time::Duration>) -> Flow + Sync + 'a;
+
+/// A monotonic clock the caller lends the core (which reads none itself); `None`: no durations.
+pub type Clock<'a> = dyn Fn() -> Option<std::time::Instant> + Sync + 'a;
+
+/// [`run`], also telling the sink how long each unit took by the caller's clock `now`.
+pub fn run_timed(plan: &Plan, done: Vec<UnitResult>, sink: &TimedSink, cancel: &AtomicBool, now: &Clock) -> Result<Vec<UnitResult>, SweepError> {
     let mut finished = vec![false; plan.units.len()];
     for r in &done {
         finished[r.unit] = true;
     }
+    let todo: Vec<usize> = (0..plan.units.len()).filter(|&u| !finished[u]).collect();
+    let fresh = run_some_timed(plan, &todo, &done, sink, cancel, now)?;
+    let mut all = done;
+    all.extend(fresh);
+    all.sort_by_key(|r| r.unit);
+    Ok(all)
+}
+
+/// Scores the units `todo` (indices into [`Plan::units`]) as [`run`] scores the units not
+/// done, counting progress on from `done`; only the fresh results, in `todo`'s order.
+pub fn run_some(
+    plan: &Plan,
+    todo: &[usize],
+    done: &[UnitResult],
+    sink: &(dyn Fn(&UnitResult, Progress) -> Flow + Sync),
+    cancel: &AtomicBool,
+) -> Result<Vec<UnitResult>, SweepError> {
+    let no_clock = || None;
+    run_some_timed(plan, todo, done, &|r, p, _| sink(r, p), cancel, &no_clock)
+}
+
+/// [`run_some`], also telling the sink how long each unit took by the caller's clock `now`.
+pub fn run_some_timed(plan: &Plan, todo: &[usize], done: &[UnitResult], sink: &TimedSink, cancel: &AtomicBool, now: &Clock) -> Result<Vec<UnitResult>, SweepError> {
+    let sizes: Vec<usize> = (0..plan.units.len()).map(|u| plan.unit_size(u)).collect();
+    let total_scores: usize = sizes.iter().sum();
     let already_units = done.len();
     let already_scores: usize = done.iter().map(|r| sizes[r.unit]).sum();
     let progress = std::sync::Mutex::new((already_units, already_scores));
-    let todo: Vec<usize> = (0..plan.units.len()).filter(|&u| !finished[u]).collect();
     let fresh: Vec<Result<Option<UnitResult>, FitError>> = todo
         .par_iter()
         .map(|&u| {
@@ -405,7 +427,7 @@ pub fn run_timed(
             Ok(Some(r))
         })
         .collect();
-    let mut all = done;
+    let mut all = Vec::with_capacity(todo.len());
     for r in fresh {
         if let Some(r) = r? {
             all.push(r);
@@ -414,7 +436,6 @@ pub fn run_timed(
     if cancel.load(Ordering::Relaxed) {
         return Err(SweepError::Cancelled);
     }
-    all.sort_by_key(|r| r.unit);
     Ok(all)
 }
 
