@@ -1424,6 +1424,33 @@ fn replicas_claim_units_apart_and_take_over_expired_claims() {
     assert_eq!(rows.trim(), "0:a:1,1:b:3,2:b:4,3:b:5,4:b:2,5:b:6", "each unit's worker and stored order");
 }
 
+/// A run that was running before units were claimed one by one has no claims: its next
+/// plan lays out the units it still needs (not those stored), and it finishes; a plan of a
+/// run whose claims are laid out adds none.
+#[test]
+fn a_run_planned_before_unit_claims_gets_claims_for_the_units_it_lacks() {
+    let Some(url) = pg::fresh_database("claims after upgrade") else { return };
+    let a = PostgresStore::open(&url).unwrap();
+    let id = planned_run(&a);
+    let log = TestLog::default();
+    assert_eq!(a.claim_units(&id, 6, 2).unwrap(), vec![0, 1]);
+    let first = a.record_computed(&id, vec![unit_result(0, 10), unit_result(1, 10)], 0, &log, 10).unwrap();
+    assert_eq!(first.stored, 2);
+    // As an older release left it: units stored, no claims at all.
+    let name = url.rsplit('/').next().unwrap();
+    let cluster = pg::available().unwrap();
+    cluster.sql(name, "DELETE FROM unit_claims");
+    a.set_plan_size(&id, 2, 6).unwrap();
+    assert_eq!(a.claim_units(&id, 6, 10).unwrap(), vec![2, 3, 4, 5], "the units not stored are laid out again");
+    // Planned again while those are claimed: nothing is laid out twice.
+    a.set_plan_size(&id, 2, 6).unwrap();
+    assert!(a.claim_units(&id, 6, 10).unwrap().is_empty());
+    let last = a.record_computed(&id, (2..6).map(|u| unit_result(u, 11)).collect(), first.units_done, &log, 11).unwrap();
+    assert_eq!((last.stored, last.units_done, last.stored_last(6)), (4, 6, true));
+    a.set_plan_size(&id, 2, 6).unwrap();
+    assert!(a.claim_units(&id, 6, 10).unwrap().is_empty(), "a run with every unit stored has nothing to claim");
+}
+
 // ---------------------------------------------------------------------------------------
 // TLS to the database
 

@@ -771,10 +771,19 @@ impl Storage for PostgresStore {
     fn set_plan_size(&self, run_id: &str, settings: u32, units_total: u32) -> Result<(), StoreError> {
         self.transact(async |tx| {
             if let Some(mut run) = run_of(tx, run_id, true).await?.filter(|r| r.state == RunState::Running) {
-                // The first plan of the run lays out its units to claim, once: a later plan
-                // (another replica's, or a resume) finds them laid out, less those stored.
-                if run.units_total == 0 && units_total > 0 {
-                    execute(tx, "INSERT INTO unit_claims (run_id, unit) SELECT $1, g FROM generate_series(0::bigint, $2::bigint - 1) g ON CONFLICT DO NOTHING", &[&run_id, &i64::from(units_total)]).await?;
+                // Every plan lays out the units to claim that are neither stored nor laid out
+                // yet: the first plan all of them; a later plan (another replica's, or a
+                // resume) none, as claims go only when their unit is stored; and a run that
+                // was running before units were claimed one by one (it has no claims) the
+                // ones it still needs, so it finishes.
+                if units_total > 0 {
+                    execute(
+                        tx,
+                        "INSERT INTO unit_claims (run_id, unit) SELECT $1, g FROM generate_series(0::bigint, $2::bigint - 1) g \
+                         WHERE NOT EXISTS (SELECT 1 FROM units u WHERE u.run_id = $1 AND u.unit = g) ON CONFLICT DO NOTHING",
+                        &[&run_id, &i64::from(units_total)],
+                    )
+                    .await?;
                 }
                 run.settings = settings;
                 run.units_total = units_total;
