@@ -63,6 +63,9 @@ pub struct Config {
     pub data_dir: PathBuf,
     /// The store's backend (`store`, `database_url`).
     pub store: StoreChoice,
+    /// The PEM file of the certificate authority that signed the database's certificate,
+    /// for TLS to the database (`database_url` with `sslmode=require`).
+    pub database_ca_file: Option<PathBuf>,
     /// How long a replica's lease on a running run lasts without renewal (shared store
     /// only): a replica that dies costs its runs this long before another takes them.
     pub lease_secs: u64,
@@ -199,6 +202,7 @@ impl Default for Config {
             listen: "127.0.0.1:7311".parse().unwrap(),
             data_dir: PathBuf::from("pollard-data"),
             store: StoreChoice::Sled,
+            database_ca_file: None,
             lease_secs: 15,
             concurrent_runs: 1,
             cpu_threads: 0,
@@ -288,6 +292,7 @@ struct FileConfig {
     data_dir: Option<String>,
     store: Option<String>,
     database_url: Option<String>,
+    database_ca_file: Option<String>,
     lease_secs: Option<u64>,
     concurrent_runs: Option<usize>,
     cpu_threads: Option<usize>,
@@ -367,6 +372,9 @@ impl Config {
             c.data_dir = PathBuf::from(v);
         }
         let url = set("database_url", file.database_url, "POLLARD_DATABASE_URL", None).filter(|(_, v)| !v.is_empty());
+        if let Some((_, v)) = set("database_ca_file", file.database_ca_file, "POLLARD_DATABASE_CA_FILE", None).filter(|(_, v)| !v.is_empty()) {
+            c.database_ca_file = Some(PathBuf::from(v));
+        }
         if let Some((from, v)) = set("store", file.store, "POLLARD_STORE", None) {
             c.store = match v.as_str() {
                 "sled" => StoreChoice::Sled,

@@ -232,11 +232,12 @@ impl Run {
         }
     }
 
-    /// Queued → running.
+    /// Queued → running; it never starts before it was created (a claimer may read its
+    /// clock before the run's creation is committed).
     pub fn start(&mut self, now: i64, settings: u32, units_total: u32) {
         debug_assert_eq!(self.state, RunState::Queued);
         self.state = RunState::Running;
-        self.started_at = Some(now);
+        self.started_at = Some(now.max(self.created_at));
         self.units_at_start = Some(self.units_done);
         self.settings = settings;
         self.units_total = units_total;
@@ -293,6 +294,11 @@ pub struct RunOutcome {
     pub model: Option<Tree>,
     /// Per repeat, per row: the fold the row validates in (−1: none).
     pub fold_assignment: Vec<Vec<i32>>,
+    /// The outer loop's scores, for a nested sweep.
+    pub nested: Option<crate::sweep::NestedResult>,
+    /// Permutation importance of the picked setting on the validation folds; `None` for runs
+    /// finished before it was computed.
+    pub permutation: Option<crate::sweep::PermutationImportance>,
 }
 
 /// A stored work unit of a run.

@@ -115,7 +115,12 @@ async fn handle(shared: &Arc<Shared>, s: &Schedule, due: &Due, now: i64) -> Resu
         store.record_fire(&s.id, s.considered_until, due.considered_until, &fire, run.as_ref())?
     };
     match recorded {
-        None => warn!(schedule_id = %s.id, "the schedule changed while its fire was handled; it is looked at again"),
+        // Another replica recorded this fire (or the schedule changed): its retention is
+        // that fire's to apply, once.
+        None => {
+            warn!(schedule_id = %s.id, "the schedule changed while its fire was handled; it is looked at again");
+            return Ok(());
+        }
         Some((_, fire, created)) => {
             shared.metrics.fires.with_label_values(&[fire.outcome.as_str()]).inc();
             if let Some(r) = created {
@@ -164,6 +169,7 @@ async fn run_for(shared: &Arc<Shared>, s: &Schedule, at: i64, fire: &mut Fire) -
         target: Some(s.target.clone()),
         spec: s.spec.clone(),
         default_fold_scheme: false,
+        default_outer_scheme: false,
         idempotency_key: Some(format!("{}@{at}", s.id)),
         labels: s.labels.clone(),
     };

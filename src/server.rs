@@ -14,9 +14,10 @@ use crate::clock::{Clock, SystemClock};
 use crate::config::Config;
 use crate::scheduler;
 use crate::pb;
+use crate::rpc::calls::CallsLayer;
 use crate::rpc::limits::GuardLayer;
 use crate::rpc::Api;
-use crate::store::Storage;
+use crate::store::{Change, Storage};
 use crate::worker::{self, Shared};
 
 /// The gRPC services the server registers, by full name (also what health checks name).
@@ -54,10 +55,14 @@ pub async fn run_with_clock(listener: TcpListener, config: Config, store: Arc<dy
     if shared.store.shared() {
         spawn_leases(&shared);
         let woken = Arc::downgrade(&shared);
-        shared.store.watch_changes(Arc::new(move || {
-            if let Some(s) = woken.upgrade() {
-                s.announce();
-                s.queued.notify_waiters();
+        shared.store.watch_changes(Arc::new(move |change| {
+            let Some(s) = woken.upgrade() else { return };
+            match change {
+                Change::Runs => {
+                    s.announce();
+                    s.queued.notify_waiters();
+                }
+                Change::Schedules => s.schedules_changed.notify_one(),
             }
         }));
     }
@@ -99,9 +104,10 @@ pub async fn run_with_clock(listener: TcpListener, config: Config, store: Arc<dy
         }
     };
     let m = shared.config.messages;
-    // The caller is checked first (a refused caller takes no upload slot), then the transport
-    // guard counts the bytes.
+    // Every call is counted for /metrics, refused ones too; the caller is checked first (a
+    // refused caller takes no upload slot), then the transport guard counts the bytes.
     let router = tonic::transport::Server::builder()
+        .layer(CallsLayer::new(shared.clone()))
         .layer(AuthLayer::new(access.gate.clone()))
         .layer(GuardLayer::new(&shared.config))
         .add_service(health)

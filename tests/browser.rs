@@ -325,10 +325,28 @@ async fn metrics_count_a_sweep_and_promtool_accepts_them() {
     assert!(value(&after, "pollard_events_streamed_total") >= events.len() as f64);
     assert_eq!(value(&after, "pollard_runs{state=\"queued\"}"), 0.0);
     assert!(value(&after, "pollard_store_bytes") > value(&before, "pollard_store_bytes"), "the upload is on disk");
+    // Every unit's compute time is observed.
+    assert_eq!(value(&after, "pollard_unit_seconds_count") - value(&before, "pollard_unit_seconds_count"), 4.0);
+    // gRPC calls by method and status: the one StartRun answered OK, the one FollowRun
+    // stream ended OK (its status is in the trailers), and a GetRun of an unknown id is
+    // counted as NOT_FOUND in a trailers-only reply.
+    let calls = |text: &str, method: &str, status: &str| -> f64 {
+        let service = if method == "Upload" { "Datasets" } else { "Runs" };
+        let series = format!("pollard_grpc_calls_total{{method=\"{method}\",service=\"pollard.v1.{service}\",status=\"{status}\"}}");
+        text.lines().find_map(|l| l.strip_prefix(series.as_str()).and_then(|rest| rest.strip_prefix(' '))).map_or(0.0, |v| v.trim().parse().unwrap())
+    };
+    assert_eq!(calls(&after, "StartRun", "OK") - calls(&before, "StartRun", "OK"), 1.0, "{after}");
+    assert_eq!(calls(&after, "FollowRun", "OK") - calls(&before, "FollowRun", "OK"), 1.0, "{after}");
+    let missing = server.run(&["show", "run_00000000000000000000000000000000", "--json"]);
+    assert_ne!(missing.code, Some(0), "{}", missing.describe());
+    let later = get("/metrics");
+    assert!(calls(&later, "GetRun", "NOT_FOUND") >= 1.0, "{later}");
+    assert_eq!(calls(&later, "GetRun", "OK"), calls(&after, "GetRun", "OK"), "{later}");
+    assert!(value(&later, "pollard_grpc_call_seconds_count{method=\"StartRun\",service=\"pollard.v1.Runs\"}") >= 1.0);
 
     let file = TempDir::new("metrics");
     let path = file.join("metrics.txt");
-    std::fs::write(&path, &after).unwrap();
+    std::fs::write(&path, &later).unwrap();
     let out = Command::new("promtool").args(["check", "metrics"]).stdin(std::fs::File::open(&path).unwrap()).output().expect("promtool (Debian's prometheus package; .ci/run installs it)");
     assert!(out.status.success(), "promtool check metrics:\n{}{}", String::from_utf8_lossy(&out.stdout), String::from_utf8_lossy(&out.stderr));
 }

@@ -237,6 +237,18 @@ fn put_sweep_follow_show_runs_model_predict() {
     assert_fits(&text);
     assert!(text.contains(&format!("pick rule highest: grid# {picked}")), "{text}");
     assert!(text.contains(&format!("model: {model_nodes} nodes")), "{text}");
+    // What the picked setting leans on: every iris feature, the shuffled drops and shares of
+    // --json in the table, most first.
+    let imps = arr(&shown, "importances");
+    assert_eq!(imps.len(), 4, "{shown}");
+    assert_eq!(u(&shown, "permutation_repeats"), 5);
+    let share_sum: f64 = imps.iter().map(|f| f["impurity"].as_f64().unwrap()).sum();
+    assert!((share_sum - 1.0).abs() < 1e-9, "{shown}");
+    let mut by_drop: Vec<(f64, &str)> = imps.iter().map(|f| (f["permutation_mean"].as_f64().unwrap(), f["feature"].as_str().unwrap())).collect();
+    by_drop.sort_by(|a, b| b.0.total_cmp(&a.0).then(a.1.cmp(b.1)));
+    let listed: Vec<&str> = text.lines().skip_while(|l| !l.starts_with("what the picked setting leans on")).filter_map(|l| l.strip_prefix("  ")).filter(|l| by_drop.iter().any(|(_, n)| l.starts_with(n))).map(|l| l.split_whitespace().next().unwrap()).collect();
+    assert_eq!(listed, by_drop.iter().take(3).map(|(_, n)| *n).collect::<Vec<_>>(), "--top 3 features, most first:\n{text}");
+    assert!(text.contains("  … 1 more features (--top)"), "{text}");
 
     // local, with the same flags, scores the same folds the same way as the server.
     let mut args = vec!["local", iris_path, "--target", "target", "--json"];
@@ -1228,4 +1240,76 @@ fn an_idempotency_key_reused_with_another_request_is_refused() {
     assert!(e["error"]["message"].as_str().is_some_and(|m| m.contains("nightly-7")), "{e}");
     let runs = server.run(&["runs", "--json"]).json();
     assert_eq!(runs.as_array().map(Vec::len), Some(1), "the refused request queued a run: {runs}");
+}
+
+/// A nested sweep, served and local, on wine (tests/data, see SOURCES.md): both report the
+/// same outer scores, the outer folds recomputed here from `pollard folds --outer-k` and the
+/// reported picks, the words in `show`, and the nested folds CSV has the shape it promises.
+/// (The scores themselves are checked against the reference's nested loop in
+/// tests/reference_nested.rs.)
+#[test]
+fn nested_sweeps_served_and_local_agree() {
+    let server = Serve::start();
+    let wine = data("wine.csv");
+    let wine = wine.to_str().unwrap();
+    server.run(&["put", wine, "--name", "wine", "--target", "target"]).ok();
+    let grid = ["--max-depth", "1,2,4,none", "--min-leaf-rows", "1,5", "--seed", "5", "--outer-k", "3", "--k", "4"];
+    let mut args = vec!["sweep", "--dataset", "wine", "--follow", "--json"];
+    args.extend_from_slice(&grid);
+    let lines = server.run(&args).json_lines();
+    let run = s(&lines[0], "run_id").to_string();
+    check_events(&run, &lines);
+    assert_eq!(s(lines.last().unwrap(), "kind"), "finished", "{lines:?}");
+    let shown = server.run(&["show", &run, "--json"]).json();
+    // Main splits 4, and per outer split 1 + 4 inner splits: (4 + 3 × 5) × 2 keys.
+    assert_eq!(u(&shown, "units_total"), 38);
+    let nested = &shown["nested"];
+    let folds = arr(nested, "folds");
+    assert_eq!(folds.len(), 3, "{nested}");
+    let mean = folds.iter().map(|f| f["outer_score"].as_f64().unwrap()).sum::<f64>() / 3.0;
+    assert!((mean - nested["outer_mean"].as_f64().unwrap()).abs() < 1e-12, "{nested}");
+    let inner_best = folds.iter().map(|f| f["inner_best"].as_f64().unwrap()).sum::<f64>() / 3.0;
+    assert!((inner_best - mean - nested["optimism"].as_f64().unwrap()).abs() < 1e-12, "accuracy: optimism = inner best − outer, {nested}");
+    for f in folds {
+        assert!(u(f, "picked") < 8 && f["inner_picked"].as_f64().unwrap() <= f["inner_best"].as_f64().unwrap(), "{f}");
+    }
+    // The main table is the plain sweep's: 4 folds per setting.
+    assert!(arr(&shown, "scores").iter().all(|sc| arr(sc, "fold_scores").len() == 4));
+
+    let mut args = vec!["local", wine, "--target", "target", "--json"];
+    args.extend_from_slice(&grid);
+    let local = pollard(&args).json();
+    assert_eq!(local["nested"], shown["nested"], "local and served nested sweeps agree");
+
+    let text = server.run(&["show", &run]).ok();
+    assert!(text.contains("nested cross-validation, 3 outer splits (higher accuracy is better): outer "), "{text}");
+    assert!(text.contains("picked by the outer splits: grid# "), "{text}");
+    assert_fits(&text);
+
+    // The nested folds: per outer split, every row once; −2 on exactly the outer validation
+    // rows, and the outer validation rows of the three splits cover every row once.
+    let csv = pollard(&["folds", "--file", wine, "--target", "target", "--k", "4", "--seed", "5", "--outer-k", "3"]).ok();
+    let mut lines = csv.lines();
+    assert_eq!(lines.next(), Some("outer_repeat,outer_fold,row,repeat,fold"));
+    let mut valid_rows: HashMap<usize, usize> = HashMap::new();
+    let mut count = 0;
+    for l in lines {
+        let f: Vec<i64> = l.split(',').map(|x| x.parse().unwrap()).collect();
+        count += 1;
+        assert!((-2..4).contains(&f[4]) && f[4] != -1, "{l}");
+        if f[4] == -2 {
+            *valid_rows.entry(f[2] as usize).or_default() += 1;
+        }
+    }
+    assert_eq!(count, 3 * 178);
+    assert_eq!(valid_rows.len(), 178);
+    assert!(valid_rows.values().all(|&n| n == 1));
+
+    // Refused: path α values with an outer loop, and an outer plan that asks too much.
+    let e = pollard(&["local", wine, "--target", "target", "--prune-path", "--outer-k", "3"]).fails();
+    assert!(e.contains("outer: nested cross-validation needs a prune_alpha range"), "{e}");
+    let e = pollard(&["local", wine, "--target", "target", "--outer-k", "1"]).fails();
+    assert!(e.contains("outer.k: must be at least 2"), "{e}");
+    let e = server.run(&["sweep", "--dataset", "wine", "--outer-k", "200"]).fails();
+    assert!(e.contains("outer.k") && e.contains("max_folds"), "{e}");
 }

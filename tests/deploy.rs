@@ -380,6 +380,47 @@ fn ports_and_paths_agree_with_the_config() {
     assert!(grace >= 60, "terminationGracePeriodSeconds {grace} is short for runs to checkpoint");
 }
 
+/// Every pod template (the StatefulSet's and the replicas' Deployment's) carries the
+/// common Prometheus scrape annotations, and they point at the web view's port, where
+/// `web_listen` of the ConfigMap serves `/metrics` (on all addresses, so a scraper reaches
+/// it); every Service that selects the pods offers that port too.
+#[test]
+fn scrape_annotations_point_at_the_metrics_port() {
+    let cm = of_kind("ConfigMap").into_iter().next().expect("a ConfigMap");
+    let local = scratch("web-pollard.toml");
+    std::fs::write(&local, cm["data"]["pollard.toml"].as_str().unwrap()).unwrap();
+    let web = load(&local, None, None).unwrap().web_listen.expect("the ConfigMap sets web_listen");
+    assert!(web.ip().is_unspecified(), "web_listen {web}: inside a pod the web view must listen on all addresses");
+    let pods: Vec<Value> = of_kind("StatefulSet").into_iter().chain(of_kind("Deployment")).collect();
+    assert!(pods.len() >= 2, "the StatefulSet and the replicas' Deployment");
+    for pod in pods {
+        let name = pod["metadata"]["name"].as_str().unwrap().to_string();
+        let notes = &pod["spec"]["template"]["metadata"]["annotations"];
+        assert_eq!(notes["prometheus.io/scrape"].as_str(), Some("true"), "{name}: prometheus.io/scrape");
+        assert_eq!(notes["prometheus.io/path"].as_str(), Some("/metrics"), "{name}: prometheus.io/path");
+        let port: u64 = notes["prometheus.io/port"].as_str().expect("prometheus.io/port is a string").parse().expect("a port number");
+        let container = pollard_container(&pod);
+        let declared = container["ports"].as_sequence().unwrap().iter().find(|p| p["name"].as_str() == Some("web")).unwrap_or_else(|| panic!("{name}: a port named web"))["containerPort"].as_u64().unwrap();
+        assert_eq!(port, declared, "{name}: the scrape port vs the web containerPort");
+        assert_eq!(port, u64::from(web.port()), "{name}: the scrape port vs web_listen");
+        let labels = &pod["spec"]["template"]["metadata"]["labels"];
+        for svc in of_kind("Service") {
+            let selects = svc["spec"]["selector"].as_mapping().is_some_and(|m| m.iter().all(|(k, v)| &labels[k.as_str().unwrap()] == v));
+            if selects && svc["spec"]["clusterIP"].as_str() != Some("None") {
+                let ports = svc["spec"]["ports"].as_sequence().unwrap();
+                let p = ports.iter().find(|p| p["name"].as_str() == Some("web")).unwrap_or_else(|| panic!("Service {} has a port named web", svc["metadata"]["name"].as_str().unwrap()));
+                assert!(p["targetPort"].as_str() == Some("web") || p["targetPort"].as_u64() == Some(port), "Service web targetPort");
+            }
+        }
+    }
+    // The sample config and the systemd unit name the key (and its variable).
+    let sample = std::fs::read_to_string(deploy_dir().join("pollard.toml")).unwrap();
+    assert!(sample.lines().any(|l| l.starts_with("web_listen = ")), "deploy/pollard.toml sets web_listen");
+    assert!(sample.contains("POLLARD_WEB_LISTEN") && sample.contains("/metrics"));
+    let unit = std::fs::read_to_string(unit_path()).unwrap();
+    assert!(unit.contains("web_listen") && unit.contains("POLLARD_WEB_LISTEN") && unit.contains("/metrics"), "the unit names web_listen");
+}
+
 // ---------------------------------------------------------------------------------------
 // systemd
 

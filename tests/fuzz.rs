@@ -190,7 +190,7 @@ fn fitted() -> &'static Fitted {
         };
         let mut run = Run::queued("run_0123".into(), &meta, "target".into(), spec, 1_700_000_000_000);
         run.labels.insert("team".into(), "reefer".into());
-        let outcome = RunOutcome { scores: result.scores, picked: result.picked as u32, best: result.best as u32, model: result.model, fold_assignment: vec![vec![0, 1, -1]] };
+        let outcome = RunOutcome { scores: result.scores, picked: result.picked as u32, best: result.best as u32, model: result.model, fold_assignment: vec![vec![0, 1, -1]], nested: result.nested, permutation: None };
         Fitted { meta, run, units: units.into_inner().unwrap(), outcome }
     })
 }
@@ -289,9 +289,12 @@ fn wild_spec(range: BoxedStrategy<pb::LimitRange>) -> impl Strategy<Value = pb::
         name_of(&["", "highest", "one_se"]),
     );
     let folds = prop::option::of((name_of(&["", "shuffled", "stratified", "grouped", "forward", "given"]), prop_oneof![0u32..12, any::<u32>()], prop_oneof![0u32..4, any::<u32>()], name_of(&["", "target", "sepal_length_cm", "age"])))
-        .prop_map(|f| f.map(|(scheme, k, repeats, column)| pb::FoldPlan { scheme, k, repeats, column }));
+        .prop_map(|f| f.map(|(scheme, k, repeats, column)| pb::FoldPlan { scheme, k, repeats, column }))
+        .boxed();
     let splitter = name_of(&["", "exact", "binned", "histogram"]);
-    (words, (r(), r(), r(), r(), r(), r()), folds, any::<bool>(), any::<u64>(), splitter).prop_map(|((task, criteria, class_weights, metric, pick), (d, s, l, v, g, a), folds, prune_path, seed, splitter)| pb::SweepSpec {
+    // The outer plan of a nested sweep is drawn like the inner one.
+    (words, (r(), r(), r(), r(), r(), r()), (folds.clone(), folds), any::<bool>(), any::<u64>(), splitter).prop_map(|((task, criteria, class_weights, metric, pick), (d, s, l, v, g, a), (folds, outer), prune_path, seed, splitter)| pb::SweepSpec {
+        outer,
         target: String::new(),
         task,
         criteria,

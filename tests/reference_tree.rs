@@ -26,6 +26,8 @@ use std::path::PathBuf;
 use pollard::data::csv::{read_dataset, CsvOptions};
 use pollard::data::{Column, Dataset, Target, Task};
 use pollard::tree::{fit, pruning_path, ClassWeight, Criterion, FitOptions, Limits, Predictions, SplitRule, TrainSet, Tree};
+use pollard::sweep::importance::{permutations, shuffled_scores};
+use pollard::sweep::Metric;
 use serde_json::Value;
 
 /// Widening of the five-state range for tie-dependent cases: leaves may differ by this many
@@ -314,4 +316,123 @@ fn trees_match_the_reference_library() {
     );
     assert!(tally.cases >= 40, "only {} cases", tally.cases);
     assert!(tally.failures.is_empty(), "{} problems:\n{}", tally.failures.len(), tally.failures.join("\n"));
+}
+
+/// Seed of the shuffles in the permutation-importance check. The shuffles are pollard's
+/// ([`pollard::sweep::importance::permutations`]); `permutation_orders_are_pollards` keeps
+/// the committed `golden/permutations_<dataset>.csv` equal to them, and
+/// `make_importance_golden.py` reads that file, so both sides score the very same shuffles.
+const PERMUTATION_SEED: u64 = 20_261_203;
+const PERMUTATION_REPEATS: u32 = 5;
+const PERMUTED: [&str; 3] = ["iris", "wine", "diabetes"];
+
+fn load(name: &str) -> (Value, Dataset, Task) {
+    let golden: Value = serde_json::from_reader(File::open(root().join(format!("tests/reference/golden/tree_{name}.json"))).unwrap()).unwrap();
+    let task = Task::parse(golden["task"].as_str().unwrap()).unwrap();
+    let mut opts = CsvOptions::new(golden["target"].as_str().unwrap());
+    opts.task = Some(task);
+    let data = read_dataset(File::open(root().join(golden["file"].as_str().unwrap())).unwrap(), &opts).unwrap();
+    (golden, data, task)
+}
+
+fn orders_csv(data: &Dataset) -> String {
+    let mut out = String::from("feature,repeat,rows\n");
+    for j in 0..data.frame.n_features() {
+        for (r, order) in permutations(PERMUTATION_SEED, j, PERMUTATION_REPEATS, data.rows()).iter().enumerate() {
+            let rows: Vec<String> = order.iter().map(u32::to_string).collect();
+            out += &format!("{j},{r},{}\n", rows.join(" "));
+        }
+    }
+    out
+}
+
+/// The committed order files are pollard's shuffles (`POLLARD_WRITE_PERMUTATIONS=1` rewrites
+/// them, before `make_importance_golden.py` runs).
+#[test]
+fn permutation_orders_are_pollards() {
+    for name in PERMUTED {
+        let (_, data, _) = load(name);
+        let path = root().join(format!("tests/reference/golden/permutations_{name}.csv"));
+        let ours = orders_csv(&data);
+        if std::env::var_os("POLLARD_WRITE_PERMUTATIONS").is_some() {
+            std::fs::write(&path, &ours).unwrap();
+        }
+        assert!(std::fs::read_to_string(&path).unwrap() == ours, "{}: not the shuffles pollard draws", path.display());
+    }
+}
+
+/// Impurity importances against the reference's `feature_importances_` on every case whose
+/// tree is node for node the reference's, on the same features (1e-9 relative, 1e-12 absolute: a reference split of
+/// a constant-target node adds rounding noise only). Permutation importances on the same
+/// fitted tree and rows: with pollard's shuffles replayed on the reference side, every
+/// shuffled score exactly (to 1e-12 relative: R² sums in another order); against the
+/// reference's own `permutation_importance` (its own shuffles), the mean drops within the two
+/// spreads (sd over the shuffles, as the reference computes it, ddof = 0): all within three
+/// times `sd_ours + sd_reference`, and at least 95 % within once.
+#[test]
+fn importances_match_the_reference_library() {
+    let (mut impurity_cases, mut exact_scores, mut within, mut spread_checks, mut other_feature) = (0, 0, 0, 0, 0);
+    let mut failures = Vec::new();
+    for name in ["iris", "wine", "breast_cancer", "diabetes", "synthetic_missing", "synthetic_missing_reg"] {
+        let (golden, data, task) = load(name);
+        let imp: Value = serde_json::from_reader(File::open(root().join(format!("tests/reference/golden/importance_{name}.json"))).unwrap()).unwrap();
+        let metric = if task == Task::Classify { Metric::Accuracy } else { Metric::R2 };
+        for (case, icase) in golden["cases"].as_array().unwrap().iter().zip(imp["cases"].as_array().unwrap()) {
+            let cname = case["name"].as_str().unwrap();
+            assert_eq!(icase["name"].as_str().unwrap(), cname);
+            if !(case["tie_free"].as_bool().unwrap() || case["same_splits"].as_bool().unwrap()) {
+                continue;
+            }
+            let tree = fit(&TrainSet::of(&data), &options_of(case).check(task).unwrap()).unwrap();
+            // A split on another feature with the same partition is the same model but moves
+            // importance between the two features: such cases are left out (counted).
+            let mut w = Walk::default();
+            let all: Vec<u32> = (0..data.rows() as u32).collect();
+            walk(&tree, &data, &all, 0, case["tree"]["nodes"].as_array().unwrap(), 0, true, "root", &mut w);
+            if w.equivalent_splits > 0 {
+                other_feature += 1;
+                continue;
+            }
+            impurity_cases += 1;
+            let ours = tree.impurity_importances();
+            let theirs: Vec<f64> = icase["impurity"].as_array().unwrap().iter().map(|v| v.as_f64().unwrap()).collect();
+            if ours.len() != theirs.len() || ours.iter().zip(&theirs).any(|(a, b)| !close(*a, *b, 1e-9)) {
+                failures.push(format!("{cname}: impurity importances {ours:?} vs {theirs:?}"));
+            }
+            let Some(p) = icase.get("permutation") else { continue };
+            let repeats = p["repeats"].as_u64().unwrap() as u32;
+            assert_eq!(repeats, PERMUTATION_REPEATS);
+            let (base, shuffled) = shuffled_scores(&tree, &data, metric, PERMUTATION_SEED, repeats);
+            if !close(base, p["base"].as_f64().unwrap(), 1e-12) {
+                failures.push(format!("{cname}: base score {base} vs {}", p["base"]));
+            }
+            let by_hand = p["by_hand"].as_array().unwrap();
+            let ref_mean = p["reference"]["mean"].as_array().unwrap();
+            let ref_std = p["reference"]["std"].as_array().unwrap();
+            for (j, scores) in shuffled.iter().enumerate() {
+                for (r, s) in scores.iter().enumerate() {
+                    exact_scores += 1;
+                    let g = by_hand[j][r].as_f64().unwrap();
+                    if !close(*s, g, 1e-12) {
+                        failures.push(format!("{cname}: feature {j} shuffle {r}: score {s} vs {g}"));
+                    }
+                }
+                let drops: Vec<f64> = scores.iter().map(|s| base - s).collect();
+                let mean = drops.iter().sum::<f64>() / drops.len() as f64;
+                let sd = (drops.iter().map(|d| (d - mean) * (d - mean)).sum::<f64>() / drops.len() as f64).sqrt();
+                let (rm, rs) = (ref_mean[j].as_f64().unwrap(), ref_std[j].as_f64().unwrap());
+                spread_checks += 1;
+                let diff = (mean - rm).abs();
+                if diff <= sd + rs + 1e-12 {
+                    within += 1;
+                } else if diff > 3.0 * (sd + rs) + 1e-12 {
+                    failures.push(format!("{cname}: feature {j}: mean drop {mean} (sd {sd}) vs reference {rm} (sd {rs})"));
+                }
+            }
+        }
+    }
+    eprintln!("reference importances: {impurity_cases} node-for-node cases ({other_feature} left out: a split on another feature with the same partition); {exact_scores} shuffled scores replayed; {within} of {spread_checks} mean drops within one spread of the reference's own");
+    assert!(impurity_cases >= 20, "only {impurity_cases} cases");
+    assert!(exact_scores > 0 && within as f64 >= 0.95 * spread_checks as f64, "{within} of {spread_checks} within one spread");
+    assert!(failures.is_empty(), "{} problems:\n{}", failures.len(), failures.join("\n"));
 }

@@ -571,6 +571,23 @@ async fn sweep_follow_inspect_export_and_predict_on(place: &Place) {
     let local = pollard::sweep::fit_final(&plan, &plan.settings[picked]).unwrap();
     assert_eq!(local, tree, "served model = local refit of the picked setting");
 
+    // Importances in GetRun: impurity shares of the served model, and permutation drops equal
+    // to the engine's own computation for the picked setting on the run's folds and seed.
+    let perm = pollard::sweep::permutation_importance(&plan, &plan.settings[picked], core_spec.seed, pollard::sweep::PERMUTATION_REPEATS).unwrap();
+    assert_eq!(perm.per_fold.len(), 10, "5 folds x 2 repeats");
+    assert_eq!(got.permutation_repeats, pollard::sweep::PERMUTATION_REPEATS);
+    let shares = tree.impurity_importances();
+    assert!((shares.iter().sum::<f64>() - 1.0).abs() < 1e-12, "{shares:?}");
+    assert_eq!(got.importances.len(), 4);
+    for (j, f) in got.importances.iter().enumerate() {
+        assert_eq!(f.feature, tree.columns[j].name);
+        assert_eq!((f.impurity, f.permutation_mean, f.permutation_sd), (Some(shares[j]), Some(perm.mean()[j]), Some(perm.sd()[j])), "{}", f.feature);
+    }
+    assert!(got.importances.iter().any(|f| f.permutation_mean.unwrap() > 0.05), "iris leans on some feature: {:?}", got.importances);
+    let json_model = models.get_model(pb::GetModelRequest { run_id: first.id.clone(), format: pb::ModelFormat::Json as i32 }).await.unwrap().into_inner();
+    let doc: serde_json::Value = serde_json::from_str(&json_model.text).unwrap();
+    assert_eq!(doc["importances"].as_array().unwrap().iter().map(|v| v.as_f64().unwrap()).collect::<Vec<_>>(), shares, "the model file carries the shares");
+
     // Predicting every iris row from a table matches the tree's own predictions.
     let reply = models.predict(pb::PredictRequest { run_id: first.id.clone(), rows: Some(csv_table(&iris)), ..Default::default() }).await.unwrap().into_inner();
     let Predictions::Classes { classes, probabilities } = tree.predict(&data.frame) else { panic!("a classify tree") };

@@ -41,7 +41,8 @@ fn read(path: &PathBuf) -> Result<Vec<u8>, String> {
     std::fs::read(path).map_err(|e| format!("{}: {e}", path.display()))
 }
 
-fn certs(path: &PathBuf) -> Result<Vec<CertificateDer<'static>>, String> {
+/// Every PEM certificate in a file (at least one).
+pub(crate) fn certs(path: &PathBuf) -> Result<Vec<CertificateDer<'static>>, String> {
     let bytes = read(path)?;
     let certs = CertificateDer::pem_slice_iter(&bytes).collect::<Result<Vec<_>, _>>().map_err(|e| format!("{}: {e}", path.display()))?;
     if certs.is_empty() {

@@ -383,10 +383,14 @@ pub async fn show(ch: Conn, id: &str, top: usize, json_out: bool) -> Res {
         if !r.pareto_front.is_empty() {
             print!("{}", output::pareto_lines(&r.scores, &r.pareto_front, metric));
         }
+        if let Some(n) = &r.nested {
+            print!("{}", output::nested_lines(n, metric));
+        }
     }
     if let Some(m) = &r.model {
         println!("model: {} nodes, {} leaves, depth {}", m.nodes, m.leaves, m.depth);
     }
+    print!("{}", output::importance_lines(&r, if r.metric.is_empty() { "score" } else { &r.metric }, top));
     if let Some(d) = &r.drift {
         print!("{}", super::schedules::drift_lines(d, if r.metric.is_empty() { "score" } else { &r.metric }));
     }
@@ -581,6 +585,8 @@ pub fn local(a: LocalArgs, json_out: bool) -> Res {
     let result = crate::sweep::summarize(&plan, &units);
     let scores: Vec<pb::SettingScore> = result.scores.iter().enumerate().map(|(i, s)| convert::score_to(i, s)).collect();
     let model = if spec.fit_final { Some(crate::sweep::fit_final(&plan, &result.scores[result.picked].setting).map_err(|e| e.to_string())?) } else { None };
+    let nested = result.nested.as_ref().map(convert::nested_to);
+    let front: Vec<u32> = crate::sweep::pareto_front(&result.scores, result.metric).into_iter().map(|i| i as u32).collect();
     if let (Some(m), Some(p)) = (&model, &a.model_out) {
         std::fs::write(p, crate::export::to_json(m)).map_err(|e| format!("{}: {e}", p.display()))?;
     }
@@ -591,12 +597,18 @@ pub fn local(a: LocalArgs, json_out: bool) -> Res {
                 "metric": result.metric.as_str(), "pick": result.pick_rule.as_str(), "picked": result.picked, "best": result.best,
                 "scores": scores.iter().map(output::score_json).collect::<Vec<_>>(),
                 "fold_assignment": plan.folds.assignment,
+                "pareto_front": front,
+                "nested": nested.as_ref().map(output::nested_json),
                 "model": model.as_ref().map(|m| json!({"nodes": m.nodes.len(), "leaves": m.n_leaves(), "depth": m.depth()})),
             })
         );
     } else {
         print!("{}", output::scores_table(&scores, result.metric.as_str(), result.metric.higher_is_better(), a.top, Some(result.picked as u32), Some(result.best as u32)));
         println!("pick rule {}: grid# {}", result.pick_rule.as_str(), result.picked);
+        print!("{}", output::pareto_lines(&scores, &front, result.metric.as_str()));
+        if let Some(n) = &nested {
+            print!("{}", output::nested_lines(n, result.metric.as_str()));
+        }
         if let Some(m) = &model {
             println!("model: {} nodes, {} leaves, depth {}", m.nodes.len(), m.n_leaves(), m.depth());
         }

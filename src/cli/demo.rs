@@ -38,6 +38,8 @@ pub fn demo_spec(seed: u64) -> pb::SweepSpec {
         min_gain: values(&[n(0.0), n(0.0005), n(0.002)]),
         prune_alpha: values(&[n(0.0), n(0.0005), n(0.002)]),
         folds: Some(pb::FoldPlan { scheme: "stratified".into(), k: 5, repeats: 1, column: String::new() }),
+        // Nested cross-validation: how much the best of this grid flatters itself.
+        outer: Some(pb::FoldPlan { scheme: "stratified".into(), k: 5, repeats: 1, column: String::new() }),
         metric: "accuracy".into(),
         pick: "one_se".into(),
         seed,
@@ -107,6 +109,10 @@ async fn demo(a: &DemoArgs, address: &Remote, json_out: bool, csv: String, data_
             println!("best validation {metric}: grid# {b}, {:.4} ± {:.4} with {:.1} leaves", bs.valid_mean, bs.valid_sd, bs.mean_leaves);
             println!("one-SE pick: grid# {p}, {:.4} with {:.1} leaves (the fewest leaves within one standard error of the best)", ps.valid_mean, ps.mean_leaves);
         }
+        print!("{}", super::output::pareto_lines(&r.scores, &r.pareto_front, &metric));
+        if let Some(n) = &r.nested {
+            print!("{}", super::output::nested_lines(n, &metric));
+        }
     }
     let mut written = vec![data_path];
     written.extend(write_results(ch, &r, &a.out).await?);
@@ -114,6 +120,7 @@ async fn demo(a: &DemoArgs, address: &Remote, json_out: bool, csv: String, data_
         println!(
             "{}",
             serde_json::json!({"run_id": run.id, "dataset_id": info.id, "settings": r.scores.len(), "picked": r.picked, "best": r.best,
+                "pareto_front": r.pareto_front, "nested": r.nested.as_ref().map(super::output::nested_json),
                 "files": written.iter().map(|p| p.display().to_string()).collect::<Vec<_>>()})
         );
     } else {

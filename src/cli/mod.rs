@@ -292,6 +292,24 @@ pub struct FoldsArgs {
     /// Column read by grouped, forward and given folds.
     #[arg(long, alias = "column")]
     pub fold_column: Option<String>,
+    /// With any --outer-* flag the CSV is outer_repeat,outer_fold,row,repeat,fold: per outer
+    /// split, each row's inner fold, −2 for the outer split's own validation rows.
+    #[command(flatten)]
+    pub outer: spec::OuterArgs,
+}
+
+/// A fold scheme named on the command line (`flag` names the flags in messages).
+fn scheme_of(flag: &str, name: Option<&str>, column: Option<String>, task: crate::data::Task) -> Res<FoldScheme> {
+    let column = || column.clone().ok_or_else(|| CliError::usage(format!("--{flag}-column C is required for this scheme")));
+    Ok(match name {
+        None => FoldPlan::default_for(task).scheme,
+        Some("shuffled") => FoldScheme::Shuffled,
+        Some("stratified") => FoldScheme::Stratified,
+        Some("grouped") => FoldScheme::Grouped { column: column()? },
+        Some("forward") => FoldScheme::Forward { column: column()? },
+        Some("given") => FoldScheme::Given { column: column()? },
+        Some(s) => return Err(CliError::usage(format!("--{flag}-scheme: '{s}' is not one of shuffled, stratified, grouped, forward, given"))),
+    })
 }
 
 /// The options that only client commands use: hidden from the help of commands that never
@@ -383,21 +401,33 @@ fn folds(a: FoldsArgs, json_out: bool) -> Res {
     let path = a.file.display().to_string();
     let file = File::open(&a.file).map_err(|e| format!("{path}: {e}"))?;
     let data = read_dataset(file, &CsvOptions::new(a.target.clone())).map_err(|e| format!("{path}: {e}"))?;
-    let column = || a.fold_column.clone().ok_or_else(|| CliError::usage("--fold-column C is required for this scheme"));
-    let scheme = match a.fold_scheme.as_deref() {
-        None => FoldPlan::default_for(data.task()).scheme,
-        Some("shuffled") => FoldScheme::Shuffled,
-        Some("stratified") => FoldScheme::Stratified,
-        Some("grouped") => FoldScheme::Grouped { column: column()? },
-        Some("forward") => FoldScheme::Forward { column: column()? },
-        Some("given") => FoldScheme::Given { column: column()? },
-        Some(s) => return Err(CliError::usage(format!("--fold-scheme: '{s}' is not one of shuffled, stratified, grouped, forward, given"))),
-    };
+    let scheme = scheme_of("fold", a.fold_scheme.as_deref(), a.fold_column.clone(), data.task())?;
     let plan = FoldPlan { scheme, k: a.k, repeats: a.repeats };
     plan.check(&data).map_err(|e| e.to_string())?;
-    let folds = plan.assign(&data, a.seed).map_err(|e| e.to_string())?;
     let mut out = std::io::BufWriter::new(std::io::stdout().lock());
     let w = |e: std::io::Error| e.to_string();
+    if a.outer.asked() {
+        let o = &a.outer;
+        let scheme = scheme_of("outer", o.outer_scheme.as_deref(), o.outer_column.clone(), data.task())?;
+        let outer = FoldPlan { scheme, k: o.outer_k.unwrap_or(5), repeats: o.outer_repeats.unwrap_or(1) };
+        outer.check(&data).map_err(|e| crate::sweep::spec::as_outer(e).to_string())?;
+        let nested = crate::sweep::nest(&data, &plan, &outer, a.seed).map_err(|e| e.to_string())?;
+        if json_out {
+            let splits: Vec<_> = nested.outer.splits.iter().zip(&nested.inner).map(|(o, f)| serde_json::json!({"outer_repeat": o.repeat, "outer_fold": o.fold, "assignment": f.assignment})).collect();
+            writeln!(out, "{}", serde_json::json!({"rows": data.rows(), "k": a.k, "repeats": a.repeats, "seed": a.seed, "outer_k": outer.k, "outer": splits})).map_err(w)?;
+            return Ok(out.flush().map_err(w)?);
+        }
+        writeln!(out, "outer_repeat,outer_fold,row,repeat,fold").map_err(w)?;
+        for (o, f) in nested.outer.splits.iter().zip(&nested.inner) {
+            for (rep, fold_of) in f.assignment.iter().enumerate() {
+                for (row, fold) in fold_of.iter().enumerate() {
+                    writeln!(out, "{},{},{},{rep},{fold}", o.repeat, o.fold, row + 1).map_err(w)?;
+                }
+            }
+        }
+        return Ok(out.flush().map_err(w)?);
+    }
+    let folds = plan.assign(&data, a.seed).map_err(|e| e.to_string())?;
     if json_out {
         // One object: the plan and, per repeat, each row's fold (row 1 first).
         let v = serde_json::json!({"rows": folds.assignment.first().map_or(0, Vec::len), "k": a.k, "repeats": a.repeats, "seed": a.seed, "assignment": folds.assignment});
@@ -431,7 +461,7 @@ fn serve(a: ServeArgs) -> Result<(), String> {
     runtime.block_on(async move {
         let store: std::sync::Arc<dyn crate::store::Storage> = match &config.store {
             crate::config::StoreChoice::Sled => std::sync::Arc::new(crate::store::SledStore::open(&config.data_dir).map_err(|e| format!("{}: {e}", config.data_dir.display()))?),
-            crate::config::StoreChoice::Postgres(url) => std::sync::Arc::new(crate::store::PostgresStore::open_with_lease(&url.0, std::time::Duration::from_secs(config.lease_secs)).map_err(|e| format!("database {}: {e}", url.redacted()))?),
+            crate::config::StoreChoice::Postgres(url) => std::sync::Arc::new(crate::store::PostgresStore::open_with(&url.0, std::time::Duration::from_secs(config.lease_secs), config.database_ca_file.as_deref()).map_err(|e| format!("database {}: {e}", url.redacted()))?),
         };
         let listener = tokio::net::TcpListener::bind(config.listen).await.map_err(|e| format!("cannot listen on {}: {e}", config.listen))?;
         crate::server::run(listener, config, store, shutdown_signal()).await

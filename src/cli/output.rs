@@ -92,6 +92,89 @@ pub fn pareto_lines(scores: &[pb::SettingScore], front: &[u32], metric: &str) ->
     wrap(&format!("no setting beats these on both {metric} and mean leaves: "), &points, 120)
 }
 
+/// What nested cross-validation measured, in words: the outer estimate, the optimism of the
+/// inner best, how often each setting was picked, and one line per outer split.
+pub fn nested_lines(n: &pb::NestedEstimate, metric: &str) -> String {
+    let better = if higher_is_better(metric) { "higher" } else { "lower" };
+    let k = n.folds.len().max(1) as f64;
+    let inner_best = n.folds.iter().map(|f| f.inner_best).sum::<f64>() / k;
+    let mut out = format!(
+        "nested cross-validation, {} outer splits ({better} {metric} is better): outer {} ± {} sd\n  inner best {}, optimism {} (inner best minus outer, larger means more optimistic)\n",
+        n.folds.len(),
+        short(n.outer_mean),
+        short(n.outer_sd),
+        short(inner_best),
+        short(n.optimism),
+    );
+    let mut counts: Vec<(u32, usize)> = Vec::new();
+    for f in &n.folds {
+        match counts.iter_mut().find(|(p, _)| *p == f.picked) {
+            Some(c) => c.1 += 1,
+            None => counts.push((f.picked, 1)),
+        }
+    }
+    counts.sort_by(|a, b| b.1.cmp(&a.1).then(a.0.cmp(&b.0)));
+    let picks: Vec<String> = counts.iter().map(|(p, c)| format!("grid# {p} ({c}×)")).collect();
+    out.push_str(&wrap("  picked by the outer splits: ", &picks, 120));
+    for f in &n.folds {
+        out.push_str(&format!(
+            "  outer split {}.{}: grid# {}, inner best {}, inner picked {}, outer {}, {} leaves\n",
+            f.repeat,
+            f.fold,
+            f.picked,
+            short(f.inner_best),
+            short(f.inner_picked),
+            short(f.outer_score),
+            f.leaves
+        ));
+    }
+    out
+}
+
+/// Width of the feature column in the importance table; longer names are cut with `…`.
+const FEATURE_WIDTH: usize = 40;
+
+/// What the picked setting leans on, most first (by permutation drop, else impurity share),
+/// at most `top` features and a count of the rest. Every line fits in 120 characters.
+pub fn importance_lines(r: &pb::RunInfo, metric: &str, top: usize) -> String {
+    if r.importances.is_empty() {
+        return String::new();
+    }
+    let mut order: Vec<&pb::FeatureImportance> = r.importances.iter().collect();
+    let key = |f: &pb::FeatureImportance| f.permutation_mean.or(f.impurity).unwrap_or(0.0);
+    order.sort_by(|a, b| key(b).total_cmp(&key(a)).then(a.feature.cmp(&b.feature)));
+    let folds = r.scores.first().map_or(0, |s| s.fold_scores.len());
+    let mut out = String::from("what the picked setting leans on, most first:\n");
+    if r.permutation_repeats > 0 {
+        out += &format!("  shuffled, sd: drop in {metric} when the feature is shuffled ({} shuffles in each of {folds} validation folds)\n", r.permutation_repeats);
+    }
+    out += "  share: the feature's share of the model's impurity decrease\n";
+    out += &format!("  {:<FEATURE_WIDTH$} {:>12} {:>10} {:>8}\n", "feature", "shuffled", "sd", "share");
+    let cell = |x: Option<f64>| x.map_or("-".to_string(), |v| format!("{v:.4}"));
+    for f in order.iter().take(top) {
+        let name: String = if f.feature.chars().count() > FEATURE_WIDTH { f.feature.chars().take(FEATURE_WIDTH - 1).chain(['…']).collect() } else { f.feature.clone() };
+        out += &format!("  {name:<FEATURE_WIDTH$} {:>12} {:>10} {:>8}\n", cell(f.permutation_mean), cell(f.permutation_sd), cell(f.impurity));
+    }
+    if order.len() > top {
+        out += &format!("  … {} more features (--top)\n", order.len() - top);
+    }
+    out
+}
+
+pub fn nested_json(n: &pb::NestedEstimate) -> Value {
+    json!({
+        "outer_mean": n.outer_mean, "outer_sd": n.outer_sd, "optimism": n.optimism,
+        "folds": n.folds.iter().map(|f| json!({
+            "repeat": f.repeat, "fold": f.fold, "picked": f.picked, "inner_best": f.inner_best,
+            "inner_picked": f.inner_picked, "outer_score": f.outer_score, "leaves": f.leaves,
+        })).collect::<Vec<_>>(),
+    })
+}
+
+pub fn importance_json(f: &pb::FeatureImportance) -> Value {
+    json!({"feature": f.feature, "impurity": f.impurity.map(num), "permutation_mean": f.permutation_mean.map(num), "permutation_sd": f.permutation_sd.map(num)})
+}
+
 pub fn run_json(r: &pb::RunInfo) -> Value {
     json!({
         "id": r.id, "state": state_name(r.state), "dataset_id": r.dataset_id, "dataset_name": r.dataset_name,
@@ -103,6 +186,9 @@ pub fn run_json(r: &pb::RunInfo) -> Value {
         "model": r.model.as_ref().map(|m| json!({"nodes": m.nodes, "leaves": m.leaves, "depth": m.depth, "classes": m.classes})),
         "dataset_rows": r.dataset_rows,
         "drift": r.drift.as_ref().map(super::schedules::drift_json),
+        "nested": r.nested.as_ref().map(nested_json),
+        "importances": r.importances.iter().map(importance_json).collect::<Vec<_>>(),
+        "permutation_repeats": r.permutation_repeats,
     })
 }
 

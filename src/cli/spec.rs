@@ -18,6 +18,8 @@
 //! scheme = "stratified"
 //! k = 5
 //! repeats = 1
+//! [outer]            # nested cross-validation; same keys as [folds]
+//! k = 5
 //! ```
 
 use std::path::PathBuf;
@@ -97,6 +99,34 @@ pub struct GridArgs {
     /// bins per feature, from each fold's training rows; faster on big tables).
     #[arg(long, value_parser = ["exact", "binned"])]
     pub splitter: Option<String>,
+    #[command(flatten)]
+    pub outer: OuterArgs,
+}
+
+/// The outer fold plan of nested cross-validation; any of these flags turns it on.
+#[derive(Args, Debug, Clone, Default)]
+pub struct OuterArgs {
+    /// Nested cross-validation: the outer fold scheme (shuffled, stratified, grouped,
+    /// forward or given; default: the task's). Each outer split runs the whole sweep and pick
+    /// on its training rows and scores the picked tree on its validation rows.
+    #[arg(long)]
+    pub outer_scheme: Option<String>,
+    /// Outer folds (default 5).
+    #[arg(long)]
+    pub outer_k: Option<u32>,
+    /// Repeats of the outer fold plan (default 1).
+    #[arg(long)]
+    pub outer_repeats: Option<u32>,
+    /// Column read by a grouped, forward or given outer plan.
+    #[arg(long)]
+    pub outer_column: Option<String>,
+}
+
+impl OuterArgs {
+    /// Whether any outer flag was given.
+    pub fn asked(&self) -> bool {
+        self.outer_scheme.is_some() || self.outer_k.is_some() || self.outer_repeats.is_some() || self.outer_column.is_some()
+    }
 }
 
 #[derive(Deserialize, Default)]
@@ -116,6 +146,7 @@ struct SpecFile {
     limits: LimitsFile,
     #[serde(default)]
     folds: FoldsFile,
+    outer: Option<FoldsFile>,
 }
 
 #[derive(Deserialize, Default)]
@@ -178,7 +209,18 @@ impl GridArgs {
             repeats: self.repeats.or(file.folds.repeats).unwrap_or(0),
             column: self.fold_column.clone().or(file.folds.column.clone()).unwrap_or_default(),
         };
+        let a = &self.outer;
+        let outer = (a.asked() || file.outer.is_some()).then(|| {
+            let o = file.outer.unwrap_or_default();
+            pb::FoldPlan {
+                scheme: a.outer_scheme.clone().or(o.scheme).unwrap_or_default(),
+                k: a.outer_k.or(o.k).unwrap_or(0),
+                repeats: a.outer_repeats.or(o.repeats).unwrap_or(0),
+                column: a.outer_column.clone().or(o.column).unwrap_or_default(),
+            }
+        });
         Ok(pb::SweepSpec {
+            outer,
             target: self.target.clone().or(file.target).unwrap_or_default(),
             task: self.task.clone().or(file.task).unwrap_or_default(),
             criteria: pick(&self.criteria, &file.criteria),

@@ -13,6 +13,7 @@
 //! | `grown_with` | `criterion`, `class_weight` (`"none"` or `"balanced"`) and `limits` (`max_depth`, `min_split_rows`, `min_leaf_rows`, `max_leaves`, `min_gain`, `prune_alpha`; `null` = no limit) |
 //! | `total_weight` | total training weight N |
 //! | `nodes` | the nodes in preorder (left subtree first), root first |
+//! | `importances` | impurity-based importance per column, in column order: the column's share of the total weighted impurity decrease of the splits, summing to 1 (all 0 for a single leaf). Derived from `nodes` when written; readers check its length and otherwise ignore it. Files written before it was added have none |
 //!
 //! Each node: `id` (its index), `depth` (root 0), `rows`, `weighted_rows`, `impurity`,
 //! `value` (class shares, or `[mean]`), `class_totals` (classify: weighted rows per class),
@@ -57,6 +58,8 @@ struct ModelFile {
     grown_with: GrownWith,
     total_weight: f64,
     nodes: Vec<NodeFile>,
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    importances: Vec<f64>,
 }
 
 #[derive(Serialize, Deserialize)]
@@ -192,12 +195,16 @@ fn to_file(tree: &Tree) -> ModelFile {
         },
         total_weight: tree.total_weight,
         nodes,
+        importances: tree.impurity_importances(),
     }
 }
 
 /// Reads a `pollard.model` JSON document back into a tree, checking its structure.
 pub fn from_json(text: &str) -> Result<Tree, String> {
     let file: ModelFile = serde_json::from_str(text).map_err(|e| format!("not a pollard model file: {e}"))?;
+    if !file.importances.is_empty() && file.importances.len() != file.columns.len() {
+        return Err(format!("importances has {} values for {} columns", file.importances.len(), file.columns.len()));
+    }
     if file.format != FORMAT {
         return Err(format!("format is '{}', expected '{FORMAT}'", file.format));
     }

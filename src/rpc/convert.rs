@@ -10,7 +10,7 @@ use crate::schedule::CatchUp;
 use crate::pb;
 use crate::rpc::error::{echo, ServiceError};
 use crate::service::models::RowPath;
-use crate::service::{DatasetRef, RunRequest};
+use crate::service::{DatasetRef, RunRequest, SchemeDefaults};
 use crate::sweep::{FoldPlan, FoldScheme, Metric, PickRule, Range, SettingScore, SweepSpec};
 use crate::tree::{ClassWeight, ColumnInfo, Criterion, FitOptions, Limits, Node, Split, SplitRule, Splitter, Tree, NO_NODE};
 
@@ -240,32 +240,33 @@ pub fn spec_from(s: &pb::SweepSpec, data_task: Task) -> Result<SweepSpec, Status
 /// A StartRun request in core types, for [`crate::service::Service::queue_run`].
 pub fn run_request(r: pb::StartRunRequest) -> Result<RunRequest, Status> {
     let wire = r.spec.unwrap_or_default();
-    let (spec, default_fold_scheme) = spec_request(&wire)?;
+    let (spec, defaults) = spec_request(&wire)?;
     Ok(RunRequest {
         dataset: DatasetRef::of(&r.dataset_id, &r.dataset_name),
         target: given(wire.target),
         spec,
-        default_fold_scheme,
+        default_fold_scheme: defaults.folds,
+        default_outer_scheme: defaults.outer,
         idempotency_key: given(r.idempotency_key),
         labels: r.labels.into_iter().collect(),
     })
 }
 
-/// The wire spec of a request as a core spec, and whether its fold scheme is left to the
-/// data's task (see [`RunRequest::default_fold_scheme`]).
-pub fn spec_request(s: &pb::SweepSpec) -> Result<(SweepSpec, bool), Status> {
+/// The wire spec of a request as a core spec, and which of its fold schemes are left to the
+/// data's task.
+pub fn spec_request(s: &pb::SweepSpec) -> Result<(SweepSpec, SchemeDefaults), Status> {
     spec_with(s, None)
 }
 
-/// The wire spec as a core spec, and whether its fold scheme is left to the data's task:
-/// true when the spec gives fold counts but no scheme and neither it nor `data_task` says
-/// the task (the scheme is then a placeholder the service replaces).
-fn spec_with(s: &pb::SweepSpec, data_task: Option<Task>) -> Result<(SweepSpec, bool), Status> {
+/// The wire spec as a core spec, and which fold schemes are left to the data's task: a plan
+/// that gives fold counts but no scheme when neither the spec nor `data_task` says the task
+/// (the scheme is then a placeholder the service replaces).
+fn spec_with(s: &pb::SweepSpec, data_task: Option<Task>) -> Result<(SweepSpec, SchemeDefaults), Status> {
     let task = match s.task.as_str() {
         "" => None,
         t => Some(Task::parse(t).ok_or_else(|| invalid("spec.task", format!("'{}' is not classify or regress", echo(t))))?),
     };
-    let mut default_fold_scheme = false;
+    let mut defaults = SchemeDefaults::default();
     let criteria = s
         .criteria
         .iter()
@@ -278,35 +279,43 @@ fn spec_with(s: &pb::SweepSpec, data_task: Option<Task>) -> Result<(SweepSpec, b
         .enumerate()
         .map(|(i, c)| ClassWeight::parse(c).ok_or_else(|| invalid(&format!("spec.class_weights[{i}]"), format!("'{c}' is not none or balanced"))))
         .collect::<Result<_, _>>()?;
-    let folds = match &s.folds {
-        None => None,
-        Some(f) if f.scheme.is_empty() && f.k == 0 && f.repeats == 0 && f.column.is_empty() => None,
-        Some(f) => {
-            let column = || {
-                if f.column.is_empty() {
-                    Err(invalid("spec.folds.column", format!("a {} plan needs a column", f.scheme)))
-                } else {
-                    Ok(f.column.clone())
-                }
-            };
-            let scheme = match f.scheme.as_str() {
-                "" => match task.or(data_task) {
-                    Some(t) => FoldPlan::default_for(t).scheme,
-                    None => {
-                        default_fold_scheme = true;
-                        FoldScheme::Shuffled
+    let mut fold_plan = |name: &str, plan: &Option<pb::FoldPlan>| -> Result<Option<FoldPlan>, Status> {
+        Ok(match plan {
+            None => None,
+            Some(f) if name == "folds" && f.scheme.is_empty() && f.k == 0 && f.repeats == 0 && f.column.is_empty() => None,
+            Some(f) => {
+                let column = || {
+                    if f.column.is_empty() {
+                        Err(invalid(&format!("spec.{name}.column"), format!("a {} plan needs a column", f.scheme)))
+                    } else {
+                        Ok(f.column.clone())
                     }
-                },
-                "shuffled" => FoldScheme::Shuffled,
-                "stratified" => FoldScheme::Stratified,
-                "grouped" => FoldScheme::Grouped { column: column()? },
-                "forward" => FoldScheme::Forward { column: column()? },
-                "given" => FoldScheme::Given { column: column()? },
-                other => return Err(invalid("spec.folds.scheme", format!("'{other}' is not shuffled, stratified, grouped, forward or given"))),
-            };
-            Some(FoldPlan { scheme, k: if f.k == 0 { 5 } else { f.k }, repeats: f.repeats.max(1) })
-        }
+                };
+                let scheme = match f.scheme.as_str() {
+                    "" => match task.or(data_task) {
+                        Some(t) => FoldPlan::default_for(t).scheme,
+                        None => {
+                            if name == "folds" {
+                                defaults.folds = true;
+                            } else {
+                                defaults.outer = true;
+                            }
+                            FoldScheme::Shuffled
+                        }
+                    },
+                    "shuffled" => FoldScheme::Shuffled,
+                    "stratified" => FoldScheme::Stratified,
+                    "grouped" => FoldScheme::Grouped { column: column()? },
+                    "forward" => FoldScheme::Forward { column: column()? },
+                    "given" => FoldScheme::Given { column: column()? },
+                    other => return Err(invalid(&format!("spec.{name}.scheme"), format!("'{}' is not shuffled, stratified, grouped, forward or given", echo(other)))),
+                };
+                Some(FoldPlan { scheme, k: if f.k == 0 { 5 } else { f.k }, repeats: f.repeats.max(1) })
+            }
+        })
     };
+    let folds = fold_plan("folds", &s.folds)?;
+    let outer = fold_plan("outer", &s.outer)?;
     let metric = match s.metric.as_str() {
         "" => None,
         m => Some(Metric::parse(m).ok_or_else(|| invalid("spec.metric", format!("'{m}' is not a metric pollard knows")))?),
@@ -337,7 +346,8 @@ fn spec_with(s: &pb::SweepSpec, data_task: Option<Task>) -> Result<(SweepSpec, b
         fit_final: !s.skip_final,
         max_settings: None,
         splitter,
-    }, default_fold_scheme))
+        outer,
+    }, defaults))
 }
 
 pub fn spec_to(s: &SweepSpec, target: &str) -> pb::SweepSpec {
@@ -353,7 +363,8 @@ pub fn spec_to(s: &SweepSpec, target: &str) -> pb::SweepSpec {
         min_gain: range_to(&s.min_gain),
         prune_alpha: range_to(&s.prune_alpha),
         prune_path: s.prune_path,
-        folds: s.folds.as_ref().map(|f| pb::FoldPlan { scheme: f.scheme_name().to_string(), k: f.k, repeats: f.repeats, column: f.column().unwrap_or_default().to_string() }),
+        folds: s.folds.as_ref().map(fold_plan_to),
+        outer: s.outer.as_ref().map(fold_plan_to),
         metric: s.metric.map(|m| m.as_str().to_string()).unwrap_or_default(),
         pick: s.pick.as_str().to_string(),
         seed: s.seed,
@@ -363,6 +374,10 @@ pub fn spec_to(s: &SweepSpec, target: &str) -> pb::SweepSpec {
             other => other.as_str().to_string(),
         },
     }
+}
+
+fn fold_plan_to(f: &FoldPlan) -> pb::FoldPlan {
+    pb::FoldPlan { scheme: f.scheme_name().to_string(), k: f.k, repeats: f.repeats, column: f.column().unwrap_or_default().to_string() }
 }
 
 // ------------------------------------------------------------------ runs
@@ -416,6 +431,27 @@ pub fn score_to(index: usize, s: &SettingScore) -> pb::SettingScore {
     }
 }
 
+pub fn nested_to(n: &crate::sweep::NestedResult) -> pb::NestedEstimate {
+    pb::NestedEstimate {
+        outer_mean: n.outer_mean,
+        outer_sd: n.outer_sd,
+        optimism: n.optimism,
+        folds: n
+            .folds
+            .iter()
+            .map(|f| pb::OuterFold {
+                repeat: f.repeat,
+                fold: f.fold,
+                picked: f.picked as u32,
+                inner_best: f.inner_best,
+                inner_picked: f.inner_picked,
+                outer_score: f.outer_score,
+                leaves: f.leaves,
+            })
+            .collect(),
+    }
+}
+
 /// A run for the wire; `outcome` adds the scores, pick, folds and model summary.
 pub fn run_info(r: &Run, outcome: Option<&RunOutcome>) -> pb::RunInfo {
     let mut info = pb::RunInfo {
@@ -447,12 +483,31 @@ pub fn run_info(r: &Run, outcome: Option<&RunOutcome>) -> pb::RunInfo {
         if let Some(metric) = r.spec.metric {
             info.pareto_front = crate::sweep::pareto_front(&o.scores, metric).into_iter().map(|i| i as u32).collect();
         }
+        info.nested = o.nested.as_ref().map(nested_to);
         info.fold_assignment = o.fold_assignment.iter().map(|f| pb::FoldAssignment { folds: f.clone() }).collect();
         if let Some(m) = &o.model {
             info.model = Some(pb::ModelSummary { nodes: m.nodes.len() as u32, leaves: m.n_leaves() as u32, depth: m.depth(), classes: m.labels.clone() });
         }
+        info.importances = importances_to(o);
+        info.permutation_repeats = o.permutation.as_ref().map_or(0, |p| p.repeats);
     }
     info
+}
+
+/// Per feature column of a finished run: impurity importance in the refit model and
+/// permutation importance over the validation folds, whichever the run has.
+fn importances_to(o: &RunOutcome) -> Vec<pb::FeatureImportance> {
+    let impurity = o.model.as_ref().map(|m| m.impurity_importances());
+    let (mean, sd) = o.permutation.as_ref().map(|p| (p.mean(), p.sd())).unzip();
+    let n = impurity.as_ref().map(Vec::len).or(mean.as_ref().map(Vec::len)).unwrap_or(0);
+    (0..n)
+        .map(|j| pb::FeatureImportance {
+            feature: o.permutation.as_ref().and_then(|p| p.features.get(j).cloned()).or_else(|| o.model.as_ref().and_then(|m| m.columns.get(j)).map(|c| c.name.clone())).unwrap_or_default(),
+            impurity: impurity.as_ref().and_then(|v| v.get(j).copied()),
+            permutation_mean: mean.as_ref().and_then(|v| v.get(j).copied()),
+            permutation_sd: sd.as_ref().and_then(|v| v.get(j).copied()),
+        })
+        .collect()
 }
 
 /// An event for the wire; a finished event takes its scores and model from `outcome`.
@@ -660,6 +715,7 @@ pub fn model_to(t: &Tree) -> pb::Model {
             prune_alpha: l.prune_alpha,
         }),
         total_weight: t.total_weight,
+        importances: t.impurity_importances(),
     }
 }
 

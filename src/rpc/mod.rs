@@ -1,6 +1,7 @@
 //! gRPC handlers: convert the request, call the core or the store, convert the answer.
 //! Every error a caller can cause maps to a status here, in [`error`].
 
+pub mod calls;
 pub mod convert;
 pub mod datasets;
 pub mod error;

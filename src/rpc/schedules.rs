@@ -22,7 +22,7 @@ impl pb::schedules_server::Schedules for Api {
         let drift = convert::thresholds_from(r.drift.as_ref())?;
         let retention = convert::retention_from(r.retention.as_ref());
         let wire = r.spec.unwrap_or_default();
-        let (spec, default_fold_scheme) = convert::spec_request(&wire)?;
+        let (spec, defaults) = convert::spec_request(&wire)?;
         let request = ScheduleRequest {
             name: r.name,
             cron: r.cron,
@@ -30,7 +30,8 @@ impl pb::schedules_server::Schedules for Api {
             dataset: DatasetRef::of(&r.dataset_id, &r.dataset_name),
             target: crate::job::given(wire.target),
             spec,
-            default_fold_scheme,
+            default_fold_scheme: defaults.folds,
+            default_outer_scheme: defaults.outer,
             labels: r.labels.into_iter().collect(),
             retention,
             catch_up,

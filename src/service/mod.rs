@@ -33,7 +33,7 @@ use crate::config::Config;
 use crate::store::Storage;
 
 pub use error::ServiceError;
-pub use runs::{DatasetRef, RunRequest};
+pub use runs::{DatasetRef, RunRequest, SchemeDefaults};
 
 /// What every handler, worker and the scheduler share: the store, the pools, the queue's
 /// signals and the cancel flags.

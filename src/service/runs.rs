@@ -41,6 +41,14 @@ impl DatasetRef {
     }
 }
 
+/// Which fold schemes of a request are left to the data's task (see
+/// [`RunRequest::default_fold_scheme`]).
+#[derive(Clone, Copy, Debug, Default, PartialEq, Eq)]
+pub struct SchemeDefaults {
+    pub folds: bool,
+    pub outer: bool,
+}
+
 /// A sweep to queue, in core types.
 #[derive(Clone, Debug, PartialEq)]
 pub struct RunRequest {
@@ -52,6 +60,8 @@ pub struct RunRequest {
     /// The caller gave fold counts but no scheme: the scheme is the default of the data's
     /// task, known once the data is read.
     pub default_fold_scheme: bool,
+    /// The same for the outer plan of a nested sweep.
+    pub default_outer_scheme: bool,
     /// Scoped to the caller's token.
     pub idempotency_key: Option<String>,
     pub labels: BTreeMap<String, String>,
@@ -64,7 +74,11 @@ impl RunRequest {
         use sha2::{Digest, Sha256};
         // The target as the text digests were first taken of ("" for none), so a retry
         // matches runs stored before the field was optional.
-        let what = format!("{:?}", (&self.dataset, self.target.as_deref().unwrap_or(""), &self.spec, self.default_fold_scheme, &self.labels));
+        // Fields added since are left out while they hold their defaults, for the same reason.
+        let mut what = format!("{:?}", (&self.dataset, self.target.as_deref().unwrap_or(""), &self.spec, self.default_fold_scheme, &self.labels)).replacen(", outer: None }", " }", 1);
+        if self.default_outer_scheme {
+            what.push_str(" default outer scheme");
+        }
         crate::access::tokens::hex(&Sha256::digest(what.as_bytes()))
     }
 }
@@ -116,7 +130,7 @@ impl Service {
     /// metric, folds), so a run reads the same later, the target column, and the memory
     /// estimate in bytes. The dataset is parsed through the frame cache, so the run that
     /// follows does not parse it again.
-    pub async fn check_sweep(self: &Arc<Self>, meta: &DatasetMeta, target: Option<&str>, spec: SweepSpec, default_fold_scheme: bool) -> Result<(SweepSpec, String, u64)> {
+    pub async fn check_sweep(self: &Arc<Self>, meta: &DatasetMeta, target: Option<&str>, spec: SweepSpec, defaults: SchemeDefaults) -> Result<(SweepSpec, String, u64)> {
         let Some(target) = target.or(meta.target.as_deref()).map(str::to_string) else {
             return Err(ServiceError::invalid("spec.target", format!("dataset '{}' has no default target; name the column to predict", meta.id)));
         };
@@ -127,9 +141,15 @@ impl Service {
             let cfg = &service.config;
             let data = service.frames.load(service.store.as_ref(), &meta, &target2, spec.task, cfg.max_rows, cfg.max_columns)?;
             let mut spec = spec;
-            if default_fold_scheme {
+            let task_default = FoldPlan::default_for(spec.task.unwrap_or(data.task())).scheme;
+            if defaults.folds {
                 if let Some(f) = spec.folds.as_mut() {
-                    f.scheme = FoldPlan::default_for(spec.task.unwrap_or(data.task())).scheme;
+                    f.scheme = task_default.clone();
+                }
+            }
+            if defaults.outer {
+                if let Some(f) = spec.outer.as_mut() {
+                    f.scheme = task_default;
                 }
             }
             let checked = spec.check_with(&data, &cfg.spec_caps()).map_err(|e| ServiceError::spec(&e))?;
@@ -155,7 +175,7 @@ impl Service {
         self.admissions.fetch_add(1, Ordering::SeqCst);
         check_labels(&self.config, &request.labels)?;
         let meta = self.resolve_dataset(request.dataset.as_ref())?;
-        let (spec, target, estimate) = self.check_sweep(&meta, request.target.as_deref(), request.spec, request.default_fold_scheme).await?;
+        let (spec, target, estimate) = self.check_sweep(&meta, request.target.as_deref(), request.spec, SchemeDefaults { folds: request.default_fold_scheme, outer: request.default_outer_scheme }).await?;
         let mut run = Run::queued(new_run_id(), &meta, target, spec, self.now());
         run.labels = request.labels;
         run.idempotency_key = request.idempotency_key;

@@ -33,6 +33,8 @@ pub struct ScheduleRequest {
     pub spec: SweepSpec,
     /// See [`super::RunRequest::default_fold_scheme`].
     pub default_fold_scheme: bool,
+    /// The same for the outer plan of a nested sweep.
+    pub default_outer_scheme: bool,
     pub labels: BTreeMap<String, String>,
     pub retention: Retention,
     pub catch_up: CatchUp,
@@ -59,7 +61,7 @@ impl Service {
         // The template must fit the data it will sweep: check it against the latest version.
         let latest = self.resolve_dataset(Some(&dataset))?;
         check_labels(&self.config, &r.labels)?;
-        let (spec, target, _) = self.check_sweep(&latest, r.target.as_deref(), r.spec, r.default_fold_scheme).await?;
+        let (spec, target, _) = self.check_sweep(&latest, r.target.as_deref(), r.spec, super::runs::SchemeDefaults { folds: r.default_fold_scheme, outer: r.default_outer_scheme }).await?;
         let now = self.now();
         let (dataset_name, dataset_id) = match dataset {
             DatasetRef::Id(id) => (latest.name.clone(), Some(id)),

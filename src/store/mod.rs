@@ -82,6 +82,47 @@ pub enum Resumed {
     NotRunning,
 }
 
+/// A worker's knowledge of one run's stored units, which the store keeps current inside the
+/// transaction that stores the worker's units: the events announcing a unit are made from
+/// every unit stored before it, whichever process computed them.
+pub trait UnitLog: Sync {
+    /// Units of the run that other processes stored since this worker last looked.
+    fn learn(&self, others: Vec<UnitResult>);
+    /// The events announcing `unit`, just stored as the `units_done`-th unit of its run
+    /// (`units_done` is 0 when the backend numbers progress itself, see [`announced`]). May
+    /// be called again for the same unit when the transaction starts over.
+    fn announce(&self, unit: &UnitResult, units_done: u32) -> Vec<EventKind>;
+}
+
+/// What [`Storage::record_computed`] did.
+#[derive(Clone, Debug, Default, PartialEq)]
+pub struct Recorded {
+    /// The stored events of every stored unit.
+    pub events: Vec<Event>,
+    /// How many units of the batch were stored (a unit stored already is refused).
+    pub stored: usize,
+    /// The run's count of stored units after the change.
+    pub units_done: u32,
+    /// Whether the run is still running (when not, nothing was stored).
+    pub running: bool,
+}
+
+impl Recorded {
+    /// Whether this change stored the run's last unit: its writer summarises the run.
+    pub fn stored_last(&self, units_total: u32) -> bool {
+        self.running && self.stored > 0 && self.units_done >= units_total
+    }
+}
+
+/// What another process changed ([`Storage::watch_changes`]).
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Change {
+    /// A run, its events or units, or the queue (or the notification was lost: look at all).
+    Runs,
+    /// A schedule or its fires.
+    Schedules,
+}
+
 /// What [`Storage::put_dataset`] did.
 #[derive(Clone, Debug, PartialEq)]
 pub enum PutDataset {
@@ -226,9 +267,9 @@ pub trait Storage: Send + Sync {
         Ok(Vec::new())
     }
 
-    /// Calls `wake` whenever another process may have changed runs or events (a shared
-    /// backend's notifications); nothing for a backend that one process owns.
-    fn watch_changes(&self, wake: std::sync::Arc<dyn Fn() + Send + Sync>) {
+    /// Calls `wake` whenever another process may have changed runs or events, or schedules
+    /// (a shared backend's notifications); nothing for a backend that one process owns.
+    fn watch_changes(&self, wake: std::sync::Arc<dyn Fn(Change) + Send + Sync>) {
         let _ = wake;
     }
 
@@ -336,6 +377,53 @@ pub trait Storage: Send + Sync {
             out.extend(self.record_unit(run_id, &unit, events, now)?);
         }
         Ok(out)
+    }
+
+    /// Work units of a running run for this process to compute, at most `max` when other
+    /// processes share the run, from a plan of `total` units; empty when none is left to
+    /// claim (or the run is not running). A shared backend leases them to this process
+    /// ([`Storage::renew_leases`] renews the lease); another process gets a unit again only
+    /// once its lease expired. A backend one process owns hands out every unit not stored,
+    /// at once: one sweep over the whole run, as the run's only worker.
+    fn claim_units(&self, run_id: &str, total: u32, max: usize) -> Result<Vec<usize>, StoreError> {
+        let _ = max;
+        let Some(run) = self.run(run_id)? else { return Ok(Vec::new()) };
+        if run.state != RunState::Running {
+            return Ok(Vec::new());
+        }
+        let mut stored = vec![false; total as usize];
+        for u in self.units(run_id)? {
+            if let Some(s) = stored.get_mut(u.unit) {
+                *s = true;
+            }
+        }
+        Ok((0..total as usize).filter(|&u| !stored[u]).collect())
+    }
+
+    /// A running run another process started, with units left to claim (their lease
+    /// expired, or they were never claimed), that this process does not work on yet
+    /// (`busy`): to help with. Never one for a backend that one process owns.
+    fn join_running(&self, busy: &[String]) -> Result<Option<Run>, StoreError> {
+        let _ = busy;
+        Ok(None)
+    }
+
+    /// Computed units of one run, in order, stored as [`Storage::record_units`] stores them,
+    /// with the events `log` announces for each. A shared backend first tells `log` the
+    /// units other processes stored after the `since`-th (by [`Recorded::units_done`] of the
+    /// worker's previous call, 0 at first), then numbers each unit and its events in the same
+    /// transaction. A backend one process owns has nothing to tell.
+    fn record_computed(&self, run_id: &str, batch: Vec<UnitResult>, since: u32, log: &dyn UnitLog, now: i64) -> Result<Recorded, StoreError> {
+        let _ = since;
+        let before = self.run(run_id)?.map_or(0, |r| r.units_done);
+        let handed = batch.into_iter().map(|u| {
+            let events = log.announce(&u, 0);
+            (u, events)
+        });
+        let events = self.record_units(run_id, handed.collect(), now)?;
+        let Some(run) = self.run(run_id)? else { return Ok(Recorded::default()) };
+        let running = run.state == RunState::Running;
+        Ok(Recorded { events, stored: if running { run.units_done.saturating_sub(before) as usize } else { 0 }, units_done: run.units_done, running })
     }
 
     /// The stored work units of a run, by unit index.

@@ -28,7 +28,7 @@ use crate::export::json::{from_json, to_json};
 use crate::drift::{DriftReport, DriftThresholds, Knob, LimitMove};
 use crate::job::{ColumnMeta, DatasetMeta, Event, EventKind, Fire, FireOutcome, Retention, Run, RunOutcome, RunState, Schedule};
 use crate::schedule::CatchUp;
-use crate::sweep::{FoldPlan, FoldScheme, FoldScore, Metric, PickRule, Progress, Range, Setting, SettingScore, SweepSpec, UnitResult};
+use crate::sweep::{FoldPlan, FoldScheme, FoldScore, Metric, NestedResult, OuterFold, PermutationImportance, PickRule, Progress, Range, Setting, SettingScore, SweepSpec, UnitResult};
 use crate::tree::{ClassWeight, Criterion, FitOptions, Limits, Splitter};
 
 /// The format byte this build writes (and the only one it reads).
@@ -194,6 +194,9 @@ pub struct SpecRecord {
     /// Absent in records written before the binned splitter, and for the exact one.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     splitter: Option<String>,
+    /// Absent in records written before nested sweeps, and for plain sweeps.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    outer: Option<FoldPlanRecord>,
 }
 
 #[derive(Serialize, Deserialize)]
@@ -279,6 +282,7 @@ impl From<&SweepSpec> for SpecRecord {
             fit_final: s.fit_final,
             max_settings: s.max_settings.map(|n| n as u64),
             splitter: splitter_record(s.splitter),
+            outer: s.outer.as_ref().map(FoldPlanRecord::from),
         }
     }
 }
@@ -305,6 +309,7 @@ impl TryFrom<SpecRecord> for SweepSpec {
             fit_final: r.fit_final,
             max_settings: r.max_settings.map(|n| to_usize(w, "max_settings", n)).transpose()?,
             splitter: splitter_of(w, r.splitter)?,
+            outer: r.outer.map(FoldPlan::try_from).transpose()?,
         })
     }
 }
@@ -739,6 +744,84 @@ pub struct OutcomeRecord {
     /// The `pollard.model` JSON text of the refit tree.
     model: Option<String>,
     fold_assignment: Vec<Vec<i32>>,
+    /// Absent in records written before nested sweeps, and for plain sweeps.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    nested: Option<NestedRecord>,
+    /// Permutation importance (absent in records written before it was computed).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    permutation: Option<PermutationRecord>,
+}
+
+#[derive(Serialize, Deserialize)]
+struct NestedRecord {
+    folds: Vec<OuterFoldRecord>,
+    outer_mean: Real,
+    outer_sd: Real,
+    optimism: Real,
+}
+
+#[derive(Serialize, Deserialize)]
+struct OuterFoldRecord {
+    repeat: u32,
+    fold: u32,
+    picked: u64,
+    inner_best: Real,
+    inner_picked: Real,
+    outer_score: Real,
+    leaves: u32,
+}
+
+impl From<&NestedResult> for NestedRecord {
+    fn from(n: &NestedResult) -> Self {
+        NestedRecord {
+            folds: n
+                .folds
+                .iter()
+                .map(|f| OuterFoldRecord {
+                    repeat: f.repeat,
+                    fold: f.fold,
+                    picked: f.picked as u64,
+                    inner_best: Real(f.inner_best),
+                    inner_picked: Real(f.inner_picked),
+                    outer_score: Real(f.outer_score),
+                    leaves: f.leaves,
+                })
+                .collect(),
+            outer_mean: Real(n.outer_mean),
+            outer_sd: Real(n.outer_sd),
+            optimism: Real(n.optimism),
+        }
+    }
+}
+
+impl TryFrom<NestedRecord> for NestedResult {
+    type Error = StoreError;
+    fn try_from(r: NestedRecord) -> Result<Self, StoreError> {
+        let folds = r
+            .folds
+            .into_iter()
+            .map(|f| {
+                Ok(OuterFold {
+                    repeat: f.repeat,
+                    fold: f.fold,
+                    picked: to_usize("outcome", "nested.picked", f.picked)?,
+                    inner_best: f.inner_best.0,
+                    inner_picked: f.inner_picked.0,
+                    outer_score: f.outer_score.0,
+                    leaves: f.leaves,
+                })
+            })
+            .collect::<Result<_, StoreError>>()?;
+        Ok(NestedResult { folds, outer_mean: r.outer_mean.0, outer_sd: r.outer_sd.0, optimism: r.optimism.0 })
+    }
+}
+
+#[derive(Serialize, Deserialize)]
+struct PermutationRecord {
+    features: Vec<String>,
+    repeats: u32,
+    /// Per split, per feature column: the mean drop over the repeats.
+    per_fold: Vec<Vec<Real>>,
 }
 
 #[derive(Serialize, Deserialize)]
@@ -859,6 +942,8 @@ impl From<&RunOutcome> for OutcomeRecord {
             best: o.best,
             model: o.model.as_ref().map(to_json),
             fold_assignment: o.fold_assignment.clone(),
+            nested: o.nested.as_ref().map(NestedRecord::from),
+            permutation: o.permutation.as_ref().map(|p| PermutationRecord { features: p.features.clone(), repeats: p.repeats, per_fold: p.per_fold.iter().map(|f| reals(f)).collect() }),
         }
     }
 }
@@ -868,7 +953,12 @@ impl TryFrom<OutcomeRecord> for RunOutcome {
     fn try_from(r: OutcomeRecord) -> Result<Self, StoreError> {
         let scores = r.scores.into_iter().map(SettingScore::try_from).collect::<Result<_, StoreError>>()?;
         let model = r.model.map(|text| from_json(&text).map_err(|e| corrupt("outcome", format!("model: {e}")))).transpose()?;
-        Ok(RunOutcome { scores, picked: r.picked, best: r.best, model, fold_assignment: r.fold_assignment })
+        let nested = r.nested.map(NestedResult::try_from).transpose()?;
+        if let Some(p) = r.permutation.as_ref().filter(|p| p.per_fold.iter().any(|f| f.len() != p.features.len())) {
+            return Err(corrupt("outcome", format!("permutation importance has a fold without one value per feature ({} features)", p.features.len())));
+        }
+        let permutation = r.permutation.map(|p| PermutationImportance { features: p.features, repeats: p.repeats, per_fold: p.per_fold.iter().map(|f| unreal(f)).collect() });
+        Ok(RunOutcome { scores, picked: r.picked, best: r.best, model, fold_assignment: r.fold_assignment, nested, permutation })
     }
 }
 

@@ -103,6 +103,7 @@ fn full_spec(seed: u64) -> SweepSpec {
         fit_final: false,
         max_settings: Some(5000),
         splitter: Splitter::Binned,
+        outer: Some(FoldPlan { scheme: FoldScheme::Forward { column: "day".into() }, k: 3, repeats: 1 }),
     }
 }
 
@@ -145,6 +146,8 @@ fn outcome(model: Option<Tree>) -> RunOutcome {
         best: 0,
         model,
         fold_assignment: vec![vec![0, 1, -1, 2], vec![2, 1, 0, 0]],
+        nested: None,
+        permutation: Some(crate::sweep::PermutationImportance { features: vec!["a".into(), "b".into(), "c".into()], repeats: 5, per_fold: vec![vec![0.25, 0.0, -0.01], vec![0.1, f64::MIN_POSITIVE, 1.0 / 3.0]] }),
     }
 }
 
@@ -263,6 +266,14 @@ fn outcome_record_round_trips_with_models() {
         assert_eq!(back.fold_assignment, o.fold_assignment);
         assert_eq!((back.picked, back.best), (1, 0));
     }
+    // A nested sweep's outer results, NaN included, survive the round trip; plain outcomes
+    // (and records written before nested sweeps) have none.
+    let mut o = outcome(None);
+    let fold = |fold: u32, score: f64| crate::sweep::OuterFold { repeat: 0, fold, picked: 1, inner_best: 0.93, inner_picked: 0.91, outer_score: score, leaves: 7 };
+    o.nested = Some(crate::sweep::NestedResult { folds: vec![fold(0, 0.88), fold(1, f64::NAN)], outer_mean: f64::NAN, outer_sd: f64::NAN, optimism: f64::NAN });
+    let back = records::decode_outcome(&records::encode_outcome(&o)).unwrap();
+    assert_eq!(format!("{:?}", back.nested), format!("{:?}", o.nested));
+    assert!(records::decode_outcome(&records::encode_outcome(&outcome(None))).unwrap().nested.is_none());
 }
 
 #[test]
@@ -1312,4 +1323,183 @@ fn schedules_and_fires_answer_alike_on_every_backend() {
         }
         assert_eq!(got.len(), want.len());
     }
+}
+
+// ---------------------------------------------------------------------------------------
+// Work claimed unit by unit
+
+/// A worker's log for the claim tests: what it learned of others' units, and a progress
+/// event per unit it stores.
+#[derive(Default)]
+struct TestLog {
+    learned: std::sync::Mutex<Vec<usize>>,
+}
+
+impl UnitLog for TestLog {
+    fn learn(&self, others: Vec<UnitResult>) {
+        self.learned.lock().unwrap().extend(others.iter().map(|u| u.unit));
+    }
+
+    fn announce(&self, _unit: &UnitResult, units_done: u32) -> Vec<EventKind> {
+        vec![EventKind::Progress(Progress { units_done: units_done as usize, units_total: 6, scores_done: 0, scores_total: 12 })]
+    }
+}
+
+/// A running run of 6 units in `store`.
+fn planned_run(store: &dyn Storage) -> String {
+    store.put_dataset(meta("ds_1", "", 0, 0), b"x").unwrap();
+    store.create_run(Run::queued("run_0001".into(), &meta("ds_1", "", 0, 0), "y".into(), SweepSpec::default(), 1)).unwrap();
+    let run = store.claim_next(2).unwrap().unwrap();
+    store.set_plan_size(&run.id, 2, 6).unwrap();
+    run.id
+}
+
+/// One process owns a sled store: every unit not stored is its to compute, at once, and the
+/// writer of the last unit is told so.
+#[test]
+fn a_store_one_process_owns_hands_out_every_unit_left() {
+    let store = SledStore::open_temporary().unwrap();
+    let id = planned_run(&store);
+    let log = TestLog::default();
+    assert_eq!(store.claim_units(&id, 6, 2).unwrap(), (0..6).collect::<Vec<_>>());
+    let first = store.record_computed(&id, vec![unit_result(1, 10), unit_result(4, 10)], 0, &log, 10).unwrap();
+    assert_eq!((first.stored, first.units_done, first.running, first.stored_last(6)), (2, 2, true, false));
+    assert_eq!(store.claim_units(&id, 6, 2).unwrap(), vec![0, 2, 3, 5]);
+    // A unit stored already is refused.
+    assert_eq!(store.record_computed(&id, vec![unit_result(1, 11)], 0, &log, 11).unwrap().stored, 0);
+    let last = store.record_computed(&id, [0, 2, 3, 5].into_iter().map(|u| unit_result(u, 12)).collect(), 0, &log, 12).unwrap();
+    assert!(last.stored_last(6));
+    let progress: Vec<usize> = store.events(&id, 0).unwrap().iter().filter_map(|e| match &e.kind {
+        EventKind::Progress(p) => Some(p.units_done),
+        _ => None,
+    }).collect();
+    assert_eq!(progress, (1..=6).collect::<Vec<_>>());
+    assert!(store.claim_units(&id, 6, 2).unwrap().is_empty());
+    assert!(store.join_running(&[]).unwrap().is_none());
+}
+
+/// Two replicas on one database: claims are disjoint, a second writer of a unit is refused
+/// (its events too), an expired claim goes to the other replica, a replica learns the units
+/// the other stored, and exactly one change stores the last unit.
+#[test]
+fn replicas_claim_units_apart_and_take_over_expired_claims() {
+    let Some(url) = pg::fresh_database("unit claims") else { return };
+    let a = PostgresStore::open_with_lease(&url, std::time::Duration::from_millis(300)).unwrap();
+    let b = PostgresStore::open_with_lease(&url, std::time::Duration::from_secs(30)).unwrap();
+    let id = planned_run(&a);
+    let (log_a, log_b) = (TestLog::default(), TestLog::default());
+    assert_eq!(a.claim_units(&id, 6, 4).unwrap(), vec![0, 1, 2, 3]);
+    assert_eq!(b.claim_units(&id, 6, 4).unwrap(), vec![4, 5]);
+    assert!(b.claim_units(&id, 6, 4).unwrap().is_empty(), "claimed units were handed out twice");
+    assert_eq!(b.join_running(&[]).unwrap(), None, "a run with every unit claimed is not joined");
+    let first = a.record_computed(&id, vec![unit_result(0, 10)], 0, &log_a, 10).unwrap();
+    assert_eq!((first.stored, first.units_done, first.events.len()), (1, 1, 1));
+    // b computed unit 0 too (say its claim had expired): refused, nothing announced.
+    let twice = b.record_computed(&id, vec![unit_result(0, 11)], 0, &log_b, 11).unwrap();
+    assert_eq!((twice.stored, twice.events.len(), twice.units_done), (0, 0, 1));
+    assert_eq!(*log_b.learned.lock().unwrap(), vec![0], "b learns the unit a stored");
+    // a stops renewing: its claims on 1..3 expire and go to b.
+    let deadline = std::time::Instant::now() + std::time::Duration::from_secs(30);
+    let taken = loop {
+        let got = b.claim_units(&id, 6, 10).unwrap();
+        if !got.is_empty() {
+            break got;
+        }
+        assert!(std::time::Instant::now() < deadline, "a's claims never expired");
+        // A poll interval, not a wait for its own sake.
+        std::thread::sleep(std::time::Duration::from_millis(20));
+    };
+    assert_eq!(taken, vec![1, 2, 3]);
+    let mid = b.record_computed(&id, vec![unit_result(4, 12), unit_result(1, 12)], twice.units_done, &log_b, 12).unwrap();
+    assert_eq!((mid.stored, mid.units_done, mid.stored_last(6)), (2, 3, false));
+    let last = b.record_computed(&id, vec![unit_result(2, 13), unit_result(3, 13), unit_result(5, 13)], mid.units_done, &log_b, 13).unwrap();
+    assert_eq!((last.stored, last.units_done, last.stored_last(6)), (3, 6, true));
+    assert_eq!(*log_b.learned.lock().unwrap(), vec![0], "b learns nothing it stored itself");
+    // a's late copy of unit 1 is refused.
+    assert_eq!(a.record_computed(&id, vec![unit_result(1, 14)], first.units_done, &log_a, 14).unwrap().stored, 0);
+    assert_eq!(a.units(&id).unwrap().len(), 6);
+    let name = url.rsplit('/').next().unwrap();
+    let cluster = pg::available().unwrap();
+    let rows = cluster.sql(name, &format!("SELECT string_agg(unit::text || ':' || (CASE worker WHEN '{}' THEN 'a' WHEN '{}' THEN 'b' ELSE '?' END) || ':' || stored_seq::text, ',' ORDER BY unit) FROM units", a.worker(), b.worker()));
+    assert_eq!(rows.trim(), "0:a:1,1:b:3,2:b:4,3:b:5,4:b:2,5:b:6", "each unit's worker and stored order");
+}
+
+/// A run that was running before units were claimed one by one has no claims: its next
+/// plan lays out the units it still needs (not those stored), and it finishes; a plan of a
+/// run whose claims are laid out adds none.
+#[test]
+fn a_run_planned_before_unit_claims_gets_claims_for_the_units_it_lacks() {
+    let Some(url) = pg::fresh_database("claims after upgrade") else { return };
+    let a = PostgresStore::open(&url).unwrap();
+    let id = planned_run(&a);
+    let log = TestLog::default();
+    assert_eq!(a.claim_units(&id, 6, 2).unwrap(), vec![0, 1]);
+    let first = a.record_computed(&id, vec![unit_result(0, 10), unit_result(1, 10)], 0, &log, 10).unwrap();
+    assert_eq!(first.stored, 2);
+    // As an older release left it: units stored, no claims at all.
+    let name = url.rsplit('/').next().unwrap();
+    let cluster = pg::available().unwrap();
+    cluster.sql(name, "DELETE FROM unit_claims");
+    a.set_plan_size(&id, 2, 6).unwrap();
+    assert_eq!(a.claim_units(&id, 6, 10).unwrap(), vec![2, 3, 4, 5], "the units not stored are laid out again");
+    // Planned again while those are claimed: nothing is laid out twice.
+    a.set_plan_size(&id, 2, 6).unwrap();
+    assert!(a.claim_units(&id, 6, 10).unwrap().is_empty());
+    let last = a.record_computed(&id, (2..6).map(|u| unit_result(u, 11)).collect(), first.units_done, &log, 11).unwrap();
+    assert_eq!((last.stored, last.units_done, last.stored_last(6)), (4, 6, true));
+    a.set_plan_size(&id, 2, 6).unwrap();
+    assert!(a.claim_units(&id, 6, 10).unwrap().is_empty(), "a run with every unit stored has nothing to claim");
+}
+
+// ---------------------------------------------------------------------------------------
+// TLS to the database
+
+/// A certificate authority (PEM) and a server certificate with its key (PEM) for
+/// 127.0.0.1 that it signed.
+fn test_ca(name: &str) -> (String, String, String) {
+    use rcgen::{BasicConstraints, CertificateParams, DnType, IsCa, Issuer, KeyPair};
+    let ca_key = KeyPair::generate().unwrap();
+    let mut ca = CertificateParams::new(Vec::<String>::new()).unwrap();
+    ca.is_ca = IsCa::Ca(BasicConstraints::Unconstrained);
+    ca.distinguished_name.push(DnType::CommonName, name);
+    let ca_pem = ca.self_signed(&ca_key).unwrap().pem();
+    let issuer = Issuer::new(ca, ca_key);
+    let key = KeyPair::generate().unwrap();
+    let server = CertificateParams::new(vec!["127.0.0.1".to_string()]).unwrap().signed_by(&key, &issuer).unwrap();
+    (ca_pem, server.pem(), key.serialize_pem())
+}
+
+/// `sslmode=require` connects over TLS, verifying the database's certificate against
+/// `database_ca_file`: the server sees only TLS connections from the store, a CA that did
+/// not sign the certificate is refused, and a URL asking for TLS without a CA file (or a
+/// CA file without TLS) is refused with a message naming the setting.
+#[test]
+fn sslmode_require_connects_over_verified_tls() {
+    let Some(cluster) = pg::own_cluster() else { return };
+    let (ca, cert, key) = test_ca("database test CA");
+    cluster.serve_tls(&cert, &key);
+    let dir = TempDir::new("db-tls");
+    std::fs::create_dir_all(dir.path()).unwrap();
+    let (ca_file, other_file) = (dir.path().join("ca.pem"), dir.path().join("other.pem"));
+    std::fs::write(&ca_file, &ca).unwrap();
+    std::fs::write(&other_file, test_ca("another CA").0).unwrap();
+    let url = format!("{}?sslmode=require", cluster.fresh_database("tls"));
+    let lease = std::time::Duration::from_secs(15);
+
+    let store = PostgresStore::open_with(&url, lease, Some(&ca_file)).unwrap();
+    store.put_dataset(meta("ds_1", "reefer", 0, 5), b"hello").unwrap();
+    assert_eq!(store.dataset_bytes("ds_1").unwrap().unwrap(), b"hello");
+    let name = url.rsplit('/').next().unwrap().split('?').next().unwrap();
+    let seen = cluster.sql(name, "SELECT count(*) FILTER (WHERE s.ssl), count(*) FROM pg_stat_ssl s JOIN pg_stat_activity a USING (pid) WHERE a.application_name = 'pollard'");
+    let (tls, all) = seen.trim().split_once('|').unwrap();
+    assert!(all.parse::<u32>().unwrap() > 0 && tls == all, "store connections over TLS / all: {seen}");
+    drop(store);
+
+    let wrong = PostgresStore::open_with(&url, lease, Some(&other_file)).err().expect("a CA that did not sign the certificate is refused");
+    assert!(matches!(&wrong, StoreError::Unavailable(m) if m.contains("TLS")), "{wrong}");
+    let no_ca = PostgresStore::open_with(&url, lease, None).err().expect("sslmode=require needs a CA file");
+    assert!(matches!(&no_ca, StoreError::Io(m) if m.contains("database_ca_file")), "{no_ca}");
+    let plain = url.trim_end_matches("?sslmode=require");
+    let stray = PostgresStore::open_with(plain, lease, Some(&ca_file)).err().expect("a CA file without sslmode=require is refused");
+    assert!(matches!(&stray, StoreError::Io(m) if m.contains("sslmode=require")), "{stray}");
 }

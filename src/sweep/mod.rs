@@ -8,7 +8,9 @@
 //!
 //! `valid_sd` is the sample standard deviation of the fold scores (ddof = 1; 0 with one fold).
 
+pub mod costs;
 pub mod envelope;
+pub mod importance;
 pub mod folds;
 pub mod memory;
 pub mod metrics;
@@ -19,6 +21,7 @@ use std::sync::atomic::{AtomicBool, Ordering};
 use rayon::prelude::*;
 
 pub use envelope::{Envelope, FoldScore, Stopping};
+pub use importance::{permutation_importance, PermutationImportance, PERMUTATION_REPEATS};
 pub use folds::{FoldPlan, FoldScheme, FoldSplit, Folds};
 pub use memory::RunSize;
 pub use metrics::Metric;
@@ -34,10 +37,61 @@ pub struct Plan {
     pub folds: Folds,
     /// Every setting, in grid order.
     pub settings: Vec<Setting>,
-    /// Work units: (split index, shaping key index), split-major.
+    /// Work units: (split index, shaping key index), split-major: the splits of `folds`
+    /// first, then those of `nested` (see [`Plan::split`]).
     pub units: Vec<(usize, usize)>,
-    /// The dataset as the trees see it: the fold plan's column left out of the features.
+    /// The dataset as the trees see it: the fold plans' columns left out of the features.
     pub data: Dataset,
+    /// The outer loop of a nested sweep.
+    pub nested: Option<Nested>,
+}
+
+/// The splits of a nested sweep. Split numbers after the main plan's run outer split by
+/// outer split: the outer split itself, then the inner splits of its training rows.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Nested {
+    /// The outer plan's folds on every row.
+    pub outer: Folds,
+    /// Per outer split: the inner plan's folds of its training rows, with row numbers of
+    /// the whole dataset. In `assignment`, rows outside the outer training rows are −2.
+    pub inner: Vec<Folds>,
+}
+
+/// The seed of the outer plan: the sweep's seed moved by a fixed odd constant (the 64-bit
+/// golden-ratio increment of SplitMix64), so outer and inner folds are not cut alike.
+pub fn outer_seed(seed: u64) -> u64 {
+    seed ^ 0x9E37_79B9_7F4A_7C15
+}
+
+/// One outer split of a nested sweep: what the inner sweep picked and how it scored.
+#[derive(Clone, Debug, PartialEq)]
+pub struct OuterFold {
+    pub repeat: u32,
+    pub fold: u32,
+    /// Index into the plan's settings of the setting the inner sweep picked.
+    pub picked: usize,
+    /// The inner sweep's best validation mean (the pick rule `highest`).
+    pub inner_best: f64,
+    /// The inner validation mean of the picked setting.
+    pub inner_picked: f64,
+    /// The picked setting's tree, grown on the outer training rows, scored on the outer
+    /// validation rows.
+    pub outer_score: f64,
+    /// Leaves of that tree.
+    pub leaves: u32,
+}
+
+/// What nested cross-validation measured.
+#[derive(Clone, Debug, PartialEq)]
+pub struct NestedResult {
+    pub folds: Vec<OuterFold>,
+    /// Mean and sample standard deviation (ddof = 1) of the outer scores.
+    pub outer_mean: f64,
+    pub outer_sd: f64,
+    /// The mean inner best score minus the mean outer score, oriented like the overfit gap
+    /// (positive: the inner best promised more than unseen rows gave): the selection
+    /// optimism of picking the best of a grid.
+    pub optimism: f64,
 }
 
 /// Scores of every setting of one shaping key on one split.
@@ -126,6 +180,8 @@ pub struct SweepResult {
     pub best: usize,
     /// The picked setting refit on all rows, when asked.
     pub model: Option<Tree>,
+    /// The outer loop's scores, for a nested sweep.
+    pub nested: Option<NestedResult>,
 }
 
 /// Checks the spec (with its default caps), assigns folds and expands the grid.
@@ -137,7 +193,15 @@ pub fn plan(data: &Dataset, spec: &SweepSpec) -> Result<Plan, SweepError> {
 pub fn plan_with(data: &Dataset, spec: &SweepSpec, caps: &SpecCaps) -> Result<Plan, SweepError> {
     let checked = spec.check_with(data, caps)?;
     let folds = checked.folds.assign(data, spec.seed)?;
-    let features: Vec<_> = data.frame.features.iter().filter(|f| !folds.plan_columns.contains(&f.name)).cloned().collect();
+    let nested = match &checked.outer {
+        None => None,
+        Some((outer, _)) => Some(nest(data, &checked.folds, outer, spec.seed)?),
+    };
+    let mut plan_columns = folds.plan_columns.clone();
+    if let Some(n) = &nested {
+        plan_columns.extend(n.outer.plan_columns.iter().cloned());
+    }
+    let features: Vec<_> = data.frame.features.iter().filter(|f| !plan_columns.contains(&f.name)).cloned().collect();
     let frame = Frame::new(features).expect("a subset of valid columns");
     let data = Dataset { frame, target_name: data.target_name.clone(), target: data.target.clone() };
     let alphas_per_key: Vec<Vec<f64>> = if spec.prune_path {
@@ -152,8 +216,42 @@ pub fn plan_with(data: &Dataset, spec: &SweepSpec, caps: &SpecCaps) -> Result<Pl
         return Err(spec::cap_error("settings", format!("the grid has {shown} settings"), "max_settings", caps.max_settings as u64).into());
     }
     let settings = checked.settings(&alphas_per_key);
-    let units = (0..folds.splits.len()).flat_map(|s| (0..checked.keys.len()).map(move |k| (s, k))).collect();
-    Ok(Plan { spec: checked, folds, settings, units, data })
+    let n_splits = folds.splits.len() + nested.as_ref().map_or(0, |n| n.inner.iter().map(|f| f.splits.len() + 1).sum());
+    if n_splits.checked_mul(checked.keys.len()).is_none_or(|u| u > caps.max_units) {
+        return Err(spec::cap_error("outer", format!("{n_splits} splits × {} shaping keys", checked.keys.len()), "max_units_per_run", caps.max_units as u64).into());
+    }
+    let units = (0..n_splits).flat_map(|s| (0..checked.keys.len()).map(move |k| (s, k))).collect();
+    Ok(Plan { spec: checked, folds, settings, units, data, nested })
+}
+
+/// The outer folds of a nested sweep on every row, and the inner plan's folds of each outer
+/// split's training rows (the sweep's own seed, so a nested sweep's inner folds of one outer
+/// split are what a plain sweep of those rows would use).
+pub fn nest(data: &Dataset, inner: &FoldPlan, outer: &FoldPlan, seed: u64) -> Result<Nested, SpecError> {
+    let outer_folds = outer.assign(data, outer_seed(seed)).map_err(spec::as_outer)?;
+    let mut all = Vec::with_capacity(outer_folds.splits.len());
+    for o in &outer_folds.splits {
+        let rows = &o.train;
+        let sub = data.take_rows(rows);
+        let within = |e: SpecError| SpecError { message: format!("in the training rows of outer split {} (repeat {}): {}", o.fold, o.repeat, e.message), ..e };
+        inner.check(&sub).map_err(within)?;
+        let f = inner.assign(&sub, seed).map_err(within)?;
+        let whole = |v: &[u32]| v.iter().map(|&i| rows[i as usize]).collect::<Vec<u32>>();
+        let splits = f.splits.iter().map(|s| FoldSplit { repeat: s.repeat, fold: s.fold, train: whole(&s.train), valid: whole(&s.valid) }).collect();
+        let assignment = f
+            .assignment
+            .iter()
+            .map(|a| {
+                let mut full = vec![-2i32; data.rows()];
+                for (i, &r) in rows.iter().enumerate() {
+                    full[r as usize] = a[i];
+                }
+                full
+            })
+            .collect();
+        all.push(Folds { splits, assignment, plan_columns: f.plan_columns });
+    }
+    Ok(Nested { outer: outer_folds, inner: all })
 }
 
 /// The α values a path-mode sweep scores for each key: geometric means of consecutive α on
@@ -187,9 +285,47 @@ fn envelope_options(spec: &CheckedSpec, key: &ShapingKey) -> FitOptions {
     FitOptions { limits: spec.envelope_limits(key), criterion: Some(key.criterion), class_weight: key.class_weight, splitter: spec.spec.splitter }
 }
 
+/// Where a split number points.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum SplitRole {
+    /// A split of the sweep's own fold plan: its scores make the score table.
+    Main,
+    /// Outer split `o` of a nested sweep.
+    Outer(usize),
+    /// Inner split `i` of outer split `o`.
+    Inner(usize, usize),
+}
+
 impl Plan {
+    /// What split `i` is.
+    pub fn role(&self, mut i: usize) -> SplitRole {
+        if i < self.folds.splits.len() {
+            return SplitRole::Main;
+        }
+        i -= self.folds.splits.len();
+        for (o, f) in self.nested.iter().flat_map(|n| n.inner.iter()).enumerate() {
+            if i == 0 {
+                return SplitRole::Outer(o);
+            }
+            if i <= f.splits.len() {
+                return SplitRole::Inner(o, i - 1);
+            }
+            i -= f.splits.len() + 1;
+        }
+        panic!("split {i} past the plan's splits")
+    }
+
+    /// The rows of split `i`.
+    pub fn split(&self, i: usize) -> &FoldSplit {
+        match self.role(i) {
+            SplitRole::Main => &self.folds.splits[i],
+            SplitRole::Outer(o) => &self.nested.as_ref().unwrap().outer.splits[o],
+            SplitRole::Inner(o, j) => &self.nested.as_ref().unwrap().inner[o].splits[j],
+        }
+    }
+
     /// Setting × split scores per unit.
-    fn unit_size(&self, unit: usize) -> usize {
+    pub fn unit_size(&self, unit: usize) -> usize {
         let key = self.units[unit].1;
         self.settings.iter().filter(|s| s.key == key).count()
     }
@@ -203,7 +339,7 @@ impl Plan {
     /// (see [`Plan::growth_groups`]), their envelopes grown together.
     pub fn run_units(&self, units: &[usize]) -> Result<Vec<UnitResult>, FitError> {
         let (split, key) = self.units[units[0]];
-        let fold = &self.folds.splits[split];
+        let fold = self.split(split);
         let msl: Vec<u32> = units.iter().map(|&u| self.spec.keys[self.units[u].1].min_leaf_rows).collect();
         let envelopes = Envelope::grow_shared(&self.data, &envelope_options(&self.spec, &self.spec.keys[key]), &msl, &fold.train, &fold.valid)?;
         // Scored one by one: each envelope's aggregates are dropped before the next is made.
@@ -267,24 +403,61 @@ pub fn run(
     sink: &(dyn Fn(&UnitResult, Progress) -> Flow + Sync),
     cancel: &AtomicBool,
 ) -> Result<Vec<UnitResult>, SweepError> {
-    let sizes: Vec<usize> = (0..plan.units.len()).map(|u| plan.unit_size(u)).collect();
-    let total_scores: usize = sizes.iter().sum();
+    let no_clock = || None;
+    run_timed(plan, done, &|r, p, _| sink(r, p), cancel, &no_clock)
+}
+
+/// A sink that is also told how long each unit took.
+pub type TimedSink<'a> = dyn Fn(&UnitResult, Progress, Option<std::time::Duration>) -> Flow + Sync + 'a;
+
+/// A monotonic clock the caller lends the core (which reads none itself); `None`: no durations.
+pub type Clock<'a> = dyn Fn() -> Option<std::time::Instant> + Sync + 'a;
+
+/// [`run`], also telling the sink how long each unit took by the caller's clock `now`.
+pub fn run_timed(plan: &Plan, done: Vec<UnitResult>, sink: &TimedSink, cancel: &AtomicBool, now: &Clock) -> Result<Vec<UnitResult>, SweepError> {
     let mut finished = vec![false; plan.units.len()];
     for r in &done {
         finished[r.unit] = true;
     }
+    let todo: Vec<usize> = (0..plan.units.len()).filter(|&u| !finished[u]).collect();
+    let fresh = run_some_timed(plan, &todo, &done, sink, cancel, now)?;
+    let mut all = done;
+    all.extend(fresh);
+    all.sort_by_key(|r| r.unit);
+    Ok(all)
+}
+
+/// Scores the units `todo` (indices into [`Plan::units`]) as [`run`] scores the units not
+/// done, counting progress on from `done`; only the fresh results, in `todo`'s order.
+pub fn run_some(
+    plan: &Plan,
+    todo: &[usize],
+    done: &[UnitResult],
+    sink: &(dyn Fn(&UnitResult, Progress) -> Flow + Sync),
+    cancel: &AtomicBool,
+) -> Result<Vec<UnitResult>, SweepError> {
+    let no_clock = || None;
+    run_some_timed(plan, todo, done, &|r, p, _| sink(r, p), cancel, &no_clock)
+}
+
+/// [`run_some`], also telling the sink how long each unit took by the caller's clock `now`.
+pub fn run_some_timed(plan: &Plan, todo: &[usize], done: &[UnitResult], sink: &TimedSink, cancel: &AtomicBool, now: &Clock) -> Result<Vec<UnitResult>, SweepError> {
+    let sizes: Vec<usize> = (0..plan.units.len()).map(|u| plan.unit_size(u)).collect();
+    let total_scores: usize = sizes.iter().sum();
     let already_units = done.len();
     let already_scores: usize = done.iter().map(|r| sizes[r.unit]).sum();
     let progress = std::sync::Mutex::new((already_units, already_scores));
-    let todo: Vec<usize> = (0..plan.units.len()).filter(|&u| !finished[u]).collect();
     let fresh: Vec<Result<Vec<UnitResult>, FitError>> = plan
-        .growth_groups(&todo)
+        .growth_groups(todo)
         .par_iter()
         .map(|group| {
             if cancel.load(Ordering::Relaxed) {
                 return Ok(Vec::new());
             }
+            let began = now();
             let results = plan.run_units(group)?;
+            // A group's units grow together: each is given an equal share of its time.
+            let took = began.zip(now()).map(|(a, b)| b.saturating_duration_since(a) / results.len().max(1) as u32);
             // The sink runs under the lock that numbers the progress, so units reach it one
             // at a time in the order of their numbers (a sink that stores them stores them in
             // that order). A panicking sink fails the run; it does not poison the others.
@@ -293,7 +466,7 @@ pub fn run(
                 g.0 += 1;
                 g.1 += sizes[r.unit];
                 let p = Progress { units_done: g.0, units_total: plan.units.len(), scores_done: g.1, scores_total: total_scores };
-                if sink(r, p) == Flow::Stop {
+                if sink(r, p, took) == Flow::Stop {
                     cancel.store(true, Ordering::Relaxed);
                 }
             }
@@ -301,36 +474,84 @@ pub fn run(
             Ok(results)
         })
         .collect();
-    let mut all = done;
+    let mut all = Vec::with_capacity(todo.len());
     for r in fresh {
         all.extend(r?);
     }
     if cancel.load(Ordering::Relaxed) {
         return Err(SweepError::Cancelled);
     }
-    all.sort_by_key(|r| r.unit);
     Ok(all)
 }
 
 /// Turns unit results into setting scores and picks one.
 pub fn summarize(plan: &Plan, units: &[UnitResult]) -> SweepResult {
-    let n_splits = plan.folds.splits.len();
-    let mut per: Vec<Vec<Option<FoldScore>>> = vec![vec![None; n_splits]; plan.settings.len()];
-    for r in units {
-        let split = plan.units[r.unit].0;
-        for (s, score) in &r.scores {
-            per[*s][split] = Some(score.clone());
-        }
-    }
-    let scores: Vec<SettingScore> = per
-        .into_iter()
-        .zip(&plan.settings)
-        .map(|(folds, setting)| aggregate(setting, &folds.into_iter().map(|x| x.expect("every unit scored")).collect::<Vec<_>>(), plan.spec.metric))
-        .collect();
     let metric = plan.spec.metric;
+    let scores = table(plan, units, |split| (plan.role(split) == SplitRole::Main).then_some(split));
     let best = pick(&scores, PickRule::Highest, metric);
     let picked = pick(&scores, plan.spec.spec.pick, metric);
-    SweepResult { metric, pick_rule: plan.spec.spec.pick, scores, picked, best, model: None }
+    let nested = plan.nested.as_ref().map(|n| nested_result(plan, n, units));
+    SweepResult { metric, pick_rule: plan.spec.spec.pick, scores, picked, best, model: None, nested }
+}
+
+/// Setting scores over the splits that `column` numbers (0, 1, … in split order), from
+/// every unit of those splits.
+fn table(plan: &Plan, units: &[UnitResult], column: impl Fn(usize) -> Option<usize>) -> Vec<SettingScore> {
+    let width = (0..plan.units.len()).filter_map(|u| column(plan.units[u].0)).max().map_or(0, |c| c + 1);
+    let mut per: Vec<Vec<Option<FoldScore>>> = vec![vec![None; width]; plan.settings.len()];
+    for r in units {
+        if let Some(c) = column(plan.units[r.unit].0) {
+            for (s, score) in &r.scores {
+                per[*s][c] = Some(score.clone());
+            }
+        }
+    }
+    per.into_iter()
+        .zip(&plan.settings)
+        .map(|(folds, setting)| aggregate(setting, &folds.into_iter().map(|x| x.expect("every unit scored")).collect::<Vec<_>>(), plan.spec.metric))
+        .collect()
+}
+
+/// Per outer split: the inner sweep's pick, and the picked setting's score on the outer
+/// validation rows (its tree grown on the outer training rows, which is what the outer
+/// split's own unit scored).
+fn nested_result(plan: &Plan, nested: &Nested, units: &[UnitResult]) -> NestedResult {
+    let metric = plan.spec.metric;
+    let folds: Vec<OuterFold> = nested
+        .outer
+        .splits
+        .iter()
+        .enumerate()
+        .map(|(o, split)| {
+            let inner = table(plan, units, |s| match plan.role(s) {
+                SplitRole::Inner(oo, j) if oo == o => Some(j),
+                _ => None,
+            });
+            let picked = pick(&inner, plan.spec.spec.pick, metric);
+            let best = pick(&inner, PickRule::Highest, metric);
+            let outer = units
+                .iter()
+                .filter(|r| plan.role(plan.units[r.unit].0) == SplitRole::Outer(o))
+                .flat_map(|r| &r.scores)
+                .find(|(s, _)| *s == picked)
+                .map(|(_, f)| f.clone())
+                .expect("every unit scored");
+            OuterFold {
+                repeat: split.repeat,
+                fold: split.fold,
+                picked,
+                inner_best: inner[best].valid_mean,
+                inner_picked: inner[picked].valid_mean,
+                outer_score: outer.valid,
+                leaves: outer.leaves,
+            }
+        })
+        .collect();
+    let k = folds.len() as f64;
+    let outer_mean = folds.iter().map(|f| f.outer_score).sum::<f64>() / k;
+    let outer_sd = if folds.len() > 1 { (folds.iter().map(|f| (f.outer_score - outer_mean).powi(2)).sum::<f64>() / (k - 1.0)).sqrt() } else { 0.0 };
+    let inner_best = folds.iter().map(|f| f.inner_best).sum::<f64>() / k;
+    NestedResult { optimism: overfit_gap(inner_best, outer_mean, metric), folds, outer_mean, outer_sd }
 }
 
 /// One setting's score from its fold scores, in split order. The gap is oriented by the
@@ -369,7 +590,7 @@ pub fn overfit_gap(train_mean: f64, valid_mean: f64, metric: Metric) -> f64 {
 pub fn key_scores(plan: &Plan, units: &[UnitResult], key: usize) -> Option<Vec<(usize, SettingScore)>> {
     let n_splits = plan.folds.splits.len();
     let mut per: std::collections::BTreeMap<usize, Vec<Option<FoldScore>>> = std::collections::BTreeMap::new();
-    for r in units.iter().filter(|r| plan.units[r.unit].1 == key) {
+    for r in units.iter().filter(|r| plan.units[r.unit].1 == key && plan.role(plan.units[r.unit].0) == SplitRole::Main) {
         let split = plan.units[r.unit].0;
         for (s, score) in &r.scores {
             per.entry(*s).or_insert_with(|| vec![None; n_splits])[split] = Some(score.clone());

@@ -100,6 +100,10 @@ pub struct SweepSpec {
     pub max_settings: Option<usize>,
     /// Where numeric features may be cut, for every tree of the sweep (exact by default).
     pub splitter: Splitter,
+    /// Nested cross-validation: an outer fold plan. For each outer split, the whole sweep
+    /// (with `folds` as the inner plan) and the pick run on the outer training rows, and the
+    /// picked setting is scored once on the outer validation rows. `None`: no outer loop.
+    pub outer: Option<FoldPlan>,
 }
 
 /// Default cap on the number of settings in one sweep.
@@ -125,6 +129,7 @@ impl Default for SweepSpec {
             fit_final: true,
             max_settings: None,
             splitter: Splitter::Exact,
+            outer: None,
         }
     }
 }
@@ -164,6 +169,14 @@ pub(crate) fn spec_error(field: impl Into<String>, message: impl Into<String>) -
 /// A cap exceeded: `message` says how much was asked (the cap is appended when shown).
 pub(crate) fn cap_error(field: impl Into<String>, message: impl Into<String>, cap: &'static str, limit: u64) -> SpecError {
     SpecError { field: field.into(), message: message.into(), kind: SpecErrorKind::OverCap { cap, limit } }
+}
+
+/// A fold plan error of the outer plan, named by its own field (`outer.k`, not `folds.k`).
+pub fn as_outer(mut e: SpecError) -> SpecError {
+    if let Some(rest) = e.field.strip_prefix("folds") {
+        e.field = format!("outer{rest}");
+    }
+    e
 }
 
 /// What one sweep may ask for at most. Every size computed from a spec is counted (with
@@ -226,6 +239,8 @@ pub struct CheckedSpec {
     pub prune_alpha: Vec<f64>,
     /// Training/validation splits the fold plan makes on the dataset.
     pub splits: usize,
+    /// The outer fold plan of a nested sweep, with the splits it makes on the dataset.
+    pub outer: Option<(FoldPlan, usize)>,
 }
 
 impl SweepSpec {
@@ -307,11 +322,41 @@ impl SweepSpec {
         if matches!(folds.scheme, super::folds::FoldScheme::Given { .. }) && splits > caps.max_folds as usize {
             return Err(cap_error("folds.column", format!("holds {splits} fold numbers"), "max_folds", caps.max_folds as u64));
         }
+        let outer = match &self.outer {
+            None => None,
+            Some(o) => {
+                if self.prune_path {
+                    return Err(spec_error(
+                        "outer",
+                        "nested cross-validation needs a prune_alpha range: prune_path takes its α values from a tree grown on all rows, outer validation rows included",
+                    ));
+                }
+                if o.k > caps.max_folds {
+                    return Err(cap_error("outer.k", format!("asks for {} folds", o.k), "max_folds", caps.max_folds as u64));
+                }
+                if o.repeats > caps.max_repeats {
+                    return Err(cap_error("outer.repeats", format!("asks for {} repeats", o.repeats), "max_repeats", caps.max_repeats as u64));
+                }
+                let n = o.check(data).map_err(as_outer)?;
+                if matches!(o.scheme, super::folds::FoldScheme::Given { .. }) && n > caps.max_folds as usize {
+                    return Err(cap_error("outer.column", format!("holds {n} fold numbers"), "max_folds", caps.max_folds as u64));
+                }
+                Some((o.clone(), n))
+            }
+        };
         let n_keys = criteria.len() * class_weights.len() * min_leaf_rows.len();
-        let units = checked_product(&[splits, n_keys]);
+        // A nested sweep adds, per outer split, that split and the inner plan's splits of its
+        // training rows (at most `splits`: a `given` column may lose fold numbers there).
+        let all_splits = match outer {
+            None => Some(splits as u128),
+            Some((_, n)) => checked_product(&[n, splits + 1]).and_then(|x| x.checked_add(splits as u128)),
+        };
+        let units = all_splits.and_then(|s| s.checked_mul(n_keys as u128));
         if units.is_none_or(|u| u > caps.max_units as u128) {
             let shown = units.map_or_else(|| "too many".to_string(), |u| u.to_string());
-            return Err(cap_error("folds", format!("{splits} splits × {n_keys} shaping keys make {shown} work units"), "max_units_per_run", caps.max_units as u64));
+            let field = if outer.is_some() { "outer" } else { "folds" };
+            let what = all_splits.map_or_else(|| "too many".to_string(), |s| s.to_string());
+            return Err(cap_error(field, format!("{what} splits × {n_keys} shaping keys make {shown} work units"), "max_units_per_run", caps.max_units as u64));
         }
         let mut keys = Vec::with_capacity(n_keys);
         for &criterion in &criteria {
@@ -321,7 +366,7 @@ impl SweepSpec {
                 }
             }
         }
-        let checked = CheckedSpec { spec: self.clone(), task, metric, folds, keys, criteria, class_weights, min_leaf_rows, max_depth, min_split_rows, max_leaves, min_gain, prune_alpha, splits };
+        let checked = CheckedSpec { spec: self.clone(), task, metric, folds, keys, criteria, class_weights, min_leaf_rows, max_depth, min_split_rows, max_leaves, min_gain, prune_alpha, splits, outer };
         Ok(checked)
     }
 }

@@ -9,6 +9,7 @@
 
 pub mod criterion;
 pub mod grow;
+pub mod importance;
 pub mod limits;
 pub mod predict;
 pub mod prune;

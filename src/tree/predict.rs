@@ -75,7 +75,7 @@ impl Tree {
 
     /// Whether row `row` goes left at `split`, and whether it went there as a missing cell
     /// (or a category the training data did not have) following the split's missing side.
-    fn takes_left(&self, split: &Split, frame: &Frame, row: usize) -> (bool, bool) {
+    pub(super) fn takes_left(&self, split: &Split, frame: &Frame, row: usize) -> (bool, bool) {
         let col = &frame.features[split.feature as usize].column;
         match (&split.rule, col) {
             (SplitRule::Threshold(t), Column::Numeric(v)) => {

@@ -297,12 +297,37 @@ pub fn run(caller: &Caller, run: &Run, outcome: Option<&RunOutcome>) -> Markup {
             }
             @if let (Some(o), Some(m)) = (outcome, metric) {
                 (scores(run, o, m))
+                @if let Some(n) = &o.nested { (nested(n, m)) }
+                (importances(o, m))
                 (plots(o, m))
                 (tree(run, o))
                 (downloads(run, o))
             }
         },
     )
+}
+
+/// What nested cross-validation measured: the outer estimate and the optimism of the inner
+/// best, then one row per outer split.
+fn nested(n: &crate::sweep::NestedResult, m: Metric) -> Markup {
+    html! {
+        section #nested {
+            h2 { "Nested cross-validation" }
+            p {
+                "Outer " (m.as_str()) " " (score(n.outer_mean)) " ± " (score(n.outer_sd)) " (sd over " (n.folds.len()) " outer splits); "
+                "optimism of the inner best " (score(n.optimism)) " (inner best minus outer, larger means more optimistic; "
+                (if m.higher_is_better() { "higher" } else { "lower" }) " " (m.as_str()) " is better)."
+            }
+            table {
+                thead { tr { th { "outer split" } th { "picked grid#" } th { "inner best" } th { "inner picked" } th { "outer" } th { "leaves" } } }
+                tbody {
+                    @for f in &n.folds {
+                        tr { td { (f.repeat) "." (f.fold) } td { (f.picked) } td { (score(f.inner_best)) } td { (score(f.inner_picked)) } td { (score(f.outer_score)) } td { (f.leaves) } }
+                    }
+                }
+            }
+        }
+    }
 }
 
 fn scores(run: &Run, o: &RunOutcome, m: Metric) -> Markup {
@@ -346,6 +371,44 @@ fn scores(run: &Run, o: &RunOutcome, m: Metric) -> Markup {
                             td.l { @if i == picked { "◆ picked" } @else if i == o.best as usize { "best" } }
                             @for (_, _, f) in &knobs { td { (f(s)) } }
                             td { (score(s.train_mean)) } td { (score(s.valid_mean)) } td { (score(s.valid_sd)) } td { (score(gap(s))) } td { (format!("{:.1}", s.mean_leaves)) }
+                        }
+                    }
+                }
+            }
+        }
+    }
+}
+
+/// What the picked setting leans on: permutation drops over the validation folds and the
+/// model's impurity shares, most first, as in `pollard show`.
+fn importances(o: &RunOutcome, m: Metric) -> Markup {
+    let shares = o.model.as_ref().map(|t| t.impurity_importances());
+    let (mean, sd) = o.permutation.as_ref().map(|p| (p.mean(), p.sd())).unzip();
+    let names: Vec<String> = match (&o.permutation, &o.model) {
+        (Some(p), _) => p.features.clone(),
+        (None, Some(t)) => t.columns.iter().map(|c| c.name.clone()).collect(),
+        (None, None) => Vec::new(),
+    };
+    let key = |j: usize| mean.as_ref().or(shares.as_ref()).and_then(|v| v.get(j).copied()).unwrap_or(0.0);
+    let mut order: Vec<usize> = (0..names.len()).collect();
+    order.sort_by(|&a, &b| key(b).total_cmp(&key(a)).then(a.cmp(&b)));
+    let cell = |v: &Option<Vec<f64>>, j: usize| v.as_ref().and_then(|v| v.get(j)).map_or("–".to_string(), |x| format!("{x:.4}"));
+    html! {
+        @if !names.is_empty() {
+            section {
+                h2 { "Importances" }
+                p.note {
+                    @if let Some(p) = &o.permutation {
+                        "shuffled: the drop in " (m.as_str()) " when the feature's values are shuffled among a validation fold's rows ("
+                        (p.repeats) " shuffles per fold), mean and sd over " (p.per_fold.len()) " folds, larger means the picked setting leans on it more. "
+                    }
+                    "share: the feature's share of the model's total impurity decrease."
+                }
+                table {
+                    thead { tr { th.l scope="col" { "feature" } th scope="col" { "shuffled" } th scope="col" { "sd" } th scope="col" { "share" } } }
+                    tbody {
+                        @for &j in order.iter().take(SCORE_ROWS) {
+                            tr { td.l { (names[j]) } td { (cell(&mean, j)) } td { (cell(&sd, j)) } td { (cell(&shares, j)) } }
                         }
                     }
                 }

@@ -60,9 +60,19 @@ done
 # folds_<dataset>.csv are inputs written by pollard (`pollard folds`), not by Python; they
 # are copied as they are, and tests/reference_sweep.rs checks pollard still assigns them.
 (cd "$root" && "$py" "$here/make_sweep_golden.py" "$tmp/golden") || fail "make_sweep_golden.py failed"
-cp "$here"/golden/folds_*.csv "$tmp/golden/"
+# The nested check's fold files (`pollard folds --outer-k 5`) are pollard's inputs too;
+# tests/reference_nested.rs checks pollard still assigns them.
+(cd "$root" && "$py" "$here/make_nested_golden.py" "$tmp/golden") || fail "make_nested_golden.py failed"
+cp "$here"/golden/folds_*.csv "$here"/golden/nested_folds_*.csv "$tmp/golden/"
+
+# --- 5. golden importances (read the committed CSVs and pollard's shuffle files) -------
+# permutations_<dataset>.csv are inputs written by pollard (POLLARD_WRITE_PERMUTATIONS=1
+# cargo test --release --test reference_tree permutation_orders); copied as they are, and
+# tests/reference_tree.rs checks pollard still draws them.
+cp "$here"/golden/permutations_*.csv "$tmp/golden/"
+(cd "$root" && "$py" "$here/make_importance_golden.py" "$tmp/golden") || fail "make_importance_golden.py failed"
 if diff -r -q "$tmp/golden" "$here/golden" >"$tmp/golden.diff" 2>&1; then
-    say "tests/reference/golden: identical ($(ls "$here/golden" | wc -l) files, $(ls "$here"/golden/folds_*.csv | wc -l) of them pollard's fold files)"
+    say "tests/reference/golden: identical ($(ls "$here/golden" | wc -l) files, $(ls "$here"/golden/folds_*.csv "$here"/golden/nested_folds_*.csv | wc -l) of them pollard's fold files)"
 else
     echo "check_golden: FAIL: tests/reference/golden differs from a fresh regeneration:" >&2
     cat "$tmp/golden.diff" >&2

@@ -322,16 +322,7 @@ async fn upload(ch: &Channel, bytes: Vec<u8>) -> pb::DatasetInfo {
 
 /// Waits until the schedule has `n` fire records; returns them oldest first.
 async fn wait_fires(ch: &Channel, id: &str, n: usize) -> Vec<pb::Fire> {
-    let deadline = Instant::now() + PATIENCE;
-    loop {
-        let mut f = SchedulesClient::new(ch.clone()).list_fires(pb::ListFiresRequest { schedule_id: id.into(), page_size: 500, page_token: String::new() }).await.unwrap().into_inner().fires;
-        if f.len() >= n {
-            f.reverse();
-            return f;
-        }
-        assert!(Instant::now() < deadline, "schedule {id} has {} fires, waited for {n}", f.len());
-        tokio::time::sleep(POLL).await;
-    }
+    support::wait_fires(ch, id, n, PATIENCE).await
 }
 
 async fn wait_finished(ch: &Channel, run_id: &str) -> pb::RunInfo {
@@ -548,7 +539,7 @@ async fn back_to_back_runs_parse_their_dataset_once() {
             _ => panic!("round {round}: the queued run is not claimed"),
         };
         assert_eq!(claimed.id, run.id);
-        pollard::worker::execute(&api.shared, claimed).await;
+        pollard::worker::execute(&api.shared, claimed, false).await;
         let done = api.shared.store.run(&run.id).unwrap().unwrap();
         assert_eq!(done.state, RunState::Finished, "round {round}: {done:?}");
         assert_eq!(parses(), before + 1, "round {round}: the CSV was parsed again");
@@ -572,6 +563,7 @@ async fn a_store_failure_is_not_the_callers_fault() {
         target: Some("target".into()),
         spec: pollard::sweep::SweepSpec::default(),
         default_fold_scheme: false,
+        default_outer_scheme: false,
         idempotency_key: None,
         labels: Default::default(),
     };

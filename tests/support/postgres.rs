@@ -67,6 +67,19 @@ pub fn fresh_database(tag: &str) -> Option<String> {
     }
 }
 
+/// A cluster of the caller's own (for a test that changes its settings or wants it alone),
+/// or `None` after printing why, when PostgreSQL is not installed and not required.
+pub fn own_cluster() -> Option<Cluster> {
+    match Cluster::start() {
+        Ok(c) => Some(c),
+        Err(why) => {
+            assert!(std::env::var(REQUIRE).as_deref() != Ok("1"), "{REQUIRE}=1 and PostgreSQL is not usable: {why}");
+            eprintln!("skipped: {why}");
+            None
+        }
+    }
+}
+
 impl Cluster {
     /// `initdb` into a new temporary folder and the server on a free loopback port.
     pub fn start() -> Result<Cluster, String> {
@@ -179,6 +192,28 @@ impl Cluster {
             .expect("psql runs");
         assert!(out.status.success(), "psql {sql:?}: {}", String::from_utf8_lossy(&out.stderr));
         String::from_utf8_lossy(&out.stdout).into_owned()
+    }
+
+    /// Serves TLS from now on (plain connections stay allowed) with this certificate and
+    /// key (PEM); returns once a new connection sees `ssl = on`.
+    pub fn serve_tls(&self, cert_pem: &str, key_pem: &str) {
+        use std::os::unix::fs::PermissionsExt;
+        let owner = unprivileged_owner().expect("the owner found at start");
+        for (name, text) in [("server.crt", cert_pem), ("server.key", key_pem)] {
+            let path = self.base.join("data").join(name);
+            std::fs::write(&path, text).unwrap();
+            std::fs::set_permissions(&path, std::fs::Permissions::from_mode(0o600)).unwrap();
+            if let Some((uid, gid)) = owner {
+                chown(&path, uid, gid).unwrap();
+            }
+        }
+        self.sql("postgres", "ALTER SYSTEM SET ssl = on");
+        self.sql("postgres", "SELECT pg_reload_conf()");
+        let deadline = Instant::now() + PATIENCE;
+        while self.sql("postgres", "SHOW ssl").trim() != "on" {
+            assert!(Instant::now() < deadline, "the server did not turn TLS on: {}", std::fs::read_to_string(self.base.join("server.log")).unwrap_or_default());
+            std::thread::sleep(POLL);
+        }
     }
 
     /// Starts the stopped server again, on the same port and data.

@@ -58,3 +58,19 @@ impl Server {
         tokio::time::timeout(Duration::from_secs(30), self.done).await.expect("the server did not drain").unwrap().unwrap();
     }
 }
+
+/// Waits (up to `patience`) until the schedule has `n` fire records; returns them oldest first.
+#[allow(dead_code)]
+pub async fn wait_fires(ch: &Channel, id: &str, n: usize, patience: Duration) -> Vec<pollard::pb::Fire> {
+    use pollard::pb;
+    let deadline = Instant::now() + patience;
+    loop {
+        let mut f = pb::schedules_client::SchedulesClient::new(ch.clone()).list_fires(pb::ListFiresRequest { schedule_id: id.into(), page_size: 500, page_token: String::new() }).await.unwrap().into_inner().fires;
+        if f.len() >= n {
+            f.reverse();
+            return f;
+        }
+        assert!(Instant::now() < deadline, "schedule {id} has {} fires, waited for {n}", f.len());
+        tokio::time::sleep(POLL).await;
+    }
+}

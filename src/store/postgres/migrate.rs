@@ -13,6 +13,7 @@ use crate::store::StoreError;
 pub const MIGRATIONS: &[(i32, &str, &str)] = &[
     (1, "init", include_str!("migrations/0001_init.sql")),
     (2, "run_leases", include_str!("migrations/0002_run_leases.sql")),
+    (3, "unit_claims", include_str!("migrations/0003_unit_claims.sql")),
 ];
 
 /// The advisory lock key of migrations ("pollard" in ASCII).

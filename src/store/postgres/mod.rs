@@ -37,10 +37,12 @@ use std::time::Duration;
 use deadpool_postgres::{Manager, ManagerConfig, Pool, RecyclingMethod, Runtime, Transaction};
 use tokio_postgres::error::SqlState;
 use tokio_postgres::types::ToSql;
+use tokio_postgres::config::SslMode;
 use tokio_postgres::{NoTls, Row};
+use tokio_postgres_rustls::MakeRustlsConnect;
 
 use super::paging::{dataset_position, page};
-use super::{announced, fire_run, keys, number_fire, records, same_version, Claim, CreateRun, DeleteDataset, PutDataset, Resumed, RunFilter, Storage, StoreError, CHUNK_BYTES};
+use super::{announced, fire_run, keys, number_fire, records, same_version, Change, Claim, CreateRun, DeleteDataset, PutDataset, Recorded, Resumed, RunFilter, Storage, StoreError, UnitLog, CHUNK_BYTES};
 use crate::drift::DriftReport;
 use crate::job::{DatasetMeta, Event, EventKind, Fire, Run, RunOutcome, RunState, Schedule};
 use crate::sweep::UnitResult;
@@ -84,6 +86,70 @@ struct Inner {
     lease_ms: i64,
     /// The connection settings (the change watcher connects on its own).
     config: tokio_postgres::Config,
+    /// TLS to the database, when the URL asks for it.
+    tls: Option<MakeRustlsConnect>,
+}
+
+/// The TLS connector a URL asks for: none unless `sslmode=require`, which needs the PEM file
+/// of the certificate authority that signed the database's certificate (`ca_file`); the
+/// certificate and the host name are then verified.
+fn tls_for(config: &tokio_postgres::Config, ca_file: Option<&Path>) -> Result<Option<MakeRustlsConnect>, StoreError> {
+    match (config.get_ssl_mode(), ca_file) {
+        (SslMode::Require, Some(ca)) => {
+            let mut roots = tokio_rustls::rustls::RootCertStore::empty();
+            for cert in crate::access::tls::certs(&ca.to_path_buf()).map_err(StoreError::Io)? {
+                roots.add(cert).map_err(|e| StoreError::Io(format!("{}: {e}", ca.display())))?;
+            }
+            let provider = std::sync::Arc::new(tokio_rustls::rustls::crypto::ring::default_provider());
+            let tls = tokio_rustls::rustls::ClientConfig::builder_with_provider(provider)
+                .with_safe_default_protocol_versions()
+                .map_err(|e| StoreError::Io(format!("TLS to the database: {e}")))?
+                .with_root_certificates(roots)
+                .with_no_client_auth();
+            Ok(Some(MakeRustlsConnect::new(tls)))
+        }
+        (SslMode::Require, None) => Err(StoreError::Io("database_url asks for TLS (sslmode=require): set database_ca_file to the PEM file of the certificate authority that signed the database's certificate".into())),
+        (_, Some(_)) => Err(StoreError::Io("database_ca_file is set but database_url does not ask for TLS: add sslmode=require to it".into())),
+        (_, None) => Ok(None),
+    }
+}
+
+/// Listens for change notifications on one connection until it fails.
+async fn listen<T>(config: &tokio_postgres::Config, tls: T, wake: &(dyn Fn(Change) + Send + Sync)) -> String
+where
+    T: tokio_postgres::tls::MakeTlsConnect<tokio_postgres::Socket>,
+    T::Stream: Send + 'static,
+{
+    let (client, mut connection) = match config.connect(tls).await {
+        Ok(c) => c,
+        Err(e) => return format!("cannot listen for changes: {e}"),
+    };
+    let listening = async {
+        client.batch_execute(&format!("LISTEN {CHANGES}")).await?;
+        // Changes made while no one listened: look once.
+        wake(Change::Runs);
+        wake(Change::Schedules);
+        std::future::pending::<()>().await;
+        Ok::<(), tokio_postgres::Error>(())
+    };
+    let messages = async {
+        while let Some(m) = std::future::poll_fn(|cx| connection.poll_message(cx)).await {
+            match m {
+                Ok(tokio_postgres::AsyncMessage::Notification(n)) if n.payload().starts_with(SCHEDULE_CHANGE) => wake(Change::Schedules),
+                Ok(tokio_postgres::AsyncMessage::Notification(_)) => wake(Change::Runs),
+                Ok(_) => {}
+                Err(e) => return e.to_string(),
+            }
+        }
+        "the connection closed".to_string()
+    };
+    tokio::select! {
+        r = listening => match r {
+            Err(e) => format!("listening for changes failed: {e}"),
+            Ok(()) => "listening for changes ended".to_string(),
+        },
+        e = messages => format!("the change notifications stopped: {e}"),
+    }
 }
 
 impl Drop for Inner {
@@ -196,6 +262,15 @@ async fn append(tx: &Tx<'_>, run: &mut Run, kind: EventKind, now: i64) -> Result
     Ok(event)
 }
 
+/// The payload of a schedule's change (a run's is its id).
+const SCHEDULE_CHANGE: &str = "schedule:";
+
+/// Tells every replica's scheduler, at commit, that schedule `id` changed.
+async fn notify_schedule(tx: &Tx<'_>, id: &str) -> Result<(), Fail> {
+    execute(tx, "SELECT pg_notify($1, $2)", &[&CHANGES, &format!("{SCHEDULE_CHANGE}{id}")]).await?;
+    Ok(())
+}
+
 /// Tells every replica's followers and workers, at commit, that `run_id` changed.
 async fn notify(tx: &Tx<'_>, run_id: &str) -> Result<(), Fail> {
     execute(tx, "SELECT pg_notify($1, $2)", &[&CHANGES, &run_id]).await?;
@@ -215,8 +290,33 @@ async fn end(tx: &Tx<'_>, run: &mut Run, state: RunState, reason: &str, now: i64
     let event = append(tx, run, kind, now).await?;
     run.end(state, now, Some(reason));
     put_run(tx, run).await?;
+    drop_claims(tx, &run.id).await?;
     notify(tx, &run.id).await?;
     Ok(event)
+}
+
+/// An ended run's units are no longer claimed.
+async fn drop_claims(tx: &Tx<'_>, run_id: &str) -> Result<(), Fail> {
+    execute(tx, "DELETE FROM unit_claims WHERE run_id = $1", &[&run_id]).await?;
+    Ok(())
+}
+
+/// The index of a work unit as the database keeps it.
+fn unit_index(unit: usize) -> Result<i64, StoreError> {
+    i64::try_from(unit).map_err(|_| StoreError::Corrupt(format!("unit index {unit} does not fit the database")))
+}
+
+/// Stores one computed unit of a locked running `run` unless it is stored already (a second
+/// writer is refused by the key, and its work discarded); releases its claim. Whether it
+/// was stored (then `run.units_done` counts it).
+async fn store_unit(tx: &Tx<'_>, run: &mut Run, index: i64, worker: &str, bytes: &[u8]) -> Result<bool, Fail> {
+    execute(tx, "DELETE FROM unit_claims WHERE run_id = $1 AND unit = $2", &[&run.id, &index]).await?;
+    let order = i64::from(run.units_done) + 1;
+    let stored = execute(tx, "INSERT INTO units (run_id, unit, worker, stored_seq, record) VALUES ($1, $2, $3, $4, $5) ON CONFLICT DO NOTHING", &[&run.id, &index, &worker, &order, &bytes]).await?;
+    if stored == 1 {
+        run.units_done += 1;
+    }
+    Ok(stored == 1)
 }
 
 /// Stores a queued run unless its idempotency key or id names a stored run (returned) or
@@ -271,7 +371,7 @@ async fn schedule_of(tx: &Tx<'_>, id: &str, lock: bool) -> Result<Option<Schedul
 
 async fn put_schedule(tx: &Tx<'_>, s: &Schedule) -> Result<(), Fail> {
     execute(tx, "UPDATE schedules SET record = $2 WHERE id = $1", &[&s.id, &records::encode_schedule(s)]).await?;
-    Ok(())
+    notify_schedule(tx, &s.id).await
 }
 
 /// Where a dataset's bytes come from: opened once per attempt of the transaction.
@@ -288,7 +388,14 @@ impl PostgresStore {
     /// [`PostgresStore::open`] with runs leased for `lease` at a time (see
     /// [`Storage::renew_leases`]).
     pub fn open_with_lease(url: &str, lease: Duration) -> Result<PostgresStore, StoreError> {
+        PostgresStore::open_with(url, lease, None)
+    }
+
+    /// [`PostgresStore::open_with_lease`], over TLS when the URL says `sslmode=require`,
+    /// trusting the certificate authority in the PEM file `ca_file`.
+    pub fn open_with(url: &str, lease: Duration, ca_file: Option<&Path>) -> Result<PostgresStore, StoreError> {
         let mut config: tokio_postgres::Config = url.parse().map_err(|e| StoreError::Io(format!("database_url does not parse: {e}")))?;
+        let tls = tls_for(&config, ca_file)?;
         config.connect_timeout(CONNECT_TIMEOUT).keepalives(true).keepalives_idle(Duration::from_secs(30)).application_name("pollard");
         let rt = tokio::runtime::Builder::new_multi_thread()
             .worker_threads(2)
@@ -296,7 +403,11 @@ impl PostgresStore {
             .enable_all()
             .build()
             .map_err(|e| StoreError::Io(format!("cannot start the store's runtime: {e}")))?;
-        let manager = Manager::from_config(config.clone(), NoTls, ManagerConfig { recycling_method: RecyclingMethod::Fast });
+        let manager_config = ManagerConfig { recycling_method: RecyclingMethod::Fast };
+        let manager = match &tls {
+            Some(tls) => Manager::from_config(config.clone(), tls.clone(), manager_config),
+            None => Manager::from_config(config.clone(), NoTls, manager_config),
+        };
         let pool = Pool::builder(manager)
             .max_size(POOL_SIZE)
             .runtime(Runtime::Tokio1)
@@ -308,13 +419,19 @@ impl PostgresStore {
         let staging = std::env::temp_dir().join(format!("pollard-uploads-{}", uuid::Uuid::now_v7().simple()));
         std::fs::create_dir_all(&staging).map_err(|e| StoreError::Io(format!("cannot create the upload folder {}: {e}", staging.display())))?;
         let host = std::fs::read_to_string("/proc/sys/kernel/hostname").map(|h| h.trim().to_string()).unwrap_or_default();
-        let worker = format!("{host}:{}", std::process::id());
+        // One store per process in a server; a test holding several stores (several
+        // replicas in one process) tells them apart by a suffix.
+        static OPENED: std::sync::atomic::AtomicUsize = std::sync::atomic::AtomicUsize::new(0);
+        let worker = match OPENED.fetch_add(1, std::sync::atomic::Ordering::Relaxed) {
+            0 => format!("{host}:{}", std::process::id()),
+            n => format!("{host}:{}.{n}", std::process::id()),
+        };
         let hosts: Vec<String> = config.get_hosts().iter().map(|h| match h {
             tokio_postgres::config::Host::Tcp(name) => name.clone(),
             tokio_postgres::config::Host::Unix(path) => path.display().to_string(),
         }).collect();
         let place = format!("{}:{}/{}", hosts.join(","), config.get_ports().first().copied().unwrap_or(5432), config.get_dbname().unwrap_or(""));
-        let store = PostgresStore { inner: std::sync::Arc::new(Inner { rt: Some(rt), pool, staging, worker, place, lease_ms: lease.as_millis().min(i64::MAX as u128) as i64, config }) };
+        let store = PostgresStore { inner: std::sync::Arc::new(Inner { rt: Some(rt), pool, staging, worker, place, lease_ms: lease.as_millis().min(i64::MAX as u128) as i64, config, tls }) };
         store.block(async {
             let mut client = store.inner.pool.get().await.map_err(unreachable)?;
             migrate::migrate(&mut client).await
@@ -497,9 +614,11 @@ impl Storage for PostgresStore {
     }
 
     fn renew_leases(&self) -> Result<(), StoreError> {
-        let sql = format!("UPDATE runs SET lease_expires = {DB_NOW_MS} + $2 WHERE state = 'running' AND lease_owner = $1");
+        let runs = format!("UPDATE runs SET lease_expires = {DB_NOW_MS} + $2 WHERE state = 'running' AND lease_owner = $1");
+        let units = format!("UPDATE unit_claims SET expires_at = {DB_NOW_MS} + $2 WHERE owner = $1");
         self.transact(async |tx| {
-            execute(tx, &sql, &[&self.inner.worker, &self.inner.lease_ms]).await?;
+            execute(tx, &runs, &[&self.inner.worker, &self.inner.lease_ms]).await?;
+            execute(tx, &units, &[&self.inner.worker, &self.inner.lease_ms]).await?;
             Ok(())
         })
     }
@@ -515,36 +634,17 @@ impl Storage for PostgresStore {
         })
     }
 
-    fn watch_changes(&self, wake: std::sync::Arc<dyn Fn() + Send + Sync>) {
+    fn watch_changes(&self, wake: std::sync::Arc<dyn Fn(Change) + Send + Sync>) {
         let config = self.inner.config.clone();
+        let tls = self.inner.tls.clone();
         let rt = self.inner.rt.as_ref().expect("the runtime lives as long as the store");
         rt.spawn(async move {
             loop {
-                match config.connect(NoTls).await {
-                    Ok((client, mut connection)) => {
-                        let listening = async {
-                            client.batch_execute(&format!("LISTEN {CHANGES}")).await?;
-                            // Changes made while no one listened: look once.
-                            wake();
-                            std::future::pending::<Result<(), tokio_postgres::Error>>().await
-                        };
-                        let messages = async {
-                            while let Some(m) = std::future::poll_fn(|cx| connection.poll_message(cx)).await {
-                                match m {
-                                    Ok(tokio_postgres::AsyncMessage::Notification(_)) => wake(),
-                                    Ok(_) => {}
-                                    Err(e) => return e.to_string(),
-                                }
-                            }
-                            "the connection closed".to_string()
-                        };
-                        tokio::select! {
-                            r = listening => if let Err(e) = r { tracing::warn!(error = %e, "listening for changes failed; listening again") },
-                            e = messages => tracing::warn!(error = %e, "the change notifications stopped; listening again"),
-                        }
-                    }
-                    Err(e) => tracing::warn!(error = %e, "cannot listen for changes; trying again"),
-                }
+                let why = match &tls {
+                    Some(tls) => listen(&config, tls.clone(), wake.as_ref()).await,
+                    None => listen(&config, NoTls, wake.as_ref()).await,
+                };
+                tracing::warn!(error = %why, "listening for changes again");
                 // Followers poll meanwhile (the safety net), so nothing is lost while away.
                 tokio::time::sleep(Duration::from_secs(1)).await;
             }
@@ -671,6 +771,20 @@ impl Storage for PostgresStore {
     fn set_plan_size(&self, run_id: &str, settings: u32, units_total: u32) -> Result<(), StoreError> {
         self.transact(async |tx| {
             if let Some(mut run) = run_of(tx, run_id, true).await?.filter(|r| r.state == RunState::Running) {
+                // Every plan lays out the units to claim that are neither stored nor laid out
+                // yet: the first plan all of them; a later plan (another replica's, or a
+                // resume) none, as claims go only when their unit is stored; and a run that
+                // was running before units were claimed one by one (it has no claims) the
+                // ones it still needs, so it finishes.
+                if units_total > 0 {
+                    execute(
+                        tx,
+                        "INSERT INTO unit_claims (run_id, unit) SELECT $1, g FROM generate_series(0::bigint, $2::bigint - 1) g \
+                         WHERE NOT EXISTS (SELECT 1 FROM units u WHERE u.run_id = $1 AND u.unit = g) ON CONFLICT DO NOTHING",
+                        &[&run_id, &i64::from(units_total)],
+                    )
+                    .await?;
+                }
                 run.settings = settings;
                 run.units_total = units_total;
                 put_run(tx, &run).await?;
@@ -692,18 +806,16 @@ impl Storage for PostgresStore {
     fn record_units(&self, run_id: &str, batch: Vec<(UnitResult, Vec<EventKind>)>, now: i64) -> Result<Vec<Event>, StoreError> {
         let mut encoded = Vec::with_capacity(batch.len());
         for (unit, events) in &batch {
-            let index = i64::try_from(unit.unit).map_err(|_| StoreError::Corrupt(format!("unit index {} does not fit the database", unit.unit)))?;
+            let index = unit_index(unit.unit)?;
             encoded.push((index, records::encode_unit(unit), events));
         }
         self.transact(async |tx| {
             let Some(mut run) = run_of(tx, run_id, true).await?.filter(|r| r.state == RunState::Running) else { return Ok(Vec::new()) };
             let (mut out, before) = (Vec::new(), run.units_done);
             for (index, bytes, events) in &encoded {
-                let stored = execute(tx, "INSERT INTO units (run_id, unit, worker, record) VALUES ($1, $2, $3, $4) ON CONFLICT DO NOTHING", &[&run_id, index, &self.inner.worker, bytes]).await?;
-                if stored == 0 {
+                if !store_unit(tx, &mut run, *index, &self.inner.worker, bytes).await? {
                     continue;
                 }
-                run.units_done += 1;
                 for kind in events.iter() {
                     let kind = announced(kind, run.units_done);
                     out.push(append(tx, &mut run, kind, now).await?);
@@ -721,6 +833,70 @@ impl Storage for PostgresStore {
         self.read_records("SELECT record FROM units WHERE run_id = $1 ORDER BY unit", &[&run_id], records::decode_unit)
     }
 
+    /// The lowest unclaimed units (never claimed, or their lease expired), skipping rows
+    /// another replica is claiming this instant; this process leases them.
+    fn claim_units(&self, run_id: &str, total: u32, max: usize) -> Result<Vec<usize>, StoreError> {
+        let _ = total;
+        let max = i64::try_from(max.max(1)).unwrap_or(i64::MAX);
+        let sql = format!(
+            "UPDATE unit_claims SET owner = $2, expires_at = {DB_NOW_MS} + $3 WHERE run_id = $1 AND unit IN \
+             (SELECT unit FROM unit_claims WHERE run_id = $1 AND (owner IS NULL OR expires_at < {DB_NOW_MS}) ORDER BY unit LIMIT $4 FOR UPDATE SKIP LOCKED) RETURNING unit"
+        );
+        self.transact(async |tx| {
+            if query_opt(tx, "SELECT 1 FROM runs WHERE id = $1 AND state = 'running'", &[&run_id]).await?.is_none() {
+                return Ok(Vec::new());
+            }
+            let rows = query(tx, &sql, &[&run_id, &self.inner.worker, &self.inner.lease_ms, &max]).await?;
+            let mut units: Vec<usize> = rows.iter().map(|r| r.get::<_, i64>(0) as usize).collect();
+            units.sort_unstable();
+            Ok(units)
+        })
+    }
+
+    fn join_running(&self, busy: &[String]) -> Result<Option<Run>, StoreError> {
+        let busy: Vec<&str> = busy.iter().map(String::as_str).collect();
+        let sql = format!(
+            "SELECT r.record FROM runs r WHERE r.state = 'running' AND NOT (r.id = ANY($1)) AND EXISTS \
+             (SELECT 1 FROM unit_claims c WHERE c.run_id = r.id AND (c.owner IS NULL OR c.expires_at < {DB_NOW_MS})) ORDER BY r.id LIMIT 1"
+        );
+        self.read_record(&sql, &[&busy], records::decode_run)
+    }
+
+    /// The whole batch in one transaction that holds the run's row: the units others stored
+    /// since `since` are told to `log` first, so the events of each unit are made from
+    /// every unit stored before it; the writer of the last unit takes the run's lease (it
+    /// summarises the run; if it dies first, the run is taken over once the lease expires).
+    fn record_computed(&self, run_id: &str, batch: Vec<UnitResult>, since: u32, log: &dyn UnitLog, now: i64) -> Result<Recorded, StoreError> {
+        let mut encoded = Vec::with_capacity(batch.len());
+        for unit in &batch {
+            encoded.push((unit_index(unit.unit)?, records::encode_unit(unit), unit));
+        }
+        self.transact(async |tx| {
+            let Some(mut run) = run_of(tx, run_id, true).await?.filter(|r| r.state == RunState::Running) else { return Ok(Recorded::default()) };
+            let others = query(tx, "SELECT record FROM units WHERE run_id = $1 AND stored_seq > $2 ORDER BY stored_seq", &[&run_id, &i64::from(since)]).await?;
+            log.learn(decoded(&others, records::decode_unit)?);
+            let mut recorded = Recorded { running: true, ..Recorded::default() };
+            for (index, bytes, unit) in &encoded {
+                if !store_unit(tx, &mut run, *index, &self.inner.worker, bytes).await? {
+                    continue;
+                }
+                recorded.stored += 1;
+                for kind in log.announce(unit, run.units_done) {
+                    recorded.events.push(append(tx, &mut run, kind, now).await?);
+                }
+            }
+            recorded.units_done = run.units_done;
+            if recorded.stored > 0 {
+                put_run(tx, &run).await?;
+                if recorded.stored_last(run.units_total) {
+                    lease(tx, run_id, &self.inner.worker, self.inner.lease_ms).await?;
+                }
+                notify(tx, run_id).await?;
+            }
+            Ok(recorded)
+        })
+    }
+
     fn finish_run(&self, run_id: &str, outcome: &RunOutcome, drift: Option<DriftReport>, now: i64) -> Result<Option<Event>, StoreError> {
         let bytes = records::encode_outcome(outcome);
         self.transact(async |tx| {
@@ -730,6 +906,7 @@ impl Storage for PostgresStore {
             let event = append(tx, &mut run, EventKind::Finished { picked: outcome.picked, best: outcome.best }, now).await?;
             run.end(RunState::Finished, now, None);
             put_run(tx, &run).await?;
+            drop_claims(tx, run_id).await?;
             notify(tx, run_id).await?;
             Ok(Some(event))
         })
@@ -770,8 +947,9 @@ impl Storage for PostgresStore {
                 run.units_at_start = None;
                 run.crash_strikes = 0;
                 put_run(tx, &run).await?;
-                // Another replica may take it at once.
+                // Another replica may take it, and the units this one had claimed, at once.
                 execute(tx, "UPDATE runs SET lease_expires = 0 WHERE id = $1 AND lease_owner = $2", &[&run_id, &self.inner.worker]).await?;
+                execute(tx, "UPDATE unit_claims SET owner = NULL, expires_at = 0 WHERE run_id = $1 AND owner = $2", &[&run_id, &self.inner.worker]).await?;
             }
             Ok(())
         })
@@ -803,7 +981,7 @@ impl Storage for PostgresStore {
     fn delete_run(&self, run_id: &str) -> Result<bool, StoreError> {
         self.transact(async |tx| {
             let Some(run) = run_of(tx, run_id, true).await?.filter(|r| r.state.is_terminal()) else { return Ok(false) };
-            for sql in ["DELETE FROM events WHERE run_id = $1", "DELETE FROM units WHERE run_id = $1", "DELETE FROM outcomes WHERE run_id = $1", "DELETE FROM runs WHERE id = $1"] {
+            for sql in ["DELETE FROM events WHERE run_id = $1", "DELETE FROM units WHERE run_id = $1", "DELETE FROM outcomes WHERE run_id = $1", "DELETE FROM unit_claims WHERE run_id = $1", "DELETE FROM runs WHERE id = $1"] {
                 execute(tx, sql, &[&run_id]).await?;
             }
             if let Some(key) = &run.idempotency_key {
@@ -816,7 +994,11 @@ impl Storage for PostgresStore {
 
     fn create_schedule(&self, schedule: &Schedule) -> Result<bool, StoreError> {
         let bytes = records::encode_schedule(schedule);
-        self.transact(async |tx| Ok(execute(tx, "INSERT INTO schedules (id, record) VALUES ($1, $2) ON CONFLICT DO NOTHING", &[&schedule.id, &bytes]).await? == 1))
+        self.transact(async |tx| {
+            let created = execute(tx, "INSERT INTO schedules (id, record) VALUES ($1, $2) ON CONFLICT DO NOTHING", &[&schedule.id, &bytes]).await? == 1;
+            notify_schedule(tx, &schedule.id).await?;
+            Ok(created)
+        })
     }
 
     fn schedule(&self, id: &str) -> Result<Option<Schedule>, StoreError> {
@@ -849,6 +1031,7 @@ impl Storage for PostgresStore {
             }
             execute(tx, "DELETE FROM fires WHERE schedule_id = $1", &[&id]).await?;
             execute(tx, "DELETE FROM schedules WHERE id = $1", &[&id]).await?;
+            notify_schedule(tx, id).await?;
             Ok(true)
         })
     }
