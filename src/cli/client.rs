@@ -370,6 +370,9 @@ pub async fn show(ch: Conn, id: &str, top: usize, json_out: bool) -> Res {
         return Ok(());
     }
     println!("{}", output::run_line(&r));
+    if let Some(line) = output::monotone_line(&r) {
+        println!("{line}");
+    }
     if r.model.is_none() && r.spec.as_ref().is_some_and(|s| s.skip_final) && output::state_name(r.state) == "finished" {
         println!("{}", super::report::model_state(&r));
     }

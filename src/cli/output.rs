@@ -189,6 +189,27 @@ pub fn run_json(r: &pb::RunInfo) -> Value {
         "nested": r.nested.as_ref().map(nested_json),
         "importances": r.importances.iter().map(importance_json).collect::<Vec<_>>(),
         "permutation_repeats": r.permutation_repeats,
+        "monotone": monotone_of(r).into_iter().collect::<serde_json::Map<_, _>>(),
+    })
+}
+
+/// The run's monotone limits as (feature, direction word) pairs, in the order given.
+fn monotone_of(r: &pb::RunInfo) -> Vec<(String, Value)> {
+    let word = |d: i32| match pb::MonotoneDirection::try_from(d) {
+        Ok(pb::MonotoneDirection::Increasing) => "increasing",
+        Ok(pb::MonotoneDirection::Decreasing) => "decreasing",
+        _ => "free",
+    };
+    r.spec.iter().flat_map(|s| &s.monotone).map(|m| (m.feature.clone(), Value::from(word(m.direction)))).collect()
+}
+
+/// The run's monotone limits in words, `None` when it has none:
+/// `monotone limits: age increasing, debt decreasing`.
+pub fn monotone_line(r: &pb::RunInfo) -> Option<String> {
+    let limits = monotone_of(r);
+    (!limits.is_empty()).then(|| {
+        let parts: Vec<String> = limits.iter().map(|(f, d)| format!("{f} {}", d.as_str().unwrap_or(""))).collect();
+        wrap("monotone limits: ", &parts, 120).trim_end().to_string()
     })
 }
 

@@ -10,6 +10,7 @@
 //! criteria = ["gini", "entropy"]
 //! class_weights = ["none", "balanced"]
 //! splitter = "binned"
+//! monotone = "age:+1,debt:-1"   # monotone limits, as --monotone
 //! [limits]
 //! max_depth = "2,4,8,none"
 //! min_leaf_rows = "lin(1,21,5)"
@@ -99,6 +100,11 @@ pub struct GridArgs {
     /// bins per feature, from each fold's training rows; faster on big tables).
     #[arg(long, value_parser = ["exact", "binned"])]
     pub splitter: Option<String>,
+    /// Monotone limits by feature, comma-separated `name:+1` (the prediction never falls as
+    /// the feature grows), `name:-1` (never rises) or `name:0` (free); numeric features of a
+    /// regress or two-class target.
+    #[arg(long)]
+    pub monotone: Option<String>,
     #[command(flatten)]
     pub outer: OuterArgs,
 }
@@ -142,6 +148,7 @@ struct SpecFile {
     prune_path: Option<bool>,
     skip_final: Option<bool>,
     splitter: Option<String>,
+    monotone: Option<String>,
     #[serde(default)]
     limits: LimitsFile,
     #[serde(default)]
@@ -167,6 +174,30 @@ struct FoldsFile {
     k: Option<u32>,
     repeats: Option<u32>,
     column: Option<String>,
+}
+
+/// `name:+1,name:-1,name:0` (also `increasing`, `decreasing`, `free`) as monotone limits; the
+/// name is everything before an entry's last `:`, and the server checks it is a feature.
+pub fn parse_monotone(text: &str) -> Result<Vec<pb::MonotoneLimit>, String> {
+    text.split(',')
+        .map(str::trim)
+        .filter(|e| !e.is_empty())
+        .map(|entry| {
+            let Some((name, dir)) = entry.rsplit_once(':') else {
+                return Err(format!("'{entry}' is not name:+1, name:-1 or name:0"));
+            };
+            let direction = match dir.trim() {
+                "+1" | "1" | "increasing" => pb::MonotoneDirection::Increasing,
+                "-1" | "decreasing" => pb::MonotoneDirection::Decreasing,
+                "0" | "free" => pb::MonotoneDirection::Free,
+                other => return Err(format!("'{other}' in '{entry}' is not +1, -1 or 0")),
+            };
+            if name.trim().is_empty() {
+                return Err(format!("'{entry}' names no feature"));
+            }
+            Ok(pb::MonotoneLimit { feature: name.trim().to_string(), direction: direction as i32 })
+        })
+        .collect()
 }
 
 fn range(name: &str, flag: &Option<String>, file: &Option<String>) -> Res<Option<pb::LimitRange>> {
@@ -238,6 +269,10 @@ impl GridArgs {
             seed: self.seed.or(file.seed).unwrap_or(0),
             skip_final: self.skip_final || file.skip_final.unwrap_or(false),
             splitter: self.splitter.clone().or(file.splitter).unwrap_or_default(),
+            monotone: match self.monotone.as_ref().or(file.monotone.as_ref()) {
+                None => Vec::new(),
+                Some(text) => parse_monotone(text).map_err(|e| CliError::usage(format!("--monotone: {e}")))?,
+            },
         })
     }
 }

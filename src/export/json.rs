@@ -247,6 +247,8 @@ pub fn from_json(text: &str) -> Result<Tree, String> {
         },
         // Model files do not record the splitter: the tree is complete without it.
         splitter: Default::default(),
+        // Nor monotone limits: the node values were clipped to them when the tree grew.
+        monotone: Default::default(),
         criterion,
         class_weight,
     };

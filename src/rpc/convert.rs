@@ -12,7 +12,7 @@ use crate::rpc::error::{echo, ServiceError};
 use crate::service::models::RowPath;
 use crate::service::{DatasetRef, RunRequest, SchemeDefaults};
 use crate::sweep::{FoldPlan, FoldScheme, Metric, PickRule, Range, SettingScore, SweepSpec};
-use crate::tree::{ClassWeight, ColumnInfo, Criterion, FitOptions, Limits, Node, Split, SplitRule, Splitter, Tree, NO_NODE};
+use crate::tree::{ClassWeight, ColumnInfo, Criterion, FitOptions, Limits, Monotone, Node, Split, SplitRule, Splitter, Tree, NO_NODE};
 
 fn invalid(field: &str, message: impl std::fmt::Display) -> Status {
     ServiceError::invalid(field, message.to_string()).into()
@@ -324,6 +324,23 @@ fn spec_with(s: &pb::SweepSpec, data_task: Option<Task>) -> Result<(SweepSpec, S
         "" => Splitter::Exact,
         x => Splitter::parse(x).ok_or_else(|| invalid("spec.splitter", format!("'{}' is not exact or binned", echo(x))))?,
     };
+    let monotone = s
+        .monotone
+        .iter()
+        .enumerate()
+        .map(|(i, m)| {
+            if m.feature.is_empty() {
+                return Err(invalid(&format!("spec.monotone[{i}].feature"), "name a feature column"));
+            }
+            let direction = match pb::MonotoneDirection::try_from(m.direction) {
+                Ok(pb::MonotoneDirection::Increasing) => Monotone::Increasing,
+                Ok(pb::MonotoneDirection::Decreasing) => Monotone::Decreasing,
+                Ok(pb::MonotoneDirection::Free) => Monotone::Free,
+                _ => return Err(invalid(&format!("spec.monotone[{i}].direction"), format!("{} is not INCREASING, DECREASING or FREE", m.direction))),
+            };
+            Ok((m.feature.clone(), direction))
+        })
+        .collect::<Result<_, _>>()?;
     let pick = match s.pick.as_str() {
         "" => PickRule::Highest,
         p => PickRule::parse(p).ok_or_else(|| invalid("spec.pick", format!("'{}' is not {}", echo(p), PickRule::CHOICES)))?,
@@ -347,6 +364,7 @@ fn spec_with(s: &pb::SweepSpec, data_task: Option<Task>) -> Result<(SweepSpec, S
         max_settings: None,
         splitter,
         outer,
+        monotone,
     }, defaults))
 }
 
@@ -373,6 +391,15 @@ pub fn spec_to(s: &SweepSpec, target: &str) -> pb::SweepSpec {
             Splitter::Exact => String::new(),
             other => other.as_str().to_string(),
         },
+        monotone: s.monotone.iter().map(|(f, m)| pb::MonotoneLimit { feature: f.clone(), direction: monotone_to(*m) as i32 }).collect(),
+    }
+}
+
+fn monotone_to(m: Monotone) -> pb::MonotoneDirection {
+    match m {
+        Monotone::Free => pb::MonotoneDirection::Free,
+        Monotone::Increasing => pb::MonotoneDirection::Increasing,
+        Monotone::Decreasing => pb::MonotoneDirection::Decreasing,
     }
 }
 
@@ -790,6 +817,7 @@ pub fn model_from(m: &pb::Model) -> Result<Tree, String> {
             criterion: Criterion::parse(&g.criterion),
             class_weight: ClassWeight::parse(&g.class_weight).unwrap_or_default(),
             splitter: Default::default(),
+            monotone: Default::default(),
         },
     })
 }
@@ -812,6 +840,7 @@ pub fn score_from(s: &pb::SettingScore) -> SettingScore {
                 criterion: Criterion::parse(&l.criterion),
                 class_weight: ClassWeight::parse(&l.class_weight).unwrap_or_default(),
                 splitter: Default::default(),
+                monotone: Default::default(),
             },
         },
         fold_scores: s.fold_scores.clone(),

@@ -29,7 +29,7 @@ use crate::drift::{DriftReport, DriftThresholds, Knob, LimitMove};
 use crate::job::{ColumnMeta, DatasetMeta, Event, EventKind, Fire, FireOutcome, Retention, Run, RunOutcome, RunState, Schedule};
 use crate::schedule::CatchUp;
 use crate::sweep::{FoldPlan, FoldScheme, FoldScore, Metric, NestedResult, OuterFold, PermutationImportance, PickRule, Progress, Range, Setting, SettingScore, SweepSpec, UnitResult};
-use crate::tree::{ClassWeight, Criterion, FitOptions, Limits, Splitter};
+use crate::tree::{ClassWeight, Criterion, FitOptions, Limits, Monotone, Splitter};
 
 /// The format byte this build writes (and the only one it reads).
 pub const FORMAT: u8 = 1;
@@ -197,6 +197,17 @@ pub struct SpecRecord {
     /// Absent in records written before nested sweeps, and for plain sweeps.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     outer: Option<FoldPlanRecord>,
+    /// Monotone limits by feature name; absent when none is set and in records written
+    /// before them.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    monotone: Vec<MonotoneRecord>,
+}
+
+#[derive(Serialize, Deserialize)]
+struct MonotoneRecord {
+    feature: String,
+    /// `Monotone::as_str`.
+    direction: String,
 }
 
 #[derive(Serialize, Deserialize)]
@@ -283,6 +294,7 @@ impl From<&SweepSpec> for SpecRecord {
             max_settings: s.max_settings.map(|n| n as u64),
             splitter: splitter_record(s.splitter),
             outer: s.outer.as_ref().map(FoldPlanRecord::from),
+            monotone: s.monotone.iter().map(|(f, m)| MonotoneRecord { feature: f.clone(), direction: m.as_str().to_string() }).collect(),
         }
     }
 }
@@ -310,6 +322,7 @@ impl TryFrom<SpecRecord> for SweepSpec {
             max_settings: r.max_settings.map(|n| to_usize(w, "max_settings", n)).transpose()?,
             splitter: splitter_of(w, r.splitter)?,
             outer: r.outer.map(FoldPlan::try_from).transpose()?,
+            monotone: r.monotone.iter().map(|m| Ok((m.feature.clone(), parse_name(w, "monotone limit", &m.direction, Monotone::parse)?))).collect::<Result<_, StoreError>>()?,
         })
     }
 }
@@ -851,6 +864,10 @@ struct FitOptionsRecord {
     /// Absent in records written before the binned splitter, and for the exact one.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     splitter: Option<String>,
+    /// Per feature (`free`, `increasing`, `decreasing`); absent when no feature is limited
+    /// and in records written before monotone limits.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    monotone: Vec<String>,
 }
 
 impl From<&FitOptions> for FitOptionsRecord {
@@ -866,6 +883,7 @@ impl From<&FitOptions> for FitOptionsRecord {
             criterion: o.criterion.map(|c| c.as_str().to_string()),
             class_weight: o.class_weight.as_str().to_string(),
             splitter: splitter_record(o.splitter),
+            monotone: o.monotone.iter().map(|m| m.as_str().to_string()).collect(),
         }
     }
 }
@@ -885,6 +903,7 @@ impl TryFrom<FitOptionsRecord> for FitOptions {
             criterion: r.criterion.map(|c| parse_name("outcome", "criterion", &c, Criterion::parse)).transpose()?,
             class_weight: parse_name("outcome", "class weight", &r.class_weight, ClassWeight::parse)?,
             splitter: splitter_of("outcome", r.splitter)?,
+            monotone: r.monotone.iter().map(|m| parse_name("outcome", "monotone limit", m, Monotone::parse)).collect::<Result<_, _>>()?,
         })
     }
 }

@@ -282,7 +282,7 @@ fn path_alphas(data: &Dataset, spec: &CheckedSpec) -> Result<Vec<Vec<f64>>, FitE
 }
 
 fn envelope_options(spec: &CheckedSpec, key: &ShapingKey) -> FitOptions {
-    FitOptions { limits: spec.envelope_limits(key), criterion: Some(key.criterion), class_weight: key.class_weight, splitter: spec.spec.splitter }
+    FitOptions { limits: spec.envelope_limits(key), criterion: Some(key.criterion), class_weight: key.class_weight, splitter: spec.spec.splitter, monotone: spec.monotone.clone() }
 }
 
 /// Where a split number points.

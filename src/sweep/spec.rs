@@ -6,7 +6,10 @@ use std::fmt;
 use super::folds::FoldPlan;
 use super::metrics::Metric;
 use crate::data::{Dataset, Task};
-use crate::tree::{ClassWeight, Criterion, FitOptions, Limits, Splitter};
+use std::sync::Arc;
+
+use crate::data::ColumnKind;
+use crate::tree::{ClassWeight, Criterion, FitOptions, Limits, Monotone, Splitter};
 
 /// The values to try for one limit.
 #[derive(Clone, Debug, PartialEq)]
@@ -104,6 +107,9 @@ pub struct SweepSpec {
     /// (with `folds` as the inner plan) and the pick run on the outer training rows, and the
     /// picked setting is scored once on the outer validation rows. `None`: no outer loop.
     pub outer: Option<FoldPlan>,
+    /// Monotone limits by feature name, for every tree of the sweep and the refit; features
+    /// not named are free. Numeric features of a regress or two-class target only.
+    pub monotone: Vec<(String, Monotone)>,
 }
 
 /// Default cap on the number of settings in one sweep.
@@ -130,6 +136,7 @@ impl Default for SweepSpec {
             max_settings: None,
             splitter: Splitter::Exact,
             outer: None,
+            monotone: Vec::new(),
         }
     }
 }
@@ -241,6 +248,8 @@ pub struct CheckedSpec {
     pub splits: usize,
     /// The outer fold plan of a nested sweep, with the splits it makes on the dataset.
     pub outer: Option<(FoldPlan, usize)>,
+    /// The monotone limit per feature of the dataset; empty when none is set.
+    pub monotone: Arc<[Monotone]>,
 }
 
 impl SweepSpec {
@@ -366,8 +375,45 @@ impl SweepSpec {
                 }
             }
         }
-        let checked = CheckedSpec { spec: self.clone(), task, metric, folds, keys, criteria, class_weights, min_leaf_rows, max_depth, min_split_rows, max_leaves, min_gain, prune_alpha, splits, outer };
+        let monotone = self.monotone_of(data, task)?;
+        let checked = CheckedSpec { spec: self.clone(), task, metric, folds, keys, criteria, class_weights, min_leaf_rows, max_depth, min_split_rows, max_leaves, min_gain, prune_alpha, splits, outer, monotone };
         Ok(checked)
+    }
+}
+
+impl SweepSpec {
+    /// The monotone limits per feature of `data`: each name a feature of the dataset (not
+    /// the target), named once, numeric; the target regress or two-class. Empty when none
+    /// is set.
+    fn monotone_of(&self, data: &Dataset, task: Task) -> Result<Arc<[Monotone]>, SpecError> {
+        if self.monotone.is_empty() {
+            return Ok(Arc::default());
+        }
+        let features = &data.frame.features;
+        if let crate::data::Target::Classes { labels, .. } = &data.target {
+            if labels.len() > 2 && task == Task::Classify {
+                return Err(spec_error("monotone", format!("monotone limits need a regress or two-class target; '{}' has {} classes", data.target_name, labels.len())));
+            }
+        }
+        let mut out = vec![Monotone::Free; features.len()];
+        let mut named = vec![false; features.len()];
+        for (i, (name, m)) in self.monotone.iter().enumerate() {
+            let field = format!("monotone[{i}]");
+            // Quoted back cut to 100 characters, as callers' text is elsewhere.
+            let shown: String = name.chars().take(100).collect();
+            let Some(j) = features.iter().position(|f| &f.name == name) else {
+                let why = if *name == data.target_name { "is the target".to_string() } else { "is not a feature of the dataset".to_string() };
+                return Err(spec_error(field, format!("'{shown}' {why}")));
+            };
+            if std::mem::replace(&mut named[j], true) {
+                return Err(spec_error(field, format!("'{name}' is named twice")));
+            }
+            if *m != Monotone::Free && features[j].column.kind() == ColumnKind::Categorical {
+                return Err(spec_error(field, format!("'{name}' is categorical; a monotone limit needs a numeric feature")));
+            }
+            out[j] = *m;
+        }
+        Ok(if out.iter().any(|&m| m != Monotone::Free) { out.into() } else { Arc::default() })
     }
 }
 
@@ -406,7 +452,7 @@ impl CheckedSpec {
                                 for &min_gain in &self.min_gain {
                                     for &prune_alpha in &alphas_per_key[key] {
                                         let limits = Limits { max_depth, min_split_rows, min_leaf_rows: k.min_leaf_rows, max_leaves, min_gain, prune_alpha };
-                                        let options = FitOptions { limits, criterion: Some(k.criterion), class_weight: k.class_weight, splitter: self.spec.splitter };
+                                        let options = FitOptions { limits, criterion: Some(k.criterion), class_weight: k.class_weight, splitter: self.spec.splitter, monotone: self.monotone.clone() };
                                         out.push(Setting { key, options });
                                     }
                                 }

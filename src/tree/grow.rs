@@ -15,8 +15,8 @@ use std::collections::BinaryHeap;
 use rayon::prelude::*;
 
 use super::limits::fit_error;
-use super::split::{Cut, Entry, CLASS_BIT, VALUE_TOLERANCE, FeatureBest, Rows, Scratch, SearchCtx, Totals};
-use super::{CheckedOptions, ClassWeight, Splitter, MAX_BINS, ColumnInfo, Criterion, FitError, Node, Split, SplitRule, Tree, NO_NODE};
+use super::split::{Cut, Entry, CLASS_BIT, VALUE_TOLERANCE, FeatureBest, Order, Rows, Scratch, SearchCtx, Totals};
+use super::{CheckedOptions, ClassWeight, Monotone, Splitter, MAX_BINS, ColumnInfo, Criterion, FitError, Node, Split, SplitRule, Tree, NO_NODE};
 use crate::data::{Column, Frame, Target, Task, MISSING_CODE};
 
 /// Nodes with at least this many (rows × features) search and partition features in
@@ -206,6 +206,7 @@ impl<'a> Prepared<'a> {
                 *wi *= n / (present * counts[c as usize] as f64);
             }
         }
+        check_monotone(frame, k, &options.monotone)?;
         let wy = if k == 0 { y.iter().zip(&w).map(|(y, w)| y * w).collect() } else { Vec::new() };
         let unit = w.iter().all(|&x| x == 1.0);
         Ok(Prepared { frame, target: set.target, target_name: set.target_name.to_string(), frame_rows, positions, class, y, w, wy, k, unit })
@@ -266,6 +267,26 @@ impl<'a> Prepared<'a> {
     }
 }
 
+/// Monotone limits as the reference library defines them: one per feature, on numeric
+/// features, for a regress or two-class target.
+fn check_monotone(frame: &Frame, k: usize, monotone: &[Monotone]) -> Result<(), FitError> {
+    if monotone.is_empty() {
+        return Ok(());
+    }
+    if monotone.len() != frame.features.len() {
+        return Err(fit_error("monotone", format!("has {} entries for {} features", monotone.len(), frame.features.len())));
+    }
+    if k > 2 {
+        return Err(fit_error("monotone", format!("monotone limits need a regress or two-class target; this one has {k} classes")));
+    }
+    for (i, (m, f)) in monotone.iter().zip(&frame.features).enumerate() {
+        if *m != Monotone::Free && matches!(f.column, Column::Categorical { .. }) {
+            return Err(fit_error(&format!("monotone[{i}]"), format!("'{}' is categorical; a monotone limit needs a numeric feature", f.name)));
+        }
+    }
+    Ok(())
+}
+
 /// Quantile bin edges of one numeric feature from its sorted entries (missing cells last):
 /// none when the present values have at most [`MAX_BINS`] distinct values (as the scan tells
 /// values apart, within [`VALUE_TOLERANCE`]), so every cut stays allowed; else the values at
@@ -310,7 +331,17 @@ struct Pending {
     n_left: u32,
     left: NodeStats,
     right: NodeStats,
+    /// The children's value bounds under monotone limits (see [`Arena::bounds`]).
+    left_bounds: Bounds,
+    right_bounds: Bounds,
 }
+
+/// The range `[lower, upper]` a node's value must lie in under monotone limits: the
+/// reference library's bounds, in the value `sums[0] / w` (mean, or class 0's share).
+type Bounds = (f64, f64);
+
+/// The bounds of a node with no limit above it.
+const UNBOUNDED: Bounds = (f64::NEG_INFINITY, f64::INFINITY);
 
 /// The nodes of one tree in creation order, each with its statistics and the logical start of
 /// its rows in the sorted columns.
@@ -319,10 +350,12 @@ struct Arena {
     nodes: Vec<Node>,
     stats: Vec<NodeStats>,
     starts: Vec<u32>,
+    /// Per node, the bounds its value is clipped to and its splits' children must keep.
+    bounds: Vec<Bounds>,
 }
 
 impl Arena {
-    fn push(&mut self, depth: u32, start: u32, s: NodeStats) -> u32 {
+    fn push(&mut self, depth: u32, start: u32, s: NodeStats, bounds: Bounds) -> u32 {
         let id = self.nodes.len() as u32;
         self.nodes.push(Node {
             depth,
@@ -337,6 +370,7 @@ impl Arena {
         });
         self.stats.push(s);
         self.starts.push(start);
+        self.bounds.push(bounds);
         id
     }
 
@@ -345,8 +379,8 @@ impl Arena {
     fn attach(&mut self, id: u32, p: Pending) -> (u32, u32) {
         let depth = self.nodes[id as usize].depth + 1;
         let start = self.starts[id as usize];
-        let l = self.push(depth, start, p.left);
-        let r = self.push(depth, start + p.n_left, p.right);
+        let l = self.push(depth, start, p.left, p.left_bounds);
+        let r = self.push(depth, start + p.n_left, p.right, p.right_bounds);
         let node = &mut self.nodes[id as usize];
         node.split = Some(p.split);
         node.gain = p.gain;
@@ -361,6 +395,8 @@ struct Grower<'p> {
     criterion: Criterion,
     limits: super::Limits,
     options: super::FitOptions,
+    /// The monotone limit per feature; empty when none is set.
+    monotone: std::sync::Arc<[Monotone]>,
     parallel: bool,
     sorted: Vec<Vec<Entry>>,
     /// Per feature, the bin edges of the binned splitter (empty: every cut allowed).
@@ -433,6 +469,7 @@ impl<'p> Grower<'p> {
             criterion: options.criterion,
             limits: options.limits.clone(),
             options: options.to_options(),
+            monotone: options.monotone.clone(),
             parallel,
             sorted,
             edges,
@@ -455,7 +492,7 @@ impl<'p> Grower<'p> {
         let n = self.prep.frame_rows.len() as u32;
         let root = self.stats_of((0..n).collect::<Vec<_>>().iter().copied());
         self.total_weight = root.totals.w;
-        self.arena.push(0, 0, root);
+        self.arena.push(0, 0, root, UNBOUNDED);
         let first = self.evaluate(0);
         match self.limits.max_leaves {
             None => {
@@ -555,8 +592,9 @@ impl<'p> Grower<'p> {
         }
         let start = self.arena.starts[id as usize] as usize;
         let end = start + n as usize;
-        let (feature, fb) = self.search(start, end, &s.totals)?;
-        self.pending(feature, &fb, start, end, &s)
+        let bounds = self.arena.bounds[id as usize];
+        let (feature, fb) = self.search(start, end, &s.totals, bounds)?;
+        self.pending(feature, &fb, start, end, &s, bounds)
     }
 
     /// Whether a node at `depth` with statistics `s` stays a leaf whatever its
@@ -568,7 +606,7 @@ impl<'p> Grower<'p> {
 
     /// The split `fb` of `feature` for the node whose rows are `[start, end)` of `sorted`,
     /// with both children's statistics; `None` when its gain is below `min_gain`.
-    fn pending(&mut self, feature: usize, fb: &FeatureBest, start: usize, end: usize, s: &NodeStats) -> Option<Pending> {
+    fn pending(&mut self, feature: usize, fb: &FeatureBest, start: usize, end: usize, s: &NodeStats, bounds: Bounds) -> Option<Pending> {
         let mut split = self.make_split(feature, fb);
         // Route the node's rows once to get both children's statistics.
         let seg = &self.sorted[feature][start..end];
@@ -607,15 +645,52 @@ impl<'p> Grower<'p> {
         if gain + f64::EPSILON < self.limits.min_gain {
             return None;
         }
-        Some(Pending { split, gain, n_left: left.totals.n, left, right })
+        let (left_bounds, right_bounds) = self.child_bounds(feature, bounds, &left, &right);
+        Some(Pending { split, gain, n_left: left.totals.n, left, right, left_bounds, right_bounds })
+    }
+
+    /// The sign the split search orders `sums[0] / w` by along `feature`: the limit's own
+    /// sign when regressing; flipped for two classes, whose `sums[0]` is class 0's weight
+    /// while the limit is on class 1's share (as the reference library does it).
+    fn order_sign(&self, feature: usize) -> f64 {
+        let sign = self.monotone.get(feature).map_or(0.0, |m| m.sign());
+        if self.prep.k > 0 {
+            -sign
+        } else {
+            sign
+        }
+    }
+
+    /// The monotone limit a split of `feature` keeps at a node with `bounds`.
+    fn order(&self, feature: usize, bounds: Bounds) -> Option<Order> {
+        let sign = self.order_sign(feature);
+        (sign != 0.0).then_some(Order { sign, lower: bounds.0, upper: bounds.1 })
+    }
+
+    /// The children's bounds after a split of `feature` at a node with `bounds`: a split on
+    /// a limited feature parts the range at the midpoint of the children's values, the
+    /// lower child below it, the upper above (the reference library's rule).
+    fn child_bounds(&self, feature: usize, bounds: Bounds, left: &NodeStats, right: &NodeStats) -> (Bounds, Bounds) {
+        let sign = self.order_sign(feature);
+        if sign == 0.0 {
+            return (bounds, bounds);
+        }
+        let (l, r) = (&left.totals, &right.totals);
+        let mid = l.sums[0] / (2.0 * l.w) + r.sums[0] / (2.0 * r.w);
+        if sign > 0.0 {
+            ((bounds.0, mid), (mid, bounds.1))
+        } else {
+            ((mid, bounds.1), (bounds.0, mid))
+        }
     }
 
     /// Best split over all features, in index order, strictly-better replacement.
-    fn search(&mut self, start: usize, end: usize, totals: &Totals) -> Option<(usize, FeatureBest)> {
+    fn search(&mut self, start: usize, end: usize, totals: &Totals, bounds: Bounds) -> Option<(usize, FeatureBest)> {
         let rows = self.prep.rows();
-        let ctx = SearchCtx { rows: &rows, criterion: self.criterion, min_leaf_rows: self.limits.min_leaf_rows };
+        let base = SearchCtx { rows: &rows, criterion: self.criterion, min_leaf_rows: self.limits.min_leaf_rows, order: None };
         let mut s = std::mem::take(&mut self.search_scratch);
         let results = self.each_feature(start, end, &mut s, |f, seg, s| {
+            let ctx = SearchCtx { order: self.order(f, bounds), ..base };
             if self.levels[f] > 0 {
                 ctx.categorical(seg, totals, s)
             } else {
@@ -632,11 +707,12 @@ impl<'p> Grower<'p> {
 
     /// [`Self::search`] for each of the ascending `min_leaf_rows` values `msl`: one scan per
     /// feature serves them all.
-    fn search_keys(&mut self, start: usize, end: usize, totals: &Totals, msl: &[u32]) -> Vec<Option<(usize, FeatureBest)>> {
+    fn search_keys(&mut self, start: usize, end: usize, totals: &Totals, msl: &[u32], bounds: Bounds) -> Vec<Option<(usize, FeatureBest)>> {
         let rows = self.prep.rows();
-        let ctx = SearchCtx { rows: &rows, criterion: self.criterion, min_leaf_rows: msl[0] };
+        let base = SearchCtx { rows: &rows, criterion: self.criterion, min_leaf_rows: msl[0], order: None };
         let mut s = std::mem::take(&mut self.search_scratch);
         let results = self.each_feature(start, end, &mut s, |f, seg, s| {
+            let ctx = SearchCtx { order: self.order(f, bounds), ..base };
             if self.levels[f] > 0 {
                 ctx.categorical_keys(seg, totals, s, msl)
             } else {
@@ -727,7 +803,8 @@ impl<'p> Grower<'p> {
     /// Ranks the splits of `arena` in best-first order, renumbers its nodes in preorder and
     /// fills the values: the tree, and `leaf_of` (creation ids) in the tree's node ids.
     fn finish(&self, arena: Arena, options: super::FitOptions, mut leaf_of: Vec<u32>) -> (Tree, Vec<u32>) {
-        let Arena { mut nodes, stats, starts } = arena;
+        let Arena { mut nodes, stats, starts, bounds } = arena;
+        let limited = !self.monotone.is_empty();
         // Best-first ranks: a priority walk from the root over split nodes.
         let mut heap = BinaryHeap::new();
         heap.push(Frontier { gain: nodes[0].gain, depth: 0, start: 0, id: 0 });
@@ -772,7 +849,17 @@ impl<'p> Grower<'p> {
                 n.right = new_id[n.right as usize];
             }
             let t = &stats[old as usize].totals;
-            if k > 0 {
+            if limited {
+                // The reference library's clipping: the value (mean, or class 0's share) is
+                // held within the node's bounds; two class shares then sum to 1.
+                let (lo, hi) = bounds[old as usize];
+                let v = (t.sums[0] / t.w).clamp(lo, hi);
+                values.push(v);
+                if k > 0 {
+                    values.push(1.0 - v);
+                    class_totals.extend_from_slice(&t.sums);
+                }
+            } else if k > 0 {
                 values.extend(t.sums.iter().map(|c| c / t.w));
                 class_totals.extend_from_slice(&t.sums);
             } else {
@@ -855,7 +942,7 @@ impl Grower<'_> {
             .iter()
             .map(|o| {
                 let mut arena = Arena::default();
-                arena.push(0, 0, root.clone());
+                arena.push(0, 0, root.clone(), UNBOUNDED);
                 KeyTree { options: o.to_options(), arena, leaf_of: vec![NO_NODE; n as usize] }
             })
             .collect();
@@ -911,12 +998,14 @@ impl Grower<'_> {
         let (t0, id0) = node.members[0];
         let s = trees[t0].arena.stats[id0 as usize].clone();
         let depth = trees[t0].arena.nodes[id0 as usize].depth;
+        // The trees of a shared node took the same splits above it, so share its bounds.
+        let bounds = trees[t0].arena.bounds[id0 as usize];
         let n = node.end - node.start;
         let mut parts: Vec<(Vec<(usize, u32)>, Pending)> = Vec::new();
         let open: Vec<(usize, u32)> = if self.stops(depth, &s) { Vec::new() } else { node.members.iter().copied().filter(|&(t, _)| n >= 2 * trees[t].options.limits.min_leaf_rows).collect() };
         if !open.is_empty() {
             let msl: Vec<u32> = open.iter().map(|&(t, _)| trees[t].options.limits.min_leaf_rows).collect();
-            let bests = self.search_keys(a, b, &s.totals, &msl);
+            let bests = self.search_keys(a, b, &s.totals, &msl, bounds);
             let mut agree: Vec<((usize, FeatureBest), Vec<(usize, u32)>)> = Vec::new();
             for (&member, best) in open.iter().zip(bests) {
                 let Some(best) = best else { continue };
@@ -926,7 +1015,7 @@ impl Grower<'_> {
                 }
             }
             for ((feature, fb), members) in agree {
-                if let Some(p) = self.pending(feature, &fb, a, b, &s) {
+                if let Some(p) = self.pending(feature, &fb, a, b, &s, bounds) {
                     parts.push((members, p));
                 }
             }

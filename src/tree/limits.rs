@@ -2,6 +2,7 @@
 //! once before any growth.
 
 use std::fmt;
+use std::sync::Arc;
 
 use super::Criterion;
 use crate::data::Task;
@@ -81,6 +82,42 @@ impl Splitter {
     }
 }
 
+/// The direction a prediction must keep along one feature (a monotone limit): as the
+/// feature grows, the prediction (the mean when regressing, the share of the second class
+/// when classifying two classes) must never fall (`Increasing`) or never rise
+/// (`Decreasing`). Common practice in credit scoring and pricing.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Hash, Default)]
+pub enum Monotone {
+    /// No limit along this feature.
+    #[default]
+    Free,
+    Increasing,
+    Decreasing,
+}
+
+impl Monotone {
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Monotone::Free => "free",
+            Monotone::Increasing => "increasing",
+            Monotone::Decreasing => "decreasing",
+        }
+    }
+
+    pub fn parse(s: &str) -> Option<Monotone> {
+        [Monotone::Free, Monotone::Increasing, Monotone::Decreasing].into_iter().find(|x| x.as_str() == s)
+    }
+
+    /// +1, −1 or 0: the sign of the change of the prediction along the feature.
+    pub fn sign(self) -> f64 {
+        match self {
+            Monotone::Free => 0.0,
+            Monotone::Increasing => 1.0,
+            Monotone::Decreasing => -1.0,
+        }
+    }
+}
+
 /// Most bins of a numeric feature under [`Splitter::Binned`].
 pub const MAX_BINS: usize = 255;
 
@@ -92,6 +129,10 @@ pub struct FitOptions {
     pub criterion: Option<Criterion>,
     pub class_weight: ClassWeight,
     pub splitter: Splitter,
+    /// A monotone limit per feature, in feature order; empty: none. Checked against the
+    /// data when the fit starts (one entry per feature, numeric features only, a regress or
+    /// two-class target). Shared, so the settings of a sweep hold one copy.
+    pub monotone: Arc<[Monotone]>,
 }
 
 /// Options that passed [`FitOptions::check`] for one task; fitting accepts only these.
@@ -101,6 +142,8 @@ pub struct CheckedOptions {
     pub(crate) criterion: Criterion,
     pub(crate) class_weight: ClassWeight,
     pub(crate) splitter: Splitter,
+    /// Empty when no feature is limited.
+    pub(crate) monotone: Arc<[Monotone]>,
     pub(crate) task: Task,
 }
 
@@ -120,9 +163,13 @@ impl CheckedOptions {
     pub fn splitter(&self) -> Splitter {
         self.splitter
     }
+    /// The monotone limit per feature; empty when no feature is limited.
+    pub fn monotone(&self) -> &[Monotone] {
+        &self.monotone
+    }
     /// The options as given, with the criterion made explicit.
     pub fn to_options(&self) -> FitOptions {
-        FitOptions { limits: self.limits.clone(), criterion: Some(self.criterion), class_weight: self.class_weight, splitter: self.splitter }
+        FitOptions { limits: self.limits.clone(), criterion: Some(self.criterion), class_weight: self.class_weight, splitter: self.splitter, monotone: self.monotone.clone() }
     }
 }
 
@@ -178,6 +225,8 @@ impl FitOptions {
         if task == Task::Regress && self.class_weight != ClassWeight::None {
             return Err(fit_error("class_weight", "class weighting needs a classify target"));
         }
-        Ok(CheckedOptions { limits: l.clone(), criterion, class_weight: self.class_weight, splitter: self.splitter, task })
+        // All free is no limit at all: the fit takes the unlimited path.
+        let monotone = if self.monotone.iter().any(|&m| m != Monotone::Free) { self.monotone.clone() } else { Arc::default() };
+        Ok(CheckedOptions { limits: l.clone(), criterion, class_weight: self.class_weight, splitter: self.splitter, monotone, task })
     }
 }

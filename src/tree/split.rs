@@ -32,6 +32,31 @@ impl Entry {
 /// reference library does, so no threshold falls between two nearly equal floats.
 pub(crate) const VALUE_TOLERANCE: f32 = 1e-7;
 
+/// The monotone limit one feature's splits must keep at one node (as the reference library
+/// applies it): a candidate is admitted only when its two children's values lie within the
+/// node's bounds `[lower, upper]` and are ordered by `sign` (+1: left ≤ right, −1: left ≥
+/// right). A child's value is `sums[0] / w`: the mean (regress) or the share of class 0
+/// (two classes; the grower flips the sign, so the limit holds for class 1).
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub(crate) struct Order {
+    pub sign: f64,
+    pub lower: f64,
+    pub upper: f64,
+}
+
+impl Order {
+    #[inline(always)]
+    pub fn admits(&self, vl: f64, vr: f64) -> bool {
+        vl >= self.lower && vr >= self.lower && vl <= self.upper && vr <= self.upper && (vl - vr) * self.sign <= 0.0
+    }
+}
+
+/// Whether `order` (if any) admits children with first sums `a`, `b` and weights `wa`, `wb`.
+#[inline(always)]
+fn admitted(order: Option<Order>, a: f64, wa: f64, b: f64, wb: f64) -> bool {
+    order.is_none_or(|o| o.admits(a / wa, b / wb))
+}
+
 /// Per-row target data of a fit.
 pub(crate) struct Rows<'a> {
     /// Class codes (classify).
@@ -268,6 +293,8 @@ pub(crate) struct SearchCtx<'a> {
     pub rows: &'a Rows<'a>,
     pub criterion: Criterion,
     pub min_leaf_rows: u32,
+    /// The monotone limit of the feature searched, if it has one (numeric features only).
+    pub order: Option<Order>,
 }
 
 impl SearchCtx<'_> {
@@ -359,7 +386,7 @@ impl SearchCtx<'_> {
                 _ => self.scan_positions::<false, false, P>(seg, &mut scan, s, pass_right, pass_left),
             }
         }
-        let all_left = (n_miss > 0).then(|| self.proxy(&s.nonmiss, nonmiss_w, &s.miss, miss_w));
+        let all_left = (n_miss > 0 && admitted(self.order, s.nonmiss[0], nonmiss_w, s.miss[0], miss_w)).then(|| self.proxy(&s.nonmiss, nonmiss_w, &s.miss, miss_w));
         Some(NumericScan { nn, n_miss, all_left })
     }
 
@@ -413,7 +440,7 @@ impl SearchCtx<'_> {
                 s.left[rows.class[r] as usize] += rows.w[r];
             }
             let Some((right, left)) = sc.cut_after(seg, i) else { continue };
-            if right >= sc.msl {
+            if right >= sc.msl && (!REGRESS || admitted(self.order, sl, lw, nonmiss0 - sl + miss0, sc.nonmiss_w - lw + sc.miss_w)) {
                 let rw = sc.nonmiss_w - lw + sc.miss_w;
                 let p = if REGRESS {
                     super::criterion::squared_error_proxy(sl, lw, nonmiss0 - sl + miss0, rw)
@@ -425,7 +452,7 @@ impl SearchCtx<'_> {
                 };
                 pass_right.offer_within(p, i, right);
             }
-            if left >= sc.msl {
+            if left >= sc.msl && (!REGRESS || admitted(self.order, sl + miss0, lw + sc.miss_w, nonmiss0 - sl, sc.nonmiss_w - lw)) {
                 let rw = sc.nonmiss_w - lw;
                 let p = if REGRESS {
                     super::criterion::squared_error_proxy(sl + miss0, lw + sc.miss_w, nonmiss0 - sl, rw)
@@ -475,11 +502,11 @@ impl SearchCtx<'_> {
                 l0 += w - wc;
             }
             let Some((right, left)) = sc.cut_after(seg, i) else { continue };
-            if right >= sc.msl {
+            if right >= sc.msl && admitted(self.order, l0, lw, n0 - l0 + m0, sc.nonmiss_w - lw + sc.miss_w) {
                 let rw = sc.nonmiss_w - lw + sc.miss_w;
                 pass_right.offer_within(proxy(l0, l1, lw, n0 - l0 + m0, n1 - l1 + m1, rw), i, right);
             }
-            if left >= sc.msl {
+            if left >= sc.msl && admitted(self.order, l0 + m0, lw + sc.miss_w, n0 - l0, sc.nonmiss_w - lw) {
                 let rw = sc.nonmiss_w - lw;
                 pass_left.offer_within(proxy(l0 + m0, l1 + m1, lw + sc.miss_w, n0 - l0, n1 - l1, rw), i, left);
             }
