@@ -15,6 +15,10 @@
 //!   tie-break, so its leaf count, depth and training score must fall inside the range the
 //!   five states spanned, widened by the tolerances below.
 //!
+//! Monotone limits (`monotone_<dataset>.json`): the same settings fitted with the reference's
+//! `monotonic_cst` on the regress and two-class datasets, checked the same way; their node
+//! values are the reference's clipped ones.
+//!
 //! Regression nodes whose training targets are all equal are leaves in pollard. The reference
 //! splits some of them anyway, because its one-pass variance leaves rounding noise above its
 //! zero test (see its `_criterion.pyx`); the golden files mark those nodes `constant_target`
@@ -25,7 +29,7 @@ use std::path::PathBuf;
 
 use pollard::data::csv::{read_dataset, CsvOptions};
 use pollard::data::{Column, Dataset, Target, Task};
-use pollard::tree::{fit, pruning_path, ClassWeight, Criterion, FitOptions, Limits, Predictions, SplitRule, TrainSet, Tree};
+use pollard::tree::{fit, pruning_path, ClassWeight, Criterion, FitOptions, Limits, Monotone, Predictions, SplitRule, TrainSet, Tree};
 use pollard::sweep::importance::{permutations, shuffled_scores};
 use pollard::sweep::Metric;
 use serde_json::Value;
@@ -73,6 +77,19 @@ fn options_of(case: &Value) -> FitOptions {
             Some(other) => panic!("unknown class weight {other}"),
         },
         splitter: Default::default(),
+        monotone: case["monotone"]
+            .as_array()
+            .map(|m| {
+                m.iter()
+                    .map(|v| match v.as_i64().unwrap() {
+                        1 => Monotone::Increasing,
+                        -1 => Monotone::Decreasing,
+                        0 => Monotone::Free,
+                        other => panic!("monotone {other}"),
+                    })
+                    .collect()
+            })
+            .unwrap_or_default(),
     }
 }
 
@@ -82,6 +99,25 @@ struct Walk {
     problems: Vec<String>,
     constant_leaves: usize,
     equivalent_splits: usize,
+    /// Gini with unit weights: a split scored exactly as well as the reference's (in exact
+    /// rational arithmetic, class counts) is a tie the reference broke by the rounding of its
+    /// impurities, not by its feature order, so its five states agree; such a node is
+    /// counted and its subtrees are not compared.
+    exact_gini: bool,
+    exact_ties: usize,
+}
+
+/// Σ_c n_c² / n over both sides, as an exact fraction (numerator, denominator).
+fn gini_proxy(codes: &[u32], left: &[u32], right: &[u32]) -> (u128, u128) {
+    let side = |rows: &[u32]| {
+        let mut counts = std::collections::BTreeMap::new();
+        for &r in rows {
+            *counts.entry(codes[r as usize]).or_insert(0u128) += 1;
+        }
+        (counts.values().map(|c| c * c).sum::<u128>(), rows.len() as u128)
+    };
+    let ((a, nl), (b, nr)) = (side(left), side(right));
+    (a * nr + b * nl, nl * nr)
 }
 
 /// Compares pollard's subtree at `ours` with the reference subtree at `theirs`.
@@ -146,6 +182,13 @@ fn walk(tree: &Tree, data: &Dataset, rows: &[u32], ours: usize, gold: &[Value], 
             out.equivalent_splits += exact as usize;
             mirrored = true;
         } else {
+            if let (true, Target::Classes { codes, .. }) = (out.exact_gini, &data.target) {
+                let ((p, q), (r, s2)) = (gini_proxy(codes, &ours_left, &ours_right), gini_proxy(codes, &theirs_left, &theirs_right));
+                if p * s2 == r * q {
+                    out.exact_ties += 1;
+                    return;
+                }
+            }
             bad(format!("split on feature {} at {t} (missing left {}) vs feature {gf} at {gt} (missing left {gm})", s.feature, s.missing_left));
             return;
         }
@@ -187,19 +230,26 @@ fn train_score(tree: &Tree, data: &Dataset) -> f64 {
     }
 }
 
+#[derive(Default)]
 struct Tally {
     cases: usize,
     exact: usize,
     partition: usize,
     ranged: usize,
     paths: usize,
+    /// Cases whose tree the monotone limits changed (pollard's fit without them differs).
+    binding: usize,
+    /// Nodes where pollard's split ties the reference's exactly (see [`Walk::exact_gini`]).
+    exact_ties: usize,
+    /// Node-for-node cases with such a tie.
+    tied: usize,
     constant_leaves: usize,
     equivalent_splits: usize,
     failures: Vec<String>,
 }
 
 fn check_file(name: &str, tally: &mut Tally) {
-    let path = root().join(format!("tests/reference/golden/tree_{name}.json"));
+    let path = root().join(format!("tests/reference/golden/{name}.json"));
     let golden: Value = serde_json::from_reader(File::open(&path).unwrap()).unwrap();
     let task = Task::parse(golden["task"].as_str().unwrap()).unwrap();
     let mut opts = CsvOptions::new(golden["target"].as_str().unwrap());
@@ -215,21 +265,30 @@ fn check_file(name: &str, tally: &mut Tally) {
         let cname = case["name"].as_str().unwrap();
         let options = options_of(case).check(task).unwrap();
         let tree = fit(&TrainSet::of(&data), &options).unwrap();
+        if !options.monotone().is_empty() {
+            let free = FitOptions { monotone: Default::default(), ..options.to_options() };
+            tally.binding += (fit(&TrainSet::of(&data), &free.check(task).unwrap()).unwrap().nodes != tree.nodes) as usize;
+        }
         let gnodes = case["tree"]["nodes"].as_array().unwrap();
         let exact = case["tie_free"].as_bool().unwrap() || case["same_splits"].as_bool().unwrap();
         let partition = case["same_partition"].as_bool().unwrap();
         tally.cases += 1;
         let mut fail = |m: String| tally.failures.push(format!("{cname}: {m}"));
         if exact || partition {
-            let mut w = Walk::default();
+            let mut w = Walk { exact_gini: options.criterion() == Criterion::Gini && options.class_weight() == ClassWeight::None, ..Walk::default() };
             let all: Vec<u32> = (0..data.rows() as u32).collect();
             walk(&tree, &data, &all, 0, gnodes, 0, exact, "root", &mut w);
             tally.constant_leaves += w.constant_leaves;
+            tally.exact_ties += w.exact_ties;
             tally.equivalent_splits += w.equivalent_splits;
             for p in w.problems.iter().take(3) {
                 fail(p.clone());
             }
-            if exact {
+            if exact && w.exact_ties > 0 {
+                // Compared down to the tie; below it the trees may differ, and so may their
+                // predictions and pruning paths.
+                tally.tied += 1;
+            } else if exact {
                 tally.exact += 1;
                 let preds = tree.predict(&data.frame);
                 let gp = case["train_predictions"].as_array().unwrap();
@@ -304,11 +363,30 @@ fn check_file(name: &str, tally: &mut Tally) {
     }
 }
 
+/// Monotone limits against the reference's `monotonic_cst`, checked as the plain trees are
+/// (node for node where the reference's five random states agree); at least 45 cases node
+/// for node, and the limits must have changed the tree in at least half of all cases, so
+/// the comparison is not of trees the limits left alone.
+#[test]
+fn monotone_trees_match_the_reference_library() {
+    let mut tally = Tally::default();
+    for name in ["diabetes", "breast_cancer", "synthetic_missing", "synthetic_missing_reg"] {
+        check_file(&format!("monotone_{name}"), &mut tally);
+    }
+    eprintln!(
+        "reference_tree monotone: {} cases: {} node-for-node ({} pruning paths), {} same partition, {} within the tie range; {} changed by the limits; {} constant-target leaves; {} equivalent splits; {} exact Gini ties broken another way (in {} cases)",
+        tally.cases, tally.exact, tally.paths, tally.partition, tally.ranged, tally.binding, tally.constant_leaves, tally.equivalent_splits, tally.exact_ties, tally.tied
+    );
+    assert!(tally.exact >= 45, "only {} node-for-node cases", tally.exact);
+    assert!(tally.binding * 2 >= tally.cases, "the limits changed only {} of {} trees", tally.binding, tally.cases);
+    assert!(tally.failures.is_empty(), "{} problems:\n{}", tally.failures.len(), tally.failures.join("\n"));
+}
+
 #[test]
 fn trees_match_the_reference_library() {
-    let mut tally = Tally { cases: 0, exact: 0, partition: 0, ranged: 0, paths: 0, constant_leaves: 0, equivalent_splits: 0, failures: Vec::new() };
+    let mut tally = Tally::default();
     for name in ["iris", "wine", "breast_cancer", "diabetes", "synthetic_missing", "synthetic_missing_reg"] {
-        check_file(name, &mut tally);
+        check_file(&format!("tree_{name}"), &mut tally);
     }
     eprintln!(
         "reference_tree: {} cases: {} node-for-node ({} pruning paths), {} same partition, {} within the tie range; {} reference splits of constant-target nodes kept as leaves; {} splits on another feature or threshold with the same partition",

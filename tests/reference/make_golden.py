@@ -6,7 +6,10 @@ Usage: make_golden.py [OUTDIR]   (default: tests/reference/golden)
 Reads the committed CSV files in tests/data with the csv module only (an empty
 cell is NaN; features parsed as float64, scikit-learn casts them to float32
 itself), fits DecisionTreeClassifier / DecisionTreeRegressor for a list of
-limit settings per dataset, and writes OUTDIR/tree_<dataset>.json.
+limit settings per dataset, and writes OUTDIR/tree_<dataset>.json. The same
+settings under monotone limits (monotonic_cst; regress and two-class datasets,
+a few features limited each way) go to OUTDIR/monotone_<dataset>.json, each
+case with a "monotone" list (+1 / -1 / 0 per feature).
 
 Inside this script scikit-learn is called with its own parameter names; the
 JSON it writes uses pollard's names (VOCABULARY.md):
@@ -103,6 +106,30 @@ def settings(task, y):
     return s
 
 
+# Monotone limits per dataset: named sets of feature -> +1 (the prediction, or the
+# probability of the class at index 1, never falls as the feature grows) / -1.
+# Some go with the data's trend, some against it, so both kinds of constrained
+# splits (and rejected ones) occur.
+MONOTONE = {
+    "diabetes": [("up", {"bmi": 1, "bp": 1, "s5": 1, "s3": -1}), ("against", {"bmi": -1, "s4": 1})],
+    "breast_cancer": [("up", {"mean_radius": 1, "worst_concave_points": 1, "worst_texture": 1}),
+                      ("against", {"worst_perimeter": -1, "mean_texture": -1})],
+    "synthetic_missing": [("mixed", {"grade": 1, "x_norm": -1, "n_events": 1})],
+    "synthetic_missing_reg": [("mixed", {"grade": 1, "x_norm": -1, "n_events": 1})],
+}
+
+
+def monotone_settings(name, task, y, features):
+    """The dataset's settings under each of its monotone sets."""
+    out = []
+    for set_name, limits in MONOTONE[name]:
+        cst = [limits.get(f, 0) for f in features]
+        if sorted(limits) != sorted(f for f in features if f in limits):
+            raise SystemExit(f"{name}: a monotone set names an unknown feature")
+        out += [(f"{set_name}_{suffix}", dict(kw, monotonic_cst=cst)) for suffix, kw in settings(task, y)]
+    return out
+
+
 def limits_of(kw):
     return {
         "max_depth": kw.get("max_depth"),
@@ -190,14 +217,15 @@ def node_list(model, X, y_codes):
     return nodes
 
 
-def run_dataset(name, rel, task):
+def run_dataset(name, rel, task, monotone=False):
     features, X, y = read_csv(os.path.join(REPO, rel), task)
     if task == "classify":
         classes, y_codes = np.unique(y, return_inverse=True)
     else:
         classes, y_codes = None, y
     cases, variation = [], {}
-    for suffix, kw in settings(task, y):
+    cases_kw = monotone_settings(name, task, y, features) if monotone else settings(task, y)
+    for suffix, kw in cases_kw:
         case_name = f"{name}_{suffix}"
         fits = [make_model(task, kw, rs).fit(X, y) for rs in RANDOM_STATES]
         m0 = fits[0]
@@ -230,6 +258,8 @@ def run_dataset(name, rel, task):
                 "impurities": [float(v) for v in path.impurities],
             },
         }
+        if "monotonic_cst" in kw:
+            case["monotone"] = [int(c) for c in kw["monotonic_cst"]]
         cases.append(case)
         if not tie_free:
             leaves = [int(m.get_n_leaves()) for m in fits]
@@ -261,10 +291,14 @@ def main(outdir):
         raise SystemExit(f"scikit-learn {sklearn.__version__} installed, {PINNED} required")
     os.makedirs(outdir, exist_ok=True)
     total = total_tf = 0
-    for name, rel, task in DATASETS:
-        doc = run_dataset(name, rel, task)
+    runs = [(name, rel, task, False) for name, rel, task in DATASETS]
+    runs += [(name, rel, task, True) for name, rel, task in DATASETS if name in MONOTONE]
+    for name, rel, task, monotone in runs:
+        doc = run_dataset(name, rel, task, monotone)
         text = json.dumps(doc, indent=1, sort_keys=True, allow_nan=False) + "\n"
-        with open(os.path.join(outdir, f"tree_{name}.json"), "w", encoding="utf-8",
+        stem = "monotone" if monotone else "tree"
+        name = f"{stem}_{name}"
+        with open(os.path.join(outdir, f"{name}.json"), "w", encoding="utf-8",
                   newline="\n") as fh:
             fh.write(text)
         n = len(doc["cases"])
@@ -273,7 +307,7 @@ def main(outdir):
         sp = sum(c["same_partition"] for c in doc["cases"])
         total += n
         total_tf += tf
-        print(f"tree_{name}.json: {n} cases, {tf} tie-free, {ss} same-splits, "
+        print(f"{name}.json: {n} cases, {tf} tie-free, {ss} same-splits, "
               f"{sp} same-partition, {len(text)} bytes")
     print(f"total: {total} cases, {total_tf} tie-free")
 
