@@ -16,7 +16,7 @@ use pollard::data::{Column, Feature, Frame, Target, Task, MISSING_CODE};
 use pollard::export::{from_json, to_json};
 use pollard::tree::grow::{fit_shared_with, fit_with};
 use pollard::tree::{
-    fit, fit_with_leaves, prune, pruning_path, ClassWeight, Criterion, FitOptions, Limits, Predictions, SplitRule, Splitter, TrainSet, Tree,
+    fit, fit_with_leaves, prune, pruning_path, ClassWeight, Criterion, FitOptions, Limits, Monotone, Predictions, SplitRule, Splitter, TrainSet, Tree,
 };
 use proptest::collection::vec;
 use proptest::option;
@@ -189,7 +189,7 @@ fn case_from(data: impl Strategy<Value = Data>, limits: BoxedStrategy<Limits>, w
     })
     .prop_map(|(data, limits, criterion, class_weight, weights)| Case {
         data,
-        options: FitOptions { limits, criterion, class_weight, splitter: Default::default() },
+        options: FitOptions { limits, criterion, class_weight, splitter: Default::default(), monotone: Default::default() },
         weights,
     })
 }
@@ -396,7 +396,7 @@ proptest! {
         let target = Target::Classes { codes: classes.clone(), labels: class_labels(2) };
         // min_leaf_rows = 1 (the default), so every partition with two non-empty sides counts.
         let limits = Limits { max_depth: Some(1), ..Limits::default() };
-        let opts = FitOptions { limits, criterion: Some(Criterion::Gini), class_weight: ClassWeight::None, splitter: Default::default() };
+        let opts = FitOptions { limits, criterion: Some(Criterion::Gini), class_weight: ClassWeight::None, splitter: Default::default(), monotone: Default::default() };
         let tree = fit(&TrainSet::new(&frame, &target), &opts.check(Task::Classify).unwrap()).unwrap();
         let engine = tree.nodes[0].gain;
 
@@ -645,7 +645,7 @@ proptest! {
         let (frame, target) = big_data(seed, task);
         assert!(frame.rows * frame.n_features() >= 1 << 17, "the frame must cross the parallel threshold");
         let class_weight = if balanced && task == Task::Classify { ClassWeight::Balanced } else { ClassWeight::None };
-        let opts = FitOptions { limits: Limits { max_leaves, min_leaf_rows, ..Limits::default() }, criterion: None, class_weight, splitter: Default::default() };
+        let opts = FitOptions { limits: Limits { max_leaves, min_leaf_rows, ..Limits::default() }, criterion: None, class_weight, splitter: Default::default(), monotone: Default::default() };
         let checked = opts.check(task).unwrap();
         let set = TrainSet::new(&frame, &target);
         let parallel = fit_with(&set, &checked, true).unwrap();
@@ -844,7 +844,7 @@ proptest! {
                 (Just(data), limits(), criterion(task), class_weight(task), option::of(weights(rows)))
             })
     ) {
-        let case = Case { data, options: FitOptions { limits, criterion, class_weight, splitter: Splitter::Exact }, weights };
+        let case = Case { data, options: FitOptions { limits, criterion, class_weight, splitter: Splitter::Exact, monotone: Default::default() }, weights };
         let exact = case.fit();
         let bins = case.fit_with_options(&binned(&case.options));
         prop_assert_eq!(&bins.nodes, &exact.nodes);
@@ -948,7 +948,8 @@ proptest! {
     /// the training rows' leaves, of a fit under that value alone: every split, threshold,
     /// gain, rank and value, so ties are broken the same way. Values in any order, repeats
     /// included; sometimes sample weights, the binned splitter, a row subset, up to 200 rows;
-    /// parting trees copy the node's sorted rows, or take turns on them and restore their order.
+    /// parting trees copy the node's sorted rows, or take turns on them and restore their order;
+    /// monotone limits on random numeric features of regress and two-class cases.
     #[test]
     fn growing_together_equals_growing_each_alone(
         case in case_from(data_in(1..=200, 1..=4), limits(), true),
@@ -957,8 +958,18 @@ proptest! {
         subset in any::<bool>(),
         caps in prop::bool::weighted(0.2),
         copy_entries in prop_oneof![Just(usize::MAX), Just(0usize), 0usize..400],
+        directions in vec(0u8..3, 4),
     ) {
         let mut options = FitOptions { splitter: if binned { Splitter::Binned } else { Splitter::Exact }, ..case.options.clone() };
+        // Monotone limits on numeric features of regress and two-class cases (the rest fit
+        // free): the trees of a shared node share its bounds.
+        if !matches!(&case.data.target, Target::Classes { labels, .. } if labels.len() > 2) {
+            options.monotone = case.data.frame.features.iter().zip(&directions).map(|(f, d)| match (&f.column, d) {
+                (Column::Numeric(_), 1) => Monotone::Increasing,
+                (Column::Numeric(_), 2) => Monotone::Decreasing,
+                _ => Monotone::Free,
+            }).collect();
+        }
         if !caps {
             // Leaf caps and pruning fit each value alone; mostly test the growth together.
             options.limits.max_leaves = None;
@@ -989,5 +1000,135 @@ proptest! {
             prop_assert_eq!(&got.0, &want.0, "min_leaf_rows {} of {:?}", m, values);
             prop_assert_eq!(&got.1, &want.1, "leaves, min_leaf_rows {}", m);
         }
+    }
+}
+
+// ---------------------------------------------------------------------------------------------
+// Monotone limits
+// ---------------------------------------------------------------------------------------------
+
+/// A case for monotone limits: a regress or two-class target (a third class is folded into
+/// the second), a random direction for each numeric feature, categorical features free.
+fn monotone_case(rows: RangeInclusive<usize>) -> impl Strategy<Value = Case> {
+    case_from(data_in(rows, 1..=4), limits(), true).prop_flat_map(|mut case| {
+        if let Target::Classes { codes, labels } = &mut case.data.target {
+            codes.iter_mut().for_each(|c| *c = (*c).min(1));
+            labels.truncate(2);
+        }
+        let numeric: Vec<bool> = case.data.frame.features.iter().map(|f| matches!(f.column, Column::Numeric(_))).collect();
+        let directions = numeric
+            .into_iter()
+            .map(|n| if n { prop_oneof![Just(Monotone::Free), Just(Monotone::Increasing), Just(Monotone::Decreasing)].boxed() } else { Just(Monotone::Free).boxed() })
+            .collect::<Vec<_>>();
+        (Just(case), directions).prop_map(|(mut case, d)| {
+            case.options.monotone = d.into();
+            case
+        })
+    })
+}
+
+/// The prediction a monotone limit is on: the mean, or the probability of class 1.
+fn limited_value(tree: &Tree, frame: &Frame, row: usize) -> f64 {
+    let v = tree.predict_row(frame, row);
+    if tree.task == Task::Classify {
+        v[1]
+    } else {
+        v[0]
+    }
+}
+
+/// Where `tree`'s prediction moves against `direction` along feature `f`, the other cells of
+/// frame row `r` held: probes at -3, -2.75, …, 3 (around every generated value), ascending.
+fn monotone_breach(tree: &Tree, frame: &Frame, r: usize, f: usize, direction: Monotone) -> Option<String> {
+    let grid: Vec<f32> = (-12..=12).map(|i| i as f32 * 0.25).collect();
+    let columns = frame
+        .features
+        .iter()
+        .enumerate()
+        .map(|(j, feat)| match &feat.column {
+            Column::Numeric(_) if j == f => Column::Numeric(grid.clone()),
+            Column::Numeric(v) => Column::Numeric(vec![v[r]; grid.len()]),
+            Column::Categorical { codes, levels } => Column::Categorical { codes: vec![codes[r]; grid.len()], levels: levels.clone() },
+        })
+        .collect();
+    let probes = frame_of(columns);
+    let values: Vec<f64> = (0..grid.len()).map(|i| limited_value(tree, &probes, i)).collect();
+    values.windows(2).position(|w| (w[1] - w[0]) * direction.sign() < 0.0).map(|i| format!("feature {f} {direction:?}, row {r}: {} at {} then {} at {}", values[i], grid[i], values[i + 1], grid[i + 1]))
+}
+
+/// Every breach of `tree`'s monotone limits on probes through each training row.
+fn monotone_breaches(tree: &Tree, frame: &Frame, limits: &[Monotone]) -> Vec<String> {
+    let mut out = Vec::new();
+    for (f, &m) in limits.iter().enumerate() {
+        if m != Monotone::Free {
+            out.extend((0..frame.rows).filter_map(|r| monotone_breach(tree, frame, r, f, m)));
+        }
+    }
+    out
+}
+
+proptest! {
+    #![proptest_config(config(256))]
+
+    /// A tree fitted under monotone limits keeps them: along each limited feature, with every
+    /// other cell of a training row held, the prediction (mean, or probability of class 1)
+    /// never moves against the limit's direction; so does the tree pruned at a random α (its
+    /// merged nodes carry their clipped values). Random data, limits, criteria, weights.
+    #[test]
+    fn monotone_limits_hold_on_probes(case in monotone_case(1..=80), alpha in 0.0..0.05f64) {
+        let tree = case.fit();
+        let breaches = monotone_breaches(&tree, &case.data.frame, &case.options.monotone);
+        prop_assert!(breaches.is_empty(), "{}", breaches.join("\n"));
+        let pruned = prune(&tree, alpha);
+        let breaches = monotone_breaches(&pruned, &case.data.frame, &case.options.monotone);
+        prop_assert!(breaches.is_empty(), "pruned at {}: {}", alpha, breaches.join("\n"));
+    }
+
+    /// Monotone limits are refused where the reference library does not define them: more
+    /// than two classes, a categorical feature, a list of the wrong length; each naming the
+    /// field `monotone`.
+    #[test]
+    fn monotone_limits_are_refused_where_undefined(case in case_from(data(), limits(), false)) {
+        let n = case.data.frame.features.len();
+        let fit = |monotone: Vec<Monotone>| {
+            let options = FitOptions { monotone: monotone.into(), ..case.options.clone() };
+            fit(&TrainSet::new(&case.data.frame, &case.data.target), &options.check(case.task()).unwrap())
+        };
+        let wrong_length = fit(vec![Monotone::Increasing; n + 1]).unwrap_err();
+        prop_assert_eq!(wrong_length.field.as_str(), "monotone");
+        for (j, f) in case.data.frame.features.iter().enumerate() {
+            let mut m = vec![Monotone::Free; n];
+            m[j] = Monotone::Decreasing;
+            let got = fit(m);
+            let many_classes = matches!(&case.data.target, Target::Classes { labels, .. } if labels.len() > 2);
+            match (&f.column, many_classes) {
+                (_, true) => prop_assert_eq!(got.unwrap_err().field, "monotone"),
+                (Column::Categorical { .. }, false) => prop_assert_eq!(got.unwrap_err().field, format!("monotone[{j}]")),
+                (Column::Numeric(_), false) => prop_assert!(got.is_ok()),
+            }
+        }
+    }
+}
+
+/// The probe check finds a breach when there is one: on y = (x − 5)², x = 0 … 10 (a
+/// made-up valley), the free tree falls then rises along x; under an increasing limit the
+/// tree keeps rising (and still splits), under a decreasing one it keeps falling.
+#[test]
+fn monotone_probes_catch_a_free_tree() {
+    let x: Vec<f32> = (0..=40).map(|i| i as f32 * 0.25 - 3.0 + 0.125).collect();
+    let y: Vec<f64> = x.iter().map(|&v| (v as f64 - 0.5).powi(2)).collect();
+    let frame = frame_of(vec![Column::Numeric(x)]);
+    let target = Target::Values(y);
+    let fit_dir = |m: Monotone| {
+        let options = FitOptions { limits: Limits { max_depth: Some(4), ..Limits::default() }, monotone: vec![m].into(), ..FitOptions::default() };
+        fit(&TrainSet::new(&frame, &target), &options.check(Task::Regress).unwrap()).unwrap()
+    };
+    let free = fit_dir(Monotone::Free);
+    assert!(!monotone_breaches(&free, &frame, &[Monotone::Increasing]).is_empty());
+    assert!(!monotone_breaches(&free, &frame, &[Monotone::Decreasing]).is_empty());
+    for m in [Monotone::Increasing, Monotone::Decreasing] {
+        let tree = fit_dir(m);
+        assert!(tree.n_leaves() >= 2, "{m:?}: {} leaves", tree.n_leaves());
+        assert_eq!(monotone_breaches(&tree, &frame, &[m]), Vec::<String>::new());
     }
 }

@@ -12,7 +12,7 @@ use pollard::data::csv::{read_dataset, CsvOptions};
 use pollard::data::{Column, Dataset, Feature, Frame, Target, Task, MISSING_CODE};
 use pollard::sweep::metrics::rows;
 use pollard::sweep::{self, FoldPlan, FoldScheme, Flow, Metric, PickRule, Range, SweepSpec};
-use pollard::tree::{fit, ClassWeight, Criterion, Predictions, TrainSet};
+use pollard::tree::{fit, ClassWeight, Criterion, Monotone, Predictions, TrainSet};
 
 /// A small seeded generator for test data (xorshift64*, Vigna 2016).
 struct Gen(u64);
@@ -172,8 +172,6 @@ fn sweep_equals_refits(plan: &sweep::Plan, label: &str) -> usize {
 /// eight, and every setting still scores exactly as its refit does.
 #[test]
 fn many_min_leaf_rows_values_grow_together_on_open_datasets() {
-    let data_dir = PathBuf::from(env!("CARGO_MANIFEST_DIR")).join("tests/data");
-    let msl = [1.0, 2.0, 3.0, 5.0, 8.0, 13.0, 20.0, 50.0];
     let cases: [(&str, &[&str], Metric); 8] = [
         ("iris.csv", &[], Metric::Accuracy),
         ("wine.csv", &[], Metric::LogLoss),
@@ -186,6 +184,35 @@ fn many_min_leaf_rows_values_grow_together_on_open_datasets() {
     ];
     let mut compared = 0;
     for (file, categorical, metric) in cases {
+        compared += open_dataset_case(file, categorical, metric, &[]);
+    }
+    eprintln!("sweep_equivalence: {compared} setting × split scores compared on the open datasets");
+}
+
+/// The same under monotone limits (some features limited each way): the trees of a shared
+/// node share its bounds, and every setting scores exactly as its refit under the limits.
+#[test]
+fn monotone_limits_grow_together_on_open_datasets() {
+    use Monotone::{Decreasing, Increasing};
+    let cases: [(&str, &[(&str, Monotone)], Metric); 4] = [
+        ("diabetes.csv", &[("bmi", Increasing), ("s3", Decreasing), ("s5", Increasing)], Metric::Rmse),
+        ("breast_cancer.csv", &[("mean_radius", Increasing), ("worst_texture", Decreasing)], Metric::Brier),
+        ("synthetic_missing.csv", &[("grade", Increasing), ("x_norm", Decreasing)], Metric::Accuracy),
+        ("synthetic_missing_reg.csv", &[("grade", Increasing), ("n_events", Increasing), ("x_norm", Decreasing)], Metric::Mae),
+    ];
+    let mut compared = 0;
+    for (file, limits, metric) in cases {
+        compared += open_dataset_case(file, &[], metric, limits);
+    }
+    eprintln!("sweep_equivalence: {compared} setting × split scores compared under monotone limits");
+}
+
+/// One open dataset's sweep of eight `min_leaf_rows` values (grown in groups of eight),
+/// checked setting by setting against refits; the number of scores compared.
+fn open_dataset_case(file: &str, categorical: &[&str], metric: Metric, monotone: &[(&str, Monotone)]) -> usize {
+    let data_dir = PathBuf::from(env!("CARGO_MANIFEST_DIR")).join("tests/data");
+    let msl = [1.0, 2.0, 3.0, 5.0, 8.0, 13.0, 20.0, 50.0];
+    {
         let mut options = CsvOptions::new("target");
         options.categorical = categorical.iter().map(|c| c.to_string()).collect();
         let data = read_dataset(std::fs::File::open(data_dir.join(file)).unwrap(), &options).unwrap();
@@ -203,16 +230,17 @@ fn many_min_leaf_rows_values_grow_together_on_open_datasets() {
             metric: Some(metric),
             seed: 7,
             fit_final: false,
+            monotone: monotone.iter().map(|(f, m)| (f.to_string(), *m)).collect(),
             ..SweepSpec::default()
         };
         let plan = sweep::plan(&data, &spec).unwrap();
+        assert_eq!(plan.settings.iter().filter(|s| s.options.monotone.is_empty()).count(), if monotone.is_empty() { plan.settings.len() } else { 0 }, "{file}: every setting carries the limits");
         let all: Vec<usize> = (0..plan.units.len()).collect();
         let groups = plan.growth_groups(&all);
         assert_eq!(groups.len(), plan.units.len() / msl.len(), "{file}: units grow in groups of eight");
         assert!(groups.iter().all(|g| g.len() == msl.len()), "{file}: {groups:?}");
-        compared += sweep_equals_refits(&plan, &format!("{file} {categorical:?}"));
+        sweep_equals_refits(&plan, &format!("{file} {categorical:?} {monotone:?}"))
     }
-    eprintln!("sweep_equivalence: {compared} setting × split scores compared on the open datasets");
 }
 
 #[test]
