@@ -213,7 +213,7 @@ mod tests {
         let mean = folds.iter().sum::<f64>() / n;
         let sd = (folds.iter().map(|x| (x - mean).powi(2)).sum::<f64>() / (n - 1.0)).sqrt();
         SettingScore {
-            setting: Setting { key: 0, options: FitOptions { limits: Limits { max_depth: depth, ..Limits::default() }, criterion: None, class_weight: ClassWeight::None, splitter: Default::default() } },
+            setting: Setting { key: 0, options: FitOptions { limits: Limits { max_depth: depth, ..Limits::default() }, criterion: None, class_weight: ClassWeight::None, ..FitOptions::default() } },
             fold_scores: folds.to_vec(),
             valid_mean: mean,
             valid_sd: sd,

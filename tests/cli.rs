@@ -906,6 +906,21 @@ fn show_names_the_default_metric_of_a_regress_run() {
         let want = sc["valid_mean"].as_f64().unwrap() - sc["train_mean"].as_f64().unwrap();
         assert!((sc["gap"].as_f64().unwrap() - want).abs() < 1e-9, "{sc}");
     }
+
+    // Monotone limits by column name: stored with the run and shown by `show`; a bad
+    // direction is a usage error naming the flag, an unknown column the server's refusal.
+    let lines = server.run(&["sweep", "--dataset", "diabetes", "--max-depth", "2,4", "--monotone", "bmi:+1,s3:-1", "--follow", "--json"]).json_lines();
+    let limited = s(&lines[0], "run_id").to_string();
+    assert_eq!(s(lines.last().unwrap(), "kind"), "finished");
+    let text = server.run(&["show", &limited]).ok();
+    assert!(text.contains("monotone limits: bmi increasing, s3 decreasing"), "{text}");
+    let r = server.run(&["show", &limited, "--json"]).json();
+    assert_eq!(r["monotone"], serde_json::json!({"bmi": "increasing", "s3": "decreasing"}), "{r}");
+    assert!(!server.run(&["show", &id]).ok().contains("monotone"), "a run without limits shows none");
+    let e = json_error(server.run(&["sweep", "--dataset", "diabetes", "--monotone", "bmi:up", "--json"]), 2);
+    assert!(e["message"].as_str().unwrap().contains("--monotone") && e["message"].as_str().unwrap().contains("up"), "{e}");
+    let e = server.run(&["sweep", "--dataset", "diabetes", "--monotone", "bmi:+1,weight:-1"]).fails();
+    assert!(e.contains("InvalidArgument") && e.contains("spec.monotone[1]") && e.contains("weight"), "{e}");
 }
 
 #[test]

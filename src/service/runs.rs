@@ -290,3 +290,30 @@ impl Service {
         Ok(EventsAfter { events, ended, outcome, drift })
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::tree::Monotone;
+
+    /// A request without monotone limits digests the text it did before they existed (so a
+    /// retry matches runs stored then); one with them digests differently.
+    #[test]
+    fn monotone_limits_enter_the_digest_only_when_set() {
+        let plain = RunRequest {
+            dataset: Some(DatasetRef::Name("d".into())),
+            target: None,
+            spec: SweepSpec::default(),
+            default_fold_scheme: false,
+            default_outer_scheme: false,
+            idempotency_key: None,
+            labels: BTreeMap::new(),
+        };
+        let before = format!("{:?}", (&plain.dataset, "", &plain.spec, false, &plain.labels)).replacen(", outer: None, monotone: [] }", " }", 1);
+        assert!(!before.contains("monotone") && !before.contains("outer"), "{before}");
+        use sha2::{Digest, Sha256};
+        assert_eq!(plain.digest(), crate::access::tokens::hex(&Sha256::digest(before.as_bytes())));
+        let limited = RunRequest { spec: SweepSpec { monotone: vec![("x".into(), Monotone::Increasing)], ..SweepSpec::default() }, ..plain.clone() };
+        assert_ne!(limited.digest(), plain.digest());
+    }
+}

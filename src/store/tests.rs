@@ -20,7 +20,7 @@ use crate::drift::Knob;
 use crate::job::{ColumnMeta, FireOutcome, Retention};
 use crate::schedule::CatchUp;
 use crate::sweep::{FoldPlan, FoldScheme, FoldScore, Metric, PickRule, Progress, Range, Setting, SettingScore, SweepSpec};
-use crate::tree::{fit, ClassWeight, Criterion, FitOptions, Limits, Splitter, TrainSet, Tree};
+use crate::tree::{fit, ClassWeight, Criterion, FitOptions, Limits, Monotone, Splitter, TrainSet, Tree};
 
 /// The throwaway PostgreSQL clusters of the tests (shared with the integration targets).
 #[path = "../../tests/support/postgres.rs"]
@@ -104,6 +104,7 @@ fn full_spec(seed: u64) -> SweepSpec {
         max_settings: Some(5000),
         splitter: Splitter::Binned,
         outer: Some(FoldPlan { scheme: FoldScheme::Forward { column: "day".into() }, k: 3, repeats: 1 }),
+        monotone: vec![("day".into(), Monotone::Increasing), ("site".into(), Monotone::Decreasing), ("x".into(), Monotone::Free)],
     }
 }
 
@@ -116,6 +117,7 @@ fn setting_score(valid_mean: f64) -> SettingScore {
                 criterion: Some(Criterion::Entropy),
                 class_weight: ClassWeight::Balanced,
                 splitter: Splitter::Binned,
+                monotone: vec![Monotone::Free, Monotone::Decreasing, Monotone::Increasing].into(),
             },
         },
         fold_scores: vec![0.1, f64::NAN, 0.3, -0.0],

@@ -390,11 +390,6 @@ impl SweepSpec {
             return Ok(Arc::default());
         }
         let features = &data.frame.features;
-        if let crate::data::Target::Classes { labels, .. } = &data.target {
-            if labels.len() > 2 && task == Task::Classify {
-                return Err(spec_error("monotone", format!("monotone limits need a regress or two-class target; '{}' has {} classes", data.target_name, labels.len())));
-            }
-        }
         let mut out = vec![Monotone::Free; features.len()];
         let mut named = vec![false; features.len()];
         for (i, (name, m)) in self.monotone.iter().enumerate() {
@@ -413,7 +408,15 @@ impl SweepSpec {
             }
             out[j] = *m;
         }
-        Ok(if out.iter().any(|&m| m != Monotone::Free) { out.into() } else { Arc::default() })
+        if !out.iter().any(|&m| m != Monotone::Free) {
+            return Ok(Arc::default());
+        }
+        if let crate::data::Target::Classes { labels, .. } = &data.target {
+            if labels.len() > 2 && task == Task::Classify {
+                return Err(spec_error("monotone", format!("monotone limits need a regress or two-class target; '{}' has {} classes", data.target_name, labels.len())));
+            }
+        }
+        Ok(out.into())
     }
 }
 
@@ -667,6 +670,21 @@ mod tests {
 
     fn field_of(spec: SweepSpec, task: Task) -> String {
         spec.check(&data(task)).unwrap_err().field
+    }
+
+    #[test]
+    fn monotone_limits_resolve_by_name_and_refuse_categorical_features() {
+        let mut d = data(Task::Regress);
+        let spec = SweepSpec { monotone: vec![("same".into(), Monotone::Free), ("x".into(), Monotone::Decreasing)], ..SweepSpec::default() };
+        assert_eq!(&*spec.check(&d).unwrap().monotone, &[Monotone::Decreasing, Monotone::Free]);
+        let free = SweepSpec { monotone: vec![("x".into(), Monotone::Free)], ..SweepSpec::default() };
+        assert!(free.check(&d).unwrap().monotone.is_empty(), "all free is no limit");
+        d.frame.features[1].column = Column::Categorical { codes: vec![0; 20], levels: vec!["a".into()] };
+        let on_categorical = SweepSpec { monotone: vec![("same".into(), Monotone::Increasing)], ..SweepSpec::default() };
+        let e = on_categorical.check(&d).unwrap_err();
+        assert_eq!((e.field.as_str(), e.message.contains("categorical")), ("monotone[0]", true));
+        let unknown = SweepSpec { monotone: vec![("y".into(), Monotone::Increasing)], ..SweepSpec::default() };
+        assert_eq!(field_of(unknown, Task::Classify), "monotone[0]");
     }
 
     #[test]

@@ -309,6 +309,21 @@ fn bad_sweep_requests_are_refused_by_field() {
     f.refused("a fractional min_split_rows step", r, Code::InvalidArgument, &["spec.min_split_rows.span.step"]);
     let r = start(&f, pb::SweepSpec { min_leaf_rows: Some(pb::LimitRange { kind: None }), ..Default::default() });
     f.refused("a range of no kind", r, Code::InvalidArgument, &["spec.min_leaf_rows"]);
+    // Monotone limits: each entry checked by name and direction, then the target's classes.
+    let limit = |feature: &str, d: pb::MonotoneDirection| pb::MonotoneLimit { feature: feature.into(), direction: d as i32 };
+    let (up, down) = (pb::MonotoneDirection::Increasing, pb::MonotoneDirection::Decreasing);
+    let r = start(&f, pb::SweepSpec { monotone: vec![limit("petal_length_cm", up), limit("no_such_column", down)], ..Default::default() });
+    f.refused("a monotone limit on an unknown column", r, Code::InvalidArgument, &["spec.monotone[1]", "no_such_column", "not a feature"]);
+    let r = start(&f, pb::SweepSpec { monotone: vec![limit("target", up)], ..Default::default() });
+    f.refused("a monotone limit on the target", r, Code::InvalidArgument, &["spec.monotone[0]", "is the target"]);
+    let r = start(&f, pb::SweepSpec { monotone: vec![limit("petal_length_cm", up), limit("petal_length_cm", down)], ..Default::default() });
+    f.refused("a feature limited twice", r, Code::InvalidArgument, &["spec.monotone[1]", "twice"]);
+    let r = start(&f, pb::SweepSpec { monotone: vec![pb::MonotoneLimit { feature: "petal_length_cm".into(), direction: 7 }], ..Default::default() });
+    f.refused("a monotone direction that is none", r, Code::InvalidArgument, &["spec.monotone[0].direction", "7"]);
+    let r = start(&f, pb::SweepSpec { monotone: vec![limit("", up)], ..Default::default() });
+    f.refused("a monotone limit naming no feature", r, Code::InvalidArgument, &["spec.monotone[0].feature"]);
+    let r = start(&f, pb::SweepSpec { monotone: vec![limit("petal_length_cm", up)], ..Default::default() });
+    f.refused("monotone limits on three classes", r, Code::InvalidArgument, &["spec.monotone", "3 classes"]);
     let req = pb::StartRunRequest { ..Default::default() };
     let r = f.rt.block_on(f.runs().start_run(req));
     f.refused("no dataset named", r, Code::InvalidArgument, &["dataset_id", "dataset_name"]);
