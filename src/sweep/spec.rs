@@ -390,13 +390,16 @@ impl SweepSpec {
             return Ok(Arc::default());
         }
         let features = &data.frame.features;
+        // By name in one map: a long list costs one lookup per entry (at most one entry
+        // per feature passes, a repeat is refused).
+        let index: std::collections::HashMap<&str, usize> = features.iter().enumerate().map(|(j, f)| (f.name.as_str(), j)).collect();
         let mut out = vec![Monotone::Free; features.len()];
         let mut named = vec![false; features.len()];
         for (i, (name, m)) in self.monotone.iter().enumerate() {
             let field = format!("monotone[{i}]");
             // Quoted back cut to 100 characters, as callers' text is elsewhere.
             let shown: String = name.chars().take(100).collect();
-            let Some(j) = features.iter().position(|f| &f.name == name) else {
+            let Some(&j) = index.get(name.as_str()) else {
                 let why = if *name == data.target_name { "is the target".to_string() } else { "is not a feature of the dataset".to_string() };
                 return Err(spec_error(field, format!("'{shown}' {why}")));
             };
