@@ -197,6 +197,10 @@ pub struct SpecRecord {
     /// Absent in records written before nested sweeps, and for plain sweeps.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     outer: Option<FoldPlanRecord>,
+    /// Decision costs `[false_alarm, miss]`; absent in records written before them, and
+    /// for sweeps without costs.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    costs: Option<[f64; 2]>,
 }
 
 #[derive(Serialize, Deserialize)]
@@ -283,6 +287,7 @@ impl From<&SweepSpec> for SpecRecord {
             max_settings: s.max_settings.map(|n| n as u64),
             splitter: splitter_record(s.splitter),
             outer: s.outer.as_ref().map(FoldPlanRecord::from),
+            costs: s.costs.map(|c| [c.false_alarm, c.miss]),
         }
     }
 }
@@ -310,6 +315,7 @@ impl TryFrom<SpecRecord> for SweepSpec {
             max_settings: r.max_settings.map(|n| to_usize(w, "max_settings", n)).transpose()?,
             splitter: splitter_of(w, r.splitter)?,
             outer: r.outer.map(FoldPlan::try_from).transpose()?,
+            costs: r.costs.map(|[false_alarm, miss]| crate::sweep::costs::Costs { false_alarm, miss }),
         })
     }
 }

@@ -8,8 +8,18 @@
 //! minimises the expected cost over pooled rows (validation predictions); the Bayes
 //! threshold is the check value and breaks ties.
 //!
-//! Not wired into sweeps yet: this is the core of the cost-matrix feature (see the report
-//! of the branch that added it); specs, the metric, models and exports do not use it.
+//! In a sweep (`SweepSpec::costs`): every setting is scored on each fold by the metric
+//! `expected_cost`, deciding at the Bayes threshold (no fold's own truth chooses its
+//! threshold, so fold scores stay honest estimates); the picked setting's refit then gets
+//! the threshold [`Costs::best_threshold`] finds on the pooled out-of-fold validation
+//! predictions of that setting ([`decide`]), kept in the model as a
+//! [`Decision`](crate::tree::Decision) that predictions and exports honour.
+
+use rayon::prelude::*;
+
+use super::{Plan, Setting};
+use crate::data::Target;
+use crate::tree::{fit, Decision, FitError, TrainSet, Tree};
 
 /// Costs of the two wrong decisions.
 #[derive(Clone, Copy, Debug, PartialEq)]
@@ -107,6 +117,42 @@ impl Costs {
         }
         best
     }
+}
+
+/// The threshold of a decision that never picks class 1: the least double above 1.
+pub const NEVER: f64 = 1.0000000000000002;
+
+/// The class-1 probabilities of `setting` on every validation row of the plan's own folds
+/// (each split's tree grown on its training rows), pooled in split order, with each row's
+/// truth (class 1 or not). A row validated in several repeats appears once per repeat.
+pub fn pooled_validation(plan: &Plan, setting: &Setting) -> Result<(Vec<bool>, Vec<f64>), FitError> {
+    let Target::Classes { codes, .. } = &plan.data.target else { return Ok((Vec::new(), Vec::new())) };
+    let checked = setting.options.check(plan.data.task())?;
+    let per_split = plan
+        .folds
+        .splits
+        .par_iter()
+        .map(|fold| {
+            let tree = fit(&TrainSet { rows: Some(&fold.train), ..TrainSet::of(&plan.data) }, &checked)?;
+            Ok(fold.valid.iter().map(|&r| (codes[r as usize] == 1, tree.predict_row(&plan.data.frame, r as usize)[1])).collect::<Vec<_>>())
+        })
+        .collect::<Result<Vec<_>, FitError>>()?;
+    Ok(per_split.into_iter().flatten().unzip())
+}
+
+/// Gives `tree` (the refit of `setting`) the decision of the plan's costs: the threshold
+/// with the lowest expected cost over the pooled validation predictions. Unchanged when the
+/// plan has no costs.
+pub fn decide(plan: &Plan, setting: &Setting, mut tree: Tree) -> Result<Tree, FitError> {
+    if let Some(c) = plan.spec.costs {
+        let (truth, p1) = pooled_validation(plan, setting)?;
+        let (threshold, _) = c.best_threshold(&truth, &p1);
+        // +∞ (never class 1) is kept as the least number above 1, which no share reaches:
+        // model files and messages hold finite numbers only.
+        let threshold = if threshold.is_finite() { threshold } else { NEVER };
+        tree.decision = Some(Decision { threshold, false_alarm: c.false_alarm, miss: c.miss });
+    }
+    Ok(tree)
 }
 
 #[cfg(test)]

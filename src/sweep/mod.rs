@@ -337,7 +337,7 @@ impl Plan {
                 j += 1;
             }
             let alphas: Vec<f64> = mine[i..j].iter().map(|&s| self.settings[s].options.limits.prune_alpha).collect();
-            for (&s, score) in mine[i..j].iter().zip(env.score(self.spec.metric, &stopping, &alphas)) {
+            for (&s, score) in mine[i..j].iter().zip(env.score(self.spec.scoring(), &stopping, &alphas)) {
                 scores.push((s, score));
             }
             i = j;
@@ -618,10 +618,11 @@ pub fn pareto_front(scores: &[SettingScore], metric: Metric) -> Vec<usize> {
     front
 }
 
-/// Refits a setting on every row of the plan's dataset.
+/// Refits a setting on every row of the plan's dataset (with the decision of the plan's
+/// costs, when it has them: [`costs::decide`]).
 pub fn fit_final(plan: &Plan, setting: &Setting) -> Result<Tree, FitError> {
     let checked = setting.options.check(plan.data.task())?;
-    fit(&TrainSet::of(&plan.data), &checked)
+    costs::decide(plan, setting, fit(&TrainSet::of(&plan.data), &checked)?)
 }
 
 /// Plans, runs, summarizes and (when the spec asks) refits, in one call.

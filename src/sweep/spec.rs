@@ -3,8 +3,9 @@
 
 use std::fmt;
 
+use super::costs::{CostError, Costs};
 use super::folds::FoldPlan;
-use super::metrics::Metric;
+use super::metrics::{Metric, Scoring};
 use crate::data::{Dataset, Task};
 use crate::tree::{ClassWeight, Criterion, FitOptions, Limits, Splitter};
 
@@ -104,6 +105,11 @@ pub struct SweepSpec {
     /// (with `folds` as the inner plan) and the pick run on the outer training rows, and the
     /// picked setting is scored once on the outer validation rows. `None`: no outer loop.
     pub outer: Option<FoldPlan>,
+    /// Costs of the two wrong decisions of a two-class target (class 1 of the dataset's class
+    /// list is the positive class): they define the metric `expected_cost` (the default
+    /// metric when costs are given) and make the refit model decide with a threshold on
+    /// p(class 1) searched on the pooled validation predictions (see [`super::costs`]).
+    pub costs: Option<Costs>,
 }
 
 /// Default cap on the number of settings in one sweep.
@@ -130,6 +136,7 @@ impl Default for SweepSpec {
             max_settings: None,
             splitter: Splitter::Exact,
             outer: None,
+            costs: None,
         }
     }
 }
@@ -241,6 +248,8 @@ pub struct CheckedSpec {
     pub splits: usize,
     /// The outer fold plan of a nested sweep, with the splits it makes on the dataset.
     pub outer: Option<(FoldPlan, usize)>,
+    /// The decision costs, checked (two classes, usable numbers).
+    pub costs: Option<Costs>,
 }
 
 impl SweepSpec {
@@ -262,12 +271,17 @@ impl SweepSpec {
         if task != data.task() {
             return Err(spec_error("task", format!("the target '{}' is read as {}, not {task}", data.target_name, data.task())));
         }
-        let metric = self.metric.unwrap_or(match task {
-            Task::Classify => Metric::Accuracy,
-            Task::Regress => Metric::Rmse,
+        let costs = self.costs.map(|c| check_costs(c, data)).transpose()?;
+        let metric = self.metric.unwrap_or(match (task, costs) {
+            (Task::Classify, Some(_)) => Metric::ExpectedCost,
+            (Task::Classify, None) => Metric::Accuracy,
+            (Task::Regress, _) => Metric::Rmse,
         });
         if metric.task() != task {
             return Err(spec_error("metric", format!("{} scores {} targets, this target is {task}", metric.as_str(), metric.task())));
+        }
+        if metric == Metric::ExpectedCost && costs.is_none() {
+            return Err(spec_error("metric", "expected_cost needs the costs of a false alarm and of a miss (costs.false_alarm, costs.miss)"));
         }
         let criteria = dedup_by(if self.criteria.is_empty() {
             vec![match task {
@@ -366,12 +380,35 @@ impl SweepSpec {
                 }
             }
         }
-        let checked = CheckedSpec { spec: self.clone(), task, metric, folds, keys, criteria, class_weights, min_leaf_rows, max_depth, min_split_rows, max_leaves, min_gain, prune_alpha, splits, outer };
+        let checked = CheckedSpec { spec: self.clone(), task, metric, folds, keys, criteria, class_weights, min_leaf_rows, max_depth, min_split_rows, max_leaves, min_gain, prune_alpha, splits, outer, costs };
         Ok(checked)
     }
 }
 
+/// Decision costs are for two-class targets, with usable numbers; the field at fault named.
+fn check_costs(c: Costs, data: &Dataset) -> Result<Costs, SpecError> {
+    match &data.target {
+        crate::data::Target::Classes { labels, .. } if labels.len() == 2 => {}
+        crate::data::Target::Classes { labels, .. } => {
+            return Err(spec_error("costs", format!("decision costs need a target of two classes, '{}' has {}", data.target_name, labels.len())));
+        }
+        crate::data::Target::Values(_) => return Err(spec_error("costs", format!("decision costs need a classify target of two classes, '{}' is regress", data.target_name))),
+    }
+    Costs::new(c.false_alarm, c.miss).map_err(|e| match e {
+        CostError::NotFiniteNonNegative => {
+            let (field, x) = if Costs::new(c.false_alarm, 1.0).is_err() { ("costs.false_alarm", c.false_alarm) } else { ("costs.miss", c.miss) };
+            spec_error(field, format!("{e}, got {x}"))
+        }
+        CostError::BothZero => spec_error("costs", e.to_string()),
+    })
+}
+
 impl CheckedSpec {
+    /// The metric with the costs it may need.
+    pub fn scoring(&self) -> Scoring {
+        Scoring { metric: self.metric, costs: self.costs }
+    }
+
     /// Combinations of the four stopping limits other than `prune_alpha`.
     pub fn stopping_count(&self) -> usize {
         self.max_depth.len() * self.min_split_rows.len() * self.max_leaves.len() * self.min_gain.len()

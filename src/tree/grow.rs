@@ -716,6 +716,7 @@ impl<'p> Grower<'p> {
             class_totals,
             total_weight: self.total_weight,
             options: self.options,
+            decision: None,
         };
         (tree, new_id)
     }
