@@ -415,6 +415,19 @@ mod tests {
     }
 
     #[test]
+    fn a_decision_survives_a_round_trip_and_old_files_have_none() {
+        let mut tree = classify_tree();
+        assert_eq!(from_json(&to_json(&tree)).unwrap().decision, None);
+        assert!(!to_json(&tree).contains("decision"));
+        tree.decision = Some(Decision { threshold: 0.16666666666666666, false_alarm: 1.0, miss: 5.0 });
+        let text = to_json(&tree);
+        assert_eq!(from_json(&text).unwrap(), tree);
+        // A threshold that is not a number, costs that are not usable: refused.
+        let bad = text.replace("\"miss\": 5.0", "\"miss\": -5.0");
+        assert!(from_json(&bad).unwrap_err().contains("decision"), "{bad}");
+    }
+
+    #[test]
     fn files_without_the_pair_still_load() {
         for tree in [classify_tree(), regress_tree(), hand_tree()] {
             let old = without_pairs(&to_json(&tree));

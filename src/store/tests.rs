@@ -104,6 +104,7 @@ fn full_spec(seed: u64) -> SweepSpec {
         max_settings: Some(5000),
         splitter: Splitter::Binned,
         outer: Some(FoldPlan { scheme: FoldScheme::Forward { column: "day".into() }, k: 3, repeats: 1 }),
+        costs: Some(crate::sweep::costs::Costs { false_alarm: 1.5, miss: 4.0 }),
     }
 }
 

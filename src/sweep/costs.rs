@@ -197,4 +197,69 @@ mod tests {
             }
         }
     }
+
+    /// breast_cancer from tests/data (sources in tests/data/SOURCES.md): 569 rows, 2 classes.
+    fn breast_cancer() -> crate::data::Dataset {
+        let path = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/data/breast_cancer.csv");
+        crate::data::csv::read_dataset(std::fs::File::open(path).unwrap(), &crate::data::csv::CsvOptions::new("target")).unwrap()
+    }
+
+    fn swept(costs: Option<Costs>) -> (Plan, super::super::SweepResult) {
+        let spec = super::super::SweepSpec {
+            max_depth: Some(super::super::Range::Values(vec![Some(1.0), Some(3.0), Some(5.0)])),
+            min_leaf_rows: Some(super::super::Range::Values(vec![Some(1.0), Some(10.0)])),
+            seed: 3,
+            costs,
+            ..Default::default()
+        };
+        super::super::sweep(&breast_cancer(), &spec, &|_, _| super::super::Flow::Continue, &Default::default()).unwrap()
+    }
+
+    #[test]
+    fn the_refit_keeps_the_threshold_searched_on_pooled_validation_predictions() {
+        let costs = Costs::new(1.0, 5.0).unwrap();
+        let (plan, result) = swept(Some(costs));
+        assert_eq!(plan.spec.metric, super::super::Metric::ExpectedCost, "costs make expected_cost the default metric");
+        let setting = &result.scores[result.picked].setting;
+        let d = result.model.as_ref().unwrap().decision.expect("a refit under costs has a decision");
+        assert_eq!((d.false_alarm, d.miss), (1.0, 5.0));
+        // Pool the validation predictions again by hand: each fold's tree on its training
+        // rows, class-1 shares of its validation rows.
+        let checked = setting.options.check(plan.data.task()).unwrap();
+        let Target::Classes { codes, .. } = &plan.data.target else { unreachable!() };
+        let (mut truth, mut p1) = (Vec::new(), Vec::new());
+        for fold in &plan.folds.splits {
+            let tree = fit(&TrainSet { rows: Some(&fold.train), ..TrainSet::of(&plan.data) }, &checked).unwrap();
+            for &r in &fold.valid {
+                truth.push(codes[r as usize] == 1);
+                p1.push(tree.predict_row(&plan.data.frame, r as usize)[1]);
+            }
+        }
+        assert_eq!(truth.len(), plan.data.rows());
+        // Brute force: no threshold on a fine grid, and no pooled share, costs less.
+        let chosen = costs.expected_cost(&truth, &p1, d.threshold);
+        for t in (0..=2000).map(|i| i as f64 / 2000.0).chain(p1.iter().copied()) {
+            assert!(costs.expected_cost(&truth, &p1, t) >= chosen, "threshold {t} beats the stored {}", d.threshold);
+        }
+        // The check value: the Bayes threshold 1/6 costs at least as much on these rows.
+        assert_eq!(costs.bayes_threshold(), 1.0 / 6.0);
+        assert!(costs.expected_cost(&truth, &p1, costs.bayes_threshold()) >= chosen);
+        assert_ne!(d.threshold, 0.5, "asymmetric costs move the threshold off one half");
+        // The picked setting's validation score is expected_cost at the Bayes threshold,
+        // fold by fold: the pooled cost at the Bayes threshold is their row-weighted mean.
+        let score = &result.scores[result.picked];
+        let weighted: f64 = plan.folds.splits.iter().zip(&score.fold_scores).map(|(f, s)| s * f.valid.len() as f64).sum::<f64>() / truth.len() as f64;
+        assert!((weighted - costs.expected_cost(&truth, &p1, costs.bayes_threshold())).abs() < 1e-12);
+        // Predictions follow the stored threshold.
+        let model = result.model.as_ref().unwrap();
+        for leaf in model.leaves() {
+            assert_eq!(model.leaf_class(leaf), (model.value(leaf as usize)[1] >= d.threshold) as u32);
+        }
+    }
+
+    #[test]
+    fn without_costs_the_refit_has_no_decision() {
+        let (_, result) = swept(None);
+        assert_eq!(result.model.unwrap().decision, None);
+    }
 }

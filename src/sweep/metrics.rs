@@ -355,4 +355,24 @@ mod tests {
         // MAE of the same: 4/4.
         assert_eq!(rows::values(Metric::Mae, &[1.0, 2.0, 3.0, 4.0], &[0.0, 3.0, 1.0, 4.0]), 1.0);
     }
+
+    #[test]
+    fn expected_cost_worked_by_hand() {
+        // A false alarm costs 1, a miss 4: decide class 1 when p1 >= 1/5 (Elkan, 2001).
+        let costs = Some(Costs::new(1.0, 4.0).unwrap());
+        let scoring = Scoring { metric: Metric::ExpectedCost, costs };
+        // Rows (truth, p1): (0, 0.1) right; (1, 0.15) a miss; (0, 0.3) a false alarm;
+        // (1, 0.3) right; (0, 0.2) a false alarm (at the threshold decides 1); (1, 0.9) right.
+        let truth = [0, 1, 0, 1, 0, 1];
+        let p1 = [0.1, 0.15, 0.3, 0.3, 0.2, 0.9];
+        let proba: Vec<f64> = p1.iter().flat_map(|&p| [1.0 - p, p]).collect();
+        // (1 · 2 false alarms + 4 · 1 miss) / 6 rows = 1.
+        assert_eq!(rows::classes(scoring, 2, &truth, &proba), 1.0);
+        // The same rows as groups (one group per distinct p1) give the same value.
+        let counts = [1.0, 0.0, 0.0, 1.0, 1.0, 1.0, 1.0, 0.0, 0.0, 1.0];
+        let grouped = [0.9, 0.1, 0.85, 0.15, 0.7, 0.3, 0.8, 0.2, 0.1, 0.9];
+        assert_eq!(score_classes(scoring, &ClassGroups { k: 2, counts: &counts, proba: &grouped }), 1.0);
+        assert!(!Metric::ExpectedCost.higher_is_better());
+        assert_eq!(Metric::parse("expected_cost"), Some(Metric::ExpectedCost));
+    }
 }

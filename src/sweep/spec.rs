@@ -801,4 +801,27 @@ mod tests {
         let ok = SweepSpec { folds: plan(4, 2), min_leaf_rows: keys, ..Default::default() }.check_with(&data(Task::Classify), &caps).unwrap();
         assert_eq!((ok.splits, ok.keys.len()), (8, 2));
     }
+
+    #[test]
+    fn costs_are_refused_where_they_cannot_apply() {
+        let costs = |false_alarm, miss| Some(Costs { false_alarm, miss });
+        let t = Task::Classify;
+        assert_eq!(field_of(SweepSpec { costs: costs(1.0, 5.0), ..Default::default() }, Task::Regress), "costs");
+        assert_eq!(field_of(SweepSpec { costs: costs(-1.0, 5.0), ..Default::default() }, t), "costs.false_alarm");
+        assert_eq!(field_of(SweepSpec { costs: costs(f64::NAN, 5.0), ..Default::default() }, t), "costs.false_alarm");
+        assert_eq!(field_of(SweepSpec { costs: costs(1.0, f64::INFINITY), ..Default::default() }, t), "costs.miss");
+        assert_eq!(field_of(SweepSpec { costs: costs(0.0, 0.0), ..Default::default() }, t), "costs");
+        assert_eq!(field_of(SweepSpec { metric: Some(Metric::ExpectedCost), ..Default::default() }, t), "metric");
+        // Three classes.
+        let mut three = data(t);
+        three.target = Target::Classes { codes: (0..20).map(|i| (i % 3) as u32).collect(), labels: vec!["a".into(), "b".into(), "c".into()] };
+        let e = SweepSpec { costs: costs(1.0, 5.0), ..Default::default() }.check(&three).unwrap_err();
+        assert_eq!(e.field, "costs");
+        assert!(e.message.contains("has 3"), "{e}");
+        // Costs make expected_cost the default metric; another metric may be named.
+        let c = SweepSpec { costs: costs(1.0, 5.0), ..Default::default() }.check(&data(t)).unwrap();
+        assert_eq!((c.metric, c.costs), (Metric::ExpectedCost, costs(1.0, 5.0)));
+        let c = SweepSpec { costs: costs(0.0, 5.0), metric: Some(Metric::RocAuc), ..Default::default() }.check(&data(t)).unwrap();
+        assert_eq!(c.scoring(), Scoring { metric: Metric::RocAuc, costs: costs(0.0, 5.0) });
+    }
 }
