@@ -6,7 +6,8 @@
 use std::sync::atomic::AtomicBool;
 
 use pollard::data::{Column, Dataset, Feature, Frame, Target, Task, MISSING_CODE};
-use pollard::sweep::metrics::rows;
+use pollard::sweep::costs::Costs;
+use pollard::sweep::metrics::{rows, Scoring};
 use pollard::sweep::{self, FoldPlan, FoldScheme, Flow, Metric, PickRule, Range, SweepSpec};
 use pollard::tree::{fit, ClassWeight, Criterion, Predictions, TrainSet};
 
@@ -88,6 +89,7 @@ fn values(g: &mut Gen, options: &[Option<f64>]) -> Option<Range> {
 
 fn spec(g: &mut Gen, task: Task, plan: FoldPlan) -> SweepSpec {
     let metrics: Vec<Metric> = Metric::ALL.into_iter().filter(|m| m.task() == task).collect();
+    let metric = g.pick(&metrics);
     // Sometimes score every α on the pruning path instead of listed values.
     let path_mode = g.chance(0.15);
     SweepSpec {
@@ -101,7 +103,9 @@ fn spec(g: &mut Gen, task: Task, plan: FoldPlan) -> SweepSpec {
         prune_alpha: if path_mode { None } else { values(g, &[Some(0.0), Some(0.005), Some(0.02), Some(0.1)]) },
         prune_path: path_mode,
         folds: Some(plan),
-        metric: Some(g.pick(&metrics)),
+        metric: Some(metric),
+        // expected_cost needs costs (a spec on three classes is refused and is no case).
+        costs: (metric == Metric::ExpectedCost).then(|| Costs { false_alarm: g.below(4) as f64 + 0.5, miss: g.below(6) as f64 }),
         pick: if g.chance(0.5) { PickRule::Highest } else { PickRule::OneSe },
         seed: g.next(),
         fit_final: false,
@@ -124,11 +128,11 @@ fn close(metric: Metric, a: f64, b: f64) -> bool {
 }
 
 /// Row-by-row score of `tree` on `rows` of `data`.
-fn row_score(metric: Metric, tree: &pollard::tree::Tree, data: &Dataset, rows_: &[u32]) -> f64 {
+fn row_score(metric: Scoring, tree: &pollard::tree::Tree, data: &Dataset, rows_: &[u32]) -> f64 {
     let sub = data.take_rows(rows_);
     match (tree.predict(&sub.frame), &sub.target) {
         (Predictions::Classes { probabilities, .. }, Target::Classes { codes, labels }) => rows::classes(metric, labels.len(), codes, &probabilities),
-        (Predictions::Values(p), Target::Values(y)) => rows::values(metric, y, &p),
+        (Predictions::Values(p), Target::Values(y)) => rows::values(metric.metric, y, &p),
         _ => unreachable!(),
     }
 }
@@ -140,6 +144,7 @@ fn shared_growth_equals_fitting_each_setting() {
     let mut compared = 0usize;
     let mut per_scheme = std::collections::BTreeMap::new();
     let mut path_cases = 0;
+    let mut per_metric = std::collections::BTreeMap::new();
     while cases < 240 {
         let task = if g.chance(0.5) { Task::Classify } else { Task::Regress };
         let data = dataset(&mut g, task);
@@ -166,13 +171,14 @@ fn shared_growth_equals_fitting_each_setting() {
         let units = sweep::run(&plan, Vec::new(), &|_, _| Flow::Continue, &cancel).unwrap();
         let result = sweep::summarize(&plan, &units);
         let metric = plan.spec.metric;
+        *per_metric.entry(metric.as_str()).or_insert(0) += 1;
         for score in &result.scores {
             let options = score.setting.options.check(task).unwrap();
             for (si, split) in plan.folds.splits.iter().enumerate() {
                 let set = TrainSet { frame: &plan.data.frame, target: &plan.data.target, target_name: "y", rows: Some(&split.train), weights: None };
                 let tree = fit(&set, &options).unwrap();
-                let valid = row_score(metric, &tree, &plan.data, &split.valid);
-                let train = row_score(metric, &tree, &plan.data, &split.train);
+                let valid = row_score(plan.spec.scoring(), &tree, &plan.data, &split.valid);
+                let train = row_score(plan.spec.scoring(), &tree, &plan.data, &split.train);
                 let ctx = || format!("case {cases}, {name}, metric {metric}, split {si}, setting {:?}", score.setting.options);
                 assert!(close(metric, score.fold_scores[si], valid), "validation {} vs refit {valid}: {}", score.fold_scores[si], ctx());
                 let unit = units.iter().find(|u| plan.units[u.unit].0 == si && u.scores.iter().any(|(s, _)| plan.settings[*s] == score.setting)).unwrap();
@@ -186,7 +192,8 @@ fn shared_growth_equals_fitting_each_setting() {
         *per_scheme.entry(name).or_insert(0) += 1;
         cases += 1;
     }
-    eprintln!("sweep_equivalence: {cases} cases ({path_cases} in pruning-path mode), {compared} setting × split scores compared; cases per fold plan: {per_scheme:?}");
+    eprintln!("sweep_equivalence: {cases} cases ({path_cases} in pruning-path mode), {compared} setting × split scores compared; cases per fold plan: {per_scheme:?}; per metric: {per_metric:?}");
+    assert!(per_metric.get("expected_cost").is_some_and(|&n| n >= 5), "expected_cost must be exercised: {per_metric:?}");
     assert!(path_cases >= 10, "pruning-path mode must be exercised");
     assert!(per_scheme.len() >= 7, "every fold plan must be exercised: {per_scheme:?}");
 }

@@ -385,22 +385,20 @@ impl SweepSpec {
     }
 }
 
-/// Decision costs are for two-class targets, with usable numbers; the field at fault named.
+/// Decision costs must be usable numbers, for a two-class target; the field at fault named.
 fn check_costs(c: Costs, data: &Dataset) -> Result<Costs, SpecError> {
-    match &data.target {
-        crate::data::Target::Classes { labels, .. } if labels.len() == 2 => {}
-        crate::data::Target::Classes { labels, .. } => {
-            return Err(spec_error("costs", format!("decision costs need a target of two classes, '{}' has {}", data.target_name, labels.len())));
-        }
-        crate::data::Target::Values(_) => return Err(spec_error("costs", format!("decision costs need a classify target of two classes, '{}' is regress", data.target_name))),
-    }
-    Costs::new(c.false_alarm, c.miss).map_err(|e| match e {
+    let costs = Costs::new(c.false_alarm, c.miss).map_err(|e| match e {
         CostError::NotFiniteNonNegative => {
             let (field, x) = if Costs::new(c.false_alarm, 1.0).is_err() { ("costs.false_alarm", c.false_alarm) } else { ("costs.miss", c.miss) };
             spec_error(field, format!("{e}, got {x}"))
         }
         CostError::BothZero => spec_error("costs", e.to_string()),
-    })
+    })?;
+    match &data.target {
+        crate::data::Target::Classes { labels, .. } if labels.len() == 2 => Ok(costs),
+        crate::data::Target::Classes { labels, .. } => Err(spec_error("costs", format!("decision costs need a target of two classes, '{}' has {}", data.target_name, labels.len()))),
+        crate::data::Target::Values(_) => Err(spec_error("costs", format!("decision costs need a classify target of two classes, '{}' is regress", data.target_name))),
+    }
 }
 
 impl CheckedSpec {
