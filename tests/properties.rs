@@ -14,9 +14,9 @@ use std::ops::RangeInclusive;
 
 use pollard::data::{Column, Feature, Frame, Target, Task, MISSING_CODE};
 use pollard::export::{from_json, to_json};
-use pollard::tree::grow::fit_with;
+use pollard::tree::grow::{fit_shared_with, fit_with};
 use pollard::tree::{
-    fit, prune, pruning_path, ClassWeight, Criterion, FitOptions, Limits, Predictions, SplitRule, Splitter, TrainSet, Tree,
+    fit, fit_with_leaves, prune, pruning_path, ClassWeight, Criterion, FitOptions, Limits, Predictions, SplitRule, Splitter, TrainSet, Tree,
 };
 use proptest::collection::vec;
 use proptest::option;
@@ -936,6 +936,58 @@ proptest! {
                 }
                 prop_assert_eq!(at, leaf, "the path does not end in the leaf");
             }
+        }
+    }
+}
+
+proptest! {
+    #![proptest_config(config(256))]
+
+    /// Trees grown together for several `min_leaf_rows` values (one scan per node and feature
+    /// for all of them, sharing nodes while their splits agree) are each exactly the tree, and
+    /// the training rows' leaves, of a fit under that value alone: every split, threshold,
+    /// gain, rank and value, so ties are broken the same way. Values in any order, repeats
+    /// included; sometimes sample weights, the binned splitter, a row subset, up to 200 rows;
+    /// parting trees copy the node's sorted rows, or take turns on them and restore their order.
+    #[test]
+    fn growing_together_equals_growing_each_alone(
+        case in case_from(data_in(1..=200, 1..=4), limits(), true),
+        values in vec(prop_oneof![1u32..=6, Just(8), Just(13), Just(20), Just(50)], 1..=8),
+        binned in any::<bool>(),
+        subset in any::<bool>(),
+        caps in prop::bool::weighted(0.2),
+        copy_entries in prop_oneof![Just(usize::MAX), Just(0usize), 0usize..400],
+    ) {
+        let mut options = FitOptions { splitter: if binned { Splitter::Binned } else { Splitter::Exact }, ..case.options.clone() };
+        if !caps {
+            // Leaf caps and pruning fit each value alone; mostly test the growth together.
+            options.limits.max_leaves = None;
+            options.limits.prune_alpha = 0.0;
+        }
+        let checked = options.check(case.task()).unwrap();
+        let rows: Vec<u32> = (0..case.data.frame.rows as u32).filter(|r| !subset || r % 3 != 1).collect();
+        let mut set = TrainSet::new(&case.data.frame, &case.data.target);
+        set.weights = case.weights.as_deref();
+        set.rows = Some(&rows);
+        if rows.is_empty() {
+            return Ok(());
+        }
+        // Parts copy a node's sorted rows, or (copy_entries 0) take turns on them in place.
+        let together = match fit_shared_with(&set, &checked, &values, copy_entries) {
+            Ok(t) => t,
+            // Only when every row has weight 0: each alone fails the same way.
+            Err(e) => {
+                prop_assert_eq!(Err(e), fit_with_leaves(&set, &checked).map(|_| ()));
+                return Ok(());
+            }
+        };
+        prop_assert_eq!(together.len(), values.len());
+        for (&m, got) in values.iter().zip(&together) {
+            let mut alone = options.clone();
+            alone.limits.min_leaf_rows = m;
+            let want = fit_with_leaves(&set, &alone.check(case.task()).unwrap()).unwrap();
+            prop_assert_eq!(&got.0, &want.0, "min_leaf_rows {} of {:?}", m, values);
+            prop_assert_eq!(&got.1, &want.1, "leaves, min_leaf_rows {}", m);
         }
     }
 }

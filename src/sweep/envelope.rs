@@ -11,7 +11,7 @@
 
 use super::metrics::{score_classes, score_values, ClassGroups, Scoring, ValueGroup};
 use crate::data::{Dataset, Target};
-use crate::tree::{fit_with_leaves, pruning_path_of, FitError, FitOptions, TrainSet, Tree, NO_NODE};
+use crate::tree::{fit_shared, fit_with_leaves, pruning_path_of, FitError, FitOptions, TrainSet, Tree, NO_NODE};
 
 /// Scores of one setting on one fold.
 #[derive(Clone, Debug, PartialEq)]
@@ -145,6 +145,23 @@ impl Envelope {
         let set = TrainSet { frame: &data.frame, target: &data.target, target_name: &data.target_name, rows: Some(train), weights: None };
         // The grower knows each training row's leaf; only the validation rows are routed.
         let (tree, train_leaves) = fit_with_leaves(&set, &checked)?;
+        Ok(Envelope::of(tree, &train_leaves, data, train, valid))
+    }
+
+    /// The envelopes of one fold for each of several `min_leaf_rows` values (in their
+    /// order), the other options as `options` gives them: grown together, so that one scan
+    /// per node and feature serves every value, and each equal to [`Envelope::grow`] under
+    /// its value. Each envelope's rows are aggregated when the iterator reaches it, so a
+    /// caller that scores and drops them one by one holds one set of aggregates at a time.
+    pub fn grow_shared<'a>(data: &'a Dataset, options: &FitOptions, min_leaf_rows: &[u32], train: &'a [u32], valid: &'a [u32]) -> Result<impl Iterator<Item = Envelope> + 'a, FitError> {
+        let checked = options.check(data.task())?;
+        let set = TrainSet { frame: &data.frame, target: &data.target, target_name: &data.target_name, rows: Some(train), weights: None };
+        let grown = fit_shared(&set, &checked, min_leaf_rows)?;
+        Ok(grown.into_iter().map(move |(tree, train_leaves)| Envelope::of(tree, &train_leaves, data, train, valid)))
+    }
+
+    /// The envelope of a grown tree T*, given the leaf of each training row.
+    fn of(tree: Tree, train_leaves: &[u32], data: &Dataset, train: &[u32], valid: &[u32]) -> Envelope {
         let n = tree.nodes.len();
         let mut parent = vec![NO_NODE; n];
         for (i, node) in tree.nodes.iter().enumerate() {
@@ -161,8 +178,8 @@ impl Envelope {
             slot[l as usize] = j as u32;
         }
         let valid_rows = LeafRows::build(&tree, &slot, leaves.len(), data, valid, None);
-        let train_rows = LeafRows::build(&tree, &slot, leaves.len(), data, train, Some(&train_leaves));
-        Ok(Envelope { tree, parent, by_rank, leaves, valid: valid_rows, train: train_rows })
+        let train_rows = LeafRows::build(&tree, &slot, leaves.len(), data, train, Some(train_leaves));
+        Envelope { tree, parent, by_rank, leaves, valid: valid_rows, train: train_rows }
     }
 
     /// Which splits of T* a stopping setting keeps.

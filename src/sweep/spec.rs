@@ -112,6 +112,29 @@ pub struct SweepSpec {
     pub costs: Option<Costs>,
 }
 
+impl SweepSpec {
+    /// The spec as the text a request digest is taken of: every field that existed when
+    /// digests were first taken, in the form they were first written in, then each field
+    /// added since, only when it is not its default. So a retry of a request stored by an
+    /// older build still matches, and requests that differ in any field differ. The struct
+    /// is taken apart without `..`: a new field does not compile until it is added here.
+    pub fn digest_text(&self) -> String {
+        let SweepSpec { task, criteria, class_weights, max_depth, min_split_rows, min_leaf_rows, max_leaves, min_gain, prune_alpha, prune_path, folds, metric, pick, seed, fit_final, max_settings, splitter, outer, costs } = self;
+        let mut text = format!(
+            "SweepSpec {{ task: {task:?}, criteria: {criteria:?}, class_weights: {class_weights:?}, max_depth: {max_depth:?}, min_split_rows: {min_split_rows:?}, min_leaf_rows: {min_leaf_rows:?}, max_leaves: {max_leaves:?}, min_gain: {min_gain:?}, prune_alpha: {prune_alpha:?}, prune_path: {prune_path:?}, folds: {folds:?}, metric: {metric:?}, pick: {pick:?}, seed: {seed:?}, fit_final: {fit_final:?}, max_settings: {max_settings:?}, splitter: {splitter:?}"
+        );
+        // Added later: written only when set.
+        if let Some(o) = outer {
+            text.push_str(&format!(", outer: Some({o:?})"));
+        }
+        if let Some(c) = costs {
+            text.push_str(&format!(", costs: Some({c:?})"));
+        }
+        text.push_str(" }");
+        text
+    }
+}
+
 /// Default cap on the number of settings in one sweep.
 pub const DEFAULT_MAX_SETTINGS: usize = 100_000;
 
@@ -656,6 +679,35 @@ mod tests {
 
     fn field_of(spec: SweepSpec, task: Task) -> String {
         spec.check(&data(task)).unwrap_err().field
+    }
+
+    /// The digest text of a spec without the fields added later is the text digests were
+    /// first taken of (the spec's derived `Debug`), so stored digests still match; a field
+    /// added later is written as `Debug` writes it once it is set. The hex digest of one spec
+    /// is pinned: a change to how any part is written breaks retries of stored requests.
+    #[test]
+    fn digest_text_is_the_first_text_and_pinned() {
+        use sha2::{Digest, Sha256};
+        let plain = SweepSpec {
+            criteria: vec![Criterion::Gini, Criterion::Entropy],
+            max_depth: Some(Range::Values(vec![Some(2.0), None])),
+            min_leaf_rows: Some(Range::Span { from: 1.0, to: 9.0, step: 2.0 }),
+            folds: Some(FoldPlan { scheme: FoldScheme::Stratified, k: 5, repeats: 2 }),
+            pick: PickRule::Within(0.01),
+            seed: 7,
+            ..SweepSpec::default()
+        };
+        // The derived Debug without the fields added later, where they hold their defaults.
+        let without_later = |s: &SweepSpec| format!("{s:?}").replacen(", outer: None", "", 1).replacen(", costs: None", "", 1);
+        assert_eq!(plain.digest_text(), without_later(&plain));
+        let nested = SweepSpec { outer: Some(FoldPlan { scheme: FoldScheme::Shuffled, k: 3, repeats: 1 }), ..plain.clone() };
+        assert_eq!(nested.digest_text(), without_later(&nested));
+        assert_ne!(nested.digest_text(), plain.digest_text());
+        let costed = SweepSpec { costs: Some(Costs { false_alarm: 1.0, miss: 5.0 }), ..plain.clone() };
+        assert_eq!(costed.digest_text(), without_later(&costed));
+        assert_ne!(costed.digest_text(), plain.digest_text());
+        let hex: String = Sha256::digest(plain.digest_text().as_bytes()).iter().map(|b| format!("{b:02x}")).collect();
+        assert_eq!(hex, "8d8a89ba73e1ebeb4ee1a0af271375a7f00c1e1ca4c815e90b9101ca6aeaf44b", "the pinned digest of this spec (taken when the digest text was made explicit)");
     }
 
     #[test]

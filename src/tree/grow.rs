@@ -23,6 +23,12 @@ use crate::data::{Column, Frame, Target, Task, MISSING_CODE};
 /// parallel; below it the thread hand-off costs more than it saves.
 const PARALLEL_WORK: usize = 1 << 17;
 
+/// Trees grown together that part at a node of at most this many (rows × features) sorted
+/// entries give each part but the last its own copy of them (8 MiB at most); at a bigger
+/// node the parts take turns on the rows in place, and the sorted order is restored after
+/// each. So a shared growth holds at most one copy of this size per further tree.
+pub(crate) const COPY_ENTRIES: usize = 1 << 20;
+
 /// What one fit reads: a frame, its target, and optionally a row subset and weights.
 #[derive(Clone, Copy)]
 pub struct TrainSet<'a> {
@@ -66,19 +72,50 @@ pub fn fit_with_leaves(set: &TrainSet, options: &CheckedOptions) -> Result<(Tree
     let prepared = Prepared::new(set, options)?;
     let (tree, leaf_of) = Grower::new(&prepared, options, true).grow(true);
     let tree = pruned(tree, options);
-    let mut leaves = vec![NO_NODE; set.rows.map_or(set.frame.rows, <[u32]>::len)];
     if options.limits.prune_alpha > 0.0 {
         // Pruning renumbers the nodes: route the rows that took part through the pruned tree.
+        let mut leaves = vec![NO_NODE; set.rows.map_or(set.frame.rows, <[u32]>::len)];
         for &j in &prepared.positions {
             let r = set.rows.map_or(j, |rows| rows[j as usize]);
             leaves[j as usize] = tree.apply_row(set.frame, r as usize);
         }
-    } else {
-        for (&j, &leaf) in prepared.positions.iter().zip(&leaf_of) {
-            leaves[j as usize] = leaf;
-        }
+        return Ok((tree, leaves));
     }
-    Ok((tree, leaves))
+    Ok((tree, prepared.by_position(set, &leaf_of)))
+}
+
+/// [`fit_with_leaves`] for each of several `min_leaf_rows` values at once, the other options
+/// as `options` gives them: one answer per value of `min_leaf_rows`, in its order, each equal
+/// to `fit_with_leaves` under that value.
+///
+/// The trees grow together: they share a node while its best split is the same for all of
+/// them, and one scan per node and feature finds the best split of every value (see
+/// `split::Bests`). Where their splits differ they part, and each part grows on from there on
+/// its own (on its own copy of the node's sorted rows). Growth with a leaf cap or pruning fits
+/// each value alone.
+pub fn fit_shared(set: &TrainSet, options: &CheckedOptions, min_leaf_rows: &[u32]) -> Result<Vec<(Tree, Vec<u32>)>, FitError> {
+    fit_shared_with(set, options, min_leaf_rows, COPY_ENTRIES)
+}
+
+/// As [`fit_shared`], with parts copying the sorted rows of nodes of at most `copy_entries`
+/// entries (see [`COPY_ENTRIES`]); for the test that copying and restoring give the same trees.
+pub fn fit_shared_with(set: &TrainSet, options: &CheckedOptions, min_leaf_rows: &[u32], copy_entries: usize) -> Result<Vec<(Tree, Vec<u32>)>, FitError> {
+    let per_value = |m: u32| {
+        let mut o = options.to_options();
+        o.limits.min_leaf_rows = m;
+        o.check(options.task)
+    };
+    let mut values = min_leaf_rows.to_vec();
+    values.sort_unstable();
+    values.dedup();
+    if values.len() < 2 || options.limits.max_leaves.is_some() || options.limits.prune_alpha > 0.0 {
+        return min_leaf_rows.iter().map(|&m| fit_with_leaves(set, &per_value(m)?)).collect();
+    }
+    let checked = values.iter().map(|&m| per_value(m)).collect::<Result<Vec<_>, _>>()?;
+    let prepared = Prepared::new(set, options)?;
+    let grown = Grower::new(&prepared, options, true).grow_shared(&checked, copy_entries);
+    let grown: Vec<(Tree, Vec<u32>)> = grown.into_iter().map(|(tree, leaf_of)| (tree, prepared.by_position(set, &leaf_of))).collect();
+    Ok(min_leaf_rows.iter().map(|m| grown[values.binary_search(m).expect("every value grown")].clone()).collect())
 }
 
 fn pruned(tree: Tree, options: &CheckedOptions) -> Tree {
@@ -178,6 +215,16 @@ impl<'a> Prepared<'a> {
         Rows { class: &self.class, y: &self.y, w: &self.w, wy: &self.wy, k: self.k, unit: self.unit }
     }
 
+    /// Leaves of fit-local rows (`leaf_of`) as one entry per row of `set.rows` (per frame row
+    /// when `None`), [`NO_NODE`] for rows that took no part.
+    fn by_position(&self, set: &TrainSet, leaf_of: &[u32]) -> Vec<u32> {
+        let mut leaves = vec![NO_NODE; set.rows.map_or(set.frame.rows, <[u32]>::len)];
+        for (&j, &leaf) in self.positions.iter().zip(leaf_of) {
+            leaves[j as usize] = leaf;
+        }
+        leaves
+    }
+
     /// Each feature's fit-local rows sorted by value, missing cells last; ties by row.
     ///
     /// A stable radix sort (radsort) of the entries, made in row order, by the value's bits
@@ -256,12 +303,57 @@ struct NodeStats {
 }
 
 /// The split a node will take if it is expanded.
+#[derive(Clone)]
 struct Pending {
     split: Split,
     gain: f64,
     n_left: u32,
     left: NodeStats,
     right: NodeStats,
+}
+
+/// The nodes of one tree in creation order, each with its statistics and the logical start of
+/// its rows in the sorted columns.
+#[derive(Default)]
+struct Arena {
+    nodes: Vec<Node>,
+    stats: Vec<NodeStats>,
+    starts: Vec<u32>,
+}
+
+impl Arena {
+    fn push(&mut self, depth: u32, start: u32, s: NodeStats) -> u32 {
+        let id = self.nodes.len() as u32;
+        self.nodes.push(Node {
+            depth,
+            rows: s.totals.n,
+            weighted_rows: s.totals.w,
+            impurity: s.impurity,
+            gain: 0.0,
+            split: None,
+            left: NO_NODE,
+            right: NO_NODE,
+            rank: NO_NODE,
+        });
+        self.stats.push(s);
+        self.starts.push(start);
+        id
+    }
+
+    /// Splits node `id` by `p`: its left child starts where it does, its right child after
+    /// the left child's rows.
+    fn attach(&mut self, id: u32, p: Pending) -> (u32, u32) {
+        let depth = self.nodes[id as usize].depth + 1;
+        let start = self.starts[id as usize];
+        let l = self.push(depth, start, p.left);
+        let r = self.push(depth, start + p.n_left, p.right);
+        let node = &mut self.nodes[id as usize];
+        node.split = Some(p.split);
+        node.gain = p.gain;
+        node.left = l;
+        node.right = r;
+        (l, r)
+    }
 }
 
 struct Grower<'p> {
@@ -281,10 +373,12 @@ struct Grower<'p> {
     total_weight: f64,
     width: usize,
     levels: Vec<usize>,
-    // Output arena, in creation order.
-    nodes: Vec<Node>,
-    stats: Vec<NodeStats>,
-    starts: Vec<u32>,
+    /// Logical position of `sorted`'s first entry: 0, except while trees grown together
+    /// work on their own copy of one node's rows.
+    offset: u32,
+    /// See [`COPY_ENTRIES`].
+    copy_entries: usize,
+    arena: Arena,
 }
 
 /// Frontier entry of best-first growth: larger gain first, then shallower, then leftmost.
@@ -350,9 +444,9 @@ impl<'p> Grower<'p> {
             total_weight: 0.0,
             width,
             levels,
-            nodes: Vec::new(),
-            stats: Vec::new(),
-            starts: Vec::new(),
+            offset: 0,
+            copy_entries: COPY_ENTRIES,
+            arena: Arena::default(),
         }
     }
 
@@ -361,7 +455,7 @@ impl<'p> Grower<'p> {
         let n = self.prep.frame_rows.len() as u32;
         let root = self.stats_of((0..n).collect::<Vec<_>>().iter().copied());
         self.total_weight = root.totals.w;
-        self.push_node(0, 0, root);
+        self.arena.push(0, 0, root);
         let first = self.evaluate(0);
         match self.limits.max_leaves {
             None => {
@@ -371,7 +465,7 @@ impl<'p> Grower<'p> {
                 }
                 while let Some((id, end, p)) = stack.pop() {
                     let (l, r) = self.expand(id, end, p);
-                    for (child, child_end) in [(r, end), (l, self.starts[r as usize])] {
+                    for (child, child_end) in [(r, end), (l, self.arena.starts[r as usize])] {
                         if let Some(p) = self.evaluate(child) {
                             stack.push((child, child_end, p));
                         }
@@ -392,10 +486,10 @@ impl<'p> Grower<'p> {
                     let (id, end, p) = pending[top.id as usize].take().expect("frontier entry taken once");
                     budget -= 1;
                     let (l, r) = self.expand(id, end, p);
-                    for (child, child_end) in [(l, self.starts[r as usize]), (r, end)] {
+                    for (child, child_end) in [(l, self.arena.starts[r as usize]), (r, end)] {
                         if let Some(p) = self.evaluate(child) {
-                            let node = &self.nodes[child as usize];
-                            heap.push(Frontier { gain: p.gain, depth: node.depth, start: self.starts[child as usize], id: pending.len() as u32 });
+                            let node = &self.arena.nodes[child as usize];
+                            heap.push(Frontier { gain: p.gain, depth: node.depth, start: self.arena.starts[child as usize], id: pending.len() as u32 });
                             pending.push(Some((child, child_end, p)));
                         }
                     }
@@ -405,38 +499,18 @@ impl<'p> Grower<'p> {
         let mut leaf_of = Vec::new();
         if leaves {
             leaf_of = vec![NO_NODE; n as usize];
-            for (id, node) in self.nodes.iter().enumerate() {
+            for (id, node) in self.arena.nodes.iter().enumerate() {
                 if node.is_leaf() {
-                    let start = self.starts[id] as usize;
+                    let start = self.arena.starts[id] as usize;
                     for e in &self.sorted[0][start..start + node.rows as usize] {
                         leaf_of[e.row()] = id as u32;
                     }
                 }
             }
         }
-        let (tree, new_id) = self.finish();
-        for l in &mut leaf_of {
-            *l = new_id[*l as usize];
-        }
-        (tree, leaf_of)
-    }
-
-    fn push_node(&mut self, depth: u32, start: u32, s: NodeStats) -> u32 {
-        let id = self.nodes.len() as u32;
-        self.nodes.push(Node {
-            depth,
-            rows: s.totals.n,
-            weighted_rows: s.totals.w,
-            impurity: s.impurity,
-            gain: 0.0,
-            split: None,
-            left: NO_NODE,
-            right: NO_NODE,
-            rank: NO_NODE,
-        });
-        self.stats.push(s);
-        self.starts.push(start);
-        id
+        let arena = std::mem::take(&mut self.arena);
+        let options = self.options.clone();
+        self.finish(arena, options, leaf_of)
     }
 
     /// Totals and impurity of a set of fit-local rows.
@@ -473,23 +547,29 @@ impl<'p> Grower<'p> {
     /// Decides whether node `id` may split and, if so, finds its split and the children's
     /// statistics. `None` means the node stays a leaf.
     fn evaluate(&mut self, id: u32) -> Option<Pending> {
-        let node = &self.nodes[id as usize];
-        let s = self.stats[id as usize].clone();
-        let l = &self.limits;
+        let node = &self.arena.nodes[id as usize];
+        let s = self.arena.stats[id as usize].clone();
         let n = node.rows;
-        if l.max_depth.is_some_and(|d| node.depth >= d)
-            || n < l.min_split_rows
-            || n < 2 * l.min_leaf_rows
-            || s.impurity <= f64::EPSILON
-            || self.is_pure(&s)
-        {
+        if self.stops(node.depth, &s) || n < 2 * self.limits.min_leaf_rows {
             return None;
         }
-        let start = self.starts[id as usize] as usize;
+        let start = self.arena.starts[id as usize] as usize;
         let end = start + n as usize;
-        let best = self.search(start, end, &s.totals)?;
-        let (feature, fb) = best;
-        let mut split = self.make_split(feature, &fb);
+        let (feature, fb) = self.search(start, end, &s.totals)?;
+        self.pending(feature, &fb, start, end, &s)
+    }
+
+    /// Whether a node at `depth` with statistics `s` stays a leaf whatever its
+    /// `min_leaf_rows`.
+    fn stops(&self, depth: u32, s: &NodeStats) -> bool {
+        let l = &self.limits;
+        l.max_depth.is_some_and(|d| depth >= d) || s.totals.n < l.min_split_rows || s.impurity <= f64::EPSILON || self.is_pure(s)
+    }
+
+    /// The split `fb` of `feature` for the node whose rows are `[start, end)` of `sorted`,
+    /// with both children's statistics; `None` when its gain is below `min_gain`.
+    fn pending(&mut self, feature: usize, fb: &FeatureBest, start: usize, end: usize, s: &NodeStats) -> Option<Pending> {
+        let mut split = self.make_split(feature, fb);
         // Route the node's rows once to get both children's statistics.
         let seg = &self.sorted[feature][start..end];
         let mut left_rows = std::mem::take(&mut self.left_buf);
@@ -534,36 +614,54 @@ impl<'p> Grower<'p> {
     fn search(&mut self, start: usize, end: usize, totals: &Totals) -> Option<(usize, FeatureBest)> {
         let rows = self.prep.rows();
         let ctx = SearchCtx { rows: &rows, criterion: self.criterion, min_leaf_rows: self.limits.min_leaf_rows };
-        let one = |f: usize, s: &mut Scratch| {
-            let seg = &self.sorted[f][start..end];
+        let mut s = std::mem::take(&mut self.search_scratch);
+        let results = self.each_feature(start, end, &mut s, |f, seg, s| {
             if self.levels[f] > 0 {
                 ctx.categorical(seg, totals, s)
             } else {
                 ctx.numeric(seg, &self.edges[f], totals, s)
             }
-        };
-        let nf = self.sorted.len();
-        let mut best: Option<(usize, FeatureBest)> = None;
-        let mut offer = |f: usize, r: Option<FeatureBest>| {
-            if let Some(fb) = r {
-                if best.as_ref().is_none_or(|(_, b)| fb.proxy > b.proxy) {
-                    best = Some((f, fb));
-                }
-            }
-        };
-        if self.parallel && (end - start) * nf >= PARALLEL_WORK && nf > 1 {
-            let results: Vec<Option<FeatureBest>> = (0..nf).into_par_iter().map_init(Scratch::default, |s, f| one(f, s)).collect();
-            for (f, r) in results.into_iter().enumerate() {
-                offer(f, r);
-            }
-        } else {
-            let mut s = std::mem::take(&mut self.search_scratch);
-            for f in 0..nf {
-                offer(f, one(f, &mut s));
-            }
-            self.search_scratch = s;
+        });
+        self.search_scratch = s;
+        let mut best = None;
+        for (f, r) in results.into_iter().enumerate() {
+            offer_feature(&mut best, f, r);
         }
         best
+    }
+
+    /// [`Self::search`] for each of the ascending `min_leaf_rows` values `msl`: one scan per
+    /// feature serves them all.
+    fn search_keys(&mut self, start: usize, end: usize, totals: &Totals, msl: &[u32]) -> Vec<Option<(usize, FeatureBest)>> {
+        let rows = self.prep.rows();
+        let ctx = SearchCtx { rows: &rows, criterion: self.criterion, min_leaf_rows: msl[0] };
+        let mut s = std::mem::take(&mut self.search_scratch);
+        let results = self.each_feature(start, end, &mut s, |f, seg, s| {
+            if self.levels[f] > 0 {
+                ctx.categorical_keys(seg, totals, s, msl)
+            } else {
+                ctx.numeric_keys(seg, &self.edges[f], totals, s, msl)
+            }
+        });
+        self.search_scratch = s;
+        let mut best = vec![None; msl.len()];
+        for (f, r) in results.into_iter().enumerate() {
+            for (b, r) in best.iter_mut().zip(r) {
+                offer_feature(b, f, r);
+            }
+        }
+        best
+    }
+
+    /// `one(feature, rows [start, end) of that feature)` for every feature in index order, on
+    /// rayon when the node is big enough to pay for the hand-off.
+    fn each_feature<R: Send>(&self, start: usize, end: usize, scratch: &mut Scratch, one: impl Fn(usize, &[Entry], &mut Scratch) -> R + Sync) -> Vec<R> {
+        let nf = self.sorted.len();
+        if self.parallel && (end - start) * nf >= PARALLEL_WORK && nf > 1 {
+            (0..nf).into_par_iter().map_init(Scratch::default, |s, f| one(f, &self.sorted[f][start..end], s)).collect()
+        } else {
+            (0..nf).map(|f| one(f, &self.sorted[f][start..end], scratch)).collect()
+        }
     }
 
     fn make_split(&self, feature: usize, fb: &FeatureBest) -> Split {
@@ -583,11 +681,17 @@ impl<'p> Grower<'p> {
 
     /// Partitions node `id`'s range in every feature and creates its two children.
     fn expand(&mut self, id: u32, end: u32, p: Pending) -> (u32, u32) {
-        let start = self.starts[id as usize] as usize;
-        let end = end as usize;
-        let f = p.split.feature as usize;
+        let start = self.arena.starts[id as usize] as usize;
+        self.partition(&p.split, start, end as usize);
+        self.arena.attach(id, p)
+    }
+
+    /// Partitions the rows `[start, end)` of every sorted feature by `split`, stably, left
+    /// rows first.
+    fn partition(&mut self, split: &Split, start: usize, end: usize) {
+        let f = split.feature as usize;
         for e in &self.sorted[f][start..end] {
-            self.go_left[e.row()] = entry_goes_left(&p.split, e.v);
+            self.go_left[e.row()] = entry_goes_left(split, e.v);
         }
         let go_left = &self.go_left;
         // Stable and branch-free: every entry is written to both the left slot and the
@@ -618,22 +722,12 @@ impl<'p> Grower<'p> {
             }
             self.scratch = scratch;
         }
-        let depth = self.nodes[id as usize].depth + 1;
-        let mid = start as u32 + p.n_left;
-        let l = self.push_node(depth, start as u32, p.left);
-        let r = self.push_node(depth, mid, p.right);
-        let node = &mut self.nodes[id as usize];
-        node.split = Some(p.split);
-        node.gain = p.gain;
-        node.left = l;
-        node.right = r;
-        (l, r)
     }
 
-    /// Ranks splits in best-first order, renumbers nodes in preorder and fills the values.
-    /// The tree, and the new id of each node by creation order.
-    fn finish(self) -> (Tree, Vec<u32>) {
-        let mut nodes = self.nodes;
+    /// Ranks the splits of `arena` in best-first order, renumbers its nodes in preorder and
+    /// fills the values: the tree, and `leaf_of` (creation ids) in the tree's node ids.
+    fn finish(&self, arena: Arena, options: super::FitOptions, mut leaf_of: Vec<u32>) -> (Tree, Vec<u32>) {
+        let Arena { mut nodes, stats, starts } = arena;
         // Best-first ranks: a priority walk from the root over split nodes.
         let mut heap = BinaryHeap::new();
         heap.push(Frontier { gain: nodes[0].gain, depth: 0, start: 0, id: 0 });
@@ -648,7 +742,7 @@ impl<'p> Grower<'p> {
             let (l, r) = (node.left, node.right);
             for c in [l, r] {
                 let cn = &nodes[c as usize];
-                heap.push(Frontier { gain: cn.gain, depth: cn.depth, start: self.starts[c as usize], id: c });
+                heap.push(Frontier { gain: cn.gain, depth: cn.depth, start: starts[c as usize], id: c });
             }
         }
         // Preorder renumbering, left subtree first.
@@ -677,7 +771,7 @@ impl<'p> Grower<'p> {
                 n.left = new_id[n.left as usize];
                 n.right = new_id[n.right as usize];
             }
-            let t = &self.stats[old as usize].totals;
+            let t = &stats[old as usize].totals;
             if k > 0 {
                 values.extend(t.sums.iter().map(|c| c / t.w));
                 class_totals.extend_from_slice(&t.sums);
@@ -710,15 +804,156 @@ impl<'p> Grower<'p> {
             labels,
             columns,
             n_classes: k,
-            n_features: self.sorted.len(),
+            n_features: self.prep.frame.features.len(),
             nodes: out,
             values,
             class_totals,
             total_weight: self.total_weight,
-            options: self.options,
+            options,
             decision: None,
         };
-        (tree, new_id)
+        for l in &mut leaf_of {
+            *l = new_id[*l as usize];
+        }
+        (tree, leaf_of)
+    }
+}
+
+/// Keeps `r` as the best split so far when it is strictly better (features in index order).
+fn offer_feature(best: &mut Option<(usize, FeatureBest)>, f: usize, r: Option<FeatureBest>) {
+    if let Some(fb) = r {
+        if best.as_ref().is_none_or(|(_, b)| fb.proxy > b.proxy) {
+            *best = Some((f, fb));
+        }
+    }
+}
+
+/// One tree of a shared growth: its options, its nodes, and the leaf of each fit-local row.
+struct KeyTree {
+    options: super::FitOptions,
+    arena: Arena,
+    leaf_of: Vec<u32>,
+}
+
+/// A node that several trees of a shared growth hold alike: (tree, node id in that tree) for
+/// each, trees in ascending `min_leaf_rows`, and the node's logical rows `[start, end)`.
+struct SharedNode {
+    members: Vec<(usize, u32)>,
+    start: u32,
+    end: u32,
+}
+
+impl Grower<'_> {
+    /// Grows one tree per checked options (ascending `min_leaf_rows`, otherwise equal) from
+    /// one set of sorted columns; see [`fit_shared`]. Each tree, with the leaf of every
+    /// fit-local row.
+    fn grow_shared(mut self, per_value: &[CheckedOptions], copy_entries: usize) -> Vec<(Tree, Vec<u32>)> {
+        self.copy_entries = copy_entries;
+        let n = self.prep.frame_rows.len() as u32;
+        let root = self.stats_of(0..n);
+        self.total_weight = root.totals.w;
+        let mut trees: Vec<KeyTree> = per_value
+            .iter()
+            .map(|o| {
+                let mut arena = Arena::default();
+                arena.push(0, 0, root.clone());
+                KeyTree { options: o.to_options(), arena, leaf_of: vec![NO_NODE; n as usize] }
+            })
+            .collect();
+        let all = SharedNode { members: (0..trees.len()).map(|t| (t, 0)).collect(), start: 0, end: n };
+        self.grow_together(&mut trees, vec![all]);
+        trees.into_iter().map(|t| self.finish(t.arena, t.options, t.leaf_of)).collect()
+    }
+
+    /// Grows the nodes of `stack` and everything below them, depth-first. Where the trees of
+    /// a node part, every part but the last grows first, in a recursive call (at most one per
+    /// parting, so as deep as there are trees): on its own copy of the node's rows, or on
+    /// the rows in place for a node bigger than [`COPY_ENTRIES`], whose order is then
+    /// restored. The last part keeps the rows in place.
+    fn grow_together(&mut self, trees: &mut [KeyTree], mut stack: Vec<SharedNode>) {
+        while let Some(node) = stack.pop() {
+            let (a, b) = ((node.start - self.offset) as usize, (node.end - self.offset) as usize);
+            let parts = self.evaluate_together(trees, &node, a, b);
+            let last = parts.len().saturating_sub(1);
+            for (i, (members, p)) in parts.into_iter().enumerate() {
+                if i < last && (b - a) * self.sorted.len() > self.copy_entries {
+                    let children = self.split_together(trees, &members, &node, a, b, p);
+                    self.grow_together(trees, children.into());
+                    self.restore_order(a, b);
+                } else if i < last {
+                    let copy = self.sorted.iter().map(|col| col[a..b].to_vec()).collect();
+                    let sorted = std::mem::replace(&mut self.sorted, copy);
+                    let offset = std::mem::replace(&mut self.offset, node.start);
+                    let children = self.split_together(trees, &members, &node, 0, b - a, p);
+                    self.grow_together(trees, children.into());
+                    self.sorted = sorted;
+                    self.offset = offset;
+                } else {
+                    stack.extend(self.split_together(trees, &members, &node, a, b, p));
+                }
+            }
+        }
+    }
+
+    /// Sorts rows `[a, b)` of every feature back into the presort's order (by value, ties by
+    /// row), as they were before the node's rows were partitioned.
+    fn restore_order(&mut self, a: usize, b: usize) {
+        let sort = |col: &mut Vec<Entry>| radsort::sort_by_key(&mut col[a..b], |e| (order_bits(e.v) as u64) << 32 | e.row() as u64);
+        if self.parallel && self.sorted.len() > 1 {
+            self.sorted.par_iter_mut().for_each(sort);
+        } else {
+            self.sorted.iter_mut().for_each(sort);
+        }
+    }
+
+    /// The splits the trees of `node` (rows `[a, b)` of `sorted`) take: the trees whose best
+    /// split is the same form one part with it. Trees in no part get the node as a leaf.
+    fn evaluate_together(&mut self, trees: &mut [KeyTree], node: &SharedNode, a: usize, b: usize) -> Vec<(Vec<(usize, u32)>, Pending)> {
+        let (t0, id0) = node.members[0];
+        let s = trees[t0].arena.stats[id0 as usize].clone();
+        let depth = trees[t0].arena.nodes[id0 as usize].depth;
+        let n = node.end - node.start;
+        let mut parts: Vec<(Vec<(usize, u32)>, Pending)> = Vec::new();
+        let open: Vec<(usize, u32)> = if self.stops(depth, &s) { Vec::new() } else { node.members.iter().copied().filter(|&(t, _)| n >= 2 * trees[t].options.limits.min_leaf_rows).collect() };
+        if !open.is_empty() {
+            let msl: Vec<u32> = open.iter().map(|&(t, _)| trees[t].options.limits.min_leaf_rows).collect();
+            let bests = self.search_keys(a, b, &s.totals, &msl);
+            let mut agree: Vec<((usize, FeatureBest), Vec<(usize, u32)>)> = Vec::new();
+            for (&member, best) in open.iter().zip(bests) {
+                let Some(best) = best else { continue };
+                match agree.iter_mut().find(|(b, _)| *b == best) {
+                    Some((_, members)) => members.push(member),
+                    None => agree.push((best, vec![member])),
+                }
+            }
+            for ((feature, fb), members) in agree {
+                if let Some(p) = self.pending(feature, &fb, a, b, &s) {
+                    parts.push((members, p));
+                }
+            }
+        }
+        for &(t, id) in &node.members {
+            if !parts.iter().any(|(members, _)| members.iter().any(|&(pt, _)| pt == t)) {
+                for e in &self.sorted[0][a..b] {
+                    trees[t].leaf_of[e.row()] = id;
+                }
+            }
+        }
+        parts
+    }
+
+    /// Partitions rows `[a, b)` of `sorted` by `p` and splits the node in every tree of
+    /// `members`: the two children, right first (the stack takes the left one next).
+    fn split_together(&mut self, trees: &mut [KeyTree], members: &[(usize, u32)], node: &SharedNode, a: usize, b: usize, p: Pending) -> [SharedNode; 2] {
+        self.partition(&p.split, a, b);
+        let mid = node.start + p.n_left;
+        let (mut left, mut right) = (Vec::with_capacity(members.len()), Vec::with_capacity(members.len()));
+        for &(t, id) in members {
+            let (l, r) = trees[t].arena.attach(id, p.clone());
+            left.push((t, l));
+            right.push((t, r));
+        }
+        [SharedNode { members: right, start: mid, end: node.end }, SharedNode { members: left, start: node.start, end: mid }]
     }
 }
 

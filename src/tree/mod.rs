@@ -16,7 +16,7 @@ pub mod prune;
 mod split;
 
 pub use criterion::Criterion;
-pub use grow::{fit, fit_with_leaves, TrainSet};
+pub use grow::{fit, fit_shared, fit_with_leaves, TrainSet};
 pub use limits::{CheckedOptions, ClassWeight, FitError, FitOptions, Limits, Splitter, MAX_BINS};
 pub use predict::{PathStep, Predictions};
 pub use prune::{prune, pruning_path, pruning_path_of, PruneStep, PruningPath};

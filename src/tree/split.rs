@@ -154,10 +154,11 @@ impl Scan<'_> {
     }
 
     /// After the entry at `i` joined the left side: `None` when the next present value equals
-    /// it (within [`VALUE_TOLERANCE`]), else whether a cut after `i` is allowed with missing
-    /// cells right, and with them left.
+    /// it (within [`VALUE_TOLERANCE`]), else the rows of the smaller side of a cut after `i`
+    /// with missing cells right, and with them left (0 when there are none): the largest
+    /// `min_leaf_rows` that allows each.
     #[inline(always)]
-    fn cut_after(&mut self, seg: &[Entry], i: usize) -> Option<(bool, bool)> {
+    fn cut_after(&mut self, seg: &[Entry], i: usize) -> Option<(u32, u32)> {
         if seg[i + 1].v <= seg[i].v + VALUE_TOLERANCE {
             return None;
         }
@@ -169,8 +170,8 @@ impl Scan<'_> {
                 return None;
             }
         }
-        let (nn, nl, n_miss, msl) = (self.nn as u32, i as u32 + 1, self.n_miss, self.msl);
-        Some((nl >= msl, n_miss > 0 && nl + n_miss >= msl && nn - nl >= msl))
+        let (nn, nl, n_miss) = (self.nn as u32, i as u32 + 1, self.n_miss);
+        Some((nl.min(nn - nl + n_miss), if n_miss > 0 { (nl + n_miss).min(nn - nl) } else { 0 }))
     }
 }
 
@@ -191,6 +192,75 @@ impl<T> Best<T> {
             self.at = Some(at);
         }
     }
+}
+
+/// Where the candidates of one pass go: the best for one `min_leaf_rows` value, or the
+/// best for each of several.
+pub(crate) trait Pass<T> {
+    /// Offers a candidate allowed for every `min_leaf_rows` value up to `cap` (the rows of
+    /// its smaller side). The scan offers only candidates allowed for the smallest value.
+    fn offer_within(&mut self, proxy: f64, at: T, cap: u32);
+}
+
+impl<T> Pass<T> for Best<T> {
+    #[inline(always)]
+    fn offer_within(&mut self, proxy: f64, at: T, _cap: u32) {
+        self.offer(proxy, at);
+    }
+}
+
+/// The best candidate of one pass for each of several `min_leaf_rows` values, ascending.
+///
+/// Each value keeps exactly what a scan for that value alone keeps: the first candidate of
+/// the largest proxy among those it allows (strictly-better replacement, in scan order). A
+/// candidate allowed for a value is allowed for every smaller one, so the values it may go
+/// to are a prefix; and along the values the best proxy so far never rises (a larger value
+/// sees a subset of the candidates), so the values it beats are a suffix of that prefix.
+/// Most candidates therefore cost one comparison, as in the scan for one value.
+pub(crate) struct Bests<'m, T> {
+    msl: &'m [u32],
+    /// How many values allowed the last candidate (the next cap is usually close).
+    allowed: usize,
+    best: Vec<Best<T>>,
+}
+
+impl<'m, T> Bests<'m, T> {
+    fn new(msl: &'m [u32]) -> Self {
+        debug_assert!(msl.windows(2).all(|w| w[0] < w[1]), "min_leaf_rows values ascending");
+        Bests { msl, allowed: 0, best: msl.iter().map(|_| Best::new()).collect() }
+    }
+}
+
+impl<T: Copy> Pass<T> for Bests<'_, T> {
+    #[inline(always)]
+    fn offer_within(&mut self, proxy: f64, at: T, cap: u32) {
+        while self.allowed < self.msl.len() && self.msl[self.allowed] <= cap {
+            self.allowed += 1;
+        }
+        while self.allowed > 0 && self.msl[self.allowed - 1] > cap {
+            self.allowed -= 1;
+        }
+        let mut j = self.allowed;
+        while j > 0 && proxy > self.best[j - 1].proxy {
+            self.best[j - 1] = Best { proxy, at: Some(at) };
+            j -= 1;
+        }
+    }
+}
+
+/// What a numeric scan leaves for picking each `min_leaf_rows` value's winner.
+struct NumericScan {
+    nn: usize,
+    n_miss: u32,
+    /// Proxy of the cut with every present value left and the missing cells right.
+    all_left: Option<f64>,
+}
+
+/// What a categorical scan leaves for picking each `min_leaf_rows` value's winner.
+struct CategoricalScan {
+    groups: Vec<(u32, Totals)>,
+    exhaustive: bool,
+    n_miss: u32,
 }
 
 /// The search settings a node's split depends on.
@@ -246,14 +316,29 @@ impl SearchCtx<'_> {
 
     /// Best threshold split of a numeric feature.
     pub fn numeric(&self, seg: &[Entry], edges: &[f32], node: &Totals, s: &mut Scratch) -> Option<FeatureBest> {
+        let (mut right, mut left) = (Best::new(), Best::new());
+        let scan = self.numeric_scan(seg, edges, node, s, self.min_leaf_rows, &mut right, &mut left)?;
+        self.numeric_pick(seg, &scan, self.min_leaf_rows, right, left)
+    }
+
+    /// [`Self::numeric`] for each of the ascending `min_leaf_rows` values `msl`, from one scan.
+    pub fn numeric_keys(&self, seg: &[Entry], edges: &[f32], node: &Totals, s: &mut Scratch, msl: &[u32]) -> Vec<Option<FeatureBest>> {
+        let (mut right, mut left) = (Bests::new(msl), Bests::new(msl));
+        match self.numeric_scan(seg, edges, node, s, msl[0], &mut right, &mut left) {
+            None => vec![None; msl.len()],
+            Some(scan) => right.best.into_iter().zip(left.best).zip(msl).map(|((r, l), &m)| self.numeric_pick(seg, &scan, m, r, l)).collect(),
+        }
+    }
+
+    /// Offers every threshold allowed under `min_leaf_rows` = `msl` to the two passes.
+    #[allow(clippy::too_many_arguments)]
+    fn numeric_scan<P: Pass<usize>>(&self, seg: &[Entry], edges: &[f32], node: &Totals, s: &mut Scratch, msl: u32, pass_right: &mut P, pass_left: &mut P) -> Option<NumericScan> {
         let width = node.sums.len();
         let nn = Self::missing_start(seg);
         if nn == 0 {
             return None;
         }
         let n_miss = (seg.len() - nn) as u32;
-        let nn32 = nn as u32;
-        let msl = self.min_leaf_rows;
         s.reset(width);
         let miss_w = self.add_rows(&seg[nn..], &mut s.miss);
         for k in 0..width {
@@ -264,23 +349,27 @@ impl SearchCtx<'_> {
         if constant && n_miss == 0 {
             return None;
         }
-        let mut pass_right: Best<usize> = Best::new(); // missing cells right
-        let mut pass_left: Best<usize> = Best::new(); // missing cells left
         if !constant {
             let mut scan = Scan { nn, n_miss, msl, miss_w, nonmiss_w, edges, edge: 0 };
             match (self.rows.k, self.rows.unit) {
-                (0, true) => self.scan_positions::<true, true>(seg, &mut scan, s, &mut pass_right, &mut pass_left),
-                (0, false) => self.scan_positions::<true, false>(seg, &mut scan, s, &mut pass_right, &mut pass_left),
-                (2, true) => self.scan_two_classes::<true>(seg, &mut scan, s, &mut pass_right, &mut pass_left),
-                (2, false) => self.scan_two_classes::<false>(seg, &mut scan, s, &mut pass_right, &mut pass_left),
-                _ => self.scan_positions::<false, false>(seg, &mut scan, s, &mut pass_right, &mut pass_left),
+                (0, true) => self.scan_positions::<true, true, P>(seg, &mut scan, s, pass_right, pass_left),
+                (0, false) => self.scan_positions::<true, false, P>(seg, &mut scan, s, pass_right, pass_left),
+                (2, true) => self.scan_two_classes::<true, P>(seg, &mut scan, s, pass_right, pass_left),
+                (2, false) => self.scan_two_classes::<false, P>(seg, &mut scan, s, pass_right, pass_left),
+                _ => self.scan_positions::<false, false, P>(seg, &mut scan, s, pass_right, pass_left),
             }
         }
+        let all_left = (n_miss > 0).then(|| self.proxy(&s.nonmiss, nonmiss_w, &s.miss, miss_w));
+        Some(NumericScan { nn, n_miss, all_left })
+    }
+
+    /// The winner under `min_leaf_rows` = `msl`, from the best of each pass.
+    fn numeric_pick(&self, seg: &[Entry], scan: &NumericScan, msl: u32, mut pass_right: Best<usize>, pass_left: Best<usize>) -> Option<FeatureBest> {
+        let n_miss = scan.n_miss;
         // All present values left, missing cells right.
         let mut all_left = false;
-        if n_miss > 0 && nn32 >= msl && n_miss >= msl {
-            let p = self.proxy(&s.nonmiss, nonmiss_w, &s.miss, miss_w);
-            if p > pass_right.proxy {
+        if let Some(p) = scan.all_left {
+            if scan.nn as u32 >= msl && n_miss >= msl && p > pass_right.proxy {
                 pass_right.proxy = p;
                 pass_right.at = None;
                 all_left = true;
@@ -305,7 +394,7 @@ impl SearchCtx<'_> {
     /// `UNIT` (every weight 1) counts the left weight instead of summing it: the same exact
     /// integer, without reading `w`.
     #[inline(always)]
-    fn scan_positions<const REGRESS: bool, const UNIT: bool>(&self, seg: &[Entry], sc: &mut Scan, s: &mut Scratch, pass_right: &mut Best<usize>, pass_left: &mut Best<usize>) {
+    fn scan_positions<const REGRESS: bool, const UNIT: bool, P: Pass<usize>>(&self, seg: &[Entry], sc: &mut Scan, s: &mut Scratch, pass_right: &mut P, pass_left: &mut P) {
         let rows = self.rows;
         let width = s.left.len();
         let mut lw = 0.0;
@@ -324,7 +413,7 @@ impl SearchCtx<'_> {
                 s.left[rows.class[r] as usize] += rows.w[r];
             }
             let Some((right, left)) = sc.cut_after(seg, i) else { continue };
-            if right {
+            if right >= sc.msl {
                 let rw = sc.nonmiss_w - lw + sc.miss_w;
                 let p = if REGRESS {
                     super::criterion::squared_error_proxy(sl, lw, nonmiss0 - sl + miss0, rw)
@@ -334,9 +423,9 @@ impl SearchCtx<'_> {
                     }
                     self.criterion.class_proxy(&s.left, lw, &s.right, rw)
                 };
-                pass_right.offer(p, i);
+                pass_right.offer_within(p, i, right);
             }
-            if left {
+            if left >= sc.msl {
                 let rw = sc.nonmiss_w - lw;
                 let p = if REGRESS {
                     super::criterion::squared_error_proxy(sl + miss0, lw + sc.miss_w, nonmiss0 - sl, rw)
@@ -347,7 +436,7 @@ impl SearchCtx<'_> {
                     }
                     self.criterion.class_proxy(&s.tmp, lw + sc.miss_w, &s.right, rw)
                 };
-                pass_left.offer(p, i);
+                pass_left.offer_within(p, i, left);
             }
         }
     }
@@ -357,7 +446,7 @@ impl SearchCtx<'_> {
     /// or `w − w` (both +0) leaves a sum unchanged, and with unit weights the class-1 count is
     /// an integer and the class-0 weight the row count minus it, the same exact integers.
     #[inline(always)]
-    fn scan_two_classes<const UNIT: bool>(&self, seg: &[Entry], sc: &mut Scan, s: &mut Scratch, pass_right: &mut Best<usize>, pass_left: &mut Best<usize>) {
+    fn scan_two_classes<const UNIT: bool, P: Pass<usize>>(&self, seg: &[Entry], sc: &mut Scan, s: &mut Scratch, pass_right: &mut P, pass_left: &mut P) {
         let rows = self.rows;
         let (m0, m1, n0, n1) = (s.miss[0], s.miss[1], s.nonmiss[0], s.nonmiss[1]);
         let gini = self.criterion == Criterion::Gini;
@@ -386,19 +475,35 @@ impl SearchCtx<'_> {
                 l0 += w - wc;
             }
             let Some((right, left)) = sc.cut_after(seg, i) else { continue };
-            if right {
+            if right >= sc.msl {
                 let rw = sc.nonmiss_w - lw + sc.miss_w;
-                pass_right.offer(proxy(l0, l1, lw, n0 - l0 + m0, n1 - l1 + m1, rw), i);
+                pass_right.offer_within(proxy(l0, l1, lw, n0 - l0 + m0, n1 - l1 + m1, rw), i, right);
             }
-            if left {
+            if left >= sc.msl {
                 let rw = sc.nonmiss_w - lw;
-                pass_left.offer(proxy(l0 + m0, l1 + m1, lw + sc.miss_w, n0 - l0, n1 - l1, rw), i);
+                pass_left.offer_within(proxy(l0 + m0, l1 + m1, lw + sc.miss_w, n0 - l0, n1 - l1, rw), i, left);
             }
         }
     }
 
     /// Best category-set split of a categorical feature (codes stored as values).
     pub fn categorical(&self, seg: &[Entry], node: &Totals, s: &mut Scratch) -> Option<FeatureBest> {
+        let (mut right, mut left) = (Best::new(), Best::new());
+        let scan = self.categorical_scan(seg, node, s, self.min_leaf_rows, &mut right, &mut left)?;
+        Self::categorical_pick(&scan, right, left)
+    }
+
+    /// [`Self::categorical`] for each of the ascending `min_leaf_rows` values `msl`, from one scan.
+    pub fn categorical_keys(&self, seg: &[Entry], node: &Totals, s: &mut Scratch, msl: &[u32]) -> Vec<Option<FeatureBest>> {
+        let (mut right, mut left) = (Bests::new(msl), Bests::new(msl));
+        match self.categorical_scan(seg, node, s, msl[0], &mut right, &mut left) {
+            None => vec![None; msl.len()],
+            Some(scan) => right.best.into_iter().zip(left.best).map(|(r, l)| Self::categorical_pick(&scan, r, l)).collect(),
+        }
+    }
+
+    /// Offers every category set allowed under `min_leaf_rows` = `msl` to the two passes.
+    fn categorical_scan<P: Pass<u64>>(&self, seg: &[Entry], node: &Totals, s: &mut Scratch, msl: u32, pass_right: &mut P, pass_left: &mut P) -> Option<CategoricalScan> {
         let width = node.sums.len();
         let nn = Self::missing_start(seg);
         let n_miss = (seg.len() - nn) as u32;
@@ -420,7 +525,6 @@ impl SearchCtx<'_> {
             return None;
         }
         s.reset(width);
-        let msl = self.min_leaf_rows;
         let exhaustive = self.rows.k > 2 && g <= 10;
         if !exhaustive {
             let key = self.order_key(node);
@@ -433,9 +537,8 @@ impl SearchCtx<'_> {
             }
             t
         };
-        // A candidate is a set of groups going left: a prefix length or a bit mask.
-        let mut pass_right: Best<u64> = Best::new();
-        let mut pass_left: Best<u64> = Best::new();
+        // A candidate is a set of groups going left: a prefix length or a bit mask. Its cap
+        // is the rows of its smaller side, the largest `min_leaf_rows` that allows it.
         let mut evaluate = |left: &Totals, id: u64, s: &mut Scratch| {
             let nl = left.n;
             let nr_present = present.n - nl;
@@ -444,7 +547,7 @@ impl SearchCtx<'_> {
                     s.right[k] = present.sums[k] - left.sums[k] + miss.sums[k];
                 }
                 let p = self.proxy(&left.sums, left.w, &s.right, present.w - left.w + miss.w);
-                pass_right.offer(p, id);
+                pass_right.offer_within(p, id, nl.min(nr_present + n_miss));
             }
             if n_miss > 0 && nr_present > 0 && nl + n_miss >= msl && nr_present >= msl {
                 for k in 0..width {
@@ -452,7 +555,7 @@ impl SearchCtx<'_> {
                     s.right[k] = present.sums[k] - left.sums[k];
                 }
                 let p = self.proxy(&s.tmp, left.w + miss.w, &s.right, present.w - left.w);
-                pass_left.offer(p, id);
+                pass_left.offer_within(p, id, (nl + n_miss).min(nr_present));
             }
         };
         if exhaustive {
@@ -474,20 +577,27 @@ impl SearchCtx<'_> {
                 evaluate(&left, j as u64 + 1, s);
             }
         }
+        Some(CategoricalScan { groups, exhaustive, n_miss })
+    }
+
+    /// The winner of one `min_leaf_rows` value, from the best of each pass.
+    fn categorical_pick(scan: &CategoricalScan, pass_right: Best<u64>, pass_left: Best<u64>) -> Option<FeatureBest> {
         let (proxy, id, missing_left) = match (pass_right.at, pass_left.at) {
             (_, Some(l)) if pass_left.proxy > pass_right.proxy => (pass_left.proxy, l, true),
             (Some(r), _) => (pass_right.proxy, r, false),
             (None, Some(l)) => (pass_left.proxy, l, true),
             (None, None) => return None,
         };
-        let codes: Vec<u32> = groups
+        let exhaustive = scan.exhaustive;
+        let codes: Vec<u32> = scan
+            .groups
             .iter()
             .enumerate()
             .filter(|(j, _)| if exhaustive { id >> j & 1 == 1 } else { (*j as u64) < id })
             .map(|(_, (c, _))| *c)
             .collect();
-        let present = groups.iter().map(|(c, _)| *c).collect();
-        Some(FeatureBest { proxy, cut: Cut::Codes { left: codes, present }, missing_left, saw_missing: n_miss > 0 })
+        let present = scan.groups.iter().map(|(c, _)| *c).collect();
+        Some(FeatureBest { proxy, cut: Cut::Codes { left: codes, present }, missing_left, saw_missing: scan.n_miss > 0 })
     }
 
     /// The order in which categories are scanned: class-1 share (binary), mean target
