@@ -3,7 +3,9 @@
 # default config), one client at a time, calls one after another. For a Rust client
 # (examples/latency.rs, tonic) and a Python client (benches/latency_client.py, grpcio) it
 # prints each call's median and p99:
-#   sweep100     StartRun of a 100-setting iris sweep until its `finished` event (FollowRun)
+#   sweep100     StartRun of a 100-setting iris sweep until its `finished` event (the Rust
+#                client on FollowRun; the Python client on FollowRunBatches, as the client
+#                package follows, and as `sweep100_each` on FollowRun, one message per event)
 #   get_run900   GetRun of a finished 900-setting run
 #   list_runs50  ListRuns of a 50-run page
 # and the compute: the same 100-setting sweep run by the core in the client's process (no
@@ -78,9 +80,9 @@ for path in sys.argv[1:]:
         if m:
             rows[(m[1], m[2])] = (int(m[3]), float(m[4]), float(m[5]))
 print()
-print(f"{'call':<12} {'client':<7} {'n':>5} {'median ms':>10} {'p99 ms':>10}")
+print(f"{'call':<14} {'client':<7} {'n':>5} {'median ms':>10} {'p99 ms':>10}")
 for (call, client), (n, med, p99) in rows.items():
-    print(f"{call:<12} {client:<7} {n:>5} {med:>10.2f} {p99:>10.2f}")
+    print(f"{call:<14} {client:<7} {n:>5} {med:>10.2f} {p99:>10.2f}")
 compute = rows.get(("compute100", "rust"))
 for client in ("rust", "python"):
     e2e = rows.get(("sweep100", client))

@@ -5,8 +5,10 @@ examples/latency.rs, from the other language a caller is likely to use.
 
 STUBS_DIR holds modules generated from proto/pollard/v1/pollard.proto by grpcio-tools
 (benches/latency.sh makes them). Prints `result:` lines as the Rust client does:
-sweep100 (StartRun of a 100-setting iris sweep to its `finished` event on FollowRun),
-get_run900 and list_runs50, each the median and p99 of REPEATS timed calls after 10 untimed.
+sweep100 (StartRun of a 100-setting iris sweep to its `finished` event on FollowRunBatches,
+several events to a message, as the client package follows), sweep100_each (the same on
+FollowRun, one message per event), get_run900 and list_runs50, each the median and p99 of
+REPEATS timed calls after 10 untimed.
 """
 
 import sys
@@ -35,14 +37,30 @@ channel = grpc.insecure_channel(address)
 runs = rpc.RunsStub(channel)
 
 
+def ended(run_id, event):
+    """Whether `event` ends the run well; exits when it ends otherwise."""
+    kind = event.WhichOneof("kind")
+    if kind in ("failed", "cancelled"):
+        raise SystemExit(f"latency_client: run {run_id} ended {kind}: {getattr(event, kind)}")
+    return kind == "finished"
+
+
 def start_and_follow():
+    """StartRun, then FollowRunBatches (several events to a message, as the client package
+    follows) to the `finished` event."""
+    run = runs.StartRun(sweep100())
+    for batch in runs.FollowRunBatches(pb.FollowRunRequest(id=run.id, after_sequence=0)):
+        if any(ended(run.id, e) for e in batch.events):
+            return
+    raise SystemExit(f"latency_client: the events of run {run.id} ended without a terminal event")
+
+
+def start_and_follow_each():
+    """StartRun, then FollowRun (one message per event) to the `finished` event."""
     run = runs.StartRun(sweep100())
     for event in runs.FollowRun(pb.FollowRunRequest(id=run.id, after_sequence=0)):
-        kind = event.WhichOneof("kind")
-        if kind == "finished":
+        if ended(run.id, event):
             return
-        if kind in ("failed", "cancelled"):
-            raise SystemExit(f"latency_client: run {run.id} ended {kind}: {getattr(event, kind)}")
     raise SystemExit(f"latency_client: the events of run {run.id} ended without a terminal event")
 
 
@@ -75,5 +93,6 @@ def timed(name, call):
 
 
 timed("sweep100", start_and_follow)
+timed("sweep100_each", start_and_follow_each)
 timed("get_run900", get_run)
 timed("list_runs50", list_runs)

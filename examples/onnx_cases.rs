@@ -24,6 +24,8 @@ use std::path::{Path, PathBuf};
 
 use pollard::data::csv::{read_dataset, CsvOptions};
 use pollard::data::{Column, Dataset, Frame, MISSING_CODE};
+use pollard::sweep::costs::Costs;
+use pollard::sweep::{self, Flow, Range, SweepSpec};
 use pollard::tree::{fit, ClassWeight, FitOptions, Limits, Predictions, SplitRule, TrainSet, Tree};
 
 struct Case {
@@ -33,6 +35,9 @@ struct Case {
     /// Every `n`-th training cell of the categorical columns is blanked (0 = none).
     blank_every: usize,
     options: FitOptions,
+    /// Decision costs (false alarm, miss): the tree is then the refit of a sweep's picked
+    /// setting, with the decision threshold chosen on the sweep's validation folds.
+    costs: Option<(f64, f64)>,
     about: &'static str,
 }
 
@@ -43,21 +48,30 @@ fn limited(max_depth: Option<u32>, min_leaf_rows: u32, class_weight: ClassWeight
 fn cases() -> Vec<Case> {
     let full = FitOptions::default;
     vec![
-        Case { name: "iris", file: "iris.csv", categorical: &[], blank_every: 0, options: full(), about: "open dataset, 3 classes, grown without limits" },
-        Case { name: "wine", file: "wine.csv", categorical: &[], blank_every: 0, options: full(), about: "open dataset, 3 classes, grown without limits" },
-        Case { name: "breast_cancer", file: "breast_cancer.csv", categorical: &[], blank_every: 0, options: full(), about: "open dataset, 2 classes, grown without limits" },
-        Case { name: "breast_cancer_balanced_d4", file: "breast_cancer.csv", categorical: &[], blank_every: 0, options: limited(Some(4), 5, ClassWeight::Balanced), about: "open dataset, 2 classes, balanced class weight, max_depth 4, min_leaf_rows 5" },
-        Case { name: "diabetes", file: "diabetes.csv", categorical: &[], blank_every: 0, options: full(), about: "open dataset, regression, grown without limits" },
-        Case { name: "diabetes_d0", file: "diabetes.csv", categorical: &[], blank_every: 0, options: limited(Some(0), 1, ClassWeight::None), about: "open dataset, regression, max_depth 0 (a single leaf)" },
-        Case { name: "synthetic_missing", file: "synthetic_missing.csv", categorical: &[], blank_every: 0, options: full(), about: "SYNTHETIC (tests/data/SOURCES.md), 2 classes, missing cells in 3 columns" },
-        Case { name: "synthetic_missing_reg", file: "synthetic_missing_reg.csv", categorical: &[], blank_every: 0, options: limited(Some(8), 3, ClassWeight::None), about: "SYNTHETIC (tests/data/SOURCES.md), regression, missing cells in 3 columns, max_depth 8, min_leaf_rows 3" },
+        Case { name: "iris", file: "iris.csv", categorical: &[], blank_every: 0, options: full(), costs: None, about: "open dataset, 3 classes, grown without limits" },
+        Case { name: "wine", file: "wine.csv", categorical: &[], blank_every: 0, options: full(), costs: None, about: "open dataset, 3 classes, grown without limits" },
+        Case { name: "breast_cancer", file: "breast_cancer.csv", categorical: &[], blank_every: 0, options: full(), costs: None, about: "open dataset, 2 classes, grown without limits" },
+        Case { name: "breast_cancer_balanced_d4", file: "breast_cancer.csv", categorical: &[], blank_every: 0, options: limited(Some(4), 5, ClassWeight::Balanced), costs: None, about: "open dataset, 2 classes, balanced class weight, max_depth 4, min_leaf_rows 5" },
+        Case { name: "diabetes", file: "diabetes.csv", categorical: &[], blank_every: 0, options: full(), costs: None, about: "open dataset, regression, grown without limits" },
+        Case { name: "diabetes_d0", file: "diabetes.csv", categorical: &[], blank_every: 0, options: limited(Some(0), 1, ClassWeight::None), costs: None, about: "open dataset, regression, max_depth 0 (a single leaf)" },
+        Case { name: "synthetic_missing", file: "synthetic_missing.csv", categorical: &[], blank_every: 0, options: full(), costs: None, about: "SYNTHETIC (tests/data/SOURCES.md), 2 classes, missing cells in 3 columns" },
+        Case { name: "synthetic_missing_reg", file: "synthetic_missing_reg.csv", categorical: &[], blank_every: 0, options: limited(Some(8), 3, ClassWeight::None), costs: None, about: "SYNTHETIC (tests/data/SOURCES.md), regression, missing cells in 3 columns, max_depth 8, min_leaf_rows 3" },
+        Case {
+            name: "breast_cancer_costs",
+            file: "breast_cancer.csv",
+            categorical: &[],
+            blank_every: 0,
+            options: full(),
+            costs: Some((1.0, 5.0)),
+            about: "open dataset, 2 classes, decision costs false_alarm 1, miss 5: a sweep over max_depth 1..6 and min_leaf_rows 1,5,20 (stratified 5-fold, seed 7), the picked setting refit with the threshold chosen on the validation folds; label is p(class 1) >= threshold",
+        },
         Case {
             name: "iris_categorical",
             file: "iris.csv",
             categorical: &["petal_width_cm"],
             blank_every: 10,
             options: full(),
-            about: "derived from the open iris dataset: petal_width_cm read as a categorical column (22 categories) and every 10th row's cell blanked",
+            costs: None, about: "derived from the open iris dataset: petal_width_cm read as a categorical column (22 categories) and every 10th row's cell blanked",
         },
         Case {
             name: "diabetes_categorical",
@@ -65,7 +79,7 @@ fn cases() -> Vec<Case> {
             categorical: &["sex", "s4"],
             blank_every: 7,
             options: limited(Some(10), 2, ClassWeight::None),
-            about: "derived from the open diabetes dataset: sex (2) and s4 (66 categories) read as categorical, every 7th row's cells in them blanked; max_depth 10, min_leaf_rows 2",
+            costs: None, about: "derived from the open diabetes dataset: sex (2) and s4 (66 categories) read as categorical, every 7th row's cells in them blanked; max_depth 10, min_leaf_rows 2",
         },
     ]
 }
@@ -139,8 +153,27 @@ fn run_case(case: &Case, data_dir: &Path, out: &Path) -> Result<String, String> 
             }
         }
     }
-    let checked = case.options.check(data.task()).map_err(|e| format!("{}: {e:?}", case.name))?;
-    let tree = fit(&TrainSet::of(&data), &checked).map_err(|e| format!("{}: {e:?}", case.name))?;
+    let tree = match case.costs {
+        None => {
+            let checked = case.options.check(data.task()).map_err(|e| format!("{}: {e:?}", case.name))?;
+            fit(&TrainSet::of(&data), &checked).map_err(|e| format!("{}: {e:?}", case.name))?
+        }
+        Some((false_alarm, miss)) => {
+            let spec = SweepSpec {
+                max_depth: Some(Range::Span { from: 1.0, to: 6.0, step: 1.0 }),
+                min_leaf_rows: Some(Range::Values(vec![Some(1.0), Some(5.0), Some(20.0)])),
+                seed: 7,
+                costs: Some(Costs { false_alarm, miss }),
+                ..SweepSpec::default()
+            };
+            let cancel = std::sync::atomic::AtomicBool::new(false);
+            let (_, result) = sweep::sweep(&data, &spec, &|_, _| Flow::Continue, &cancel).map_err(|e| format!("{}: {e}", case.name))?;
+            let tree = result.model.ok_or("the sweep refit no model")?;
+            let d = tree.decision.ok_or("the refit has no decision")?;
+            println!("onnx_cases: {}: decision threshold {} (Bayes {}), {} leaves", case.name, d.threshold, false_alarm / (false_alarm + miss), tree.n_leaves());
+            tree
+        }
+    };
     let onnx = pollard::export::to_onnx(&tree)?;
     let dir = out.join(case.name);
     std::fs::create_dir_all(&dir).map_err(|e| format!("{}: {e}", dir.display()))?;
@@ -191,6 +224,7 @@ fn run_case(case: &Case, data_dir: &Path, out: &Path) -> Result<String, String> 
         "set_splits": set_splits,
         "onnx_nodes": onnx_nodes,
         "onnx_bytes": onnx.len(),
+        "decision_threshold": tree.decision.map(|d| d.threshold),
     });
     std::fs::write(dir.join("case.json"), format!("{info:#}\n")).map_err(|e| e.to_string())?;
     Ok(format!("{}: {} rows, {} tree nodes ({} set splits) -> {} ONNX nodes", case.name, rows, tree.nodes.len(), set_splits, onnx_nodes))

@@ -1328,3 +1328,46 @@ fn nested_sweeps_served_and_local_agree() {
     let e = server.run(&["sweep", "--dataset", "wine", "--outer-k", "200"]).fails();
     assert!(e.contains("outer.k") && e.contains("max_folds"), "{e}");
 }
+
+/// Decision costs end to end: a sweep of breast_cancer (tests/data) with a false alarm
+/// costing 1 and a miss 5 scores by expected_cost, stores a threshold searched on the
+/// validation folds (not one half), and `predict` decides by it.
+#[test]
+fn costs_give_a_threshold_that_predictions_follow() {
+    let server = Serve::start();
+    let tmp = TempDir::new("costs");
+    let bc = data("breast_cancer.csv");
+    let bc = bc.to_str().unwrap();
+    server.run(&["put", bc, "--name", "bc", "--target", "target"]).ok();
+    let lines = server.run(&["sweep", "--dataset", "bc", "--max-depth", "1,2,3,5", "--false-alarm-cost", "1", "--miss-cost", "5", "--follow", "--json"]).json_lines();
+    let run = lines.iter().find_map(|l| l["run_id"].as_str()).expect("the sweep names its run").to_string();
+    let shown = server.run(&["show", &run, "--json"]).json();
+    assert_eq!(s(&shown, "metric"), "expected_cost", "{shown}");
+    let decision = &shown["model"]["decision"];
+    let threshold = decision["threshold"].as_f64().unwrap_or_else(|| panic!("no decision: {shown}"));
+    assert_eq!((decision["false_alarm"].as_f64(), decision["miss"].as_f64(), decision["bayes_threshold"].as_f64()), (Some(1.0), Some(5.0), Some(1.0 / 6.0)));
+    assert_ne!(threshold, 0.5, "{decision}");
+    let table = server.run(&["show", &run]).ok();
+    assert!(table.contains("decision: decides malignant when p(malignant) >= ") && table.contains("lower is better"), "{table}");
+    // The model file keeps it.
+    let model = tmp.path().join("model.json");
+    server.run(&["model", &run, "--format", "json", "--out", model.to_str().unwrap()]).ok();
+    let tree = read_tree(&model);
+    assert_eq!(tree.decision.map(|d| d.threshold), Some(threshold));
+    // Every row's class is p(malignant) >= threshold, and some differ from the likelier class.
+    let rows = server.run(&["predict", &run, bc, "--json"]).json_lines();
+    assert_eq!(rows.len(), 569);
+    let mut moved = 0;
+    for row in &rows {
+        let p1 = row["probabilities"]["malignant"].as_f64().unwrap();
+        let p0 = row["probabilities"]["benign"].as_f64().unwrap();
+        assert_eq!(s(row, "predicted"), if p1 >= threshold { "malignant" } else { "benign" }, "{row}");
+        moved += (s(row, "predicted") == "malignant" && p0 > p1) as usize;
+    }
+    assert!(moved > 0, "a threshold below one half must move some rows to malignant");
+    // The same flags without a server, and a flag alone refused.
+    let local = server.run(&["local", bc, "--target", "target", "--max-depth", "1,2,3,5", "--false-alarm-cost", "1", "--miss-cost", "5", "--json"]).json();
+    assert_eq!(local["model"]["decision"]["threshold"].as_f64(), Some(threshold), "{local}");
+    let alone = server.run(&["local", bc, "--target", "target", "--miss-cost", "5"]).fails();
+    assert!(alone.contains("--false-alarm-cost"), "{alone}");
+}

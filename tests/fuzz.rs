@@ -285,15 +285,19 @@ fn wild_spec(range: BoxedStrategy<pb::LimitRange>) -> impl Strategy<Value = pb::
         name_of(&["", "classify", "regress"]),
         prop::collection::vec(name_of(&["gini", "entropy", "squared_error"]), 0..3),
         prop::collection::vec(name_of(&["none", "balanced"]), 0..3),
-        name_of(&["", "accuracy", "log_loss", "roc_auc", "rmse", "r2"]),
+        name_of(&["", "accuracy", "log_loss", "roc_auc", "rmse", "r2", "expected_cost"]),
         name_of(&["", "highest", "one_se"]),
     );
     let folds = prop::option::of((name_of(&["", "shuffled", "stratified", "grouped", "forward", "given"]), prop_oneof![0u32..12, any::<u32>()], prop_oneof![0u32..4, any::<u32>()], name_of(&["", "target", "sepal_length_cm", "age"])))
         .prop_map(|f| f.map(|(scheme, k, repeats, column)| pb::FoldPlan { scheme, k, repeats, column }))
         .boxed();
     let splitter = name_of(&["", "exact", "binned", "histogram"]);
+    // Decision costs: usable pairs and any numbers at all (negative, NaN, infinite, zeros).
+    let cost = || prop_oneof![Just(0.0), Just(1.0), Just(5.0), any::<f64>()];
+    let costs = prop::option::of((cost(), cost())).prop_map(|c| c.map(|(false_alarm, miss)| pb::DecisionCosts { false_alarm, miss }));
     // The outer plan of a nested sweep is drawn like the inner one.
-    (words, (r(), r(), r(), r(), r(), r()), (folds.clone(), folds), any::<bool>(), any::<u64>(), splitter).prop_map(|((task, criteria, class_weights, metric, pick), (d, s, l, v, g, a), (folds, outer), prune_path, seed, splitter)| pb::SweepSpec {
+    (words, (r(), r(), r(), r(), r(), r()), (folds.clone(), folds), any::<bool>(), any::<u64>(), (splitter, costs)).prop_map(|((task, criteria, class_weights, metric, pick), (d, s, l, v, g, a), (folds, outer), prune_path, seed, (splitter, costs))| pb::SweepSpec {
+        costs,
         outer,
         target: String::new(),
         task,

@@ -114,19 +114,28 @@ fn rfc3339(s: &str) -> chrono::DateTime<chrono::FixedOffset> {
     chrono::DateTime::parse_from_rfc3339(s).unwrap_or_else(|e| panic!("'{s}' is not RFC 3339: {e}"))
 }
 
-/// Follows a run from `after` + 1 until its stream ends (the run ended and every event was
-/// sent).
-async fn follow(runs: &mut RunsClient<Channel>, id: &str, after: u64) -> Vec<pb::RunEvent> {
-    let mut stream = runs.follow_run(pb::FollowRunRequest { id: id.into(), after_sequence: after }).await.unwrap().into_inner();
+/// Every message of a server stream until it ends (within the patience).
+async fn drain<T>(mut stream: tonic::Streaming<T>, id: &str) -> Vec<T> {
     let deadline = Instant::now() + PATIENCE;
     let mut out = Vec::new();
     loop {
-        let next = tokio::time::timeout_at(deadline.into(), stream.message()).await.unwrap_or_else(|_| panic!("run {id}: no end of events after {} events", out.len()));
+        let next = tokio::time::timeout_at(deadline.into(), stream.message()).await.unwrap_or_else(|_| panic!("run {id}: no end of the stream after {} messages", out.len()));
         match next.unwrap() {
-            Some(ev) => out.push(ev),
+            Some(m) => out.push(m),
             None => return out,
         }
     }
+}
+
+/// Follows a run from `after` + 1 until its stream ends (the run ended and every event was
+/// sent).
+async fn follow(runs: &mut RunsClient<Channel>, id: &str, after: u64) -> Vec<pb::RunEvent> {
+    drain(runs.follow_run(pb::FollowRunRequest { id: id.into(), after_sequence: after }).await.unwrap().into_inner(), id).await
+}
+
+/// FollowRunBatches from `after` + 1 until its stream ends: the batches as sent.
+async fn follow_batches(runs: &mut RunsClient<Channel>, id: &str, after: u64) -> Vec<pb::RunEventBatch> {
+    drain(runs.follow_run_batches(pb::FollowRunRequest { id: id.into(), after_sequence: after }).await.unwrap().into_inner(), id).await
 }
 
 /// Polls a run until `ready` holds.
@@ -499,6 +508,17 @@ async fn sweep_follow_inspect_export_and_predict_on(place: &Place) {
         assert_eq!(follow(&mut runs, &first.id, n).await, events[n as usize..].to_vec(), "after_sequence {n}");
     }
     assert!(follow(&mut runs, &first.id, events.len() as u64).await.is_empty());
+    // FollowRunBatches: the same events in the same order, several to a message, none empty.
+    for n in [0, 1, events.len() as u64 / 2, events.len() as u64 - 1] {
+        let batches = follow_batches(&mut runs, &first.id, n).await;
+        assert!(batches.iter().all(|b| !b.events.is_empty()), "after_sequence {n}: an empty batch");
+        if n == 0 {
+            assert!(batches.len() < events.len() / 2, "{} batches for {} events of a finished run", batches.len(), events.len());
+        }
+        let flat: Vec<pb::RunEvent> = batches.into_iter().flat_map(|b| b.events).collect();
+        assert_eq!(flat, events[n as usize..].to_vec(), "batches after_sequence {n}");
+    }
+    assert!(follow_batches(&mut runs, &first.id, events.len() as u64).await.is_empty());
 
     // GetRun: spec, state, timings, every score, the pick, the folds, the model summary.
     assert_eq!((got.dataset_id.as_str(), got.dataset_name.as_str(), got.dataset_version), (ds.id.as_str(), "iris", 1));

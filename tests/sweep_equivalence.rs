@@ -4,13 +4,16 @@
 //! categorical columns) and random grids, over every fold plan; seeded, so a failure repeats.
 //! And the open datasets of tests/data (see SOURCES.md there) with many `min_leaf_rows`
 //! values, whose envelopes grow together (one scan per node and feature for all values).
+//! Every pick rule and the Pareto front chosen from the sweep's table equal those chosen
+//! from the refits' table.
 
 use std::path::PathBuf;
 use std::sync::atomic::AtomicBool;
 
 use pollard::data::csv::{read_dataset, CsvOptions};
 use pollard::data::{Column, Dataset, Feature, Frame, Target, Task, MISSING_CODE};
-use pollard::sweep::metrics::rows;
+use pollard::sweep::costs::Costs;
+use pollard::sweep::metrics::{rows, Scoring};
 use pollard::sweep::{self, FoldPlan, FoldScheme, Flow, Metric, PickRule, Range, SweepSpec};
 use pollard::tree::{fit, ClassWeight, Criterion, Monotone, Predictions, TrainSet};
 
@@ -92,6 +95,7 @@ fn values(g: &mut Gen, options: &[Option<f64>]) -> Option<Range> {
 
 fn spec(g: &mut Gen, task: Task, plan: FoldPlan) -> SweepSpec {
     let metrics: Vec<Metric> = Metric::ALL.into_iter().filter(|m| m.task() == task).collect();
+    let metric = g.pick(&metrics);
     // Sometimes score every α on the pruning path instead of listed values.
     let path_mode = g.chance(0.15);
     SweepSpec {
@@ -105,8 +109,15 @@ fn spec(g: &mut Gen, task: Task, plan: FoldPlan) -> SweepSpec {
         prune_alpha: if path_mode { None } else { values(g, &[Some(0.0), Some(0.005), Some(0.02), Some(0.1)]) },
         prune_path: path_mode,
         folds: Some(plan),
-        metric: Some(g.pick(&metrics)),
-        pick: if g.chance(0.5) { PickRule::Highest } else { PickRule::OneSe },
+        metric: Some(metric),
+        // expected_cost needs costs (a spec on three classes is refused and is no case).
+        costs: (metric == Metric::ExpectedCost).then(|| Costs { false_alarm: g.below(4) as f64 + 0.5, miss: g.below(6) as f64 }),
+        pick: match g.below(4) {
+            0 => PickRule::Highest,
+            1 => PickRule::OneSe,
+            2 => PickRule::MaxLeavesBudget(1 + g.below(8) as u32),
+            _ => PickRule::Within(g.below(5) as f64 * 0.01),
+        },
         seed: g.next(),
         fit_final: false,
         ..SweepSpec::default()
@@ -128,11 +139,11 @@ fn close(metric: Metric, a: f64, b: f64) -> bool {
 }
 
 /// Row-by-row score of `tree` on `rows` of `data`.
-fn row_score(metric: Metric, tree: &pollard::tree::Tree, data: &Dataset, rows_: &[u32]) -> f64 {
+fn row_score(metric: Scoring, tree: &pollard::tree::Tree, data: &Dataset, rows_: &[u32]) -> f64 {
     let sub = data.take_rows(rows_);
     match (tree.predict(&sub.frame), &sub.target) {
         (Predictions::Classes { probabilities, .. }, Target::Classes { codes, labels }) => rows::classes(metric, labels.len(), codes, &probabilities),
-        (Predictions::Values(p), Target::Values(y)) => rows::values(metric, y, &p),
+        (Predictions::Values(p), Target::Values(y)) => rows::values(metric.metric, y, &p),
         _ => unreachable!(),
     }
 }
@@ -146,13 +157,16 @@ fn sweep_equals_refits(plan: &sweep::Plan, label: &str) -> usize {
     let metric = plan.spec.metric;
     let task = plan.data.task();
     let mut compared = 0;
+    // The setting table as the refits give it, for the pick rules below.
+    let mut refit_table = Vec::with_capacity(result.scores.len());
     for score in &result.scores {
         let options = score.setting.options.check(task).unwrap();
+        let (mut valids, mut trains, mut leaves, mut depths) = (Vec::new(), Vec::new(), 0.0, 0.0);
         for (si, split) in plan.folds.splits.iter().enumerate() {
             let set = TrainSet { frame: &plan.data.frame, target: &plan.data.target, target_name: "y", rows: Some(&split.train), weights: None };
             let tree = fit(&set, &options).unwrap();
-            let valid = row_score(metric, &tree, &plan.data, &split.valid);
-            let train = row_score(metric, &tree, &plan.data, &split.train);
+            let valid = row_score(plan.spec.scoring(), &tree, &plan.data, &split.valid);
+            let train = row_score(plan.spec.scoring(), &tree, &plan.data, &split.train);
             let ctx = || format!("{label}, metric {metric}, split {si}, setting {:?}", score.setting.options);
             assert!(close(metric, score.fold_scores[si], valid), "validation {} vs refit {valid}: {}", score.fold_scores[si], ctx());
             let unit = units.iter().find(|u| plan.units[u.unit].0 == si && u.scores.iter().any(|(s, _)| plan.settings[*s] == score.setting)).unwrap();
@@ -161,9 +175,58 @@ fn sweep_equals_refits(plan: &sweep::Plan, label: &str) -> usize {
             assert_eq!(fs.leaves as usize, tree.n_leaves(), "leaves: {}", ctx());
             assert_eq!(fs.depth, tree.depth(), "depth: {}", ctx());
             compared += 1;
+            valids.push(valid);
+            trains.push(train);
+            leaves += tree.n_leaves() as f64;
+            depths += tree.depth() as f64;
         }
+        refit_table.push(setting_score(score.setting.clone(), valids, &trains, leaves, depths, metric));
     }
+    picks_equal_refit_picks(plan, &result, &refit_table, label);
     compared
+}
+
+/// A setting's row of the table from its per-split scores (mean; sample sd, ddof = 1; the
+/// gap oriented so that positive means training scores better), as the pick rules read it.
+fn setting_score(setting: sweep::Setting, valids: Vec<f64>, trains: &[f64], leaves: f64, depths: f64, metric: Metric) -> sweep::SettingScore {
+    let n = valids.len() as f64;
+    let valid_mean = valids.iter().sum::<f64>() / n;
+    let valid_sd = if valids.len() > 1 { (valids.iter().map(|v| (v - valid_mean).powi(2)).sum::<f64>() / (n - 1.0)).sqrt() } else { 0.0 };
+    let train_mean = trains.iter().sum::<f64>() / n;
+    let gap = if metric.higher_is_better() { train_mean - valid_mean } else { valid_mean - train_mean };
+    sweep::SettingScore { setting, fold_scores: valids, valid_mean, valid_sd, train_mean, gap, mean_leaves: leaves / n, mean_depth: depths / n }
+}
+
+/// Every pick rule (the spec's own, best, one standard error, leaf budgets, score
+/// tolerances) and the Pareto front chosen from the sweep's table equal those chosen from
+/// the refits' table. The tables agree to 1e-12 relative for metrics that sum floats, so
+/// both are read with their scores rounded to 10 significant digits: settings whose scores
+/// tie but for rounding tie exactly in both, and the rules' tie-breaking decides alike.
+fn picks_equal_refit_picks(plan: &sweep::Plan, result: &sweep::SweepResult, refits: &[sweep::SettingScore], label: &str) {
+    let metric = plan.spec.metric;
+    let snap = |x: f64| {
+        if x == 0.0 || !x.is_finite() {
+            return x;
+        }
+        let scale = 10f64.powi(9 - x.abs().log10().floor() as i32);
+        (x * scale).round() / scale
+    };
+    let rounded = |table: &[sweep::SettingScore]| -> Vec<sweep::SettingScore> {
+        table.iter().map(|s| sweep::SettingScore { valid_mean: snap(s.valid_mean), valid_sd: snap(s.valid_sd), ..s.clone() }).collect()
+    };
+    let (ours_table, refit_table) = (rounded(&result.scores), rounded(refits));
+    let (lo, hi) = refits.iter().fold((f64::INFINITY, 0.0f64), |(lo, hi), s| (lo.min(s.mean_leaves), hi.max(s.mean_leaves)));
+    let spread = refits.iter().map(|s| s.valid_mean).filter(|v| v.is_finite()).fold(0.0f64, |m, v| m.max(v.abs()));
+    let mut rules = vec![plan.spec.spec.pick, PickRule::Highest, PickRule::OneSe, PickRule::Within(0.0), PickRule::Within(snap(0.05 * spread))];
+    for budget in [lo.floor(), ((lo + hi) / 2.0).floor(), hi.ceil()] {
+        rules.push(PickRule::MaxLeavesBudget(budget.max(0.0) as u32));
+    }
+    for rule in rules {
+        let (ours, theirs) = (sweep::pick(&ours_table, rule, metric), sweep::pick(&refit_table, rule, metric));
+        assert_eq!(ours, theirs, "{label}: rule {} picks setting {ours} from the sweep, {theirs} from the refits", rule.as_str());
+    }
+    assert_eq!(result.picked, sweep::pick(&result.scores, plan.spec.spec.pick, metric), "{label}: the run's pick is its rule's");
+    assert_eq!(sweep::pareto_front(&ours_table, metric), sweep::pareto_front(&refit_table, metric), "{label}: Pareto fronts");
 }
 
 /// The open datasets (and our two synthetic sets with missing cells, once with some columns
@@ -250,6 +313,7 @@ fn shared_growth_equals_fitting_each_setting() {
     let mut compared = 0usize;
     let mut per_scheme = std::collections::BTreeMap::new();
     let mut path_cases = 0;
+    let mut per_metric = std::collections::BTreeMap::new();
     while cases < 240 {
         let task = if g.chance(0.5) { Task::Classify } else { Task::Regress };
         let data = dataset(&mut g, task);
@@ -272,11 +336,13 @@ fn shared_growth_equals_fitting_each_setting() {
             Err(sweep::SweepError::Spec(_)) => continue,
             Err(e) => panic!("{e}"),
         };
+        *per_metric.entry(plan.spec.metric.as_str()).or_insert(0) += 1;
         compared += sweep_equals_refits(&plan, &format!("case {cases}, {name}"));
         *per_scheme.entry(name).or_insert(0) += 1;
         cases += 1;
     }
-    eprintln!("sweep_equivalence: {cases} cases ({path_cases} in pruning-path mode), {compared} setting × split scores compared; cases per fold plan: {per_scheme:?}");
+    eprintln!("sweep_equivalence: {cases} cases ({path_cases} in pruning-path mode), {compared} setting × split scores compared; cases per fold plan: {per_scheme:?}; per metric: {per_metric:?}");
+    assert!(per_metric.get("expected_cost").is_some_and(|&n| n >= 5), "expected_cost must be exercised: {per_metric:?}");
     assert!(path_cases >= 10, "pruning-path mode must be exercised");
     assert!(per_scheme.len() >= 7, "every fold plan must be exercised: {per_scheme:?}");
 }

@@ -93,6 +93,7 @@ pub enum Rpc {
     DeleteDataset,
     StartRun,
     FollowRun,
+    FollowRunBatches,
     GetRun,
     ListRuns,
     CancelRun,
@@ -117,7 +118,7 @@ pub enum Need {
 }
 
 impl Rpc {
-    pub const ALL: [Rpc; 19] = [
+    pub const ALL: [Rpc; 20] = [
         Rpc::Upload,
         Rpc::PutTable,
         Rpc::GetDataset,
@@ -125,6 +126,7 @@ impl Rpc {
         Rpc::DeleteDataset,
         Rpc::StartRun,
         Rpc::FollowRun,
+        Rpc::FollowRunBatches,
         Rpc::GetRun,
         Rpc::ListRuns,
         Rpc::CancelRun,
@@ -144,7 +146,7 @@ impl Rpc {
     pub fn needs(self) -> Role {
         use Rpc::*;
         match self {
-            GetDataset | ListDatasets | FollowRun | GetRun | ListRuns | GetSchedule | ListSchedules | ListFires | GetModel | Predict => Role::Reader,
+            GetDataset | ListDatasets | FollowRun | FollowRunBatches | GetRun | ListRuns | GetSchedule | ListSchedules | ListFires | GetModel | Predict => Role::Reader,
             Upload | PutTable | StartRun | CancelRun | CreateSchedule | PauseSchedule | ResumeSchedule => Role::Writer,
             DeleteDataset | DeleteSchedule => Role::Admin,
         }
@@ -161,6 +163,7 @@ impl Rpc {
             DeleteDataset => ("Datasets", "DeleteDataset"),
             StartRun => ("Runs", "StartRun"),
             FollowRun => ("Runs", "FollowRun"),
+            FollowRunBatches => ("Runs", "FollowRunBatches"),
             GetRun => ("Runs", "GetRun"),
             ListRuns => ("Runs", "ListRuns"),
             CancelRun => ("Runs", "CancelRun"),

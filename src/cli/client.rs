@@ -392,6 +392,9 @@ pub async fn show(ch: Conn, id: &str, top: usize, json_out: bool) -> Res {
     }
     if let Some(m) = &r.model {
         println!("model: {} nodes, {} leaves, depth {}", m.nodes, m.leaves, m.depth);
+        if let Some(d) = &m.decision {
+            print!("{}", output::decision_line(d.threshold, d.costs.unwrap_or_default(), &m.classes));
+        }
     }
     print!("{}", output::importance_lines(&r, if r.metric.is_empty() { "score" } else { &r.metric }, top));
     if let Some(d) = &r.drift {
@@ -602,7 +605,7 @@ pub fn local(a: LocalArgs, json_out: bool) -> Res {
                 "fold_assignment": plan.folds.assignment,
                 "pareto_front": front,
                 "nested": nested.as_ref().map(output::nested_json),
-                "model": model.as_ref().map(|m| json!({"nodes": m.nodes.len(), "leaves": m.n_leaves(), "depth": m.depth()})),
+                "model": model.as_ref().map(|m| json!({"nodes": m.nodes.len(), "leaves": m.n_leaves(), "depth": m.depth(), "decision": m.decision.map(|d| output::decision_json(d.threshold, costs_pb(d)))})),
             })
         );
     } else {
@@ -614,7 +617,14 @@ pub fn local(a: LocalArgs, json_out: bool) -> Res {
         }
         if let Some(m) = &model {
             println!("model: {} nodes, {} leaves, depth {}", m.nodes.len(), m.n_leaves(), m.depth());
+            if let Some(d) = m.decision {
+                print!("{}", output::decision_line(d.threshold, costs_pb(d), &m.labels));
+            }
         }
     }
     Ok(())
+}
+
+fn costs_pb(d: crate::tree::Decision) -> pb::DecisionCosts {
+    pb::DecisionCosts { false_alarm: d.false_alarm, miss: d.miss }
 }

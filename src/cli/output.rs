@@ -183,7 +183,7 @@ pub fn run_json(r: &pb::RunInfo) -> Value {
         "settings": r.settings, "units_done": r.units_done, "units_total": r.units_total,
         "picked": r.picked, "best": r.best, "pareto_front": r.pareto_front, "schedule_id": r.schedule_id, "owner": r.owner,
         "scores": r.scores.iter().map(score_json).collect::<Vec<_>>(),
-        "model": r.model.as_ref().map(|m| json!({"nodes": m.nodes, "leaves": m.leaves, "depth": m.depth, "classes": m.classes})),
+        "model": r.model.as_ref().map(|m| json!({"nodes": m.nodes, "leaves": m.leaves, "depth": m.depth, "classes": m.classes, "decision": m.decision.as_ref().map(|d| decision_json(d.threshold, d.costs.unwrap_or_default()))})),
         "dataset_rows": r.dataset_rows,
         "drift": r.drift.as_ref().map(super::schedules::drift_json),
         "nested": r.nested.as_ref().map(nested_json),
@@ -459,4 +459,18 @@ mod tests {
         assert_eq!(wrap("fixed: ", &items, 27), "fixed: alpha = 1, beta = 2,\n  gamma = 3\n");
         assert_eq!(wrap("fixed: ", &items, 10), "fixed: alpha = 1,\n  beta = 2,\n  gamma = 3\n");
     }
+}
+
+/// The decision rule of a model fitted under decision costs, in one line: the class it
+/// decides when, and where the threshold came from.
+pub fn decision_line(threshold: f64, costs: pb::DecisionCosts, classes: &[String]) -> String {
+    let positive = classes.get(1).map_or("class 1", String::as_str);
+    let bayes = costs.false_alarm / (costs.false_alarm + costs.miss);
+    let rule = if threshold > 1.0 { format!("never decides {positive} (no share reaches a threshold above 1)") } else { format!("decides {positive} when p({positive}) >= {threshold:.4}") };
+    format!("decision: {rule}; chosen on the validation folds for costs false alarm {} and miss {} (Bayes threshold {bayes:.4})\n", costs.false_alarm, costs.miss)
+}
+
+/// The decision rule as JSON.
+pub fn decision_json(threshold: f64, costs: pb::DecisionCosts) -> serde_json::Value {
+    json!({"threshold": threshold, "false_alarm": costs.false_alarm, "miss": costs.miss, "bayes_threshold": costs.false_alarm / (costs.false_alarm + costs.miss)})
 }

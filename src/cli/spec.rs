@@ -21,6 +21,9 @@
 //! repeats = 1
 //! [outer]            # nested cross-validation; same keys as [folds]
 //! k = 5
+//! [costs]            # two-class targets: costs of the two wrong decisions (both keys)
+//! false_alarm = 1
+//! miss = 5
 //! ```
 
 use std::path::PathBuf;
@@ -83,9 +86,19 @@ pub struct GridArgs {
     /// Column read by grouped, forward and given folds.
     #[arg(long)]
     pub fold_column: Option<String>,
-    /// accuracy, balanced_accuracy, macro_f1, log_loss, brier, roc_auc, rmse, mae or r2.
+    /// accuracy, balanced_accuracy, macro_f1, log_loss, brier, roc_auc, rmse, mae, r2 or
+    /// expected_cost (needs the two costs; the default when they are given).
     #[arg(long)]
     pub metric: Option<String>,
+    /// Two-class targets: cost of a false alarm (deciding the second class for a row of the
+    /// first). Give it with --miss-cost; the model then decides with a threshold on the
+    /// second class's probability, chosen on the validation folds.
+    #[arg(long)]
+    pub false_alarm_cost: Option<f64>,
+    /// Two-class targets: cost of a miss (deciding the first class for a row of the second).
+    /// Give it with --false-alarm-cost.
+    #[arg(long)]
+    pub miss_cost: Option<f64>,
     /// highest, one_se, max_leaves_budget:N (best tree of at most N mean leaves) or within:T
     /// (simplest setting within T of the best score).
     #[arg(long)]
@@ -154,6 +167,14 @@ struct SpecFile {
     #[serde(default)]
     folds: FoldsFile,
     outer: Option<FoldsFile>,
+    costs: Option<CostsFile>,
+}
+
+#[derive(Deserialize, Default)]
+#[serde(deny_unknown_fields)]
+struct CostsFile {
+    false_alarm: Option<f64>,
+    miss: Option<f64>,
 }
 
 #[derive(Deserialize, Default)]
@@ -250,7 +271,15 @@ impl GridArgs {
                 column: a.outer_column.clone().or(o.column).unwrap_or_default(),
             }
         });
+        let file_costs = file.costs.unwrap_or_default();
+        let costs = match (self.false_alarm_cost.or(file_costs.false_alarm), self.miss_cost.or(file_costs.miss)) {
+            (None, None) => None,
+            (Some(false_alarm), Some(miss)) => Some(pb::DecisionCosts { false_alarm, miss }),
+            (Some(_), None) => return Err(CliError::usage("--false-alarm-cost needs --miss-cost (or [costs] miss in the spec file)")),
+            (None, Some(_)) => return Err(CliError::usage("--miss-cost needs --false-alarm-cost (or [costs] false_alarm in the spec file)")),
+        };
         Ok(pb::SweepSpec {
+            costs,
             outer,
             target: self.target.clone().or(file.target).unwrap_or_default(),
             task: self.task.clone().or(file.task).unwrap_or_default(),

@@ -13,6 +13,7 @@
 //! | `grown_with` | `criterion`, `class_weight` (`"none"` or `"balanced"`) and `limits` (`max_depth`, `min_split_rows`, `min_leaf_rows`, `max_leaves`, `min_gain`, `prune_alpha`; `null` = no limit) |
 //! | `total_weight` | total training weight N |
 //! | `nodes` | the nodes in preorder (left subtree first), root first |
+//! | `decision` | two-class models fitted under decision costs only: `{"threshold": t, "false_alarm": c_fp, "miss": c_fn}`; the model decides class 1 (the second of `classes`) when its share is ≥ t, class 0 otherwise. Files without it decide the most likely class |
 //! | `importances` | impurity-based importance per column, in column order: the column's share of the total weighted impurity decrease of the splits, summing to 1 (all 0 for a single leaf). Derived from `nodes` when written; readers check its length and otherwise ignore it. Files written before it was added have none |
 //!
 //! Each node: `id` (its index), `depth` (root 0), `rows`, `weighted_rows`, `impurity`,
@@ -38,7 +39,7 @@
 use serde::{Deserialize, Serialize};
 
 use crate::data::{ColumnKind, Task};
-use crate::tree::{ClassWeight, ColumnInfo, Criterion, FitOptions, Limits, Node, Split, SplitRule, Tree, NO_NODE};
+use crate::tree::{ClassWeight, ColumnInfo, Criterion, Decision, FitOptions, Limits, Node, Split, SplitRule, Tree, NO_NODE};
 
 /// Name in the `format` field.
 pub const FORMAT: &str = "pollard.model";
@@ -60,6 +61,16 @@ struct ModelFile {
     nodes: Vec<NodeFile>,
     #[serde(default, skip_serializing_if = "Vec::is_empty")]
     importances: Vec<f64>,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    decision: Option<DecisionFile>,
+}
+
+#[derive(Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct DecisionFile {
+    threshold: f64,
+    false_alarm: f64,
+    miss: f64,
 }
 
 #[derive(Serialize, Deserialize)]
@@ -196,6 +207,7 @@ fn to_file(tree: &Tree) -> ModelFile {
         total_weight: tree.total_weight,
         nodes,
         importances: tree.impurity_importances(),
+        decision: tree.decision.map(|d| DecisionFile { threshold: d.threshold, false_alarm: d.false_alarm, miss: d.miss }),
     }
 }
 
@@ -320,6 +332,10 @@ pub fn from_json(text: &str) -> Result<Tree, String> {
             rank,
         });
     }
+    let decision = file.decision.map(|d| Decision { threshold: d.threshold, false_alarm: d.false_alarm, miss: d.miss });
+    if let Some(d) = &decision {
+        d.check(n_classes).map_err(|e| format!("decision: {e}"))?;
+    }
     // Every node but the root must be the child of exactly one node.
     let mut parents = vec![0u32; count];
     for n in &nodes {
@@ -343,6 +359,7 @@ pub fn from_json(text: &str) -> Result<Tree, String> {
         class_totals,
         total_weight: file.total_weight,
         options,
+        decision,
     })
 }
 
@@ -397,6 +414,19 @@ mod tests {
                 assert_eq!(back.map(f32::to_bits), pair.map(f32::to_bits), "{pair:?}");
             }
         }
+    }
+
+    #[test]
+    fn a_decision_survives_a_round_trip_and_old_files_have_none() {
+        let mut tree = classify_tree();
+        assert_eq!(from_json(&to_json(&tree)).unwrap().decision, None);
+        assert!(!to_json(&tree).contains("decision"));
+        tree.decision = Some(Decision { threshold: 0.16666666666666666, false_alarm: 1.0, miss: 5.0 });
+        let text = to_json(&tree);
+        assert_eq!(from_json(&text).unwrap(), tree);
+        // A threshold that is not a number, costs that are not usable: refused.
+        let bad = text.replace("\"miss\": 5.0", "\"miss\": -5.0");
+        assert!(from_json(&bad).unwrap_err().contains("decision"), "{bad}");
     }
 
     #[test]

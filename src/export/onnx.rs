@@ -16,7 +16,13 @@
 //!   the first largest probability (`ArgMax`, default domain, opset [`DEFAULT_OPSET`]), which
 //!   is pollard's rule (lowest class code on ties). Class names are in the metadata entry
 //!   `pollard.classes`, index order. The ensemble's own label output (`ensemble_label`) is
-//!   left unused: for two classes its rule is not the largest share.
+//!   left unused: for two classes its rule is not the largest share. A two-class model
+//!   with a decision threshold (fitted under decision costs) writes instead `label` =
+//!   `p(class 1) >= threshold` as 0 or 1 (`Gather` of column 1, `GreaterOrEqual` with the
+//!   float32 initializer `decision_threshold`, `Cast` to int64): the float32 threshold is
+//!   the smallest float32 leaf share at or above pollard's f64 threshold ([`f32_threshold`]),
+//!   so every leaf decides as in pollard. The exact threshold and its costs are in the
+//!   metadata entry `pollard.decision`.
 //! - regress: `TreeEnsembleRegressor` writes `variable` (float32 `[N, 1]`), the leaf's mean.
 //!
 //! Splits: a numeric `column <= threshold` is a `BRANCH_LEQ` node whose threshold is the
@@ -36,7 +42,7 @@ use crate::data::{ColumnKind, Task};
 use crate::onnx_pb::attribute_proto::AttributeType;
 use crate::onnx_pb::tensor_proto::DataType;
 use crate::onnx_pb::tensor_shape_proto::{dimension, Dimension};
-use crate::onnx_pb::{type_proto, AttributeProto, GraphProto, ModelProto, NodeProto, OperatorSetIdProto, StringStringEntryProto, TensorShapeProto, TypeProto, ValueInfoProto};
+use crate::onnx_pb::{type_proto, AttributeProto, GraphProto, ModelProto, NodeProto, OperatorSetIdProto, StringStringEntryProto, TensorProto, TensorShapeProto, TypeProto, ValueInfoProto};
 use crate::tree::{SplitRule, Tree};
 use prost::Message;
 
@@ -103,6 +109,19 @@ fn f32_at_most(t: f64) -> f32 {
         f32::from_bits(v.to_bits() - 1)
     } else {
         f32::from_bits(v.to_bits() + 1)
+    }
+}
+
+/// The float32 threshold that sends every leaf of a two-class `tree` the way pollard's f64
+/// test `p1 >= threshold` does, on the float32 shares the ensemble carries: the smallest
+/// float32 share of a leaf deciding class 1 (2 when no leaf does). An error when a leaf
+/// deciding class 0 has the same float32 share (two shares float32 cannot tell apart).
+pub fn f32_threshold(tree: &Tree, threshold: f64) -> Result<f32, String> {
+    let shares: Vec<f64> = tree.leaves().iter().map(|&l| tree.value(l as usize)[1]).collect();
+    let t32 = shares.iter().filter(|&&p| p >= threshold).map(|&p| p as f32).fold(2.0f32, f32::min);
+    match shares.iter().find(|&&p| p < threshold && p as f32 >= t32) {
+        Some(p) => Err(format!("leaf share {p} decides class 0 and {t32} class 1, the same float32 value")),
+        None => Ok(t32),
     }
 }
 
@@ -271,6 +290,7 @@ pub fn model(tree: &Tree) -> Result<ModelProto, String> {
         attr_string("post_transform", "NONE"),
     ];
     let features = tree.n_features as i64;
+    let mut initializer = Vec::new();
     let input = value_info("X", DataType::Float, &[None, Some(features)]);
     let (nodes, outputs) = match tree.task {
         Task::Classify => {
@@ -284,8 +304,22 @@ pub fn model(tree: &Tree) -> Result<ModelProto, String> {
                 attr_ints("classlabels_int64s", &classes),
             ]);
             let ensemble = node("TreeEnsembleClassifier", "ai.onnx.ml", "tree", &["X"], &["ensemble_label", "probabilities"], attrs);
-            let argmax = node("ArgMax", "", "label", &["probabilities"], &["label"], vec![attr_int("axis", 1), attr_int("keepdims", 0), attr_int("select_last_index", 0)]);
-            (vec![ensemble, argmax], vec![value_info("label", DataType::Int64, &[None]), value_info("probabilities", DataType::Float, &[None, Some(k)])])
+            let outputs = vec![value_info("label", DataType::Int64, &[None]), value_info("probabilities", DataType::Float, &[None, Some(k)])];
+            match tree.decision {
+                Some(d) if k == 2 => {
+                    let t32 = f32_threshold(tree, d.threshold)?;
+                    initializer.push(TensorProto { name: Some("class_one".into()), data_type: Some(DataType::Int64 as i32), int64_data: vec![1], ..TensorProto::default() });
+                    initializer.push(TensorProto { name: Some("decision_threshold".into()), data_type: Some(DataType::Float as i32), float_data: vec![t32], ..TensorProto::default() });
+                    let p1 = node("Gather", "", "p_class_one", &["probabilities", "class_one"], &["p_class_one"], vec![attr_int("axis", 1)]);
+                    let at_least = node("GreaterOrEqual", "", "decided", &["p_class_one", "decision_threshold"], &["decided"], Vec::new());
+                    let cast = node("Cast", "", "label", &["decided"], &["label"], vec![attr_int("to", DataType::Int64 as i64)]);
+                    (vec![ensemble, p1, at_least, cast], outputs)
+                }
+                _ => {
+                    let argmax = node("ArgMax", "", "label", &["probabilities"], &["label"], vec![attr_int("axis", 1), attr_int("keepdims", 0), attr_int("select_last_index", 0)]);
+                    (vec![ensemble, argmax], outputs)
+                }
+            }
         }
         Task::Regress => {
             attrs.extend([
@@ -306,6 +340,7 @@ pub fn model(tree: &Tree) -> Result<ModelProto, String> {
         doc_string: Some(format!("pollard tree for '{}' ({}), {} nodes, {} leaves", tree.target, tree.task, tree.nodes.len(), tree.n_leaves())),
         input: vec![input],
         output: outputs,
+        initializer,
         ..GraphProto::default()
     };
 
@@ -324,6 +359,9 @@ pub fn model(tree: &Tree) -> Result<ModelProto, String> {
     ];
     if tree.task == Task::Classify {
         metadata_props.push(entry("pollard.classes", &serde_json::to_string(&tree.labels).map_err(|e| e.to_string())?));
+    }
+    if let Some(d) = tree.decision {
+        metadata_props.push(entry("pollard.decision", &serde_json::json!({"threshold": d.threshold, "false_alarm": d.false_alarm, "miss": d.miss}).to_string()));
     }
     Ok(ModelProto {
         ir_version: Some(IR_VERSION),
@@ -454,5 +492,40 @@ mod tests {
         // Exact float32 values stay themselves.
         assert_eq!(f32_at_most(0.5), 0.5);
         assert_eq!(f32_at_most(-0.0), 0.0);
+    }
+
+    #[test]
+    fn a_decision_threshold_decides_every_leaf_as_pollard_does() {
+        // Two classes from the synthetic frame: high targets are class 1.
+        let mut data = synthetic(false);
+        let Target::Values(y) = &data.target else { unreachable!() };
+        data.target = Target::Classes { codes: y.iter().map(|&v| (v > 20.0) as u32).collect(), labels: vec!["low".into(), "high".into()] };
+        let options = FitOptions { limits: crate::tree::Limits { max_depth: Some(3), ..Default::default() }, ..FitOptions::default() };
+        let mut tree = fit(&TrainSet::of(&data), &options.check(data.task()).unwrap()).unwrap();
+        let shares: Vec<f64> = tree.leaves().iter().map(|&l| tree.value(l as usize)[1]).collect();
+        assert!(shares.iter().any(|&p| p > 0.0 && p < 1.0), "mixed leaves exercise the threshold");
+        for threshold in [0.0, 0.1, 1.0 / 3.0, 0.5, 0.9, 1.0, crate::sweep::costs::NEVER] {
+            tree.decision = Some(crate::tree::Decision { threshold, false_alarm: 1.0, miss: 2.0 });
+            let t32 = f32_threshold(&tree, threshold).unwrap();
+            for &p in &shares {
+                assert_eq!(p as f32 >= t32, p >= threshold, "share {p}, threshold {threshold} -> {t32}");
+            }
+            let m = model(&tree).unwrap();
+            let g = m.graph.unwrap();
+            let ops: Vec<&str> = g.node.iter().map(|n| n.op_type.as_deref().unwrap()).collect();
+            assert_eq!(ops, ["TreeEnsembleClassifier", "Gather", "GreaterOrEqual", "Cast"]);
+            assert_eq!(g.initializer.iter().find(|t| t.name.as_deref() == Some("decision_threshold")).unwrap().float_data, vec![t32]);
+            assert!(m.metadata_props.iter().any(|e| e.key.as_deref() == Some("pollard.decision")));
+        }
+        // Two leaves whose shares float32 cannot tell apart, on either side of the
+        // threshold: refused rather than written wrong.
+        let leaves = tree.leaves();
+        let p = 0.3f64;
+        let next = f64::from_bits(p.to_bits() + 1);
+        let w = tree.width();
+        tree.values[leaves[0] as usize * w..][..2].copy_from_slice(&[1.0 - p, p]);
+        tree.values[leaves[1] as usize * w..][..2].copy_from_slice(&[1.0 - next, next]);
+        assert!(f32_threshold(&tree, next).is_err());
+        assert!(f32_threshold(&tree, p).is_ok());
     }
 }

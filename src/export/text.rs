@@ -561,6 +561,7 @@ pub(crate) mod tests {
             class_totals: vec![4.0, 4.0, 2.0, 3.0, 0.0, 3.0, 2.0, 0.0, 2.0, 1.0],
             total_weight: 8.0,
             options: FitOptions::default(),
+            decision: None,
         }
     }
 

@@ -11,8 +11,9 @@ use crate::pb;
 use crate::rpc::error::{echo, ServiceError};
 use crate::service::models::RowPath;
 use crate::service::{DatasetRef, RunRequest, SchemeDefaults};
+use crate::sweep::costs::Costs;
 use crate::sweep::{FoldPlan, FoldScheme, Metric, PickRule, Range, SettingScore, SweepSpec};
-use crate::tree::{ClassWeight, ColumnInfo, Criterion, FitOptions, Limits, Monotone, Node, Split, SplitRule, Splitter, Tree, NO_NODE};
+use crate::tree::{ClassWeight, ColumnInfo, Criterion, Decision, FitOptions, Limits, Monotone, Node, Split, SplitRule, Splitter, Tree, NO_NODE};
 
 fn invalid(field: &str, message: impl std::fmt::Display) -> Status {
     ServiceError::invalid(field, message.to_string()).into()
@@ -365,6 +366,7 @@ fn spec_with(s: &pb::SweepSpec, data_task: Option<Task>) -> Result<(SweepSpec, S
         splitter,
         outer,
         monotone,
+        costs: s.costs.map(|c| Costs { false_alarm: c.false_alarm, miss: c.miss }),
     }, defaults))
 }
 
@@ -383,6 +385,7 @@ pub fn spec_to(s: &SweepSpec, target: &str) -> pb::SweepSpec {
         prune_path: s.prune_path,
         folds: s.folds.as_ref().map(fold_plan_to),
         outer: s.outer.as_ref().map(fold_plan_to),
+        costs: s.costs.map(|c| pb::DecisionCosts { false_alarm: c.false_alarm, miss: c.miss }),
         metric: s.metric.map(|m| m.as_str().to_string()).unwrap_or_default(),
         pick: s.pick.as_str().to_string(),
         seed: s.seed,
@@ -513,7 +516,7 @@ pub fn run_info(r: &Run, outcome: Option<&RunOutcome>) -> pb::RunInfo {
         info.nested = o.nested.as_ref().map(nested_to);
         info.fold_assignment = o.fold_assignment.iter().map(|f| pb::FoldAssignment { folds: f.clone() }).collect();
         if let Some(m) = &o.model {
-            info.model = Some(pb::ModelSummary { nodes: m.nodes.len() as u32, leaves: m.n_leaves() as u32, depth: m.depth(), classes: m.labels.clone() });
+            info.model = Some(pb::ModelSummary { nodes: m.nodes.len() as u32, leaves: m.n_leaves() as u32, depth: m.depth(), classes: m.labels.clone(), decision: m.decision.map(decision_to) });
         }
         info.importances = importances_to(o);
         info.permutation_repeats = o.permutation.as_ref().map_or(0, |p| p.repeats);
@@ -743,7 +746,12 @@ pub fn model_to(t: &Tree) -> pb::Model {
         }),
         total_weight: t.total_weight,
         importances: t.impurity_importances(),
+        decision: t.decision.map(decision_to),
     }
+}
+
+fn decision_to(d: Decision) -> pb::ModelDecision {
+    pb::ModelDecision { threshold: d.threshold, costs: Some(pb::DecisionCosts { false_alarm: d.false_alarm, miss: d.miss }) }
 }
 
 /// The native protobuf model back as a tree (for clients and tests that hold a `Model`).
@@ -794,7 +802,17 @@ pub fn model_from(m: &pb::Model) -> Result<Tree, String> {
         nodes.push(Node { depth: n.depth, rows: n.rows as u32, weighted_rows: n.weighted_rows, impurity: n.impurity, gain, split, left, right, rank });
     }
     let g = m.grown_with.clone().unwrap_or_default();
+    let decision = match &m.decision {
+        None => None,
+        Some(d) => {
+            let c = d.costs.unwrap_or_default();
+            let d = Decision { threshold: d.threshold, false_alarm: c.false_alarm, miss: c.miss };
+            d.check(n_classes).map_err(|e| format!("decision: {e}"))?;
+            Some(d)
+        }
+    };
     Ok(Tree {
+        decision,
         task,
         target: m.target.clone(),
         labels: m.classes.clone(),

@@ -23,6 +23,28 @@ pub async fn prepare_run(shared: &Arc<Service>, r: pb::StartRunRequest, schedule
     Ok(shared.admit_run(convert::run_request(r)?, schedule_id).await?)
 }
 
+/// The most encoded bytes of events put in one batch of FollowRunBatches (an event bigger
+/// than this goes alone).
+const BATCH_BYTES: usize = 1 << 20;
+
+/// Events packed into batches of at most [`BATCH_BYTES`], in order, none empty.
+fn batches(events: Vec<pb::RunEvent>) -> Vec<pb::RunEventBatch> {
+    let mut out: Vec<pb::RunEventBatch> = Vec::new();
+    let mut bytes = 0;
+    for e in events {
+        let size = prost::Message::encoded_len(&e);
+        match out.last_mut() {
+            Some(b) if bytes + size <= BATCH_BYTES => b.events.push(e),
+            _ => {
+                out.push(pb::RunEventBatch { events: vec![e] });
+                bytes = 0;
+            }
+        }
+        bytes += size;
+    }
+    out
+}
+
 /// How often a follower looks for events of a shared store with no notification.
 const SHARED_STORE_POLL: std::time::Duration = std::time::Duration::from_secs(1);
 
@@ -31,22 +53,11 @@ impl Api {
     pub async fn queue_run(&self, caller: &Caller, r: pb::StartRunRequest) -> Result<Run, Status> {
         Ok(self.shared.queue_run(caller, convert::run_request(r)?).await?)
     }
-}
 
-type EventStream = Pin<Box<dyn Stream<Item = Result<pb::RunEvent, Status>> + Send>>;
-
-#[tonic::async_trait]
-impl pb::runs_server::Runs for Api {
-    async fn start_run(&self, request: Request<pb::StartRunRequest>) -> Result<Response<pb::RunInfo>, Status> {
-        let caller = Caller::of(&request);
-        let run = self.queue_run(&caller, request.into_inner()).await?;
-        Ok(Response::new(convert::run_info(&run, None)))
-    }
-
-    type FollowRunStream = EventStream;
-
-    async fn follow_run(&self, request: Request<pb::FollowRunRequest>) -> Result<Response<Self::FollowRunStream>, Status> {
-        let r = request.into_inner();
+    /// The stream of a follow call: the run's events after `r.after_sequence`, then live ones
+    /// until its terminal event, each page of events known at once packed into messages by
+    /// `pack` (one message per event for FollowRun, few for FollowRunBatches).
+    fn follow<T: Send + 'static>(&self, r: pb::FollowRunRequest, pack: fn(Vec<pb::RunEvent>) -> Vec<T>) -> Result<Messages<T>, Status> {
         self.shared.run("id", &r.id)?;
         let shared = self.shared.clone();
         let (tx, rx) = tokio::sync::mpsc::channel(64);
@@ -71,19 +82,22 @@ impl pb::runs_server::Runs for Api {
                     }
                 };
                 let (events, ended) = (&page.events, page.ended);
-                for e in events {
+                // Up to and including a terminal event: nothing follows one.
+                let last = events.iter().position(|e| e.is_terminal()).map_or(events.len(), |i| i + 1);
+                let terminal = events[..last].last().is_some_and(|e| e.is_terminal());
+                let msgs: Vec<pb::RunEvent> = events[..last].iter().map(|e| convert::event_to(&r.id, e, page.outcome.as_ref(), page.drift.as_ref())).collect();
+                if let Some(e) = events[..last].last() {
                     after = e.sequence;
-                    let msg = convert::event_to(&r.id, e, page.outcome.as_ref(), page.drift.as_ref());
-                    if tx.send(Ok(msg)).await.is_err() {
-                        return;
-                    }
-                    shared.metrics.events_streamed.inc();
-                    if e.is_terminal() {
+                }
+                let sent = msgs.len() as u64;
+                for m in pack(msgs) {
+                    if tx.send(Ok(m)).await.is_err() {
                         return;
                     }
                 }
-                if events.is_empty() && ended {
-                    // A terminal run whose events the caller has all seen: end the stream.
+                shared.metrics.events_streamed.inc_by(sent);
+                if terminal || (events.is_empty() && ended) {
+                    // The run's end is sent, or the caller has seen every event of an ended run.
                     return;
                 }
                 tokio::select! {
@@ -98,7 +112,33 @@ impl pb::runs_server::Runs for Api {
                 }
             }
         });
-        Ok(Response::new(Box::pin(ReceiverStream::new(rx))))
+        Ok(Box::pin(ReceiverStream::new(rx)))
+    }
+}
+
+/// A server stream of `T` messages.
+type Messages<T> = Pin<Box<dyn Stream<Item = Result<T, Status>> + Send>>;
+
+#[tonic::async_trait]
+impl pb::runs_server::Runs for Api {
+    async fn start_run(&self, request: Request<pb::StartRunRequest>) -> Result<Response<pb::RunInfo>, Status> {
+        let caller = Caller::of(&request);
+        let run = self.queue_run(&caller, request.into_inner()).await?;
+        Ok(Response::new(convert::run_info(&run, None)))
+    }
+
+    type FollowRunStream = Messages<pb::RunEvent>;
+
+    async fn follow_run(&self, request: Request<pb::FollowRunRequest>) -> Result<Response<Self::FollowRunStream>, Status> {
+        let stream = self.follow(request.into_inner(), |events| events)?;
+        Ok(Response::new(stream))
+    }
+
+    type FollowRunBatchesStream = Messages<pb::RunEventBatch>;
+
+    async fn follow_run_batches(&self, request: Request<pb::FollowRunRequest>) -> Result<Response<Self::FollowRunBatchesStream>, Status> {
+        let stream = self.follow(request.into_inner(), batches)?;
+        Ok(Response::new(stream))
     }
 
     async fn get_run(&self, request: Request<pb::GetRunRequest>) -> Result<Response<pb::RunInfo>, Status> {
@@ -147,5 +187,32 @@ impl pb::runs_server::Runs for Api {
         let caller = Caller::of(&request);
         let run = self.shared.cancel_run(&caller, &request.into_inner().id)?;
         Ok(Response::new(convert::run_info(&run, None)))
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn scored(sequence: u64, bytes: usize) -> pb::RunEvent {
+        pb::RunEvent { sequence, run_id: "r".repeat(bytes), ..Default::default() }
+    }
+
+    #[test]
+    fn batches_keep_order_and_stay_under_the_byte_cap() {
+        assert!(batches(Vec::new()).is_empty());
+        let small: Vec<pb::RunEvent> = (1..=500).map(|i| scored(i, 10)).collect();
+        let b = batches(small.clone());
+        assert_eq!(b.len(), 1, "500 small events fit one batch");
+        assert_eq!(b[0].events, small);
+        // 3 events of 0.4 MiB: two to a batch; one of 2 MiB goes alone.
+        let big = vec![scored(1, 400_000), scored(2, 400_000), scored(3, 400_000), scored(4, 2 << 20), scored(5, 10)];
+        let b = batches(big.clone());
+        let shape: Vec<Vec<u64>> = b.iter().map(|x| x.events.iter().map(|e| e.sequence).collect()).collect();
+        assert_eq!(shape, vec![vec![1, 2], vec![3], vec![4], vec![5]]);
+        for x in &b {
+            let size: usize = x.events.iter().map(prost::Message::encoded_len).sum();
+            assert!(x.events.len() == 1 || size <= BATCH_BYTES, "{size}");
+        }
     }
 }

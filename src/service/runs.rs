@@ -72,10 +72,11 @@ impl RunRequest {
     /// reused for another request is told apart from a retry.
     pub fn digest(&self) -> String {
         use sha2::{Digest, Sha256};
-        // The target as the text digests were first taken of ("" for none), so a retry
-        // matches runs stored before the field was optional.
-        // Fields added since are left out while they hold their defaults, for the same reason.
-        let mut what = format!("{:?}", (&self.dataset, self.target.as_deref().unwrap_or(""), &self.spec, self.default_fold_scheme, &self.labels)).replacen(", monotone: [] }", " }", 1).replacen(", outer: None }", " }", 1);
+        // The text digests were first taken of: the target "" for none, so a retry matches
+        // runs stored before the field was optional; the spec field by field (see
+        // `SweepSpec::digest_text`), fields added since only when set.
+        let RunRequest { dataset, target, spec, default_fold_scheme, default_outer_scheme: _, idempotency_key: _, labels } = self;
+        let mut what = format!("({dataset:?}, {:?}, {}, {default_fold_scheme:?}, {labels:?})", target.as_deref().unwrap_or(""), spec.digest_text());
         if self.default_outer_scheme {
             what.push_str(" default outer scheme");
         }

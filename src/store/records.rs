@@ -208,6 +208,10 @@ struct MonotoneRecord {
     feature: String,
     /// `Monotone::as_str`.
     direction: String,
+    /// Decision costs `[false_alarm, miss]`; absent in records written before them, and
+    /// for sweeps without costs.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    costs: Option<[f64; 2]>,
 }
 
 #[derive(Serialize, Deserialize)]
@@ -295,6 +299,7 @@ impl From<&SweepSpec> for SpecRecord {
             splitter: splitter_record(s.splitter),
             outer: s.outer.as_ref().map(FoldPlanRecord::from),
             monotone: s.monotone.iter().map(|(f, m)| MonotoneRecord { feature: f.clone(), direction: m.as_str().to_string() }).collect(),
+            costs: s.costs.map(|c| [c.false_alarm, c.miss]),
         }
     }
 }
@@ -323,6 +328,7 @@ impl TryFrom<SpecRecord> for SweepSpec {
             splitter: splitter_of(w, r.splitter)?,
             outer: r.outer.map(FoldPlan::try_from).transpose()?,
             monotone: r.monotone.iter().map(|m| Ok((m.feature.clone(), parse_name(w, "monotone limit", &m.direction, Monotone::parse)?))).collect::<Result<_, StoreError>>()?,
+            costs: r.costs.map(|[false_alarm, miss]| crate::sweep::costs::Costs { false_alarm, miss }),
         })
     }
 }

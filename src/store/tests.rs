@@ -105,6 +105,7 @@ fn full_spec(seed: u64) -> SweepSpec {
         splitter: Splitter::Binned,
         outer: Some(FoldPlan { scheme: FoldScheme::Forward { column: "day".into() }, k: 3, repeats: 1 }),
         monotone: vec![("day".into(), Monotone::Increasing), ("site".into(), Monotone::Decreasing), ("x".into(), Monotone::Free)],
+        costs: Some(crate::sweep::costs::Costs { false_alarm: 1.5, miss: 4.0 }),
     }
 }
 

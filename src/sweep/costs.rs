@@ -8,8 +8,18 @@
 //! minimises the expected cost over pooled rows (validation predictions); the Bayes
 //! threshold is the check value and breaks ties.
 //!
-//! Not wired into sweeps yet: this is the core of the cost-matrix feature (see the report
-//! of the branch that added it); specs, the metric, models and exports do not use it.
+//! In a sweep (`SweepSpec::costs`): every setting is scored on each fold by the metric
+//! `expected_cost`, deciding at the Bayes threshold (no fold's own truth chooses its
+//! threshold, so fold scores stay honest estimates); the picked setting's refit then gets
+//! the threshold [`Costs::best_threshold`] finds on the pooled out-of-fold validation
+//! predictions of that setting ([`decide`]), kept in the model as a
+//! [`Decision`](crate::tree::Decision) that predictions and exports honour.
+
+use rayon::prelude::*;
+
+use super::{Plan, Setting};
+use crate::data::Target;
+use crate::tree::{fit, Decision, FitError, TrainSet, Tree};
 
 /// Costs of the two wrong decisions.
 #[derive(Clone, Copy, Debug, PartialEq)]
@@ -109,6 +119,42 @@ impl Costs {
     }
 }
 
+/// The threshold of a decision that never picks class 1: the least double above 1.
+pub const NEVER: f64 = 1.0000000000000002;
+
+/// The class-1 probabilities of `setting` on every validation row of the plan's own folds
+/// (each split's tree grown on its training rows), pooled in split order, with each row's
+/// truth (class 1 or not). A row validated in several repeats appears once per repeat.
+pub fn pooled_validation(plan: &Plan, setting: &Setting) -> Result<(Vec<bool>, Vec<f64>), FitError> {
+    let Target::Classes { codes, .. } = &plan.data.target else { return Ok((Vec::new(), Vec::new())) };
+    let checked = setting.options.check(plan.data.task())?;
+    let per_split = plan
+        .folds
+        .splits
+        .par_iter()
+        .map(|fold| {
+            let tree = fit(&TrainSet { rows: Some(&fold.train), ..TrainSet::of(&plan.data) }, &checked)?;
+            Ok(fold.valid.iter().map(|&r| (codes[r as usize] == 1, tree.predict_row(&plan.data.frame, r as usize)[1])).collect::<Vec<_>>())
+        })
+        .collect::<Result<Vec<_>, FitError>>()?;
+    Ok(per_split.into_iter().flatten().unzip())
+}
+
+/// Gives `tree` (the refit of `setting`) the decision of the plan's costs: the threshold
+/// with the lowest expected cost over the pooled validation predictions. Unchanged when the
+/// plan has no costs.
+pub fn decide(plan: &Plan, setting: &Setting, mut tree: Tree) -> Result<Tree, FitError> {
+    if let Some(c) = plan.spec.costs {
+        let (truth, p1) = pooled_validation(plan, setting)?;
+        let (threshold, _) = c.best_threshold(&truth, &p1);
+        // +∞ (never class 1) is kept as the least number above 1, which no share reaches:
+        // model files and messages hold finite numbers only.
+        let threshold = if threshold.is_finite() { threshold } else { NEVER };
+        tree.decision = Some(Decision { threshold, false_alarm: c.false_alarm, miss: c.miss });
+    }
+    Ok(tree)
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -150,5 +196,70 @@ mod tests {
                 assert!(c.expected_cost(&truth, &p, g) >= cost, "case {case}: threshold {g} beats the search's {t}");
             }
         }
+    }
+
+    /// breast_cancer from tests/data (sources in tests/data/SOURCES.md): 569 rows, 2 classes.
+    fn breast_cancer() -> crate::data::Dataset {
+        let path = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/data/breast_cancer.csv");
+        crate::data::csv::read_dataset(std::fs::File::open(path).unwrap(), &crate::data::csv::CsvOptions::new("target")).unwrap()
+    }
+
+    fn swept(costs: Option<Costs>) -> (Plan, super::super::SweepResult) {
+        let spec = super::super::SweepSpec {
+            max_depth: Some(super::super::Range::Values(vec![Some(1.0), Some(3.0), Some(5.0)])),
+            min_leaf_rows: Some(super::super::Range::Values(vec![Some(1.0), Some(10.0)])),
+            seed: 3,
+            costs,
+            ..Default::default()
+        };
+        super::super::sweep(&breast_cancer(), &spec, &|_, _| super::super::Flow::Continue, &Default::default()).unwrap()
+    }
+
+    #[test]
+    fn the_refit_keeps_the_threshold_searched_on_pooled_validation_predictions() {
+        let costs = Costs::new(1.0, 5.0).unwrap();
+        let (plan, result) = swept(Some(costs));
+        assert_eq!(plan.spec.metric, super::super::Metric::ExpectedCost, "costs make expected_cost the default metric");
+        let setting = &result.scores[result.picked].setting;
+        let d = result.model.as_ref().unwrap().decision.expect("a refit under costs has a decision");
+        assert_eq!((d.false_alarm, d.miss), (1.0, 5.0));
+        // Pool the validation predictions again by hand: each fold's tree on its training
+        // rows, class-1 shares of its validation rows.
+        let checked = setting.options.check(plan.data.task()).unwrap();
+        let Target::Classes { codes, .. } = &plan.data.target else { unreachable!() };
+        let (mut truth, mut p1) = (Vec::new(), Vec::new());
+        for fold in &plan.folds.splits {
+            let tree = fit(&TrainSet { rows: Some(&fold.train), ..TrainSet::of(&plan.data) }, &checked).unwrap();
+            for &r in &fold.valid {
+                truth.push(codes[r as usize] == 1);
+                p1.push(tree.predict_row(&plan.data.frame, r as usize)[1]);
+            }
+        }
+        assert_eq!(truth.len(), plan.data.rows());
+        // Brute force: no threshold on a fine grid, and no pooled share, costs less.
+        let chosen = costs.expected_cost(&truth, &p1, d.threshold);
+        for t in (0..=2000).map(|i| i as f64 / 2000.0).chain(p1.iter().copied()) {
+            assert!(costs.expected_cost(&truth, &p1, t) >= chosen, "threshold {t} beats the stored {}", d.threshold);
+        }
+        // The check value: the Bayes threshold 1/6 costs at least as much on these rows.
+        assert_eq!(costs.bayes_threshold(), 1.0 / 6.0);
+        assert!(costs.expected_cost(&truth, &p1, costs.bayes_threshold()) >= chosen);
+        assert_ne!(d.threshold, 0.5, "asymmetric costs move the threshold off one half");
+        // The picked setting's validation score is expected_cost at the Bayes threshold,
+        // fold by fold: the pooled cost at the Bayes threshold is their row-weighted mean.
+        let score = &result.scores[result.picked];
+        let weighted: f64 = plan.folds.splits.iter().zip(&score.fold_scores).map(|(f, s)| s * f.valid.len() as f64).sum::<f64>() / truth.len() as f64;
+        assert!((weighted - costs.expected_cost(&truth, &p1, costs.bayes_threshold())).abs() < 1e-12);
+        // Predictions follow the stored threshold.
+        let model = result.model.as_ref().unwrap();
+        for leaf in model.leaves() {
+            assert_eq!(model.leaf_class(leaf), (model.value(leaf as usize)[1] >= d.threshold) as u32);
+        }
+    }
+
+    #[test]
+    fn without_costs_the_refit_has_no_decision() {
+        let (_, result) = swept(None);
+        assert_eq!(result.model.unwrap().decision, None);
     }
 }

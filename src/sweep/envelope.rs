@@ -9,7 +9,7 @@
 //! keeps its rows' aggregates, and a setting's leaf for a T* leaf is its deepest kept
 //! ancestor, so a setting costs O(nodes of T*), not O(rows).
 
-use super::metrics::{score_classes, score_values, ClassGroups, Metric, ValueGroup};
+use super::metrics::{score_classes, score_values, ClassGroups, Scoring, ValueGroup};
 use crate::data::{Dataset, Target};
 use crate::tree::{fit_shared, fit_with_leaves, pruning_path_of, FitError, FitOptions, TrainSet, Tree, NO_NODE};
 
@@ -77,7 +77,7 @@ impl LeafRows {
     }
 
     /// Scores a setting whose leaf for T* leaf j is node `leaf_of[j]`.
-    fn score(&self, metric: Metric, tree: &Tree, leaf_of: &[u32], buf: &mut ScoreBuf) -> f64 {
+    fn score(&self, metric: Scoring, tree: &Tree, leaf_of: &[u32], buf: &mut ScoreBuf) -> f64 {
         match self {
             LeafRows::Classes { k, counts } => {
                 // Merge T* leaves into the setting's leaves, so ties in score are whole leaves.
@@ -104,7 +104,7 @@ impl LeafRows {
                     .map(|j| ValueGroup { n: n[j], mean: mean[j], m2: m2[j], sorted: &sorted[j], prefix: &prefix[j] })
                     .collect();
                 let pred: Vec<f64> = leaf_of.iter().map(|&node| tree.value(node as usize)[0]).collect();
-                score_values(metric, &groups, &pred)
+                score_values(metric.metric, &groups, &pred)
             }
         }
     }
@@ -217,7 +217,8 @@ impl Envelope {
     }
 
     /// Scores each α for one stopping setting: one pruning pass serves every α.
-    pub fn score(&self, metric: Metric, s: &Stopping, alphas: &[f64]) -> Vec<FoldScore> {
+    pub fn score(&self, metric: impl Into<Scoring>, s: &Stopping, alphas: &[f64]) -> Vec<FoldScore> {
+        let metric = metric.into();
         let keep = self.keep(s);
         let path = if alphas.iter().any(|&a| a > 0.0) { Some(pruning_path_of(&self.tree, Some(&keep))) } else { None };
         let mut buf = ScoreBuf::default();
@@ -236,7 +237,7 @@ impl Envelope {
             .collect()
     }
 
-    fn score_kept(&self, metric: Metric, keep: &[bool], leaf_of: &mut [u32], buf: &mut ScoreBuf) -> FoldScore {
+    fn score_kept(&self, metric: Scoring, keep: &[bool], leaf_of: &mut [u32], buf: &mut ScoreBuf) -> FoldScore {
         let nodes = &self.tree.nodes;
         // Setting leaf of every node: itself if reached and not split, else its parent's.
         let mut at = vec![NO_NODE; nodes.len()];

@@ -17,7 +17,7 @@
 use rayon::prelude::*;
 
 use super::folds::SplitMix64;
-use super::metrics::{rows, Metric};
+use super::metrics::{rows, Scoring};
 use super::{Plan, Setting};
 use crate::data::{Dataset, Target};
 use crate::tree::{fit, FitError, TrainSet, Tree};
@@ -75,7 +75,7 @@ pub fn permutations(seed: u64, feature: usize, repeats: u32, n: usize) -> Vec<Ve
 }
 
 /// Score of `tree` on every row of `data` under `metric`, each row routed by `leaf`.
-fn score_leaves(tree: &Tree, data: &Dataset, metric: Metric, leaf: impl Fn(usize) -> u32) -> f64 {
+fn score_leaves(tree: &Tree, data: &Dataset, metric: Scoring, leaf: impl Fn(usize) -> u32) -> f64 {
     match &data.target {
         Target::Classes { codes, .. } => {
             let k = tree.n_classes;
@@ -87,14 +87,15 @@ fn score_leaves(tree: &Tree, data: &Dataset, metric: Metric, leaf: impl Fn(usize
         }
         Target::Values(y) => {
             let pred: Vec<f64> = (0..y.len()).map(|r| tree.value(leaf(r) as usize)[0]).collect();
-            rows::values(metric, y, &pred)
+            rows::values(metric.metric, y, &pred)
         }
     }
 }
 
 /// The score of `tree` on `data` and, per feature column, the score after each of the
 /// shuffles of [`permutations`]`(seed, j, repeats, rows)`.
-pub fn shuffled_scores(tree: &Tree, data: &Dataset, metric: Metric, seed: u64, repeats: u32) -> (f64, Vec<Vec<f64>>) {
+pub fn shuffled_scores(tree: &Tree, data: &Dataset, metric: impl Into<Scoring>, seed: u64, repeats: u32) -> (f64, Vec<Vec<f64>>) {
+    let metric = metric.into();
     let frame = &data.frame;
     let base = score_leaves(tree, data, metric, |r| tree.apply_row(frame, r));
     let per_feature = (0..frame.n_features())
@@ -110,9 +111,10 @@ pub fn shuffled_scores(tree: &Tree, data: &Dataset, metric: Metric, seed: u64, r
 }
 
 /// Per feature column: the mean oriented drop of [`shuffled_scores`].
-pub fn drops(tree: &Tree, data: &Dataset, metric: Metric, seed: u64, repeats: u32) -> Vec<f64> {
+pub fn drops(tree: &Tree, data: &Dataset, metric: impl Into<Scoring>, seed: u64, repeats: u32) -> Vec<f64> {
+    let metric = metric.into();
     let (base, shuffled) = shuffled_scores(tree, data, metric, seed, repeats);
-    let sign = if metric.higher_is_better() { 1.0 } else { -1.0 };
+    let sign = if metric.metric.higher_is_better() { 1.0 } else { -1.0 };
     shuffled.iter().map(|s| s.iter().map(|x| sign * (base - x)).sum::<f64>() / s.len() as f64).collect()
 }
 
@@ -127,7 +129,7 @@ pub fn permutation_importance(plan: &Plan, setting: &Setting, seed: u64, repeats
         .enumerate()
         .map(|(s, fold)| {
             let tree = fit(&TrainSet { rows: Some(&fold.train), ..TrainSet::of(&plan.data) }, &checked)?;
-            Ok(drops(&tree, &plan.data.take_rows(&fold.valid), plan.spec.metric, split_seed(seed, s), repeats))
+            Ok(drops(&tree, &plan.data.take_rows(&fold.valid), plan.spec.scoring(), split_seed(seed, s), repeats))
         })
         .collect::<Result<_, FitError>>()?;
     let features = plan.data.frame.features.iter().map(|f| f.name.clone()).collect();

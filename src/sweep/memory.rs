@@ -1,7 +1,7 @@
 //! How much memory a run needs, estimated before it starts from the sizes the checked spec
 //! and the dataset fix. The terms follow the data structures a run holds (n rows, f
 //! features, w = classes, or 1 for regression; s splits; r repeats; S settings; u groups of
-//! units in flight, at most the CPU pool's threads; q envelopes grown together in a group,
+//! units in flight, at most the CPU pool's threads (one for a big table); q envelopes grown together in a group,
 //! one per `min_leaf_rows` value):
 //!
 //! | held | bytes | where |
@@ -68,7 +68,7 @@ impl RunSize {
             repeats: spec.folds.repeats as u64,
             splits: spec.splits as u64,
             settings,
-            units_in_flight: groups.min(threads.max(1) as u64),
+            units_in_flight: if super::one_group_at_a_time(data.rows(), data.frame.features.len()) { groups.min(1) } else { groups.min(threads.max(1) as u64) },
             together,
             tree_nodes,
         }

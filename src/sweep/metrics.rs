@@ -4,6 +4,7 @@
 
 use std::fmt;
 
+use super::costs::Costs;
 use crate::data::Task;
 
 /// How predictions are scored.
@@ -28,13 +29,31 @@ pub enum Metric {
     Mae,
     /// Coefficient of determination, 1 − SSE/SST (1 when SST = SSE = 0, 0 when only SST = 0).
     R2,
+    /// Two classes with decision costs ([`Costs`]): the mean cost per row of deciding class 1
+    /// when p(class 1) ≥ the Bayes threshold c_fp / (c_fp + c_fn) (Elkan, 2001),
+    /// (c_fp · false alarms + c_fn · misses) / rows. Lower is better; needs [`Scoring::costs`].
+    ExpectedCost,
+}
+
+/// A metric with what it needs besides predictions and truth: the decision costs of
+/// [`Metric::ExpectedCost`] (`None` for every other metric, which ignores them).
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct Scoring {
+    pub metric: Metric,
+    pub costs: Option<Costs>,
+}
+
+impl From<Metric> for Scoring {
+    fn from(metric: Metric) -> Scoring {
+        Scoring { metric, costs: None }
+    }
 }
 
 /// Clip bounds of [`Metric::LogLoss`].
 pub const LOG_LOSS_CLIP: f64 = 1e-15;
 
 impl Metric {
-    pub const ALL: [Metric; 9] = [
+    pub const ALL: [Metric; 10] = [
         Metric::Accuracy,
         Metric::BalancedAccuracy,
         Metric::MacroF1,
@@ -44,6 +63,7 @@ impl Metric {
         Metric::Rmse,
         Metric::Mae,
         Metric::R2,
+        Metric::ExpectedCost,
     ];
 
     pub fn as_str(self) -> &'static str {
@@ -57,6 +77,7 @@ impl Metric {
             Metric::Rmse => "rmse",
             Metric::Mae => "mae",
             Metric::R2 => "r2",
+            Metric::ExpectedCost => "expected_cost",
         }
     }
 
@@ -108,7 +129,8 @@ pub fn argmax(p: &[f64]) -> usize {
 }
 
 /// Scores classification groups.
-pub fn score_classes(metric: Metric, g: &ClassGroups) -> f64 {
+pub fn score_classes(scoring: impl Into<Scoring>, g: &ClassGroups) -> f64 {
+    let Scoring { metric, costs } = scoring.into();
     let k = g.k;
     let n_groups = g.counts.len() / k;
     let counts = |i: usize| &g.counts[i * k..(i + 1) * k];
@@ -185,6 +207,21 @@ pub fn score_classes(metric: Metric, g: &ClassGroups) -> f64 {
             } else {
                 (0..k).map(|c| auc_one_vs_rest(g, c)).sum::<f64>() / k as f64
             }
+        }
+        Metric::ExpectedCost => {
+            let c = costs.expect("expected_cost is scored with costs (the spec check refuses it without)");
+            assert_eq!(k, 2, "expected_cost scores two classes");
+            let t = c.bayes_threshold();
+            // Whole-row counts first, so every grouping of the same rows gives the same value.
+            let (mut false_alarms, mut misses) = (0.0, 0.0);
+            for i in 0..n_groups {
+                if proba(i)[1] >= t {
+                    false_alarms += counts(i)[0];
+                } else {
+                    misses += counts(i)[1];
+                }
+            }
+            (c.false_alarm * false_alarms + c.miss * misses) / total
         }
         Metric::Rmse | Metric::Mae | Metric::R2 => panic!("{metric} scores regress targets"),
     }
@@ -277,7 +314,7 @@ pub mod rows {
     use super::*;
 
     /// Scores class predictions: `truth[i]` is row i's class, `proba[i·k..][..k]` its probabilities.
-    pub fn classes(metric: Metric, k: usize, truth: &[u32], proba: &[f64]) -> f64 {
+    pub fn classes(metric: impl Into<Scoring>, k: usize, truth: &[u32], proba: &[f64]) -> f64 {
         let mut counts = vec![0.0; truth.len() * k];
         for (i, &c) in truth.iter().enumerate() {
             counts[i * k + c as usize] = 1.0;
@@ -317,5 +354,25 @@ mod tests {
         assert!((r - 1.5f64.sqrt()).abs() < 1e-15);
         // MAE of the same: 4/4.
         assert_eq!(rows::values(Metric::Mae, &[1.0, 2.0, 3.0, 4.0], &[0.0, 3.0, 1.0, 4.0]), 1.0);
+    }
+
+    #[test]
+    fn expected_cost_worked_by_hand() {
+        // A false alarm costs 1, a miss 4: decide class 1 when p1 >= 1/5 (Elkan, 2001).
+        let costs = Some(Costs::new(1.0, 4.0).unwrap());
+        let scoring = Scoring { metric: Metric::ExpectedCost, costs };
+        // Rows (truth, p1): (0, 0.1) right; (1, 0.15) a miss; (0, 0.3) a false alarm;
+        // (1, 0.3) right; (0, 0.2) a false alarm (at the threshold decides 1); (1, 0.9) right.
+        let truth = [0, 1, 0, 1, 0, 1];
+        let p1 = [0.1, 0.15, 0.3, 0.3, 0.2, 0.9];
+        let proba: Vec<f64> = p1.iter().flat_map(|&p| [1.0 - p, p]).collect();
+        // (1 · 2 false alarms + 4 · 1 miss) / 6 rows = 1.
+        assert_eq!(rows::classes(scoring, 2, &truth, &proba), 1.0);
+        // The same rows as groups (one group per distinct p1) give the same value.
+        let counts = [1.0, 0.0, 0.0, 1.0, 1.0, 1.0, 1.0, 0.0, 0.0, 1.0];
+        let grouped = [0.9, 0.1, 0.85, 0.15, 0.7, 0.3, 0.8, 0.2, 0.1, 0.9];
+        assert_eq!(score_classes(scoring, &ClassGroups { k: 2, counts: &counts, proba: &grouped }), 1.0);
+        assert!(!Metric::ExpectedCost.higher_is_better());
+        assert_eq!(Metric::parse("expected_cost"), Some(Metric::ExpectedCost));
     }
 }

@@ -3,8 +3,9 @@
 
 use std::fmt;
 
+use super::costs::{CostError, Costs};
 use super::folds::FoldPlan;
-use super::metrics::Metric;
+use super::metrics::{Metric, Scoring};
 use crate::data::{Dataset, Task};
 use std::sync::Arc;
 
@@ -110,6 +111,37 @@ pub struct SweepSpec {
     /// Monotone limits by feature name, for every tree of the sweep and the refit; features
     /// not named are free. Numeric features of a regress or two-class target only.
     pub monotone: Vec<(String, Monotone)>,
+    /// Costs of the two wrong decisions of a two-class target (class 1 of the dataset's class
+    /// list is the positive class): they define the metric `expected_cost` (the default
+    /// metric when costs are given) and make the refit model decide with a threshold on
+    /// p(class 1) searched on the pooled validation predictions (see [`super::costs`]).
+    pub costs: Option<Costs>,
+}
+
+impl SweepSpec {
+    /// The spec as the text a request digest is taken of: every field that existed when
+    /// digests were first taken, in the form they were first written in, then each field
+    /// added since, only when it is not its default. So a retry of a request stored by an
+    /// older build still matches, and requests that differ in any field differ. The struct
+    /// is taken apart without `..`: a new field does not compile until it is added here.
+    pub fn digest_text(&self) -> String {
+        let SweepSpec { task, criteria, class_weights, max_depth, min_split_rows, min_leaf_rows, max_leaves, min_gain, prune_alpha, prune_path, folds, metric, pick, seed, fit_final, max_settings, splitter, outer, monotone, costs } = self;
+        let mut text = format!(
+            "SweepSpec {{ task: {task:?}, criteria: {criteria:?}, class_weights: {class_weights:?}, max_depth: {max_depth:?}, min_split_rows: {min_split_rows:?}, min_leaf_rows: {min_leaf_rows:?}, max_leaves: {max_leaves:?}, min_gain: {min_gain:?}, prune_alpha: {prune_alpha:?}, prune_path: {prune_path:?}, folds: {folds:?}, metric: {metric:?}, pick: {pick:?}, seed: {seed:?}, fit_final: {fit_final:?}, max_settings: {max_settings:?}, splitter: {splitter:?}"
+        );
+        // Added later: written only when set.
+        if let Some(o) = outer {
+            text.push_str(&format!(", outer: Some({o:?})"));
+        }
+        if !monotone.is_empty() {
+            text.push_str(&format!(", monotone: {monotone:?}"));
+        }
+        if let Some(c) = costs {
+            text.push_str(&format!(", costs: Some({c:?})"));
+        }
+        text.push_str(" }");
+        text
+    }
 }
 
 /// Default cap on the number of settings in one sweep.
@@ -137,6 +169,7 @@ impl Default for SweepSpec {
             splitter: Splitter::Exact,
             outer: None,
             monotone: Vec::new(),
+            costs: None,
         }
     }
 }
@@ -250,6 +283,8 @@ pub struct CheckedSpec {
     pub outer: Option<(FoldPlan, usize)>,
     /// The monotone limit per feature of the dataset; empty when none is set.
     pub monotone: Arc<[Monotone]>,
+    /// The decision costs, checked (two classes, usable numbers).
+    pub costs: Option<Costs>,
 }
 
 impl SweepSpec {
@@ -271,12 +306,17 @@ impl SweepSpec {
         if task != data.task() {
             return Err(spec_error("task", format!("the target '{}' is read as {}, not {task}", data.target_name, data.task())));
         }
-        let metric = self.metric.unwrap_or(match task {
-            Task::Classify => Metric::Accuracy,
-            Task::Regress => Metric::Rmse,
+        let costs = self.costs.map(|c| check_costs(c, data)).transpose()?;
+        let metric = self.metric.unwrap_or(match (task, costs) {
+            (Task::Classify, Some(_)) => Metric::ExpectedCost,
+            (Task::Classify, None) => Metric::Accuracy,
+            (Task::Regress, _) => Metric::Rmse,
         });
         if metric.task() != task {
             return Err(spec_error("metric", format!("{} scores {} targets, this target is {task}", metric.as_str(), metric.task())));
+        }
+        if metric == Metric::ExpectedCost && costs.is_none() {
+            return Err(spec_error("metric", "expected_cost needs the costs of a false alarm and of a miss (costs.false_alarm, costs.miss)"));
         }
         let criteria = dedup_by(if self.criteria.is_empty() {
             vec![match task {
@@ -376,7 +416,7 @@ impl SweepSpec {
             }
         }
         let monotone = self.monotone_of(data, task)?;
-        let checked = CheckedSpec { spec: self.clone(), task, metric, folds, keys, criteria, class_weights, min_leaf_rows, max_depth, min_split_rows, max_leaves, min_gain, prune_alpha, splits, outer, monotone };
+        let checked = CheckedSpec { spec: self.clone(), task, metric, folds, keys, criteria, class_weights, min_leaf_rows, max_depth, min_split_rows, max_leaves, min_gain, prune_alpha, splits, outer, monotone, costs };
         Ok(checked)
     }
 }
@@ -423,7 +463,28 @@ impl SweepSpec {
     }
 }
 
+/// Decision costs must be usable numbers, for a two-class target; the field at fault named.
+fn check_costs(c: Costs, data: &Dataset) -> Result<Costs, SpecError> {
+    let costs = Costs::new(c.false_alarm, c.miss).map_err(|e| match e {
+        CostError::NotFiniteNonNegative => {
+            let (field, x) = if Costs::new(c.false_alarm, 1.0).is_err() { ("costs.false_alarm", c.false_alarm) } else { ("costs.miss", c.miss) };
+            spec_error(field, format!("{e}, got {x}"))
+        }
+        CostError::BothZero => spec_error("costs", e.to_string()),
+    })?;
+    match &data.target {
+        crate::data::Target::Classes { labels, .. } if labels.len() == 2 => Ok(costs),
+        crate::data::Target::Classes { labels, .. } => Err(spec_error("costs", format!("decision costs need a target of two classes, '{}' has {}", data.target_name, labels.len()))),
+        crate::data::Target::Values(_) => Err(spec_error("costs", format!("decision costs need a classify target of two classes, '{}' is regress", data.target_name))),
+    }
+}
+
 impl CheckedSpec {
+    /// The metric with the costs it may need.
+    pub fn scoring(&self) -> Scoring {
+        Scoring { metric: self.metric, costs: self.costs }
+    }
+
     /// Combinations of the four stopping limits other than `prune_alpha`.
     pub fn stopping_count(&self) -> usize {
         self.max_depth.len() * self.min_split_rows.len() * self.max_leaves.len() * self.min_gain.len()
@@ -675,6 +736,38 @@ mod tests {
         spec.check(&data(task)).unwrap_err().field
     }
 
+    /// The digest text of a spec without the fields added later is the text digests were
+    /// first taken of (the spec's derived `Debug`), so stored digests still match; a field
+    /// added later is written as `Debug` writes it once it is set. The hex digest of one spec
+    /// is pinned: a change to how any part is written breaks retries of stored requests.
+    #[test]
+    fn digest_text_is_the_first_text_and_pinned() {
+        use sha2::{Digest, Sha256};
+        let plain = SweepSpec {
+            criteria: vec![Criterion::Gini, Criterion::Entropy],
+            max_depth: Some(Range::Values(vec![Some(2.0), None])),
+            min_leaf_rows: Some(Range::Span { from: 1.0, to: 9.0, step: 2.0 }),
+            folds: Some(FoldPlan { scheme: FoldScheme::Stratified, k: 5, repeats: 2 }),
+            pick: PickRule::Within(0.01),
+            seed: 7,
+            ..SweepSpec::default()
+        };
+        // The derived Debug without the fields added later, where they hold their defaults.
+        let without_later = |s: &SweepSpec| format!("{s:?}").replacen(", outer: None", "", 1).replacen(", monotone: []", "", 1).replacen(", costs: None", "", 1);
+        assert_eq!(plain.digest_text(), without_later(&plain));
+        let nested = SweepSpec { outer: Some(FoldPlan { scheme: FoldScheme::Shuffled, k: 3, repeats: 1 }), ..plain.clone() };
+        assert_eq!(nested.digest_text(), without_later(&nested));
+        assert_ne!(nested.digest_text(), plain.digest_text());
+        let costed = SweepSpec { costs: Some(Costs { false_alarm: 1.0, miss: 5.0 }), ..plain.clone() };
+        assert_eq!(costed.digest_text(), without_later(&costed));
+        assert_ne!(costed.digest_text(), plain.digest_text());
+        let limited = SweepSpec { monotone: vec![("age".into(), Monotone::Increasing)], ..plain.clone() };
+        assert_eq!(limited.digest_text(), without_later(&limited));
+        assert_ne!(limited.digest_text(), plain.digest_text());
+        let hex: String = Sha256::digest(plain.digest_text().as_bytes()).iter().map(|b| format!("{b:02x}")).collect();
+        assert_eq!(hex, "8d8a89ba73e1ebeb4ee1a0af271375a7f00c1e1ca4c815e90b9101ca6aeaf44b", "the pinned digest of this spec (taken when the digest text was made explicit)");
+    }
+
     #[test]
     fn monotone_limits_resolve_by_name_and_refuse_categorical_features() {
         let mut d = data(Task::Regress);
@@ -830,5 +923,28 @@ mod tests {
         assert_eq!((field.as_str(), cap), ("folds", "max_units_per_run"));
         let ok = SweepSpec { folds: plan(4, 2), min_leaf_rows: keys, ..Default::default() }.check_with(&data(Task::Classify), &caps).unwrap();
         assert_eq!((ok.splits, ok.keys.len()), (8, 2));
+    }
+
+    #[test]
+    fn costs_are_refused_where_they_cannot_apply() {
+        let costs = |false_alarm, miss| Some(Costs { false_alarm, miss });
+        let t = Task::Classify;
+        assert_eq!(field_of(SweepSpec { costs: costs(1.0, 5.0), ..Default::default() }, Task::Regress), "costs");
+        assert_eq!(field_of(SweepSpec { costs: costs(-1.0, 5.0), ..Default::default() }, t), "costs.false_alarm");
+        assert_eq!(field_of(SweepSpec { costs: costs(f64::NAN, 5.0), ..Default::default() }, t), "costs.false_alarm");
+        assert_eq!(field_of(SweepSpec { costs: costs(1.0, f64::INFINITY), ..Default::default() }, t), "costs.miss");
+        assert_eq!(field_of(SweepSpec { costs: costs(0.0, 0.0), ..Default::default() }, t), "costs");
+        assert_eq!(field_of(SweepSpec { metric: Some(Metric::ExpectedCost), ..Default::default() }, t), "metric");
+        // Three classes.
+        let mut three = data(t);
+        three.target = Target::Classes { codes: (0..20).map(|i| (i % 3) as u32).collect(), labels: vec!["a".into(), "b".into(), "c".into()] };
+        let e = SweepSpec { costs: costs(1.0, 5.0), ..Default::default() }.check(&three).unwrap_err();
+        assert_eq!(e.field, "costs");
+        assert!(e.message.contains("has 3"), "{e}");
+        // Costs make expected_cost the default metric; another metric may be named.
+        let c = SweepSpec { costs: costs(1.0, 5.0), ..Default::default() }.check(&data(t)).unwrap();
+        assert_eq!((c.metric, c.costs), (Metric::ExpectedCost, costs(1.0, 5.0)));
+        let c = SweepSpec { costs: costs(0.0, 5.0), metric: Some(Metric::RocAuc), ..Default::default() }.check(&data(t)).unwrap();
+        assert_eq!(c.scoring(), Scoring { metric: Metric::RocAuc, costs: costs(0.0, 5.0) });
     }
 }

@@ -897,6 +897,7 @@ impl<'p> Grower<'p> {
             class_totals,
             total_weight: self.total_weight,
             options,
+            decision: None,
         };
         for l in &mut leaf_of {
             *l = new_id[*l as usize];

@@ -101,6 +101,30 @@ pub struct ColumnInfo {
     pub levels: Vec<String>,
 }
 
+/// A two-class decision kept with a tree fitted under decision costs: class 1 when
+/// p(class 1) ≥ `threshold`, else class 0. `false_alarm` and `miss` are the costs it was
+/// chosen for (see `sweep::costs`); the class probabilities are not changed by it.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct Decision {
+    pub threshold: f64,
+    pub false_alarm: f64,
+    pub miss: f64,
+}
+
+impl Decision {
+    /// Checks a decision read from a file or a message for a tree of `n_classes` classes:
+    /// two classes, a finite threshold, costs as `sweep::costs::Costs::new` takes them.
+    pub fn check(&self, n_classes: usize) -> Result<(), String> {
+        if n_classes != 2 {
+            return Err(format!("a decision threshold needs two classes, the model has {n_classes}"));
+        }
+        if !self.threshold.is_finite() {
+            return Err(format!("decision threshold {} is not a finite number", self.threshold));
+        }
+        crate::sweep::costs::Costs::new(self.false_alarm, self.miss).map(|_| ()).map_err(|e| format!("decision costs: {e}"))
+    }
+}
+
 /// A fitted tree: a flat arena of nodes in preorder (left subtree first), root at 0.
 #[derive(Clone, Debug, PartialEq)]
 pub struct Tree {
@@ -121,6 +145,9 @@ pub struct Tree {
     /// Total training weight N used in gains and pruning.
     pub total_weight: f64,
     pub options: FitOptions,
+    /// The two-class decision rule of a model fitted under decision costs; `None`: the most
+    /// likely class.
+    pub decision: Option<Decision>,
 }
 
 impl Tree {
@@ -218,6 +245,7 @@ impl Tree {
             class_totals: Vec::new(),
             total_weight: self.total_weight,
             options: self.options.clone(),
+            decision: self.decision,
         }
     }
 }

@@ -8,7 +8,8 @@ use crate::data::{Column, Frame, MISSING_CODE};
 /// Predictions for a batch of rows.
 #[derive(Clone, Debug, PartialEq)]
 pub enum Predictions {
-    /// Class code per row (the most likely class, lowest code on ties) and, per row, the
+    /// Class code per row (the most likely class, lowest code on ties, or the class the
+    /// tree's [`Decision`](super::Decision) picks) and, per row, the
     /// class probabilities (`n_classes` values each, row after row).
     Classes { classes: Vec<u32>, probabilities: Vec<f64> },
     Values(Vec<f64>),
@@ -110,9 +111,14 @@ impl Tree {
         out
     }
 
-    /// The most likely class of a leaf: the largest fraction, lowest class code on ties.
+    /// The class a leaf decides: with a [`Decision`](super::Decision) (two classes), class 1
+    /// when its share is at least the threshold; otherwise the most likely class, the
+    /// largest fraction, lowest class code on ties.
     pub fn leaf_class(&self, leaf: u32) -> u32 {
         let v = self.value(leaf as usize);
+        if let (Some(d), 2) = (self.decision, v.len()) {
+            return (v[1] >= d.threshold) as u32;
+        }
         let mut best = 0;
         for k in 1..v.len() {
             if v[k] > v[best] {

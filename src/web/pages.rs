@@ -447,10 +447,15 @@ fn tree(run: &Run, o: &RunOutcome) -> Markup {
             h2 { "Picked tree" }
             @match &o.model {
                 None => p { "This run kept no model." },
-                Some(t) => @match crate::export::to_svg(t) {
-                    Some(svg) => div.tree { (PreEscaped(svg)) },
-                    None => p { "The tree has more than " (crate::export::svg::MAX_DRAWN_LEAVES) " leaves, too many to draw here; see " a href={ "/runs/" (run.id) "/model/model.txt" } { "the text" } "." },
-                },
+                Some(t) => {
+                    @if let Some(d) = t.decision {
+                        p { "Decides " (t.labels.get(1).map_or("class 1", String::as_str)) " when its probability is at least " (format!("{:.4}", d.threshold)) ", the threshold with the lowest cost on the validation folds for a false alarm costing " (d.false_alarm) " and a miss " (d.miss) " (Bayes threshold " (format!("{:.4}", d.false_alarm / (d.false_alarm + d.miss))) ")." }
+                    }
+                    @match crate::export::to_svg(t) {
+                        Some(svg) => div.tree { (PreEscaped(svg)) },
+                        None => p { "The tree has more than " (crate::export::svg::MAX_DRAWN_LEAVES) " leaves, too many to draw here; see " a href={ "/runs/" (run.id) "/model/model.txt" } { "the text" } "." },
+                    }
+                }
             }
         }
     }

@@ -324,6 +324,21 @@ fn bad_sweep_requests_are_refused_by_field() {
     f.refused("a monotone limit naming no feature", r, Code::InvalidArgument, &["spec.monotone[0].feature"]);
     let r = start(&f, pb::SweepSpec { monotone: vec![limit("petal_length_cm", up)], ..Default::default() });
     f.refused("monotone limits on three classes", r, Code::InvalidArgument, &["spec.monotone", "3 classes"]);
+    // Decision costs: usable numbers, for two classes only (iris has three; its numeric
+    // columns make regress targets), and expected_cost only with them.
+    let costs = |false_alarm, miss| Some(pb::DecisionCosts { false_alarm, miss });
+    let r = start(&f, pb::SweepSpec { costs: costs(1.0, 5.0), ..Default::default() });
+    f.refused("costs on three classes", r, Code::InvalidArgument, &["spec.costs", "two classes", "has 3"]);
+    let r = start(&f, pb::SweepSpec { target: "sepal_length_cm".into(), costs: costs(1.0, 5.0), ..Default::default() });
+    f.refused("costs on a regress target", r, Code::InvalidArgument, &["spec.costs", "regress"]);
+    let r = start(&f, pb::SweepSpec { costs: costs(-1.0, 5.0), ..Default::default() });
+    f.refused("a negative false alarm cost", r, Code::InvalidArgument, &["spec.costs.false_alarm", "-1"]);
+    let r = start(&f, pb::SweepSpec { costs: costs(1.0, f64::NAN), ..Default::default() });
+    f.refused("a miss cost that is not a number", r, Code::InvalidArgument, &["spec.costs.miss", "NaN"]);
+    let r = start(&f, pb::SweepSpec { costs: costs(0.0, 0.0), ..Default::default() });
+    f.refused("two zero costs", r, Code::InvalidArgument, &["spec.costs", "above 0"]);
+    let r = start(&f, pb::SweepSpec { metric: "expected_cost".into(), ..Default::default() });
+    f.refused("expected_cost without costs", r, Code::InvalidArgument, &["spec.metric", "expected_cost", "costs.miss"]);
     let req = pb::StartRunRequest { ..Default::default() };
     let r = f.rt.block_on(f.runs().start_run(req));
     f.refused("no dataset named", r, Code::InvalidArgument, &["dataset_id", "dataset_name"]);

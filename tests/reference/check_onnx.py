@@ -7,7 +7,8 @@ CASEDIR` (model.onnx, inputs.csv, predictions.csv, case.json; see examples/onnx_
 For each case: the model must pass onnx.checker (full check), onnxruntime must load it, and
 its outputs on inputs.csv must agree with pollard's predictions row for row:
 classify - `label` equal to pollard's class index exactly, every `probabilities` cell within
-PROB_TOL of pollard's; regress - `variable` within VALUE_REL relative of pollard's value.
+PROB_TOL of pollard's; for a model with a decision threshold (decision costs), some rows must
+get a label other than the most likely class, so the case exercises the threshold; regress - `variable` within VALUE_REL relative of pollard's value.
 Exits 1 on any mismatch, printing the first rows that differ.
 """
 
@@ -58,6 +59,11 @@ def check_case(d):
             if label[i] != int(want[i, 0]) or not (diff[i] <= PROB_TOL).all():
                 bad.append(f"row {i + 1}: onnxruntime label {label[i]} p {prob[i].tolist()}, pollard label {int(want[i, 0])} p {want[i, 1:].tolist()}")
         worst = float(diff.max())
+        if info.get("decision_threshold") is not None:
+            moved = int((label != np.argmax(prob, axis=1)).sum())
+            info["moved"] = moved
+            if moved == 0:
+                bad.append(f"no row's label differs from its most likely class at threshold {info['decision_threshold']}")
     else:
         v = out["variable"]
         assert v.shape == (len(xs), 1), v.shape
@@ -83,7 +89,8 @@ def main():
         rows += info["rows"]
         what = "max |p diff|" if info["task"] == "classify" else "max relative diff"
         print(f"check_onnx: {info['case']}: {info['rows']} rows, {info['tree_nodes']} tree nodes, "
-              f"{info['set_splits']} set splits, {info['onnx_nodes']} ONNX nodes, {len(bad)} mismatches, {what} {worst:.3g}")
+              f"{info['set_splits']} set splits, {info['onnx_nodes']} ONNX nodes, {len(bad)} mismatches, {what} {worst:.3g}"
+              + (f", threshold {info['decision_threshold']:.6g} moves {info['moved']} labels off the most likely class" if "moved" in info else ""))
         if bad:
             failed += 1
             for line in bad[:10]:

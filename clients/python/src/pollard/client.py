@@ -247,12 +247,14 @@ class Client:
         """The run's events from sequence number `after` + 1 on (0: from the start), then
         live ones until the run ends; the last is `Finished`, `Failed` or `Cancelled`. To
         resume after a broken connection, pass the last sequence number seen."""
-        stream = self._runs.FollowRun(pb.FollowRunRequest(id=_run_id(run), after_sequence=after), metadata=self._metadata)
+        # Several events to a message (FollowRunBatches): grpcio's cost is per message.
+        stream = self._runs.FollowRunBatches(pb.FollowRunRequest(id=_run_id(run), after_sequence=after), metadata=self._metadata)
         try:
-            for wire in stream:
-                e = convert.event(wire)
-                if e is not None:
-                    yield e
+            for batch in stream:
+                for wire in batch.events:
+                    e = convert.event(wire)
+                    if e is not None:
+                        yield e
         except grpc.RpcError as err:
             raise from_rpc_error(err) from None
         finally:
