@@ -174,6 +174,19 @@ async fn the_web_view_in_a_browser() {
     shot(&c, "run-live").await;
     until("the live run's page to show its scores once it ends", || async { c.find(Locator::Css("table tbody tr.picked")).await.is_ok() }).await;
 
+    // A two-class run under monotone limits and decision costs: the page says both.
+    server.run(&["put", data("breast_cancer.csv").to_str().unwrap(), "--name", "cancer", "--target", "target"]).ok();
+    let limited = server.run(&["sweep", "--dataset", "cancer", "--max-depth", "1,2,3", "--k", "3", "--monotone", "mean_radius:+1,mean_texture:+1", "--false-alarm-cost", "1", "--miss-cost", "5", "--json"]).json();
+    let limited_id = s(&limited, "id").to_string();
+    let done = server.run(&["follow", &limited_id, "--json"]).json_lines();
+    assert_eq!(done.last().map(|e| s(e, "kind")), Some("finished"));
+    c.goto(&format!("{web}/runs/{limited_id}")).await.unwrap();
+    let facts = text_of(&c, "dl.facts").await;
+    assert!(facts.contains("monotone limits") && facts.contains("mean_radius increasing, mean_texture increasing"), "{facts}");
+    let main_text = text_of(&c, "main").await;
+    assert!(main_text.contains("Decides") && main_text.contains("a miss 5") && main_text.contains("Bayes threshold 0.1667"), "{main_text}");
+    shot(&c, "run-limits-costs").await;
+
     for (page, name, holds) in [("/datasets", "datasets", "iris"), ("/schedules", "schedules", "No schedule yet.")] {
         c.goto(&format!("{web}{page}")).await.unwrap();
         assert!(text_of(&c, "h1").await.to_lowercase().contains(name));
@@ -183,7 +196,7 @@ async fn the_web_view_in_a_browser() {
 
     // Every page's markup: no HTML5 parse error (the checker does see a broken page).
     assert!(!parse_errors("<!DOCTYPE html><html><head><title>x</title></head><body><p>a</div></body></html>").is_empty());
-    let pages = ["/runs".to_string(), format!("/runs/{first}"), format!("/runs/{live_id}"), "/datasets".into(), "/schedules".into(), "/sign-in".into(), "/no-such-page".into(), "/runs?state=finished&dataset=iris".into()];
+    let pages = ["/runs".to_string(), format!("/runs/{first}"), format!("/runs/{live_id}"), format!("/runs/{limited_id}"), "/datasets".into(), "/schedules".into(), "/sign-in".into(), "/no-such-page".into(), "/runs?state=finished&dataset=iris".into()];
     for page in &pages {
         let html = fetch_text(&c, page).await;
         assert!(html.starts_with("<!DOCTYPE html>"), "{page}: {}", &html[..html.len().min(200)]);

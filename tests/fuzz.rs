@@ -295,9 +295,14 @@ fn wild_spec(range: BoxedStrategy<pb::LimitRange>) -> impl Strategy<Value = pb::
     // Decision costs: usable pairs and any numbers at all (negative, NaN, infinite, zeros).
     let cost = || prop_oneof![Just(0.0), Just(1.0), Just(5.0), any::<f64>()];
     let costs = prop::option::of((cost(), cost())).prop_map(|c| c.map(|(false_alarm, miss)| pb::DecisionCosts { false_alarm, miss }));
+    // Monotone limits: real, unknown, repeated and empty feature names (the target among
+    // them), every direction and numbers that name none.
+    let limit = (name_of(&["", "sepal_length_cm", "petal_width_cm", "species", "age", "nope"]), prop_oneof![0i32..4, any::<i32>()]).prop_map(|(feature, direction)| pb::MonotoneLimit { feature, direction });
+    let monotone = prop::collection::vec(limit, 0..4);
     // The outer plan of a nested sweep is drawn like the inner one.
-    (words, (r(), r(), r(), r(), r(), r()), (folds.clone(), folds), any::<bool>(), any::<u64>(), (splitter, costs)).prop_map(|((task, criteria, class_weights, metric, pick), (d, s, l, v, g, a), (folds, outer), prune_path, seed, (splitter, costs))| pb::SweepSpec {
+    (words, (r(), r(), r(), r(), r(), r()), (folds.clone(), folds), any::<bool>(), any::<u64>(), (splitter, costs, monotone)).prop_map(|((task, criteria, class_weights, metric, pick), (d, s, l, v, g, a), (folds, outer), prune_path, seed, (splitter, costs, monotone))| pb::SweepSpec {
         costs,
+        monotone,
         outer,
         target: String::new(),
         task,

@@ -297,7 +297,7 @@ mod tests {
     use super::*;
     use crate::tree::Monotone;
 
-    /// A request without monotone limits digests the text it did before they existed (so a
+    /// A request without monotone limits or costs digests the text it did before they existed (so a
     /// retry matches runs stored then); one with them digests differently.
     #[test]
     fn monotone_limits_enter_the_digest_only_when_set() {
@@ -310,8 +310,8 @@ mod tests {
             idempotency_key: None,
             labels: BTreeMap::new(),
         };
-        let before = format!("{:?}", (&plain.dataset, "", &plain.spec, false, &plain.labels)).replacen(", outer: None, monotone: [] }", " }", 1);
-        assert!(!before.contains("monotone") && !before.contains("outer"), "{before}");
+        let before = format!("{:?}", (&plain.dataset, "", &plain.spec, false, &plain.labels)).replacen(", outer: None, monotone: [], costs: None }", " }", 1);
+        assert!(!before.contains("monotone") && !before.contains("outer") && !before.contains("costs"), "{before}");
         use sha2::{Digest, Sha256};
         assert_eq!(plain.digest(), crate::access::tokens::hex(&Sha256::digest(before.as_bytes())));
         let limited = RunRequest { spec: SweepSpec { monotone: vec![("x".into(), Monotone::Increasing)], ..SweepSpec::default() }, ..plain.clone() };

@@ -201,6 +201,10 @@ pub struct SpecRecord {
     /// before them.
     #[serde(default, skip_serializing_if = "Vec::is_empty")]
     monotone: Vec<MonotoneRecord>,
+    /// Decision costs `[false_alarm, miss]`; absent in records written before them, and
+    /// for sweeps without costs.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    costs: Option<[f64; 2]>,
 }
 
 #[derive(Serialize, Deserialize)]
@@ -208,10 +212,6 @@ struct MonotoneRecord {
     feature: String,
     /// `Monotone::as_str`.
     direction: String,
-    /// Decision costs `[false_alarm, miss]`; absent in records written before them, and
-    /// for sweeps without costs.
-    #[serde(default, skip_serializing_if = "Option::is_none")]
-    costs: Option<[f64; 2]>,
 }
 
 #[derive(Serialize, Deserialize)]

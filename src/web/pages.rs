@@ -229,6 +229,11 @@ fn fold_plan(p: Option<&FoldPlan>) -> String {
     format!("{scheme}, {} folds, {} repeat{}", p.k, p.repeats, if p.repeats == 1 { "" } else { "s" })
 }
 
+/// Monotone limits in words, in the order given: `age increasing, debt decreasing`.
+fn monotone_limits(limits: &[(String, crate::tree::Monotone)]) -> String {
+    limits.iter().map(|(f, m)| format!("{f} {}", m.as_str())).collect::<Vec<_>>().join(", ")
+}
+
 /// A score with four decimals; `n/a` when undefined.
 fn score(v: f64) -> String {
     if v.is_finite() {
@@ -273,6 +278,7 @@ pub fn run(caller: &Caller, run: &Run, outcome: Option<&RunOutcome>) -> Markup {
                 dt { "metric" } dd { @if let Some(m) = metric { (m.as_str()) " (" (if m.higher_is_better() { "higher" } else { "lower" }) " is better)" } @else { "the task's default" } }
                 dt { "pick rule" } dd { (run.spec.pick.as_str()) }
                 dt { "fold plan" } dd { (fold_plan(run.spec.folds.as_ref())) ", seed " (run.spec.seed) }
+                @if !run.spec.monotone.is_empty() { dt { "monotone limits" } dd { (monotone_limits(&run.spec.monotone)) } }
                 dt { "settings" } dd { (run.settings) }
                 dt { "created" } dd { (time(run.created_at)) }
                 dt { "started" } dd { (opt_time(run.started_at)) }
