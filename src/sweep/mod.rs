@@ -44,6 +44,11 @@ pub struct Plan {
     pub data: Dataset,
     /// The outer loop of a nested sweep.
     pub nested: Option<Nested>,
+    /// Score the groups of units one at a time, each with the pool's threads on its big
+    /// nodes, rather than as many groups at once as the pool has threads: set for a table
+    /// of at least [`ONE_GROUP_AT_A_TIME`] cells (one group's buffers in memory). Either
+    /// way gives the same results (checked in sweep_equivalence).
+    pub groups_one_at_a_time: bool,
 }
 
 /// The splits of a nested sweep. Split numbers after the main plan's run outer split by
@@ -221,7 +226,8 @@ pub fn plan_with(data: &Dataset, spec: &SweepSpec, caps: &SpecCaps) -> Result<Pl
         return Err(spec::cap_error("outer", format!("{n_splits} splits × {} shaping keys", checked.keys.len()), "max_units_per_run", caps.max_units as u64).into());
     }
     let units = (0..n_splits).flat_map(|s| (0..checked.keys.len()).map(move |k| (s, k))).collect();
-    Ok(Plan { spec: checked, folds, settings, units, data, nested })
+    let groups_one_at_a_time = one_group_at_a_time(data.rows(), data.frame.features.len());
+    Ok(Plan { spec: checked, folds, settings, units, data, nested, groups_one_at_a_time })
 }
 
 /// The outer folds of a nested sweep on every row, and the inner plan's folds of each outer
@@ -344,12 +350,6 @@ impl Plan {
         let envelopes = Envelope::grow_shared(&self.data, &envelope_options(&self.spec, &self.spec.keys[key]), &msl, &fold.train, &fold.valid)?;
         // Scored one by one: each envelope's aggregates are dropped before the next is made.
         Ok(units.iter().zip(envelopes).map(|(&u, env)| self.score_unit(u, &env)).collect())
-    }
-
-    /// Whether the sweep scores its groups of units one at a time (see
-    /// [`ONE_GROUP_AT_A_TIME`]) rather than as many at once as the pool has threads.
-    pub fn one_group_at_a_time(&self) -> bool {
-        one_group_at_a_time(self.data.rows(), self.data.frame.features.len())
     }
 
     /// Groups units to grow together: those of one split whose shaping keys share the
@@ -492,7 +492,7 @@ pub fn run_some_timed(plan: &Plan, todo: &[usize], done: &[UnitResult], sink: &T
     let groups = plan.growth_groups(todo);
     // A big table's groups go one at a time, each growing with the pool's threads on its
     // big nodes' features: one group's buffers in memory instead of one per thread.
-    let fresh: Vec<Result<Vec<UnitResult>, FitError>> = if plan.one_group_at_a_time() { groups.iter().map(score_group).collect() } else { groups.par_iter().map(score_group).collect() };
+    let fresh: Vec<Result<Vec<UnitResult>, FitError>> = if plan.groups_one_at_a_time { groups.iter().map(score_group).collect() } else { groups.par_iter().map(score_group).collect() };
     let mut all = Vec::with_capacity(todo.len());
     for r in fresh {
         all.extend(r?);
