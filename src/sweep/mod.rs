@@ -608,8 +608,14 @@ pub fn overfit_gap(train_mean: f64, valid_mean: f64, metric: Metric) -> f64 {
 /// `None` while some split is missing.
 pub fn key_scores(plan: &Plan, units: &[UnitResult], key: usize) -> Option<Vec<(usize, SettingScore)>> {
     let n_splits = plan.folds.splits.len();
+    let mine: Vec<&UnitResult> = units.iter().filter(|r| plan.units[r.unit].1 == key && plan.role(plan.units[r.unit].0) == SplitRole::Main).collect();
+    // Too few units to cover every split: answered without building the table, so a run
+    // that asks after each unit spends time linear in its units, not quadratic.
+    if mine.len() < n_splits {
+        return None;
+    }
     let mut per: std::collections::BTreeMap<usize, Vec<Option<FoldScore>>> = std::collections::BTreeMap::new();
-    for r in units.iter().filter(|r| plan.units[r.unit].1 == key && plan.role(plan.units[r.unit].0) == SplitRole::Main) {
+    for r in mine {
         let split = plan.units[r.unit].0;
         for (s, score) in &r.scores {
             per.entry(*s).or_insert_with(|| vec![None; n_splits])[split] = Some(score.clone());
