@@ -144,6 +144,21 @@ async fn the_web_view_in_a_browser() {
     for column in ["depth", "leaf", "train", "valid", "gap"] {
         assert!(header.contains(column), "{header}");
     }
+    // The Pareto front (accuracy, higher is better): fewest leaves first, and each row scores
+    // strictly better than the smaller ones before it.
+    let mut names = Vec::new();
+    for h in c.find_all(Locator::Css("#front thead th")).await.unwrap() {
+        names.push(h.text().await.unwrap());
+    }
+    let column = |name: &str| names.iter().position(|n| n == name).unwrap_or_else(|| panic!("a {name} column in {names:?}"));
+    let (leaves_at, valid_at) = (column("leaves"), column("valid"));
+    let mut front = Vec::new();
+    for row in c.find_all(Locator::Css("#front tbody tr")).await.unwrap() {
+        let cells = row.find_all(Locator::Css("td")).await.unwrap();
+        let number = |text: String| text.parse::<f64>().unwrap_or_else(|_| panic!("not a number: {text}"));
+        front.push((number(cells[leaves_at].text().await.unwrap()), number(cells[valid_at].text().await.unwrap())));
+    }
+    assert!(!front.is_empty() && front.windows(2).all(|w| w[0].0 <= w[1].0 && w[0].1 < w[1].1), "front (leaves, valid) {front:?}");
     assert!(c.find_all(Locator::Css("figure svg circle")).await.unwrap().len() >= 2, "a plot with its points");
     assert!(!c.find_all(Locator::Css(".tree svg polygon")).await.unwrap().is_empty(), "the tree with its conditions");
     shot(&c, "run").await;

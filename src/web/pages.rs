@@ -260,6 +260,11 @@ fn knobs() -> [(&'static str, &'static str, fn(&SettingScore) -> String); 8] {
     ]
 }
 
+/// The knob columns whose values vary over the run's settings (only those get a column).
+fn varying_knobs(o: &RunOutcome) -> Vec<(&'static str, &'static str, fn(&SettingScore) -> String)> {
+    knobs().into_iter().filter(|(_, _, f)| o.scores.iter().map(f).collect::<std::collections::BTreeSet<_>>().len() > 1).collect()
+}
+
 /// Most rows of the score table on the run page.
 pub const SCORE_ROWS: usize = 40;
 
@@ -303,6 +308,7 @@ pub fn run(caller: &Caller, run: &Run, outcome: Option<&RunOutcome>) -> Markup {
             }
             @if let (Some(o), Some(m)) = (outcome, metric) {
                 (scores(run, o, m))
+                (front(o, m))
                 @if let Some(n) = &o.nested { (nested(n, m)) }
                 (importances(o, m))
                 (plots(o, m))
@@ -349,8 +355,7 @@ fn scores(run: &Run, o: &RunOutcome, m: Metric) -> Markup {
         order.insert(0, picked);
     }
     let shown = order.len().min(SCORE_ROWS);
-    // Only the knobs that vary get a column.
-    let knobs: Vec<_> = knobs().into_iter().filter(|(_, _, f)| o.scores.iter().map(f).collect::<std::collections::BTreeSet<_>>().len() > 1).collect();
+    let knobs = varying_knobs(o);
     let gap = |s: &SettingScore| if hib { s.gap } else { -s.gap };
     html! {
         section {
@@ -377,6 +382,36 @@ fn scores(run: &Run, o: &RunOutcome, m: Metric) -> Markup {
                             td.l { @if i == picked { "◆ picked" } @else if i == o.best as usize { "best" } }
                             @for (_, _, f) in &knobs { td { (f(s)) } }
                             td { (score(s.train_mean)) } td { (score(s.valid_mean)) } td { (score(s.valid_sd)) } td { (score(gap(s))) } td { (format!("{:.1}", s.mean_leaves)) }
+                        }
+                    }
+                }
+            }
+        }
+    }
+}
+
+/// The Pareto front of (validation score, mean leaves), fewest leaves first: the settings a
+/// reader who trades score against size can choose among, as `pollard show` lists them.
+fn front(o: &RunOutcome, m: Metric) -> Markup {
+    let front = crate::sweep::pareto_front(&o.scores, m);
+    let knobs = varying_knobs(o);
+    html! {
+        @if !front.is_empty() {
+            section #front {
+                h2 { "Score against size" }
+                p.note { "No other setting has a mean " (m.as_str()) " at least as good with no more mean leaves (and one of the two strictly better) than these; fewest leaves first." }
+                table {
+                    thead { tr {
+                        @for (short, _, _) in &knobs { th scope="col" { (short) } }
+                        th scope="col" { "leaves" } th scope="col" { "valid" } th scope="col" { "sd" }
+                    } }
+                    tbody {
+                        @for &i in &front {
+                            @let s = &o.scores[i];
+                            tr {
+                                @for (_, _, f) in &knobs { td { (f(s)) } }
+                                td { (format!("{:.1}", s.mean_leaves)) } td { (score(s.valid_mean)) } td { (score(s.valid_sd)) }
+                            }
                         }
                     }
                 }
