@@ -226,3 +226,29 @@ def test_tls_with_client_certificates(tls_server):
         pollard.connect(url, ca=certs / "ca.pem", cert=certs / "client.pem")
     with pytest.raises(pollard.UsageError):
         pollard.connect(url.replace("https://", "http://"), ca=certs / "ca.pem")
+
+
+def test_nested_monotone_and_costs(server, client):
+    """A two-class sweep (breast cancer, tests/data/breast_cancer.csv, UCI via the reference
+    library, CC BY 4.0; see tests/data/SOURCES.md) under monotone limits and decision costs,
+    nested in an outer plan: the command line, another client of the same server, reads
+    back what the Python client asked for."""
+    cancer = client.upload(data("breast_cancer.csv"), name="cancer", target="target")
+    run = client.sweep(cancer, max_depth=[1, 2, 3], prune_alpha=[0.0, 0.01], folds=3, outer_folds=3, seed=5,
+                       monotone={"mean_radius": "increasing", "worst_texture": "decreasing"}, false_alarm_cost=1, miss_cost=5)
+    done = client.wait(run)
+    assert done.state is pollard.RunState.FINISHED and done.metric == "expected_cost"
+    shown = json.loads(pollard_cli("show", run.id, "--json", server=server).stdout)
+    assert shown["monotone"] == {"mean_radius": "increasing", "worst_texture": "decreasing"}
+    decision = shown["model"]["decision"]
+    assert (decision["false_alarm"], decision["miss"]) == (1, 5)
+    assert math.isclose(decision["bayes_threshold"], 1 / 6)
+    assert len(shown["nested"]["folds"]) == 3
+    # Refused by the client before any call, or by the server naming the field.
+    with pytest.raises(pollard.UsageError):
+        client.sweep(cancer, max_depth=[2], false_alarm_cost=1)
+    with pytest.raises(pollard.UsageError):
+        client.sweep(cancer, max_depth=[2], monotone={"mean_radius": "upwards"})
+    with pytest.raises(pollard.InvalidArgument) as e:
+        client.sweep(cancer, max_depth=[2], monotone={"no_such_column": "increasing"})
+    assert "spec.monotone[0]" in e.value.message

@@ -183,6 +183,20 @@ def run_state_pb(state: Union[RunState, str]) -> int:
     return next(k for k, v in _STATES.items() if v is state)
 
 
+_DIRECTIONS = {
+    "increasing": pb.MONOTONE_DIRECTION_INCREASING,
+    "decreasing": pb.MONOTONE_DIRECTION_DECREASING,
+    "free": pb.MONOTONE_DIRECTION_FREE,
+}
+
+
+def monotone_direction_pb(direction: str) -> int:
+    """A monotone limit's direction by name, as the contract numbers it."""
+    if direction not in _DIRECTIONS:
+        raise UsageError(f"monotone direction {direction!r} is not one of {', '.join(_DIRECTIONS)}")
+    return _DIRECTIONS[direction]
+
+
 def run(r: pb.RunInfo) -> Run:
     if r.state not in _STATES:
         raise UsageError(f"run {r.id}: unknown state number {r.state} (a newer server? upgrade pollard-client)")

@@ -181,6 +181,12 @@ class Client:
         task: str = "",
         refit: bool = True,
         splitter: str = "",
+        outer_folds: Optional[int] = None,
+        outer_scheme: str = "",
+        outer_column: str = "",
+        monotone: Optional[Mapping[str, str]] = None,
+        false_alarm_cost: Optional[float] = None,
+        miss_cost: Optional[float] = None,
         labels: Optional[Mapping[str, str]] = None,
         key: str = "",
     ) -> Run:
@@ -194,8 +200,13 @@ class Client:
         ("shuffled", "stratified", "grouped", "forward", "given") and `fold_column` make the
         fold plan; `metric` and `pick` ("highest", "one_se", "max_leaves_budget:N",
         "within:T") say how settings are scored and picked; empty values take the server's
-        defaults. `refit=False` skips the final tree on all rows. `key` is an idempotency
-        key: a retried call with the same key returns the first call's run."""
+        defaults. `refit=False` skips the final tree on all rows. `outer_folds` (with
+        `outer_scheme`, `outer_column`) makes the sweep nested: an outer fold plan whose
+        validation rows score the picked setting once each. `monotone` maps feature names to
+        "increasing", "decreasing" or "free". `false_alarm_cost` and `miss_cost` (both or
+        neither; two-class targets) are decision costs: the metric defaults to
+        `expected_cost` and the model decides at the threshold chosen for them. `key` is an
+        idempotency key: a retried call with the same key returns the first call's run."""
         limits: Dict[str, Any] = {"max_depth": max_depth, "min_split_rows": min_split_rows, "min_leaf_rows": min_leaf_rows, "max_leaves": max_leaves, "min_gain": min_gain, "prune_alpha": prune_alpha}
         spec = pb.SweepSpec(
             target=target,
@@ -210,6 +221,16 @@ class Client:
             skip_final=not refit,
             splitter=splitter,
         )
+        if outer_folds is not None or outer_scheme or outer_column:
+            spec.outer.CopyFrom(pb.FoldPlan(scheme=outer_scheme, k=outer_folds or 0, column=outer_column))
+        for feature, direction in (monotone or {}).items():
+            spec.monotone.append(pb.MonotoneLimit(feature=feature, direction=convert.monotone_direction_pb(direction)))
+        if (false_alarm_cost is None) != (miss_cost is None):
+            raise UsageError("give both false_alarm_cost and miss_cost, or neither")
+        if false_alarm_cost is not None:
+            spec.costs.SetInParent()
+            spec.costs.false_alarm = false_alarm_cost
+            spec.costs.miss = miss_cost
         for field in LIMITS:
             if limits[field] is not None:
                 getattr(spec, field).CopyFrom(convert.limit_range(field, limits[field]))
