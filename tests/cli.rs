@@ -411,7 +411,7 @@ fn put_sweep_follow_show_runs_model_predict() {
 
 #[test]
 fn cancel_a_running_and_a_queued_run() {
-    let server = Serve::start();
+    let server = slow_server();
     let cancer = server.run(&["put", data("breast_cancer.csv").to_str().unwrap(), "--name", "breast_cancer", "--target", "target", "--json"]).json();
     server.run(&["put", data("iris.csv").to_str().unwrap(), "--name", "iris", "--target", "target", "--json"]).json();
     // Far longer than the test lets it run: 2 criteria × 2 weightings × 5 min_leaf_rows ×
@@ -1020,8 +1020,16 @@ fn dataset_versions_follow_the_name() {
 
 // ------------------------------------------------------------------ exit codes, report, logs
 
-/// A sweep far longer than any test lets it run on breast_cancer (4,000 work units).
+/// A sweep far longer than any test lets it run on breast_cancer (4,000 work units) on a
+/// server from [`slow_server`].
 const LONG: [&str; 16] = ["--criteria", "gini,entropy", "--class-weights", "none,balanced", "--min-leaf-rows", "1,2,4,8,16", "--max-depth", "lin(1,12,1)", "--fold-scheme", "stratified", "--k", "10", "--repeats", "20", "--seed", "5"];
+
+/// A server that holds each finished unit 5 ms before storing it, so a run of [`LONG`]
+/// lasts at least 20 s however fast the machine grows its trees (the whole sweep takes
+/// about a second otherwise), and a test can act while it runs.
+fn slow_server() -> Serve {
+    Serve::start_with(ServeOptions { env: vec![("POLLARD_TEST_UNIT_DELAY_MS".into(), "5".into())], ..ServeOptions::default() })
+}
 
 /// Waits until a background command ends; its exit status.
 fn wait_end(child: &mut KillOnDrop, what: &str) -> std::process::ExitStatus {
@@ -1052,11 +1060,18 @@ fn wait_running(server: &Serve, run: &str) {
 /// `sweep --follow` exits 4 when its run is cancelled; `follow` exits 3 on a failed run.
 #[test]
 fn follow_exits_with_the_way_the_run_ended() {
-    let server = Serve::start();
+    let server = slow_server();
     server.run(&["put", data("breast_cancer.csv").to_str().unwrap(), "--name", "breast_cancer", "--target", "target", "--json"]).json();
     let mut args = vec!["--server", &server.url, "sweep", "--dataset", "breast_cancer", "--follow", "--json"];
     args.extend_from_slice(&LONG);
-    let child = command(&args).stdin(Stdio::null()).stdout(Stdio::piped()).stderr(Stdio::piped()).spawn().unwrap();
+    let mut child = command(&args).stdin(Stdio::null()).stdout(Stdio::piped()).stderr(Stdio::piped()).spawn().unwrap();
+    // Both pipes are read while the command runs: one left unread fills (64 KiB of events)
+    // and blocks the command before it can end.
+    let read_all = |mut pipe: Box<dyn Read + Send>| std::thread::spawn(move || {
+        let mut text = String::new();
+        pipe.read_to_string(&mut text).map(|_| text)
+    });
+    let (out_reader, err_reader) = (read_all(Box::new(child.stdout.take().unwrap())), read_all(Box::new(child.stderr.take().unwrap())));
     let mut sweeper = KillOnDrop(child);
     let deadline = Instant::now() + PATIENCE;
     let id = loop {
@@ -1070,10 +1085,7 @@ fn follow_exits_with_the_way_the_run_ended() {
     server.run(&["cancel", &id, "--json"]).json();
     let status = wait_end(&mut sweeper, "sweep --follow did not end after the cancel");
     assert_eq!(status.code(), Some(4), "sweep --follow of a cancelled run exits 4");
-    let mut stdout = String::new();
-    sweeper.0.stdout.take().unwrap().read_to_string(&mut stdout).unwrap();
-    let mut stderr = String::new();
-    sweeper.0.stderr.take().unwrap().read_to_string(&mut stderr).unwrap();
+    let (stdout, stderr) = (out_reader.join().unwrap().unwrap(), err_reader.join().unwrap().unwrap());
     let events: Vec<Value> = stdout.lines().map(|l| serde_json::from_str(l).unwrap()).collect();
     check_events(&id, &events);
     assert_eq!(s(events.last().unwrap(), "kind"), "cancelled");

@@ -99,7 +99,7 @@ pub fn nested_lines(n: &pb::NestedEstimate, metric: &str) -> String {
     let k = n.folds.len().max(1) as f64;
     let inner_best = n.folds.iter().map(|f| f.inner_best).sum::<f64>() / k;
     let mut out = format!(
-        "nested cross-validation, {} outer splits ({better} {metric} is better): outer {} ± {} sd\n  inner best {}, optimism {} (inner best minus outer, larger means more optimistic)\n",
+        "nested cross-validation, {} outer splits ({better} {metric} is better): outer {} ± {} sd\n  inner best {}, optimism {} (the inner best's lead over the outer score; larger means more optimistic)\n",
         n.folds.len(),
         short(n.outer_mean),
         short(n.outer_sd),

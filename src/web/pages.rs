@@ -327,7 +327,7 @@ fn nested(n: &crate::sweep::NestedResult, m: Metric) -> Markup {
             h2 { "Nested cross-validation" }
             p {
                 "Outer " (m.as_str()) " " (score(n.outer_mean)) " ± " (score(n.outer_sd)) " (sd over " (n.folds.len()) " outer splits); "
-                "optimism of the inner best " (score(n.optimism)) " (inner best minus outer, larger means more optimistic; "
+                "optimism of the inner best " (score(n.optimism)) " (the inner best's lead over the outer score, so larger means more optimistic; "
                 (if m.higher_is_better() { "higher" } else { "lower" }) " " (m.as_str()) " is better)."
             }
             table {
