@@ -143,7 +143,7 @@ impl pb::runs_server::Runs for Api {
 
     async fn get_run(&self, request: Request<pb::GetRunRequest>) -> Result<Response<pb::RunInfo>, Status> {
         let (run, outcome) = self.shared.run_with_outcome(&request.into_inner().id)?;
-        Ok(Response::new(convert::run_info(&run, outcome.as_ref())))
+        Ok(Response::new(convert::run_info(&run, outcome.as_deref())))
     }
 
     async fn list_runs(&self, request: Request<pb::ListRunsRequest>) -> Result<Response<pb::ListRunsReply>, Status> {

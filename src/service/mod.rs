@@ -18,6 +18,7 @@ pub mod datasets;
 pub mod error;
 pub mod frames;
 pub mod models;
+pub mod outcomes;
 pub mod runs;
 pub mod schedules;
 
@@ -69,6 +70,8 @@ pub struct Service {
     pub admit: Mutex<()>,
     /// Parsed datasets by id, within `frame_cache_bytes`.
     pub frames: frames::FrameCache,
+    /// Decoded outcomes of finished runs (see [`outcomes`]).
+    pub outcomes: outcomes::OutcomeCache,
     /// What `/metrics` reports (see [`crate::metrics`]).
     pub metrics: crate::metrics::Metrics,
     /// Runs checked for admission ([`Service::admit_run`]), StartRun and scheduled fires
@@ -105,6 +108,7 @@ impl Service {
             memory_in_use: Mutex::new(0),
             admit: Mutex::new(()),
             frames,
+            outcomes: outcomes::OutcomeCache::new(outcomes::OUTCOME_CACHE_BYTES),
             metrics: crate::metrics::Metrics::new(),
             admissions: AtomicU64::new(0),
         }))

@@ -34,8 +34,8 @@ impl Service {
     /// has none.
     pub fn model(&self, run_id: &str) -> Result<Tree> {
         let run = self.run("run_id", run_id)?;
-        let outcome = self.store.outcome(run_id)?;
-        match outcome.and_then(|o| o.model) {
+        let outcome = self.outcomes.get(self.store.as_ref(), run_id)?;
+        match outcome.and_then(|o| o.model.clone()) {
             Some(m) => Ok(m),
             None if run.state.is_terminal() => Err(ServiceError::Precondition(format!("run '{run_id}' ended {} without a model", run.state.as_str()))),
             None => Err(ServiceError::Precondition(format!("run '{run_id}' is {}; its model exists once it has finished", run.state.as_str()))),

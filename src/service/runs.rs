@@ -239,9 +239,9 @@ impl Service {
     }
 
     /// A run and its outcome, once it has one.
-    pub fn run_with_outcome(&self, id: &str) -> Result<(Run, Option<RunOutcome>)> {
+    pub fn run_with_outcome(&self, id: &str) -> Result<(Run, Option<Arc<RunOutcome>>)> {
         let run = self.run("id", id)?;
-        let outcome = self.store.outcome(id)?;
+        let outcome = self.outcomes.get(self.store.as_ref(), id)?;
         Ok((run, outcome))
     }
 

@@ -23,7 +23,7 @@ pub mod records;
 pub mod sled_store;
 
 #[cfg(test)]
-mod tests;
+pub(crate) mod tests;
 
 use std::fmt;
 use std::io::Read;

@@ -64,7 +64,7 @@ macro_rules! assert_same {
     }};
 }
 
-fn meta(id: &str, name: &str, created_at: i64, bytes: u64) -> DatasetMeta {
+pub(crate) fn meta(id: &str, name: &str, created_at: i64, bytes: u64) -> DatasetMeta {
     DatasetMeta {
         id: id.to_string(),
         content: format!("content of {id}"),
@@ -142,7 +142,7 @@ fn fitted(file: &str, limits: Limits) -> Tree {
     fit(&TrainSet::of(&data), &options.check(data.task()).unwrap()).unwrap()
 }
 
-fn outcome(model: Option<Tree>) -> RunOutcome {
+pub(crate) fn outcome(model: Option<Tree>) -> RunOutcome {
     RunOutcome {
         scores: vec![setting_score(0.9), setting_score(f64::NAN)],
         picked: 1,

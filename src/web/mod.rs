@@ -186,7 +186,7 @@ async fn run(State(web): State<Web>, headers: HeaderMap, Path(id): Path<String>)
     let caller = admit(&web, &headers, Rpc::GetRun)?;
     let (run, outcome) = web.service.run_with_outcome(&id)?;
     // Drawing plots and the tree is CPU work: the calls pool, as every call's CPU work.
-    let page = crate::service::cpu(&web.service, move || pages::run(&caller, &run, outcome.as_ref())).await?;
+    let page = crate::service::cpu(&web.service, move || pages::run(&caller, &run, outcome.as_deref())).await?;
     Ok(page.into_response())
 }
 
