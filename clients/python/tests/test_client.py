@@ -244,6 +244,12 @@ def test_nested_monotone_and_costs(server, client):
     assert (decision["false_alarm"], decision["miss"]) == (1, 5)
     assert math.isclose(decision["bayes_threshold"], 1 / 6)
     assert len(shown["nested"]["folds"]) == 3
+    # The same, as the Python client reads it.
+    assert done.decision == pollard.Decision(decision["threshold"], 1.0, 5.0)
+    nested = shown["nested"]
+    assert (done.nested.outer_mean, done.nested.outer_sd, done.nested.optimism) == (nested["outer_mean"], nested["outer_sd"], nested["optimism"])
+    assert [(f.repeat, f.fold, f.picked, f.outer_score, f.leaves) for f in done.nested.folds] == [(f["repeat"], f["fold"], f["picked"], f["outer_score"], f["leaves"]) for f in nested["folds"]]
+    assert client.run(run.id).nested == done.nested
     # Refused by the client before any call, or by the server naming the field.
     with pytest.raises(pollard.UsageError):
         client.sweep(cancer, max_depth=[2], false_alarm_cost=1)

@@ -34,12 +34,12 @@ from .errors import (
     Unavailable,
     UsageError,
 )
-from .types import Cancelled, Column, Dataset, Event, Failed, Finished, ModelFormat, Predictions, Progress, Run, RunState, Score, Scored
+from .types import Cancelled, Column, Dataset, Decision, Event, Failed, Finished, ModelFormat, Nested, OuterFold, Predictions, Progress, Run, RunState, Score, Scored
 
 __all__ = [
     "AlreadyExists", "CallCancelled", "CallError", "Cancelled", "Client", "Column", "DEFAULT_SERVER", "Dataset",
-    "DeadlineExceeded", "Event", "Failed", "FailedPrecondition", "Finished", "Internal", "InvalidArgument", "LogSpan",
-    "MissingExtra", "ModelFormat", "NotFound", "PermissionDenied", "PollardError", "Predictions", "Progress",
+    "DeadlineExceeded", "Decision", "Event", "Failed", "FailedPrecondition", "Finished", "Internal", "InvalidArgument", "LogSpan",
+    "MissingExtra", "ModelFormat", "Nested", "NotFound", "OuterFold", "PermissionDenied", "PollardError", "Predictions", "Progress",
     "ResourceExhausted", "Run", "RunCancelled", "RunEnded", "RunFailed", "RunState", "Score", "Scored", "Span",
     "Unauthenticated", "Unavailable", "UsageError", "connect", "log_span", "span",
 ]

@@ -10,7 +10,7 @@ from datetime import datetime
 from typing import Any, Iterable, List, Mapping, Optional, Sequence, Tuple, Union
 
 from .errors import UsageError
-from .types import Cancelled, Column, Dataset, Event, Failed, Finished, Predictions, Progress, Run, RunState, Score, Scored
+from .types import Cancelled, Column, Dataset, Decision, Event, Failed, Finished, Nested, OuterFold, Predictions, Progress, Run, RunState, Score, Scored
 from .v1 import pollard_pb2 as pb
 
 
@@ -220,7 +220,18 @@ def run(r: pb.RunInfo) -> Run:
         best=r.best if r.HasField("best") else None,
         owner=r.owner,
         pareto_front=tuple(r.pareto_front),
+        nested=_nested(r.nested) if r.HasField("nested") else None,
+        decision=_decision(r.model.decision) if r.HasField("model") and r.model.HasField("decision") else None,
     )
+
+
+def _nested(n: pb.NestedEstimate) -> Nested:
+    folds = tuple(OuterFold(f.repeat, f.fold, f.picked, f.inner_best, f.inner_picked, f.outer_score, f.leaves) for f in n.folds)
+    return Nested(n.outer_mean, n.outer_sd, n.optimism, folds)
+
+
+def _decision(d: Any) -> Decision:
+    return Decision(d.threshold, d.costs.false_alarm, d.costs.miss)
 
 
 def event(e: pb.RunEvent) -> Optional[Event]:

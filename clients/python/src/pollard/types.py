@@ -93,6 +93,42 @@ class Score:
 
 
 @dataclass(frozen=True)
+class OuterFold:
+    """One outer split of a nested sweep."""
+
+    repeat: int
+    fold: int
+    #: Grid index of the setting the inner sweep picked.
+    picked: int
+    inner_best: float
+    inner_picked: float
+    #: The picked setting's score on the outer validation rows.
+    outer_score: float
+    leaves: int
+
+
+@dataclass(frozen=True)
+class Nested:
+    """What nested cross-validation measured: the outer scores and the optimism (the inner
+    best's lead over the outer score, oriented like `Score.gap`)."""
+
+    outer_mean: float
+    outer_sd: float
+    optimism: float
+    folds: Tuple[OuterFold, ...]
+
+
+@dataclass(frozen=True)
+class Decision:
+    """How a model fitted under decision costs decides: class 1 when its probability is at
+    least `threshold` (chosen on the validation folds for these costs)."""
+
+    threshold: float
+    false_alarm: float
+    miss: float
+
+
+@dataclass(frozen=True)
 class Run:
     id: str
     state: RunState
@@ -119,6 +155,10 @@ class Run:
     owner: str = ""
     #: Settings no other setting beats on both score and mean leaves, fewest leaves first.
     pareto_front: Tuple[int, ...] = ()
+    #: The outer estimate of a nested sweep (`sweep(..., outer_folds=k)`).
+    nested: Optional[Nested] = None
+    #: The model's decision threshold under decision costs.
+    decision: Optional[Decision] = None
 
     @property
     def ended(self) -> bool:
