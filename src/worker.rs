@@ -503,7 +503,7 @@ fn drift_report(shared: &Shared, run_id: &str, schedule_id: &str, outcome: &RunO
         // Run ids are time-ordered: the listing below `run_id` starts with the runs before it.
         let (before, _) = shared.store.list_runs(&filter, Some(run_id), 1)?;
         let Some(previous) = before.into_iter().next() else { return Ok(None) };
-        let Some(prev_outcome) = shared.store.outcome(&previous.id)? else { return Ok(None) };
+        let Some(prev_outcome) = shared.outcomes.get(shared.store.as_ref(), &previous.id)? else { return Ok(None) };
         let thresholds = shared.store.schedule(schedule_id)?.map_or(DriftThresholds::default(), |s| s.drift);
         let (Some(before), Some(now)) = (run_side(&previous, &prev_outcome), run_side(&current, outcome)) else { return Ok(None) };
         Ok(Some(drift::compare(&before, &now, thresholds)))

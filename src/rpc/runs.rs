@@ -85,7 +85,7 @@ impl Api {
                 // Up to and including a terminal event: nothing follows one.
                 let last = events.iter().position(|e| e.is_terminal()).map_or(events.len(), |i| i + 1);
                 let terminal = events[..last].last().is_some_and(|e| e.is_terminal());
-                let msgs: Vec<pb::RunEvent> = events[..last].iter().map(|e| convert::event_to(&r.id, e, page.outcome.as_ref(), page.drift.as_ref())).collect();
+                let msgs: Vec<pb::RunEvent> = events[..last].iter().map(|e| convert::event_to(&r.id, e, page.outcome.as_deref(), page.drift.as_ref())).collect();
                 if let Some(e) = events[..last].last() {
                     after = e.sequence;
                 }

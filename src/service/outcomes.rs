@@ -1,6 +1,7 @@
-//! Outcomes of finished runs, decoded once and kept, so GetRun, the model calls (Predict
-//! among them) and the run page do not decode a stored outcome again on every call (for a
-//! run of 900 settings the decode was about half of GetRun's time).
+//! Outcomes of finished runs, decoded once and kept, so the service's reads of them (GetRun,
+//! the model calls with Predict, a follower's `finished` event, the run and schedule pages,
+//! the drift report against the previous run) do not decode a stored outcome again on every
+//! call (for a run of 900 settings the decode was about half of GetRun's time).
 //!
 //! A run's outcome is written once, when the run finishes, and never changed, so a kept
 //! outcome is never stale. A deleted run is looked up before its outcome, so a kept outcome

@@ -107,7 +107,7 @@ pub fn check_labels<'a>(cfg: &Config, labels: impl IntoIterator<Item = (&'a Stri
 pub struct EventsAfter {
     pub events: Vec<Event>,
     pub ended: bool,
-    pub outcome: Option<RunOutcome>,
+    pub outcome: Option<Arc<RunOutcome>>,
     pub drift: Option<DriftReport>,
 }
 
@@ -286,7 +286,7 @@ impl Service {
         let ended = matches!(self.store.run(run_id), Ok(Some(run)) if run.state.is_terminal());
         let events = self.store.events(run_id, after)?;
         let finished = events.iter().any(|e| matches!(e.kind, EventKind::Finished { .. }));
-        let outcome = if finished { self.store.outcome(run_id).ok().flatten() } else { None };
+        let outcome = if finished { self.outcomes.get(self.store.as_ref(), run_id).ok().flatten() } else { None };
         let drift = if finished { self.store.run(run_id).ok().flatten().and_then(|run| run.drift) } else { None };
         Ok(EventsAfter { events, ended, outcome, drift })
     }

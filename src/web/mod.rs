@@ -257,7 +257,7 @@ async fn schedule(State(web): State<Web>, headers: HeaderMap, Path(id): Path<Str
     // The drift history: the picked setting of each finished run, oldest first.
     let mut history = Vec::new();
     for run in runs.into_iter().rev().filter(|r| r.state == crate::job::RunState::Finished) {
-        let Some(o) = web.service.store.outcome(&run.id).map_err(ServiceError::from)? else { continue };
+        let Some(o) = web.service.outcomes.get(web.service.store.as_ref(), &run.id).map_err(ServiceError::from)? else { continue };
         let Some(s) = o.scores.get(o.picked as usize) else { continue };
         let se = s.valid_sd / (s.fold_scores.len().max(1) as f64).sqrt();
         history.push(pages::NightScore { valid: s.valid_mean, se, leaves: s.mean_leaves, run });
