@@ -14,7 +14,7 @@ use std::ops::RangeInclusive;
 
 use pollard::data::{Column, Feature, Frame, Target, Task, MISSING_CODE};
 use pollard::export::{from_json, to_json};
-use pollard::tree::grow::{fit_shared_with, fit_with};
+use pollard::tree::grow::{fit_shared_with, fit_with, Sharing};
 use pollard::tree::{
     fit, fit_with_leaves, prune, pruning_path, ClassWeight, Criterion, FitOptions, Limits, Monotone, Predictions, SplitRule, Splitter, TrainSet, Tree,
 };
@@ -949,6 +949,7 @@ proptest! {
     /// gain, rank and value, so ties are broken the same way. Values in any order, repeats
     /// included; sometimes sample weights, the binned splitter, a row subset, up to 200 rows;
     /// parting trees copy the node's sorted rows, or take turns on them and restore their order;
+    /// subtrees grow as parallel tasks below random sizes;
     /// monotone limits on random numeric features of regress and two-class cases.
     #[test]
     fn growing_together_equals_growing_each_alone(
@@ -958,6 +959,7 @@ proptest! {
         subset in any::<bool>(),
         caps in prop::bool::weighted(0.2),
         copy_entries in prop_oneof![Just(usize::MAX), Just(0usize), 0usize..400],
+        fork_entries in prop_oneof![Just(0usize), Just(usize::MAX), 0usize..400],
         directions in vec(0u8..3, 4),
     ) {
         let mut options = FitOptions { splitter: if binned { Splitter::Binned } else { Splitter::Exact }, ..case.options.clone() };
@@ -983,8 +985,9 @@ proptest! {
         if rows.is_empty() {
             return Ok(());
         }
-        // Parts copy a node's sorted rows, or (copy_entries 0) take turns on them in place.
-        let together = match fit_shared_with(&set, &checked, &values, copy_entries) {
+        // Parts copy a node's sorted rows, or (copy_entries 0) take turns on them in place;
+        // subtrees below fork_entries grow as tasks on the pool (usize::MAX: the whole tree).
+        let together = match fit_shared_with(&set, &checked, &values, Sharing { copy_entries, fork_entries }) {
             Ok(t) => t,
             // Only when every row has weight 0: each alone fails the same way.
             Err(e) => {

@@ -29,6 +29,30 @@ const PARALLEL_WORK: usize = 1 << 17;
 /// each. So a shared growth holds at most one copy of this size per further tree.
 pub(crate) const COPY_ENTRIES: usize = 1 << 20;
 
+/// How trees grown together share memory and threads.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub struct Sharing {
+    /// See [`COPY_ENTRIES`].
+    pub copy_entries: usize,
+    /// Nodes of fewer (rows × features) sorted entries than this grow on the pool as tasks
+    /// of their own, each on a copy of its rows (0: none; see [`FORK_ENTRIES`]).
+    pub fork_entries: usize,
+}
+
+/// Below this many (rows × features) a node's features are searched one after another
+/// (see [`PARALLEL_WORK`]), so the subtrees below such nodes grow in parallel instead: each
+/// as a task on the pool, on its own copy of the node's rows (1 MiB at most), its nodes
+/// grafted into the trees when it ends. A tree's nodes are numbered when growth ends
+/// (preorder) and ranked by gain, depth and position, so the order the tasks end in does
+/// not change a bit of the result.
+pub const FORK_ENTRIES: usize = PARALLEL_WORK;
+
+impl Default for Sharing {
+    fn default() -> Self {
+        Sharing { copy_entries: COPY_ENTRIES, fork_entries: FORK_ENTRIES }
+    }
+}
+
 /// What one fit reads: a frame, its target, and optionally a row subset and weights.
 #[derive(Clone, Copy)]
 pub struct TrainSet<'a> {
@@ -94,12 +118,13 @@ pub fn fit_with_leaves(set: &TrainSet, options: &CheckedOptions) -> Result<(Tree
 /// its own (on its own copy of the node's sorted rows). Growth with a leaf cap or pruning fits
 /// each value alone.
 pub fn fit_shared(set: &TrainSet, options: &CheckedOptions, min_leaf_rows: &[u32]) -> Result<Vec<(Tree, Vec<u32>)>, FitError> {
-    fit_shared_with(set, options, min_leaf_rows, COPY_ENTRIES)
+    fit_shared_with(set, options, min_leaf_rows, Sharing::default())
 }
 
-/// As [`fit_shared`], with parts copying the sorted rows of nodes of at most `copy_entries`
-/// entries (see [`COPY_ENTRIES`]); for the test that copying and restoring give the same trees.
-pub fn fit_shared_with(set: &TrainSet, options: &CheckedOptions, min_leaf_rows: &[u32], copy_entries: usize) -> Result<Vec<(Tree, Vec<u32>)>, FitError> {
+/// As [`fit_shared`], with parts copying the sorted rows of nodes of at most
+/// `sharing.copy_entries` entries and subtrees below `sharing.fork_entries` grown as tasks;
+/// for the test that copying, restoring and forking give the same trees.
+pub fn fit_shared_with(set: &TrainSet, options: &CheckedOptions, min_leaf_rows: &[u32], sharing: Sharing) -> Result<Vec<(Tree, Vec<u32>)>, FitError> {
     let per_value = |m: u32| {
         let mut o = options.to_options();
         o.limits.min_leaf_rows = m;
@@ -113,7 +138,7 @@ pub fn fit_shared_with(set: &TrainSet, options: &CheckedOptions, min_leaf_rows: 
     }
     let checked = values.iter().map(|&m| per_value(m)).collect::<Result<Vec<_>, _>>()?;
     let prepared = Prepared::new(set, options)?;
-    let grown = Grower::new(&prepared, options, true).grow_shared(&checked, copy_entries);
+    let grown = Grower::new(&prepared, options, true).grow_shared(&checked, sharing);
     let grown: Vec<(Tree, Vec<u32>)> = grown.into_iter().map(|(tree, leaf_of)| (tree, prepared.by_position(set, &leaf_of))).collect();
     Ok(min_leaf_rows.iter().map(|m| grown[values.binary_search(m).expect("every value grown")].clone()).collect())
 }
@@ -412,8 +437,8 @@ struct Grower<'p> {
     /// Logical position of `sorted`'s first entry: 0, except while trees grown together
     /// work on their own copy of one node's rows.
     offset: u32,
-    /// See [`COPY_ENTRIES`].
-    copy_entries: usize,
+    /// See [`Sharing`].
+    sharing: Sharing,
     arena: Arena,
 }
 
@@ -482,7 +507,33 @@ impl<'p> Grower<'p> {
             width,
             levels,
             offset: 0,
-            copy_entries: COPY_ENTRIES,
+            sharing: Sharing { copy_entries: COPY_ENTRIES, fork_entries: 0 },
+            arena: Arena::default(),
+        }
+    }
+
+    /// A grower for one forked subtree: the rows `sorted` (a copy of a node's rows, whose
+    /// logical start is `offset`), `go_left` sized for every fit-local row, one thread.
+    fn task(&self, sorted: Vec<Vec<Entry>>, offset: u32, go_left: Vec<bool>) -> Grower<'p> {
+        Grower {
+            prep: self.prep,
+            criterion: self.criterion,
+            limits: self.limits.clone(),
+            options: self.options.clone(),
+            monotone: self.monotone.clone(),
+            parallel: false,
+            sorted,
+            edges: self.edges.clone(),
+            go_left,
+            scratch: Vec::new(),
+            search_scratch: Scratch::default(),
+            left_buf: Vec::new(),
+            right_buf: Vec::new(),
+            total_weight: self.total_weight,
+            width: self.width,
+            levels: self.levels.clone(),
+            offset,
+            sharing: Sharing { copy_entries: self.sharing.copy_entries, fork_entries: 0 },
             arena: Arena::default(),
         }
     }
@@ -919,7 +970,60 @@ fn offer_feature(best: &mut Option<(usize, FeatureBest)>, f: usize, r: Option<Fe
 struct KeyTree {
     options: super::FitOptions,
     arena: Arena,
-    leaf_of: Vec<u32>,
+    leaves: Leaves,
+}
+
+/// The leaf of each fit-local row a tree has placed: one slot per row in the whole tree, a
+/// list of (row, node) in a forked subtree (which holds few of the rows).
+enum Leaves {
+    Slots(Vec<u32>),
+    Listed(Vec<(u32, u32)>),
+}
+
+impl Leaves {
+    fn set(&mut self, row: usize, id: u32) {
+        match self {
+            Leaves::Slots(slots) => slots[row] = id,
+            Leaves::Listed(list) => list.push((row as u32, id)),
+        }
+    }
+}
+
+impl KeyTree {
+    /// A tree for a forked subtree: node `id` of this tree as its root (local id 0).
+    fn fork(&self, id: u32) -> KeyTree {
+        let a = &self.arena;
+        let i = id as usize;
+        let arena = Arena { nodes: vec![a.nodes[i].clone()], stats: vec![a.stats[i].clone()], starts: vec![a.starts[i]], bounds: vec![a.bounds[i]] };
+        KeyTree { options: self.options.clone(), arena, leaves: Leaves::Listed(Vec::new()) }
+    }
+
+    /// Takes in the nodes and leaves `sub` grew below node `id` (see [`KeyTree::fork`]):
+    /// its root replaces node `id`, its other nodes are appended.
+    fn graft(&mut self, id: u32, sub: KeyTree) {
+        let base = self.arena.nodes.len() as u32;
+        let map = |local: u32| if local == 0 { id } else { base + local - 1 };
+        let Arena { nodes, stats, starts, bounds } = sub.arena;
+        for (local, (((mut node, s), start), b)) in nodes.into_iter().zip(stats).zip(starts).zip(bounds).enumerate() {
+            if !node.is_leaf() {
+                node.left = map(node.left);
+                node.right = map(node.right);
+            }
+            if local == 0 {
+                self.arena.nodes[id as usize] = node;
+            } else {
+                self.arena.nodes.push(node);
+                self.arena.stats.push(s);
+                self.arena.starts.push(start);
+                self.arena.bounds.push(b);
+            }
+        }
+        if let Leaves::Listed(list) = sub.leaves {
+            for (row, local) in list {
+                self.leaves.set(row as usize, map(local));
+            }
+        }
+    }
 }
 
 /// A node that several trees of a shared growth hold alike: (tree, node id in that tree) for
@@ -934,8 +1038,8 @@ impl Grower<'_> {
     /// Grows one tree per checked options (ascending `min_leaf_rows`, otherwise equal) from
     /// one set of sorted columns; see [`fit_shared`]. Each tree, with the leaf of every
     /// fit-local row.
-    fn grow_shared(mut self, per_value: &[CheckedOptions], copy_entries: usize) -> Vec<(Tree, Vec<u32>)> {
-        self.copy_entries = copy_entries;
+    fn grow_shared(mut self, per_value: &[CheckedOptions], sharing: Sharing) -> Vec<(Tree, Vec<u32>)> {
+        self.sharing = sharing;
         let n = self.prep.frame_rows.len() as u32;
         let root = self.stats_of(0..n);
         self.total_weight = root.totals.w;
@@ -944,26 +1048,39 @@ impl Grower<'_> {
             .map(|o| {
                 let mut arena = Arena::default();
                 arena.push(0, 0, root.clone(), UNBOUNDED);
-                KeyTree { options: o.to_options(), arena, leaf_of: vec![NO_NODE; n as usize] }
+                KeyTree { options: o.to_options(), arena, leaves: Leaves::Slots(vec![NO_NODE; n as usize]) }
             })
             .collect();
         let all = SharedNode { members: (0..trees.len()).map(|t| (t, 0)).collect(), start: 0, end: n };
         self.grow_together(&mut trees, vec![all]);
-        trees.into_iter().map(|t| self.finish(t.arena, t.options, t.leaf_of)).collect()
+        trees
+            .into_iter()
+            .map(|t| {
+                let Leaves::Slots(leaf_of) = t.leaves else { unreachable!("a whole tree keeps a slot per row") };
+                self.finish(t.arena, t.options, leaf_of)
+            })
+            .collect()
     }
 
     /// Grows the nodes of `stack` and everything below them, depth-first. Where the trees of
     /// a node part, every part but the last grows first, in a recursive call (at most one per
     /// parting, so as deep as there are trees): on its own copy of the node's rows, or on
     /// the rows in place for a node bigger than [`COPY_ENTRIES`], whose order is then
-    /// restored. The last part keeps the rows in place.
+    /// restored. The last part keeps the rows in place. Nodes smaller than
+    /// `sharing.fork_entries` are put aside and grown as parallel tasks at the end (see
+    /// [`FORK_ENTRIES`]).
     fn grow_together(&mut self, trees: &mut [KeyTree], mut stack: Vec<SharedNode>) {
+        let mut forks = Vec::new();
         while let Some(node) = stack.pop() {
             let (a, b) = ((node.start - self.offset) as usize, (node.end - self.offset) as usize);
+            if (b - a) * self.sorted.len() < self.sharing.fork_entries {
+                forks.push(node);
+                continue;
+            }
             let parts = self.evaluate_together(trees, &node, a, b);
             let last = parts.len().saturating_sub(1);
             for (i, (members, p)) in parts.into_iter().enumerate() {
-                if i < last && (b - a) * self.sorted.len() > self.copy_entries {
+                if i < last && (b - a) * self.sorted.len() > self.sharing.copy_entries {
                     let children = self.split_together(trees, &members, &node, a, b, p);
                     self.grow_together(trees, children.into());
                     self.restore_order(a, b);
@@ -980,6 +1097,37 @@ impl Grower<'_> {
                 }
             }
         }
+        self.grow_forks(trees, forks);
+    }
+
+    /// Grows each of the put-aside nodes `forks` and everything below them as a task on the
+    /// pool, on a copy of its rows, and grafts what each grew into `trees` as it ends.
+    fn grow_forks(&self, trees: &mut [KeyTree], forks: Vec<SharedNode>) {
+        if forks.is_empty() {
+            return;
+        }
+        let tasks: Vec<(SharedNode, Vec<KeyTree>)> = forks.into_iter().map(|node| {
+            let subs = node.members.iter().map(|&(t, id)| trees[t].fork(id)).collect();
+            (node, subs)
+        }).collect();
+        let trees = std::sync::Mutex::new(trees);
+        let n = self.prep.frame_rows.len();
+        tasks.into_par_iter().for_each_init(
+            || vec![false; n],
+            |go_left, (node, mut subs)| {
+                let (a, b) = ((node.start - self.offset) as usize, (node.end - self.offset) as usize);
+                let copy = self.sorted.iter().map(|col| col[a..b].to_vec()).collect();
+                let mut task = self.task(copy, node.start, std::mem::take(go_left));
+                let root = SharedNode { members: (0..subs.len()).map(|i| (i, 0)).collect(), start: node.start, end: node.end };
+                task.grow_together(&mut subs, vec![root]);
+                *go_left = std::mem::take(&mut task.go_left);
+                drop(task);
+                let mut trees = trees.lock().unwrap_or_else(|e| e.into_inner());
+                for (&(t, id), sub) in node.members.iter().zip(subs) {
+                    trees[t].graft(id, sub);
+                }
+            },
+        );
     }
 
     /// Sorts rows `[a, b)` of every feature back into the presort's order (by value, ties by
@@ -1024,7 +1172,7 @@ impl Grower<'_> {
         for &(t, id) in &node.members {
             if !parts.iter().any(|(members, _)| members.iter().any(|&(pt, _)| pt == t)) {
                 for e in &self.sorted[0][a..b] {
-                    trees[t].leaf_of[e.row()] = id;
+                    trees[t].leaves.set(e.row(), id);
                 }
             }
         }
