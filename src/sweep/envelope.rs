@@ -12,6 +12,12 @@
 use super::metrics::{score_classes, score_values, ClassGroups, Scoring, ValueGroup};
 use crate::data::{Dataset, Target};
 use crate::tree::{fit_shared, fit_with_leaves, pruning_path_of, FitError, FitOptions, TrainSet, Tree, NO_NODE};
+use rayon::prelude::*;
+
+/// Envelopes of at least this many nodes, or sides of a fold of at least this many rows, are
+/// routed, aggregated and scored on the pool; smaller ones on the calling thread, whose
+/// neighbours are busy with other units.
+pub const PARALLEL_SCORING: usize = 1 << 14;
 
 /// Scores of one setting on one fold.
 #[derive(Clone, Debug, PartialEq)]
@@ -31,7 +37,7 @@ enum LeafRows {
 }
 
 impl LeafRows {
-    /// Aggregates `rows`, whose leaves in `tree` are `leaf_of` (routed here when `None`).
+    /// Aggregates `rows`, whose nodes in `tree` are `leaf_of` (routed here when `None`).
     fn build(tree: &Tree, leaf_slot: &[u32], n_leaves: usize, data: &Dataset, rows: &[u32], leaf_of: Option<&[u32]>) -> LeafRows {
         let leaves: Vec<u32> = match leaf_of {
             Some(l) => l.iter().map(|&node| leaf_slot[node as usize]).collect(),
@@ -160,6 +166,11 @@ impl Envelope {
         Ok(grown.into_iter().map(move |(tree, train_leaves)| Envelope::of(tree, &train_leaves, data, train, valid)))
     }
 
+    /// Whether scoring this envelope's settings pays for the pool's hand-off.
+    pub fn is_big(&self) -> bool {
+        self.tree.nodes.len() >= PARALLEL_SCORING
+    }
+
     /// The envelope of a grown tree T*, given the leaf of each training row.
     fn of(tree: Tree, train_leaves: &[u32], data: &Dataset, train: &[u32], valid: &[u32]) -> Envelope {
         let n = tree.nodes.len();
@@ -177,8 +188,16 @@ impl Envelope {
         for (j, &l) in leaves.iter().enumerate() {
             slot[l as usize] = j as u32;
         }
-        let valid_rows = LeafRows::build(&tree, &slot, leaves.len(), data, valid, None);
-        let train_rows = LeafRows::build(&tree, &slot, leaves.len(), data, train, Some(train_leaves));
+        let (valid_rows, train_rows) = if valid.len().max(train.len()) >= PARALLEL_SCORING {
+            // A big fold: route the validation rows on the pool, and aggregate both sides at once.
+            let valid_leaves: Vec<u32> = valid.par_iter().with_min_len(1024).map(|&r| tree.apply_row(&data.frame, r as usize)).collect();
+            rayon::join(
+                || LeafRows::build(&tree, &slot, leaves.len(), data, valid, Some(&valid_leaves)),
+                || LeafRows::build(&tree, &slot, leaves.len(), data, train, Some(train_leaves)),
+            )
+        } else {
+            (LeafRows::build(&tree, &slot, leaves.len(), data, valid, None), LeafRows::build(&tree, &slot, leaves.len(), data, train, Some(train_leaves)))
+        };
         Envelope { tree, parent, by_rank, leaves, valid: valid_rows, train: train_rows }
     }
 

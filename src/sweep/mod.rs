@@ -370,27 +370,31 @@ impl Plan {
         groups
     }
 
-    /// Scores every setting of a unit from its envelope.
+    /// Scores every setting of a unit from its envelope: settings that differ only in α in
+    /// one pass; those passes on the pool for a big envelope.
     fn score_unit(&self, unit: usize, env: &Envelope) -> UnitResult {
         let key = self.units[unit].1;
-        let mut scores = Vec::new();
         let mine: Vec<usize> = (0..self.settings.len()).filter(|&i| self.settings[i].key == key).collect();
         // α varies fastest in grid order: settings that differ only in α are consecutive.
+        let mut blocks = Vec::new();
         let mut i = 0;
         while i < mine.len() {
             let l = &self.settings[mine[i]].options.limits;
-            let stopping = Stopping { max_depth: l.max_depth, min_split_rows: l.min_split_rows, max_leaves: l.max_leaves, min_gain: l.min_gain };
             let mut j = i;
             while j < mine.len() && same_stopping(&self.settings[mine[j]].options.limits, l) {
                 j += 1;
             }
-            let alphas: Vec<f64> = mine[i..j].iter().map(|&s| self.settings[s].options.limits.prune_alpha).collect();
-            for (&s, score) in mine[i..j].iter().zip(env.score(self.spec.scoring(), &stopping, &alphas)) {
-                scores.push((s, score));
-            }
+            blocks.push(&mine[i..j]);
             i = j;
         }
-        UnitResult { unit, scores }
+        let score_block = |block: &&[usize]| -> Vec<(usize, FoldScore)> {
+            let l = &self.settings[block[0]].options.limits;
+            let stopping = Stopping { max_depth: l.max_depth, min_split_rows: l.min_split_rows, max_leaves: l.max_leaves, min_gain: l.min_gain };
+            let alphas: Vec<f64> = block.iter().map(|&s| self.settings[s].options.limits.prune_alpha).collect();
+            block.iter().copied().zip(env.score(self.spec.scoring(), &stopping, &alphas)).collect()
+        };
+        let scored: Vec<Vec<(usize, FoldScore)>> = if env.is_big() { blocks.par_iter().map(score_block).collect() } else { blocks.iter().map(score_block).collect() };
+        UnitResult { unit, scores: scored.into_iter().flatten().collect() }
     }
 }
 
