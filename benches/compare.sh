@@ -34,13 +34,13 @@ case "$mode" in
         rows=10000
         grid=(max_depth=2,4,8,12,16,none min_split_rows=2,10,50 min_leaf_rows=1,5,20 max_leaves=none,16,64,256)
         sample=""
-        goal=100
+        goal=500
         ;;
     --full)
         rows=100000
         grid=(max_depth=2,4,6,8,10,12,16,20,none min_split_rows=2,5,10,20,50 min_leaf_rows=1,2,5,10,20 max_leaves=none,16,64,256)
         sample=0.1
-        goal=300
+        goal=1000
         ;;
     *)
         echo "usage: bash benches/compare.sh --quick|--full" >&2
