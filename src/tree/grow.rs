@@ -115,8 +115,9 @@ pub fn fit_with_leaves(set: &TrainSet, options: &CheckedOptions) -> Result<(Tree
 /// The trees grow together: they share a node while its best split is the same for all of
 /// them, and one scan per node and feature finds the best split of every value (see
 /// `split::Bests`). Where their splits differ they part, and each part grows on from there on
-/// its own (on its own copy of the node's sorted rows). Growth with a leaf cap or pruning fits
-/// each value alone.
+/// its own (on its own copy of the node's sorted rows). One value alone grows this way too,
+/// for the subtrees grown as parallel tasks ([`FORK_ENTRIES`]). Growth with a leaf cap or
+/// pruning fits each value alone.
 pub fn fit_shared(set: &TrainSet, options: &CheckedOptions, min_leaf_rows: &[u32]) -> Result<Vec<(Tree, Vec<u32>)>, FitError> {
     fit_shared_with(set, options, min_leaf_rows, Sharing::default())
 }
@@ -133,7 +134,7 @@ pub fn fit_shared_with(set: &TrainSet, options: &CheckedOptions, min_leaf_rows: 
     let mut values = min_leaf_rows.to_vec();
     values.sort_unstable();
     values.dedup();
-    if values.len() < 2 || options.limits.max_leaves.is_some() || options.limits.prune_alpha > 0.0 {
+    if values.is_empty() || options.limits.max_leaves.is_some() || options.limits.prune_alpha > 0.0 {
         return min_leaf_rows.iter().map(|&m| fit_with_leaves(set, &per_value(m)?)).collect();
     }
     let checked = values.iter().map(|&m| per_value(m)).collect::<Result<Vec<_>, _>>()?;
