@@ -98,23 +98,6 @@ pub(crate) fn squared_error_proxy(sl: f64, wl: f64, sr: f64, wr: f64) -> f64 {
     sl * sl / wl + sr * sr / wr
 }
 
-/// Whether [`squared_error_proxy`]`(sl, wl, sr, wr)`, as rounded, surely does not exceed
-/// `floor`, told from products alone (the two divisions are the scan's slowest step).
-///
-/// For weights that are whole numbers below 2³¹ (unit weights): with u = 2⁻⁵³, the rounded
-/// proxy p is at most P(1 + 3u) for the exact P = Q / (wl·wr), Q = sl²·wr + sr²·wl, whose
-/// rounding q is at least Q(1 − 3u), and t, the rounding of floor·wl·wr (floor ≥ 0), is at
-/// most floor·wl·wr(1 + 2u). So p > floor implies q > t(1 − 9u), and q ≤ t(1 − 10⁻¹²)
-/// implies p ≤ floor: such a candidate could not win (winners must be strictly larger).
-/// Tiny products (q < 10⁻²⁰⁰, where underflow would void the bounds) and an overflowing t
-/// always answer `false`, sending the candidate to the exact comparison.
-#[inline(always)]
-pub(crate) fn squared_error_proxy_below(sl: f64, wl: f64, sr: f64, wr: f64, floor: f64) -> bool {
-    let q = sl * sl * wr + sr * sr * wl;
-    let t = floor * wl * wr;
-    q >= 1e-200 && t.is_finite() && q <= t * (1.0 - 1e-12)
-}
-
 impl fmt::Display for Criterion {
     fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
         f.write_str(self.as_str())
@@ -124,39 +107,6 @@ impl fmt::Display for Criterion {
 #[cfg(test)]
 mod tests {
     use super::*;
-
-    /// The product test never turns away a candidate the exact proxy would let win: for
-    /// floors just below, at and just above the rounded proxy, across magnitudes and the
-    /// weights of unit-weight scans. (Without its margin, `q <= t`, it answers `true` for
-    /// some floor just below the proxy.)
-    #[test]
-    fn product_test_never_drops_a_winner() {
-        let mut x = 0x9e37_79b9_7f4a_7c15u64;
-        let mut next = || {
-            x ^= x << 13;
-            x ^= x >> 7;
-            x ^= x << 17;
-            x
-        };
-        let (mut dropped, mut cases) = (0, 0);
-        for _ in 0..200_000 {
-            let wl = (next() % 100_000 + 1) as f64;
-            let wr = (next() % 100_000 + 1) as f64;
-            let scale = 10f64.powi((next() % 40) as i32 - 20);
-            let sl = ((next() >> 11) as f64 / (1u64 << 53) as f64 - 0.5) * scale * wl;
-            let sr = ((next() >> 11) as f64 / (1u64 << 53) as f64 - 0.5) * scale * wr;
-            let p = squared_error_proxy(sl, wl, sr, wr);
-            for floor in [f64::from_bits(p.to_bits() - 1), p, f64::from_bits(p.to_bits() + 1), p * (1.0 - 1e-9), p * (1.0 + 1e-9)] {
-                cases += 1;
-                if p > floor {
-                    assert!(!squared_error_proxy_below(sl, wl, sr, wr, floor), "sl {sl} wl {wl} sr {sr} wr {wr} floor {floor}");
-                }
-                dropped += squared_error_proxy_below(sl, wl, sr, wr, floor) as usize;
-            }
-        }
-        // It does drop the clear losers.
-        assert!(dropped > cases / 10, "{dropped} of {cases}");
-    }
 
     #[test]
     fn gini_worked_example() {

@@ -225,20 +225,12 @@ pub(crate) trait Pass<T> {
     /// Offers a candidate allowed for every `min_leaf_rows` value up to `cap` (the rows of
     /// its smaller side). The scan offers only candidates allowed for the smallest value.
     fn offer_within(&mut self, proxy: f64, at: T, cap: u32);
-
-    /// A proxy no larger than which no offer changes anything (−∞ before the first).
-    fn floor(&self) -> f64;
 }
 
 impl<T> Pass<T> for Best<T> {
     #[inline(always)]
     fn offer_within(&mut self, proxy: f64, at: T, _cap: u32) {
         self.offer(proxy, at);
-    }
-
-    #[inline(always)]
-    fn floor(&self) -> f64 {
-        self.proxy
     }
 }
 
@@ -278,12 +270,6 @@ impl<T: Copy> Pass<T> for Bests<'_, T> {
             self.best[j - 1] = Best { proxy, at: Some(at) };
             j -= 1;
         }
-    }
-
-    /// The last value's best: the best never rises along the values.
-    #[inline(always)]
-    fn floor(&self) -> f64 {
-        self.best.last().map_or(f64::NEG_INFINITY, |b| b.proxy)
     }
 }
 
@@ -454,36 +440,30 @@ impl SearchCtx<'_> {
                 s.left[rows.class[r] as usize] += rows.w[r];
             }
             let Some((right, left)) = sc.cut_after(seg, i) else { continue };
-            // With unit weights a regress candidate that surely cannot win skips the two
-            // divisions of its proxy (see `squared_error_proxy_below`).
             if right >= sc.msl && (!REGRESS || admitted(self.order, sl, lw, nonmiss0 - sl + miss0, sc.nonmiss_w - lw + sc.miss_w)) {
                 let rw = sc.nonmiss_w - lw + sc.miss_w;
-                if !(REGRESS && UNIT && super::criterion::squared_error_proxy_below(sl, lw, nonmiss0 - sl + miss0, rw, pass_right.floor())) {
-                    let p = if REGRESS {
-                        super::criterion::squared_error_proxy(sl, lw, nonmiss0 - sl + miss0, rw)
-                    } else {
-                        for k in 0..width {
-                            s.right[k] = s.nonmiss[k] - s.left[k] + s.miss[k];
-                        }
-                        self.criterion.class_proxy(&s.left, lw, &s.right, rw)
-                    };
-                    pass_right.offer_within(p, i, right);
-                }
+                let p = if REGRESS {
+                    super::criterion::squared_error_proxy(sl, lw, nonmiss0 - sl + miss0, rw)
+                } else {
+                    for k in 0..width {
+                        s.right[k] = s.nonmiss[k] - s.left[k] + s.miss[k];
+                    }
+                    self.criterion.class_proxy(&s.left, lw, &s.right, rw)
+                };
+                pass_right.offer_within(p, i, right);
             }
             if left >= sc.msl && (!REGRESS || admitted(self.order, sl + miss0, lw + sc.miss_w, nonmiss0 - sl, sc.nonmiss_w - lw)) {
                 let rw = sc.nonmiss_w - lw;
-                if !(REGRESS && UNIT && super::criterion::squared_error_proxy_below(sl + miss0, lw + sc.miss_w, nonmiss0 - sl, rw, pass_left.floor())) {
-                    let p = if REGRESS {
-                        super::criterion::squared_error_proxy(sl + miss0, lw + sc.miss_w, nonmiss0 - sl, rw)
-                    } else {
-                        for k in 0..width {
-                            s.tmp[k] = s.left[k] + s.miss[k];
-                            s.right[k] = s.nonmiss[k] - s.left[k];
-                        }
-                        self.criterion.class_proxy(&s.tmp, lw + sc.miss_w, &s.right, rw)
-                    };
-                    pass_left.offer_within(p, i, left);
-                }
+                let p = if REGRESS {
+                    super::criterion::squared_error_proxy(sl + miss0, lw + sc.miss_w, nonmiss0 - sl, rw)
+                } else {
+                    for k in 0..width {
+                        s.tmp[k] = s.left[k] + s.miss[k];
+                        s.right[k] = s.nonmiss[k] - s.left[k];
+                    }
+                    self.criterion.class_proxy(&s.tmp, lw + sc.miss_w, &s.right, rw)
+                };
+                pass_left.offer_within(p, i, left);
             }
         }
     }
