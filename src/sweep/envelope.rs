@@ -37,12 +37,9 @@ enum LeafRows {
 }
 
 impl LeafRows {
-    /// Aggregates `rows`, whose nodes in `tree` are `leaf_of` (routed here when `None`).
-    fn build(tree: &Tree, leaf_slot: &[u32], n_leaves: usize, data: &Dataset, rows: &[u32], leaf_of: Option<&[u32]>) -> LeafRows {
-        let leaves: Vec<u32> = match leaf_of {
-            Some(l) => l.iter().map(|&node| leaf_slot[node as usize]).collect(),
-            None => rows.iter().map(|&r| leaf_slot[tree.apply_row(&data.frame, r as usize) as usize]).collect(),
-        };
+    /// Aggregates `rows`, whose leaves in T* are the nodes `leaf_of`.
+    fn build(leaf_slot: &[u32], n_leaves: usize, data: &Dataset, rows: &[u32], leaf_of: &[u32]) -> LeafRows {
+        let leaves: Vec<u32> = leaf_of.iter().map(|&node| leaf_slot[node as usize]).collect();
         match &data.target {
             Target::Classes { codes, labels } => {
                 let k = labels.len();
@@ -188,15 +185,15 @@ impl Envelope {
         for (j, &l) in leaves.iter().enumerate() {
             slot[l as usize] = j as u32;
         }
+        let build = |rows: &[u32], leaf_of: &[u32]| LeafRows::build(&slot, leaves.len(), data, rows, leaf_of);
+        let route = |&r: &u32| tree.apply_row(&data.frame, r as usize);
         let (valid_rows, train_rows) = if valid.len().max(train.len()) >= PARALLEL_SCORING {
             // A big fold: route the validation rows on the pool, and aggregate both sides at once.
-            let valid_leaves: Vec<u32> = valid.par_iter().with_min_len(1024).map(|&r| tree.apply_row(&data.frame, r as usize)).collect();
-            rayon::join(
-                || LeafRows::build(&tree, &slot, leaves.len(), data, valid, Some(&valid_leaves)),
-                || LeafRows::build(&tree, &slot, leaves.len(), data, train, Some(train_leaves)),
-            )
+            let valid_leaves: Vec<u32> = valid.par_iter().with_min_len(1024).map(route).collect();
+            rayon::join(|| build(valid, &valid_leaves), || build(train, train_leaves))
         } else {
-            (LeafRows::build(&tree, &slot, leaves.len(), data, valid, None), LeafRows::build(&tree, &slot, leaves.len(), data, train, Some(train_leaves)))
+            let valid_leaves: Vec<u32> = valid.iter().map(route).collect();
+            (build(valid, &valid_leaves), build(train, train_leaves))
         };
         Envelope { tree, parent, by_rank, leaves, valid: valid_rows, train: train_rows }
     }

@@ -1086,7 +1086,7 @@ impl Grower<'_> {
                     self.grow_together(trees, children.into());
                     self.restore_order(a, b);
                 } else if i < last {
-                    let copy = self.sorted.iter().map(|col| col[a..b].to_vec()).collect();
+                    let copy = self.copy_rows(a, b);
                     let sorted = std::mem::replace(&mut self.sorted, copy);
                     let offset = std::mem::replace(&mut self.offset, node.start);
                     let children = self.split_together(trees, &members, &node, 0, b - a, p);
@@ -1117,7 +1117,7 @@ impl Grower<'_> {
             || vec![false; n],
             |go_left, (node, mut subs)| {
                 let (a, b) = ((node.start - self.offset) as usize, (node.end - self.offset) as usize);
-                let copy = self.sorted.iter().map(|col| col[a..b].to_vec()).collect();
+                let copy = self.copy_rows(a, b);
                 let mut task = self.task(copy, node.start, std::mem::take(go_left));
                 let root = SharedNode { members: (0..subs.len()).map(|i| (i, 0)).collect(), start: node.start, end: node.end };
                 task.grow_together(&mut subs, vec![root]);
@@ -1129,6 +1129,11 @@ impl Grower<'_> {
                 }
             },
         );
+    }
+
+    /// A copy of rows `[a, b)` of every sorted feature.
+    fn copy_rows(&self, a: usize, b: usize) -> Vec<Vec<Entry>> {
+        self.sorted.iter().map(|col| col[a..b].to_vec()).collect()
     }
 
     /// Sorts rows `[a, b)` of every feature back into the presort's order (by value, ties by
