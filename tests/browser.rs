@@ -249,7 +249,7 @@ async fn signing_in_with_tokens_and_the_role_table() {
     std::fs::write(&path, format!("{}\n{}\n", file_line("ro", Role::Reader, &reader), file_line("writer-a", Role::Writer, &writer))).unwrap();
     let options = ServeOptions {
         config: Some(format!("tokens_file = {:?}\ncpu_threads = 1\n", path.to_str().unwrap())),
-        env: vec![("POLLARD_TEST_UNIT_DELAY_MS".into(), "500".into())],
+        env: vec![("POLLARD_TEST_UNIT_DELAY_MS".into(), "1000".into())],
         ..ServeOptions::default()
     };
     let server = Serve::start_with(options);
@@ -307,7 +307,14 @@ async fn signing_in_with_tokens_and_the_role_table() {
     sign_in(writer.clone()).await;
     until("the runs page after signing in as the writer", || path_is("/runs".into())).await;
     c.goto(&format!("{web}/runs/{id}")).await.unwrap();
+    // The click only starts the form's POST: wait for the page it redirects to before
+    // reloading, or a reload could abort the POST before it is sent.
+    c.execute("window.pollardOldPage = true;", vec![]).await.unwrap();
     c.find(Locator::Css("form[action$='/cancel'] button")).await.unwrap().click().await.unwrap();
+    until("the page the cancel redirects to", || async {
+        c.execute("return window.pollardOldPage === undefined;", vec![]).await.map(|v| v == json!(true)).unwrap_or(false)
+    })
+    .await;
     until("the run to read cancelled", || async {
         let _ = c.refresh().await;
         text_now(&c, "dl.facts").await.contains("cancelled")
