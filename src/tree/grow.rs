@@ -636,17 +636,20 @@ impl<'p> Grower<'p> {
     /// Decides whether node `id` may split and, if so, finds its split and the children's
     /// statistics. `None` means the node stays a leaf.
     fn evaluate(&mut self, id: u32) -> Option<Pending> {
-        let node = &self.arena.nodes[id as usize];
-        let s = self.arena.stats[id as usize].clone();
+        let i = id as usize;
+        let node = &self.arena.nodes[i];
         let n = node.rows;
-        if self.stops(node.depth, &s) || n < 2 * self.limits.min_leaf_rows {
+        if self.stops(node.depth, &self.arena.stats[i]) || n < 2 * self.limits.min_leaf_rows {
             return None;
         }
-        let start = self.arena.starts[id as usize] as usize;
+        let start = self.arena.starts[i] as usize;
         let end = start + n as usize;
-        let bounds = self.arena.bounds[id as usize];
-        let (feature, fb) = self.search(start, end, &s.totals, bounds)?;
-        self.pending(feature, &fb, start, end, &s, bounds)
+        let bounds = self.arena.bounds[i];
+        // Lent out (not cloned) while the search borrows the grower, and put back.
+        let s = std::mem::replace(&mut self.arena.stats[i], NodeStats { totals: Totals::zero(0), impurity: 0.0 });
+        let p = self.search(start, end, &s.totals, bounds).and_then(|(feature, fb)| self.pending(feature, &fb, start, end, &s, bounds));
+        self.arena.stats[i] = s;
+        p
     }
 
     /// Whether a node at `depth` with statistics `s` stays a leaf whatever its
@@ -741,19 +744,28 @@ impl<'p> Grower<'p> {
         let rows = self.prep.rows();
         let base = SearchCtx { rows: &rows, criterion: self.criterion, min_leaf_rows: self.limits.min_leaf_rows, order: None };
         let mut s = std::mem::take(&mut self.search_scratch);
-        let results = self.each_feature(start, end, &mut s, |f, seg, s| {
+        let one = |f: usize, seg: &[Entry], s: &mut Scratch| {
             let ctx = SearchCtx { order: self.order(f, bounds), ..base };
             if self.levels[f] > 0 {
                 ctx.categorical(seg, totals, s)
             } else {
                 ctx.numeric(seg, &self.edges[f], totals, s)
             }
-        });
-        self.search_scratch = s;
+        };
         let mut best = None;
-        for (f, r) in results.into_iter().enumerate() {
-            offer_feature(&mut best, f, r);
+        if self.is_parallel(start, end) {
+            let results: Vec<_> = (0..self.sorted.len()).into_par_iter().map_init(Scratch::default, |s, f| one(f, &self.sorted[f][start..end], s)).collect();
+            for (f, r) in results.into_iter().enumerate() {
+                offer_feature(&mut best, f, r);
+            }
+        } else {
+            // Offered as found: a small node's search is short, and a list of every
+            // feature's best would cost an allocation per node.
+            for f in 0..self.sorted.len() {
+                offer_feature(&mut best, f, one(f, &self.sorted[f][start..end], &mut s));
+            }
         }
+        self.search_scratch = s;
         best
     }
 
@@ -785,11 +797,18 @@ impl<'p> Grower<'p> {
     /// rayon when the node is big enough to pay for the hand-off.
     fn each_feature<R: Send>(&self, start: usize, end: usize, scratch: &mut Scratch, one: impl Fn(usize, &[Entry], &mut Scratch) -> R + Sync) -> Vec<R> {
         let nf = self.sorted.len();
-        if self.parallel && (end - start) * nf >= PARALLEL_WORK && nf > 1 {
+        if self.is_parallel(start, end) {
             (0..nf).into_par_iter().map_init(Scratch::default, |s, f| one(f, &self.sorted[f][start..end], s)).collect()
         } else {
             (0..nf).map(|f| one(f, &self.sorted[f][start..end], scratch)).collect()
         }
+    }
+
+    /// Whether the work on rows `[start, end)` of every feature is big enough to share out
+    /// on the pool.
+    fn is_parallel(&self, start: usize, end: usize) -> bool {
+        let nf = self.sorted.len();
+        self.parallel && (end - start) * nf >= PARALLEL_WORK && nf > 1
     }
 
     fn make_split(&self, feature: usize, fb: &FeatureBest) -> Split {
@@ -840,8 +859,7 @@ impl<'p> Grower<'p> {
             }
             seg[l..].copy_from_slice(&scratch[..r]);
         };
-        let nf = self.sorted.len();
-        if self.parallel && (end - start) * nf >= PARALLEL_WORK && nf > 1 {
+        if self.is_parallel(start, end) {
             self.sorted.par_iter_mut().for_each_init(Vec::new, |scratch, col| partition(&mut col[start..end], scratch));
         } else {
             let mut scratch = std::mem::take(&mut self.scratch);
@@ -857,21 +875,26 @@ impl<'p> Grower<'p> {
     fn finish(&self, arena: Arena, options: super::FitOptions, mut leaf_of: Vec<u32>) -> (Tree, Vec<u32>) {
         let Arena { mut nodes, stats, starts, bounds } = arena;
         let limited = !self.monotone.is_empty();
-        // Best-first ranks: a priority walk from the root over split nodes.
+        // The walks below read compact copies of the links and gains: the nodes themselves
+        // are large and are read out of creation order.
+        let children: Vec<[u32; 2]> = nodes.iter().map(|n| if n.is_leaf() { [NO_NODE; 2] } else { [n.left, n.right] }).collect();
+        let gains: Vec<f64> = nodes.iter().map(|n| n.gain).collect();
+        let splits = |id: u32| children[id as usize][0] != NO_NODE;
+        // Best-first ranks: a priority walk from the root over split nodes (leaves never
+        // enter the heap; the order is strict, so they could not change it).
+        let mut ranks = vec![NO_NODE; nodes.len()];
         let mut heap = BinaryHeap::new();
-        heap.push(Frontier { gain: nodes[0].gain, depth: 0, start: 0, id: 0 });
+        if splits(0) {
+            heap.push(Frontier { gain: gains[0], depth: 0, start: 0, id: 0 });
+        }
         let mut rank = 0;
         while let Some(top) = heap.pop() {
-            let node = &mut nodes[top.id as usize];
-            if node.is_leaf() {
-                continue;
-            }
-            node.rank = rank;
+            ranks[top.id as usize] = rank;
             rank += 1;
-            let (l, r) = (node.left, node.right);
-            for c in [l, r] {
-                let cn = &nodes[c as usize];
-                heap.push(Frontier { gain: cn.gain, depth: cn.depth, start: starts[c as usize], id: c });
+            for c in children[top.id as usize] {
+                if splits(c) {
+                    heap.push(Frontier { gain: gains[c as usize], depth: top.depth + 1, start: starts[c as usize], id: c });
+                }
             }
         }
         // Preorder renumbering, left subtree first.
@@ -879,10 +902,10 @@ impl<'p> Grower<'p> {
         let mut stack = vec![0u32];
         while let Some(i) = stack.pop() {
             order.push(i);
-            let n = &nodes[i as usize];
-            if !n.is_leaf() {
-                stack.push(n.right);
-                stack.push(n.left);
+            let [l, r] = children[i as usize];
+            if l != NO_NODE {
+                stack.push(r);
+                stack.push(l);
             }
         }
         let mut new_id = vec![0u32; nodes.len()];
@@ -895,7 +918,9 @@ impl<'p> Grower<'p> {
         let mut values = Vec::with_capacity(nodes.len() * width);
         let mut class_totals = Vec::with_capacity(nodes.len() * k);
         for &old in &order {
-            let mut n = nodes[old as usize].clone();
+            // Each node is moved out once; what is left behind is never read.
+            let mut n = std::mem::replace(&mut nodes[old as usize], Node { depth: 0, rows: 0, weighted_rows: 0.0, impurity: 0.0, gain: 0.0, split: None, left: NO_NODE, right: NO_NODE, rank: NO_NODE });
+            n.rank = ranks[old as usize];
             if !n.is_leaf() {
                 n.left = new_id[n.left as usize];
                 n.right = new_id[n.right as usize];

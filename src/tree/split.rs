@@ -6,6 +6,8 @@
 //! Guestrin, 2016): first every position with missing cells on the right, then every
 //! position with them on the left; a later candidate wins only when strictly better.
 
+use smallvec::{smallvec, SmallVec};
+
 use super::Criterion;
 
 /// A feature value and the fit-local row it belongs to.
@@ -80,12 +82,12 @@ pub(crate) struct Totals {
     pub n: u32,
     pub w: f64,
     /// Class weights (classify) or [Σ w·y] (regress).
-    pub sums: Vec<f64>,
+    pub sums: SmallVec<[f64; 2]>,
 }
 
 impl Totals {
     pub fn zero(width: usize) -> Totals {
-        Totals { n: 0, w: 0.0, sums: vec![0.0; width] }
+        Totals { n: 0, w: 0.0, sums: smallvec![0.0; width] }
     }
 
     #[inline]
