@@ -380,7 +380,12 @@ impl SearchCtx<'_> {
         }
         if !constant {
             let mut scan = Scan { nn, n_miss, msl, miss_w, nonmiss_w, edges, edge: 0 };
+            // No missing cells, bins or monotone limit: only the scan's first pass has
+            // candidates, and every one is admitted.
+            let plain = n_miss == 0 && edges.is_empty() && self.order.is_none();
             match (self.rows.k, self.rows.unit) {
+                (0, true) if plain => self.scan_regress_plain::<true, P>(seg, &scan, s, pass_right),
+                (0, false) if plain => self.scan_regress_plain::<false, P>(seg, &scan, s, pass_right),
                 (0, true) => self.scan_positions::<true, true, P>(seg, &mut scan, s, pass_right, pass_left),
                 (0, false) => self.scan_positions::<true, false, P>(seg, &mut scan, s, pass_right, pass_left),
                 (2, true) => self.scan_two_classes::<true, P>(seg, &mut scan, s, pass_right, pass_left),
@@ -466,6 +471,39 @@ impl SearchCtx<'_> {
                     self.criterion.class_proxy(&s.tmp, lw + sc.miss_w, &s.right, rw)
                 };
                 pass_left.offer_within(p, i, left);
+            }
+        }
+    }
+
+    /// [`Self::scan_positions`] for a regress target with no missing cells, bins or monotone
+    /// limit (so no candidate of the second pass, and every cut admitted): the same
+    /// candidates, the same proxies of the same sums, in a loop whose state fits in registers.
+    #[inline(always)]
+    fn scan_regress_plain<const UNIT: bool, P: Pass<usize>>(&self, seg: &[Entry], sc: &Scan, s: &Scratch, pass_right: &mut P) {
+        let rows = self.rows;
+        let (wy, w) = (rows.wy, rows.w);
+        let (miss0, nonmiss0) = (s.miss[0], s.nonmiss[0]);
+        let (miss_w, nonmiss_w, msl) = (sc.miss_w, sc.nonmiss_w, sc.msl);
+        let end = sc.end();
+        let nn = sc.nn as u32;
+        let (mut lw, mut sl) = (0.0f64, 0.0f64);
+        for (i, (e, next)) in seg[..end].iter().zip(&seg[1..=end]).enumerate() {
+            let r = e.row();
+            if UNIT {
+                lw = (i + 1) as f64;
+            } else {
+                lw += w[r];
+            }
+            sl += wy[r];
+            // As `Scan::cut_after`: no cut between values within the tolerance.
+            if next.v <= e.v + VALUE_TOLERANCE {
+                continue;
+            }
+            let nl = i as u32 + 1;
+            let right = nl.min(nn - nl);
+            if right >= msl {
+                let p = super::criterion::squared_error_proxy(sl, lw, nonmiss0 - sl + miss0, nonmiss_w - lw + miss_w);
+                pass_right.offer_within(p, i, right);
             }
         }
     }
@@ -648,5 +686,69 @@ impl SearchCtx<'_> {
             0
         };
         move |t: &Totals| t.sums[class] / t.w
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// splitmix64 (Steele, Lea & Flood, "Fast splittable pseudorandom number generators",
+    /// OOPSLA 2014): seeded cases without a dependency.
+    fn next(state: &mut u64) -> u64 {
+        *state = state.wrapping_add(0x9e37_79b9_7f4a_7c15);
+        let mut z = *state;
+        z = (z ^ (z >> 30)).wrapping_mul(0xbf58_476d_1ce4_e5b9);
+        z = (z ^ (z >> 27)).wrapping_mul(0x94d0_49bb_1331_11eb);
+        z ^ (z >> 31)
+    }
+
+    /// What the general scan's first pass and the plain regress scan keep, for each of
+    /// `msl` (ascending): (proxy bits, position).
+    fn both_scans(seg: &[Entry], rows: &Rows, node: &Totals, msl: &[u32]) -> [Vec<(u64, Option<usize>)>; 2] {
+        let ctx = SearchCtx { rows, criterion: Criterion::SquaredError, min_leaf_rows: msl[0], order: None };
+        let mut s = Scratch::default();
+        s.reset(1);
+        s.nonmiss[0] = node.sums[0];
+        let scan = || Scan { nn: seg.len(), n_miss: 0, msl: msl[0], miss_w: 0.0, nonmiss_w: node.w, edges: &[], edge: 0 };
+        let kept = |b: Bests<usize>| b.best.iter().map(|b| (b.proxy.to_bits(), b.at)).collect::<Vec<_>>();
+        let (mut general, mut unused) = (Bests::new(msl), Bests::new(msl));
+        let mut plain = Bests::new(msl);
+        if rows.unit {
+            ctx.scan_positions::<true, true, _>(seg, &mut scan(), &mut s, &mut general, &mut unused);
+            ctx.scan_regress_plain::<true, _>(seg, &scan(), &s, &mut plain);
+        } else {
+            ctx.scan_positions::<true, false, _>(seg, &mut scan(), &mut s, &mut general, &mut unused);
+            ctx.scan_regress_plain::<false, _>(seg, &scan(), &s, &mut plain);
+        }
+        assert!(unused.best.iter().all(|b| b.at.is_none()), "without missing cells the second pass has no candidate");
+        [kept(general), kept(plain)]
+    }
+
+    /// The plain regress scan keeps what the general scan keeps, bit for bit, for each
+    /// `min_leaf_rows` value: seeded segments with many tied values, unit and other weights.
+    #[test]
+    fn the_plain_regress_scan_keeps_what_the_general_scan_keeps() {
+        let mut st = 2026u64;
+        let mut found = 0;
+        for case in 0..600 {
+            let n = 2 + (next(&mut st) % 70) as usize;
+            let distinct = 1 + next(&mut st) % 15;
+            let unit = case % 2 == 0;
+            let y: Vec<f64> = (0..n).map(|_| (next(&mut st) % 2001) as f64 / 7.0 - 140.0).collect();
+            let w: Vec<f64> = (0..n).map(|_| if unit { 1.0 } else { 0.25 + (next(&mut st) % 12) as f64 / 8.0 }).collect();
+            let wy: Vec<f64> = y.iter().zip(&w).map(|(y, w)| y * w).collect();
+            let mut seg: Vec<Entry> = (0..n).map(|r| Entry { v: (next(&mut st) % distinct) as f32 * 0.37, r: r as u32 }).collect();
+            seg.sort_by(|a, b| a.v.total_cmp(&b.v).then(a.r.cmp(&b.r)));
+            let rows = Rows { class: &[], y: &y, w: &w, wy: &wy, k: 0, unit };
+            let mut node = Totals::zero(1);
+            for r in 0..n {
+                node.add(&rows, r);
+            }
+            let [general, plain] = both_scans(&seg, &rows, &node, &[1, 2, 3, 7]);
+            assert_eq!(plain, general, "case {case}: n = {n}, {distinct} distinct values, unit weights: {unit}");
+            found += general.iter().filter(|(_, at)| at.is_some()).count();
+        }
+        assert!(found > 1000, "the cases have cuts to find ({found})");
     }
 }
