@@ -368,6 +368,20 @@ impl SearchCtx<'_> {
             return None;
         }
         let n_miss = (seg.len() - nn) as u32;
+        if self.rows.k == 0 && n_miss == 0 && edges.is_empty() && self.order.is_none() {
+            // No missing cells, bins or monotone limit: only the first pass has candidates,
+            // every one admitted, and the present rows' sums are the node's.
+            if seg[nn - 1].v <= seg[0].v + VALUE_TOLERANCE {
+                return None;
+            }
+            let scan = Scan { nn, n_miss, msl, miss_w: 0.0, nonmiss_w: node.w, edges, edge: 0 };
+            if self.rows.unit {
+                self.scan_regress_plain::<true, P>(seg, &scan, node.sums[0], pass_right);
+            } else {
+                self.scan_regress_plain::<false, P>(seg, &scan, node.sums[0], pass_right);
+            }
+            return Some(NumericScan { nn, n_miss, all_left: None });
+        }
         s.reset(width);
         let miss_w = self.add_rows(&seg[nn..], &mut s.miss);
         for k in 0..width {
@@ -380,12 +394,7 @@ impl SearchCtx<'_> {
         }
         if !constant {
             let mut scan = Scan { nn, n_miss, msl, miss_w, nonmiss_w, edges, edge: 0 };
-            // No missing cells, bins or monotone limit: only the scan's first pass has
-            // candidates, and every one is admitted.
-            let plain = n_miss == 0 && edges.is_empty() && self.order.is_none();
             match (self.rows.k, self.rows.unit) {
-                (0, true) if plain => self.scan_regress_plain::<true, P>(seg, &scan, s, pass_right),
-                (0, false) if plain => self.scan_regress_plain::<false, P>(seg, &scan, s, pass_right),
                 (0, true) => self.scan_positions::<true, true, P>(seg, &mut scan, s, pass_right, pass_left),
                 (0, false) => self.scan_positions::<true, false, P>(seg, &mut scan, s, pass_right, pass_left),
                 (2, true) => self.scan_two_classes::<true, P>(seg, &mut scan, s, pass_right, pass_left),
@@ -476,14 +485,15 @@ impl SearchCtx<'_> {
     }
 
     /// [`Self::scan_positions`] for a regress target with no missing cells, bins or monotone
-    /// limit (so no candidate of the second pass, and every cut admitted): the same
-    /// candidates, the same proxies of the same sums, in a loop whose state fits in registers.
+    /// limit (so no candidate of the second pass, and every cut admitted), `total` the node's
+    /// Σ w·y: the same candidates and the same proxies, in a loop whose state fits in
+    /// registers. (The general scan adds the missing cells' empty sums, +0, to the right
+    /// side's: that only turns a −0 into +0, which squares and divides alike.)
     #[inline(always)]
-    fn scan_regress_plain<const UNIT: bool, P: Pass<usize>>(&self, seg: &[Entry], sc: &Scan, s: &Scratch, pass_right: &mut P) {
+    fn scan_regress_plain<const UNIT: bool, P: Pass<usize>>(&self, seg: &[Entry], sc: &Scan, total: f64, pass_right: &mut P) {
         let rows = self.rows;
         let (wy, w) = (rows.wy, rows.w);
-        let (miss0, nonmiss0) = (s.miss[0], s.nonmiss[0]);
-        let (miss_w, nonmiss_w, msl) = (sc.miss_w, sc.nonmiss_w, sc.msl);
+        let (nonmiss_w, msl) = (sc.nonmiss_w, sc.msl);
         let end = sc.end();
         let nn = sc.nn as u32;
         let (mut lw, mut sl) = (0.0f64, 0.0f64);
@@ -502,7 +512,7 @@ impl SearchCtx<'_> {
             let nl = i as u32 + 1;
             let right = nl.min(nn - nl);
             if right >= msl {
-                let p = super::criterion::squared_error_proxy(sl, lw, nonmiss0 - sl + miss0, nonmiss_w - lw + miss_w);
+                let p = super::criterion::squared_error_proxy(sl, lw, total - sl, nonmiss_w - lw);
                 pass_right.offer_within(p, i, right);
             }
         }
@@ -716,10 +726,10 @@ mod tests {
         let mut plain = Bests::new(msl);
         if rows.unit {
             ctx.scan_positions::<true, true, _>(seg, &mut scan(), &mut s, &mut general, &mut unused);
-            ctx.scan_regress_plain::<true, _>(seg, &scan(), &s, &mut plain);
+            ctx.scan_regress_plain::<true, _>(seg, &scan(), node.sums[0], &mut plain);
         } else {
             ctx.scan_positions::<true, false, _>(seg, &mut scan(), &mut s, &mut general, &mut unused);
-            ctx.scan_regress_plain::<false, _>(seg, &scan(), &s, &mut plain);
+            ctx.scan_regress_plain::<false, _>(seg, &scan(), node.sums[0], &mut plain);
         }
         assert!(unused.best.iter().all(|b| b.at.is_none()), "without missing cells the second pass has no candidate");
         [kept(general), kept(plain)]
