@@ -828,7 +828,7 @@ fn prune_at_zero_keeps_a_zero_gain_split() {
 /// {l1, l2}; targets 3 and 6 placed so that each value of each feature has mean 54/11). Every
 /// split of it has zero gain, computed as −2.6e-16 here, and the node stays a leaf.
 #[test]
-fn a_leaf_in_an_xor_pattern_is_the_only_misfit() {
+fn property_3_on_the_case_with_an_xor_node() {
     let f0 = [-0.5, -1.0, -1.0, -0.5, -0.5, -1.0, -1.0, -1.0, -1.0, -1.0, -1.0, -1.0, -1.0, -1.0, -0.5, -1.0, -1.0, -0.5, -0.5, -1.0, -0.5, -0.5, -1.0, -1.0, -0.5, -0.5, -1.0, -0.5, -0.5, -1.0, -1.0, -1.0, -0.5, -0.5, -0.5, -0.5, -1.0f32];
     let m = MISSING_CODE;
     let f1 = [1, 0, m, 1, 2, 2, m, 0, 2, 0, 0, 2, 1, m, 2, 2, 1, 0, 0, 0, 2, m, 1, 2, 1, 1, 2, 2, 0, 0, 1, 2, 1, 0, 1, 1, 0u32];

@@ -744,27 +744,21 @@ impl<'p> Grower<'p> {
         let rows = self.prep.rows();
         let base = SearchCtx { rows: &rows, criterion: self.criterion, min_leaf_rows: self.limits.min_leaf_rows, order: None };
         let mut s = std::mem::take(&mut self.search_scratch);
-        let one = |f: usize, seg: &[Entry], s: &mut Scratch| {
-            let ctx = SearchCtx { order: self.order(f, bounds), ..base };
-            if self.levels[f] > 0 {
-                ctx.categorical(seg, totals, s)
-            } else {
-                ctx.numeric(seg, &self.edges[f], totals, s)
-            }
-        };
         let mut best = None;
-        if self.is_parallel(start, end) {
-            let results: Vec<_> = (0..self.sorted.len()).into_par_iter().map_init(Scratch::default, |s, f| one(f, &self.sorted[f][start..end], s)).collect();
-            for (f, r) in results.into_iter().enumerate() {
-                offer_feature(&mut best, f, r);
-            }
-        } else {
-            // Offered as found: a small node's search is short, and a list of every
-            // feature's best would cost an allocation per node.
-            for f in 0..self.sorted.len() {
-                offer_feature(&mut best, f, one(f, &self.sorted[f][start..end], &mut s));
-            }
-        }
+        self.each_feature(
+            start,
+            end,
+            &mut s,
+            |f, seg, s| {
+                let ctx = SearchCtx { order: self.order(f, bounds), ..base };
+                if self.levels[f] > 0 {
+                    ctx.categorical(seg, totals, s)
+                } else {
+                    ctx.numeric(seg, &self.edges[f], totals, s)
+                }
+            },
+            |f, r| offer_feature(&mut best, f, r),
+        );
         self.search_scratch = s;
         best
     }
@@ -775,32 +769,44 @@ impl<'p> Grower<'p> {
         let rows = self.prep.rows();
         let base = SearchCtx { rows: &rows, criterion: self.criterion, min_leaf_rows: msl[0], order: None };
         let mut s = std::mem::take(&mut self.search_scratch);
-        let results = self.each_feature(start, end, &mut s, |f, seg, s| {
-            let ctx = SearchCtx { order: self.order(f, bounds), ..base };
-            if self.levels[f] > 0 {
-                ctx.categorical_keys(seg, totals, s, msl)
-            } else {
-                ctx.numeric_keys(seg, &self.edges[f], totals, s, msl)
-            }
-        });
-        self.search_scratch = s;
         let mut best = vec![None; msl.len()];
-        for (f, r) in results.into_iter().enumerate() {
-            for (b, r) in best.iter_mut().zip(r) {
-                offer_feature(b, f, r);
-            }
-        }
+        self.each_feature(
+            start,
+            end,
+            &mut s,
+            |f, seg, s| {
+                let ctx = SearchCtx { order: self.order(f, bounds), ..base };
+                if self.levels[f] > 0 {
+                    ctx.categorical_keys(seg, totals, s, msl)
+                } else {
+                    ctx.numeric_keys(seg, &self.edges[f], totals, s, msl)
+                }
+            },
+            |f, r| {
+                for (b, r) in best.iter_mut().zip(r) {
+                    offer_feature(b, f, r);
+                }
+            },
+        );
+        self.search_scratch = s;
         best
     }
 
-    /// `one(feature, rows [start, end) of that feature)` for every feature in index order, on
-    /// rayon when the node is big enough to pay for the hand-off.
-    fn each_feature<R: Send>(&self, start: usize, end: usize, scratch: &mut Scratch, one: impl Fn(usize, &[Entry], &mut Scratch) -> R + Sync) -> Vec<R> {
+    /// `take(feature, one(feature, rows [start, end) of that feature))` for every feature in
+    /// index order. `one` runs on rayon when the node is big enough to pay for the hand-off;
+    /// otherwise each result is taken as it is found (a small node's search is short, and a
+    /// list of every feature's result would cost an allocation per node).
+    fn each_feature<R: Send>(&self, start: usize, end: usize, scratch: &mut Scratch, one: impl Fn(usize, &[Entry], &mut Scratch) -> R + Sync, mut take: impl FnMut(usize, R)) {
         let nf = self.sorted.len();
         if self.is_parallel(start, end) {
-            (0..nf).into_par_iter().map_init(Scratch::default, |s, f| one(f, &self.sorted[f][start..end], s)).collect()
+            let results: Vec<R> = (0..nf).into_par_iter().map_init(Scratch::default, |s, f| one(f, &self.sorted[f][start..end], s)).collect();
+            for (f, r) in results.into_iter().enumerate() {
+                take(f, r);
+            }
         } else {
-            (0..nf).map(|f| one(f, &self.sorted[f][start..end], scratch)).collect()
+            for f in 0..nf {
+                take(f, one(f, &self.sorted[f][start..end], scratch));
+            }
         }
     }
 

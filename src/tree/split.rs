@@ -702,16 +702,7 @@ impl SearchCtx<'_> {
 #[cfg(test)]
 mod tests {
     use super::*;
-
-    /// splitmix64 (Steele, Lea & Flood, "Fast splittable pseudorandom number generators",
-    /// OOPSLA 2014): seeded cases without a dependency.
-    fn next(state: &mut u64) -> u64 {
-        *state = state.wrapping_add(0x9e37_79b9_7f4a_7c15);
-        let mut z = *state;
-        z = (z ^ (z >> 30)).wrapping_mul(0xbf58_476d_1ce4_e5b9);
-        z = (z ^ (z >> 27)).wrapping_mul(0x94d0_49bb_1331_11eb);
-        z ^ (z >> 31)
-    }
+    use crate::sweep::folds::SplitMix64;
 
     /// What the general scan's first pass and the plain regress scan keep, for each of
     /// `msl` (ascending): (proxy bits, position).
@@ -739,16 +730,16 @@ mod tests {
     /// `min_leaf_rows` value: seeded segments with many tied values, unit and other weights.
     #[test]
     fn the_plain_regress_scan_keeps_what_the_general_scan_keeps() {
-        let mut st = 2026u64;
+        let mut rng = SplitMix64::new(2026);
         let mut found = 0;
         for case in 0..600 {
-            let n = 2 + (next(&mut st) % 70) as usize;
-            let distinct = 1 + next(&mut st) % 15;
+            let n = 2 + rng.below(70) as usize;
+            let distinct = 1 + rng.below(15);
             let unit = case % 2 == 0;
-            let y: Vec<f64> = (0..n).map(|_| (next(&mut st) % 2001) as f64 / 7.0 - 140.0).collect();
-            let w: Vec<f64> = (0..n).map(|_| if unit { 1.0 } else { 0.25 + (next(&mut st) % 12) as f64 / 8.0 }).collect();
+            let y: Vec<f64> = (0..n).map(|_| rng.below(2001) as f64 / 7.0 - 140.0).collect();
+            let w: Vec<f64> = (0..n).map(|_| if unit { 1.0 } else { 0.25 + rng.below(12) as f64 / 8.0 }).collect();
             let wy: Vec<f64> = y.iter().zip(&w).map(|(y, w)| y * w).collect();
-            let mut seg: Vec<Entry> = (0..n).map(|r| Entry { v: (next(&mut st) % distinct) as f32 * 0.37, r: r as u32 }).collect();
+            let mut seg: Vec<Entry> = (0..n).map(|r| Entry { v: rng.below(distinct) as f32 * 0.37, r: r as u32 }).collect();
             seg.sort_by(|a, b| a.v.total_cmp(&b.v).then(a.r.cmp(&b.r)));
             let rows = Rows { class: &[], y: &y, w: &w, wy: &wy, k: 0, unit };
             let mut node = Totals::zero(1);
